@@ -1,0 +1,214 @@
+"""A finite task prepared for one training run: pairs, optimum, metrics, summary.
+
+This is the finite tasks' side of the trainer's interface (see
+:mod:`polopt.train`): :func:`prepare` turns a task, a loss and beta into the
+:class:`polopt.train.PairSet` to train on (``exact``: every ordered pair with
+its win weight; ``sampled``: a seeded sample of labelled pairs), solves the
+exact optimum of that very objective once, and then measures a policy against
+it while training runs and at the end.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from polopt.losses import Loss
+from polopt.policies import build_policy
+from polopt.train import PairSet, TrainResult
+from toy_tasks.finite import FiniteTask, total_variation
+from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
+
+MODES = ("exact", "sampled")
+DTYPE = torch.float64  # finite tasks are small: train them in double precision
+
+
+@dataclass
+class FiniteSession:
+    task: FiniteTask
+    loss: Loss
+    beta: float
+    smoothing: float
+    mode: str
+    weights: np.ndarray  # (X, K, K) the trained objective's win weights, smoothing applied
+    population_weights: np.ndarray  # (X, K, K) the population's, smoothing applied
+    pairs: PairSet
+    optimum: Optimum  # of the trained objective
+    population_optimum: Optimum  # of the population objective (the same object in exact mode)
+
+    # ------------------------------------------------------------ model
+
+    def build_policy(self, kind: str = "tabular", width: int = 16, seed: int = 0) -> torch.nn.Module:
+        return build_policy(kind, torch.as_tensor(np.log(self.task.reference), dtype=DTYPE), width=width, seed=seed,
+                            score_scale=1.0 / self.beta)
+
+    @staticmethod
+    def logratios(policy) -> np.ndarray:
+        """h = log pi - log pi_ref, (X, K)."""
+        with torch.no_grad():
+            return (policy.log_distribution() - policy.reference_logprobs).double().numpy()
+
+    # ------------------------------------------------------------ measuring
+
+    def distance(self, h: np.ndarray, optimum: Optimum) -> float | None:
+        """TV between the policy of h and the optimum, in the gauge of h."""
+        if not optimum.finite:
+            return None
+        target = self.task.policy_from_logratios(optimum.aligned_to(h))
+        return total_variation(self.task.policy_from_logratios(h), target, self.task.prompt_weights)
+
+    def evaluate(self, policy) -> dict:
+        """Per-log-step metrics: KL to the reference and TV to the optimum where finite."""
+        h = self.logratios(policy)
+        out = {"kl_to_reference": self.task.kl_to_reference(self.task.policy_from_logratios(h))}
+        if self.optimum.finite:
+            out["tv_to_optimum"] = self.distance(h, self.optimum)
+        return out
+
+    def summarise(self, policy, result: TrainResult) -> dict:
+        """The finite-task fields of summary.json (DESIGN.md's contract, plus diagnostics)."""
+        h = self.logratios(policy)
+        pi = self.task.policy_from_logratios(h)
+        value = population_loss(self.loss, self.weights, h, beta=self.beta)
+        opt = self.optimum
+        summary = {
+            "task": self.task.name,
+            "mode": self.mode,
+            "loss_name": self.loss.name,
+            "beta": self.beta,
+            "smoothing": self.smoothing,
+            "n_pairs": len(self.pairs) if self.mode == "sampled" else None,
+            "loss": value,
+            "policy": _per_prompt(pi),
+            "reference": _per_prompt(self.task.reference),
+            "responses": self.task.responses or None,
+            "prompts": self.task.prompts or None,
+            "optimum": _per_prompt(self.task.policy_from_logratios(opt.aligned_to(h))) if opt.finite else None,
+            "optimum_finite": opt.finite,
+            "optimum_value": opt.value,
+            "optimum_method": opt.method,
+            "optimum_residual": opt.residual,
+            "optimum_unique": opt.unique,
+            "tv_to_optimum": self.distance(h, opt),
+            "loss_gap": value - opt.value,
+            "relative_loss_gap": (value - opt.value) / abs(opt.value) if opt.value else None,
+            "kl_to_reference": self.task.kl_to_reference(pi),
+            "steps": result.steps,
+            "seconds": result.seconds,
+            "notes": list(opt.notes),
+        }
+        if self.mode == "sampled":
+            pop = self.population_optimum
+            pop_value = population_loss(self.loss, self.population_weights, h, beta=self.beta)
+            summary.update({
+                "population_loss": pop_value,
+                "population_optimum": _per_prompt(self.task.policy_from_logratios(pop.aligned_to(h)))
+                if pop.finite else None,
+                "population_optimum_finite": pop.finite,
+                "tv_to_population_optimum": self.distance(h, pop),
+                "population_loss_gap": pop_value - pop.value,
+            })
+            summary["notes"].append("sampled mode: 'optimum' is the optimum of the empirical pair counts; "
+                                    "'population_optimum' is the optimum of the task itself")
+        if not opt.finite:
+            summary["limit_support"] = opt.limit_support
+            growth = margin_growth(result.history)
+            summary["margin_growth"] = growth
+            mass = [float(pi[x, support].sum()) for x, support in enumerate(opt.limit_support)]
+            summary["notes"].append(
+                f"no finite optimum exists for {self.loss.name} on this task: the infimum "
+                f"{opt.value:.6g} is approached only as the log-ratios diverge; over the second half "
+                f"of training margin_mean went from {growth['from']:.4g} to {growth['to']:.4g} "
+                f"({'still growing' if growth['growing'] else 'levelling off'}); the policy puts mass "
+                f"{', '.join(f'{m:.4f}' for m in mass)} on the responses that take it all in the limit "
+                f"({opt.limit_support})")
+        displacement = displacement_warning(result.history)
+        if displacement:
+            summary["notes"].append(displacement)
+        return summary
+
+    def table(self, summary: dict) -> str:
+        """The trained policy beside the reference and the exact optimum, as text."""
+        lines = []
+        optimum = summary["optimum"]
+        labels = self.task.responses or [f"response {i}" for i in range(self.task.n_responses)]
+        width = max(len(s) for s in labels + ["response"])
+        for x in range(self.task.n_prompts):
+            if self.task.n_prompts > 1:
+                lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
+            lines.append(f"  {'response':<{width}}  reference   trained   optimum")
+            for i, label in enumerate(labels):
+                opt = f"{optimum[x][i]:9.4f}" if optimum is not None else "        -"
+                lines.append(f"  {label:<{width}}  {summary['reference'][x][i]:9.4f} "
+                             f"{summary['policy'][x][i]:9.4f} {opt}")
+        tv = summary["tv_to_optimum"]
+        lines.append(f"loss {summary['loss']:.6g}  optimum {summary['optimum_value']:.6g}  "
+                     f"gap {summary['loss_gap']:.3g}  "
+                     f"tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
+                     f"kl_to_reference {summary['kl_to_reference']:.4g}  ({summary['optimum_method']})")
+        if "tv_to_population_optimum" in summary and summary["tv_to_population_optimum"] is not None:
+            lines.append(f"tv_to_population_optimum {summary['tv_to_population_optimum']:.3g} "
+                         f"(n_pairs = {summary['n_pairs']})")
+        lines.extend(f"note: {n}" for n in summary["notes"])
+        return "\n".join(lines)
+
+
+def _per_prompt(p: np.ndarray) -> list[list[float]]:
+    return [[float(v) for v in row] for row in p]
+
+
+def margin_growth(history: list[dict]) -> dict:
+    """margin_mean at the middle and at the end of training, and whether it was still rising."""
+    if not history:
+        return {"from": math.nan, "to": math.nan, "growing": False}
+    first, last = history[len(history) // 2]["margin_mean"], history[-1]["margin_mean"]
+    return {"from": first, "to": last, "growing": bool(last > first + 1e-3 * max(1.0, abs(first)))}
+
+
+def displacement_warning(history: list[dict]) -> str | None:
+    """A note when the winners' and the losers' log-ratios both ended below zero and
+    fell over training: probability leaves both responses of the pairs."""
+    if len(history) < 2:
+        return None
+    start, end = history[0], history[-1]
+    if (end["logratio_winner"] < 0 and end["logratio_loser"] < 0
+            and end["logratio_winner"] < start["logratio_winner"]):
+        return (f"likelihood displacement: the mean log-ratio of winners fell to {end['logratio_winner']:.4g} "
+                f"(losers: {end['logratio_loser']:.4g}); training lowered the probability of preferred "
+                "responses too, on average")
+    return None
+
+
+def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
+            n_pairs: int = 2000, seed: int = 0) -> FiniteSession:
+    """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``."""
+    if mode not in MODES:
+        raise ValueError(f"task.mode must be one of {', '.join(MODES)}, got {mode!r}")
+    population = task.win_weights()
+    if mode == "exact":
+        x, i, j = np.nonzero(population)
+        weights = population
+        pair_weight = torch.as_tensor(population[x, i, j], dtype=DTYPE)
+    else:
+        sample = task.sample_pairs(n_pairs, seed)
+        x, i, j = sample.prompt, sample.winner, sample.loser
+        weights = task.empirical_win_weights(sample)
+        pair_weight = None
+    log_ref = np.log(task.reference)
+    pairs = PairSet(
+        prompt=torch.as_tensor(x, dtype=torch.long), winner=torch.as_tensor(i, dtype=torch.long),
+        loser=torch.as_tensor(j, dtype=torch.long),
+        reference_winner=torch.as_tensor(log_ref[x, i], dtype=DTYPE),  # cached once, never recomputed
+        reference_loser=torch.as_tensor(log_ref[x, j], dtype=DTYPE),
+        weight=pair_weight,
+    )
+    closed_ok = smoothing == 0.0
+    trained = smoothed_weights(weights, smoothing)
+    pop = smoothed_weights(population, smoothing)
+    extras = dict(rewards=task.rewards, sampling=task.sampling, preference=task.preference)
+    optimum = solve(loss, trained, beta=beta, population=mode == "exact" and closed_ok, **extras)
+    population_optimum = optimum if mode == "exact" else solve(loss, pop, beta=beta, population=closed_ok, **extras)
+    return FiniteSession(task, loss, beta, smoothing, mode, trained, pop, pairs, optimum, population_optimum)
