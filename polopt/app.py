@@ -75,8 +75,22 @@ def write_json(path: Path, data: dict) -> None:
     os.replace(tmp, path)
 
 
+_MISSING_HINTS = {
+    "task.path": "task=file needs task.path=PATH to a JSON task file",
+    "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x))",
+}
+
+
+def check_complete(cfg: DictConfig) -> None:
+    """Raise one ValueError naming every ``???`` value the user still has to give."""
+    missing = sorted(OmegaConf.missing_keys(cfg))
+    if missing:
+        raise ValueError("; ".join(_MISSING_HINTS.get(k, f"{k} has no value; give {k}=VALUE") for k in missing))
+
+
 def run(cfg: DictConfig, run_dir: Path) -> dict:
     """Train as ``cfg`` says, write the run folder, return summary.json's content."""
+    check_complete(cfg)
     run_dir.mkdir(parents=True, exist_ok=True)
     (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True), encoding="utf-8")
     loss = build_loss(cfg.loss)

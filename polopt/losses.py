@@ -93,8 +93,9 @@ def huber(x: Tensor, *, delta: float = 1.0) -> Tensor:
     With ``u = x - 1``: ``f(x) = u^2`` if ``|u| <= delta`` else
     ``2 delta |u| - delta^2``. Convex, minimiser x = 1. As ``delta -> inf`` it
     becomes :func:`squared`; it equals ``2 *`` torch's ``huber_loss``, whose
-    convention carries a factor 1/2. With the default delta = 1 the kink sits at
-    x = 0 exactly, so f''(0) takes the quadratic branch's value 2.
+    convention carries a factor 1/2. With the default delta = 1 the kink between
+    the branches sits at x = 0 exactly: f''(0) is 2 from the right and 0 from the
+    left, and autograd reports torch's branch there (the linear one, 0).
 
     References:
         Huber, Robust Estimation of a Location Parameter, 1964 (applied here to
@@ -207,7 +208,7 @@ class Loss:
             (d2,) = torch.autograd.grad(d1, t)
         else:  # f is linear around x: autograd leaves no graph for the second derivative
             d2 = torch.zeros((), dtype=torch.float64)
-        return float(value), float(d1), float(d2)
+        return value.item(), d1.item(), d2.item()
 
     def pair_objective(self, x: np.ndarray | float, p: float) -> np.ndarray:
         """``p f(x) + (1 - p) f(-x)``: the expected loss of one pair whose first

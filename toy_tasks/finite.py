@@ -29,7 +29,6 @@ or several under ``"prompts": [{"prompt": "...", "weight": 1.0, ...same keys...}
 from __future__ import annotations
 
 import json
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -108,7 +107,7 @@ class FiniteTask:
             keep = a != b
             chunks.append((x[keep], a[keep], b[keep]))
             have += int(keep.sum())
-        x, a, b = (np.concatenate(parts)[:n_pairs] for parts in zip(*chunks))
+        x, a, b = (np.concatenate(parts)[:n_pairs] for parts in zip(*chunks, strict=True))
         first_wins = rng.random(n_pairs) < self.preference[x, a, b]
         return LabelledPairs(x, np.where(first_wins, a, b), np.where(first_wins, b, a))
 
@@ -196,7 +195,8 @@ def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt
     if single:
         ref = ref[None]
     if ref.ndim != 2:
-        raise ValueError(f"{where}: field 'reference' must be a list of K probabilities, got an array of shape {ref.shape}")
+        raise ValueError(f"{where}: field 'reference' must be a list of K probabilities, "
+                         f"got an array of shape {ref.shape}")
     n_prompts, k = ref.shape
     if k < 2:
         raise ValueError(f"{where}: field 'reference' needs at least 2 responses, got {k}")
@@ -275,7 +275,8 @@ def _check_preference(pref: np.ndarray, where: str, single: bool) -> None:
         outside = np.argwhere((matrix < 0) | (matrix > 1))
         if outside.size:
             i, j = outside[0]
-            raise ValueError(f"{where}: field '{label}[{i}][{j}]' is {matrix[i, j]:g}; a probability must lie in [0, 1]")
+            raise ValueError(f"{where}: field '{label}[{i}][{j}]' is {matrix[i, j]:g}; "
+                             "a probability must lie in [0, 1]")
         off = np.abs(matrix + matrix.T - 1.0)
         if off.max() > PROBABILITY_TOLERANCE:
             i, j = np.unravel_index(int(off.argmax()), off.shape)
@@ -323,8 +324,9 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
             raise ValueError(f"{where}: missing field '{label}reference' (the K reference probabilities)")
     has_pref = ["preference" in e for e in entries]
     has_rewards = ["rewards" in e for e in entries]
-    if not all(p != r for p, r in zip(has_pref, has_rewards)) or len(set(has_rewards)) > 1:
-        raise ValueError(f"{where}: every prompt needs exactly one of 'preference' or 'rewards', the same kind throughout")
+    if not all(p != r for p, r in zip(has_pref, has_rewards, strict=True)) or len(set(has_rewards)) > 1:
+        raise ValueError(f"{where}: every prompt needs exactly one of 'preference' or 'rewards', "
+                         "the same kind throughout")
     lengths = {len(e["reference"]) if isinstance(e["reference"], list) else -1 for e in entries}
     if len(lengths) > 1:
         raise ValueError(f"{where}: every prompt must have the same number of responses, got {sorted(lengths)}")

@@ -148,7 +148,7 @@ def _strong_components(w: np.ndarray) -> np.ndarray:
 def _limit_support(w: np.ndarray, strong: np.ndarray, active: np.ndarray) -> list[int]:
     """Responses in strongly connected components that nothing outside them beats."""
     beaten_from_outside = set()
-    for i, j in zip(*np.nonzero(w > 0)):
+    for i, j in zip(*np.nonzero(w > 0), strict=True):
         if strong[i] != strong[j]:
             beaten_from_outside.add(strong[j])
     return [i for i in range(len(strong)) if active[i] and strong[i] not in beaten_from_outside]
@@ -179,6 +179,12 @@ def _newton(loss: Loss, w: np.ndarray, beta: float, h0: np.ndarray, labels: np.n
     result = scipy.optimize.minimize(fun, h0, jac=True, hess=hess, method="trust-exact",
                                      options={"gtol": GRADIENT_TOLERANCE, "maxiter": 2000})
     h = result.x
+    for _ in range(5):  # polish with plain Newton steps: trust-exact may stop a little above gtol
+        _, grad = fun(h)
+        step = np.linalg.lstsq(hess(h), grad, rcond=None)[0]
+        if not np.abs(fun(h - step)[1]).max() < np.abs(grad).max():
+            break
+        h = h - step
     _, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1)
     return h, float(np.abs(grad).max())
 
