@@ -296,6 +296,7 @@ def write_all(out: Path, n: int = 200, seed: int = 0, *, bad: bool = True, weigh
     table, expected = table_columns(plans["table"], names, weights)
     pq.write_table(table, out / "pairs.parquet")
     manifest["expected"]["parquet"] = expected
+    datasets.disable_progress_bars()
     datasets.Dataset(table).save_to_disk(str(out / "pairs_folder"))
     manifest["expected"]["folder"] = expected
     (out / "expected.json").write_text(json.dumps(_finite(manifest), indent=1, ensure_ascii=False), encoding="utf-8")

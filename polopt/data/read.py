@@ -1,9 +1,10 @@
 """Reading preference-pair files into raw rows, with where each row came from.
 
-Owns the formats: JSON Lines (``.jsonl``, ``.ndjson``, ``.json``), CSV
-(``.csv``; ``.tsv`` with tabs), Parquet (``.parquet``, ``.pq``), a folder written
-by ``datasets``' ``save_to_disk``, and (only when asked for with ``hub=True``) a
-data set name on the hub. The result is a :class:`RawTable`: the mapped
+Owns the formats: JSON Lines (``.jsonl``, ``.ndjson``, ``.json``; a ``.json``
+file may also hold one array of objects), CSV (``.csv``; ``.tsv`` with tabs),
+Parquet (``.parquet``, ``.pq``), a folder written by ``datasets``' ``save_to_disk``,
+and (only when asked for with ``hub=True``) a data set name on the hub. The
+result is a :class:`RawTable`: the mapped
 columns' raw values per row, each row's location and original content, and the
 rows that could not even be read as rows (undecodable or unparsable lines).
 Checking the values is :mod:`polopt.data.validate`'s job.
@@ -96,7 +97,7 @@ def _detect(path: Path, format: str, hub: bool) -> str:
         if hub and format == "auto":
             return "hub"
         raise ValueError(f"pair file not found: {str(path)!r} (a data set name on the hub is read only "
-                         "with hub=true; tests and the walk-through never do)")
+                         "with hub=true, or polopt data --hub; tests and the walk-through never do)")
     if format != "auto":
         return format
     if path.is_dir():
@@ -136,6 +137,8 @@ def _read_jsonl(path: Path, columns: Columns) -> RawTable:
     data = path.read_bytes()
     if data.startswith(codecs.BOM_UTF8):
         data = data[len(codecs.BOM_UTF8):]
+    if path.suffix.lower() == ".json" and data.lstrip()[:1] == b"[":
+        return _read_json_array(path, data, columns)
     lines = data.split(b"\n")
     if lines and lines[-1] == b"":
         lines.pop()  # the newline that ends the last line
@@ -163,9 +166,36 @@ def _read_jsonl(path: Path, columns: Columns) -> RawTable:
                                 f"a JSON {type(obj).__name__}, not an object", {"raw": text}))
             continue
         rows.append((number, obj))
+    return _json_table(path, "jsonl", "line", rows, early, blank, columns)
+
+
+def _read_json_array(path: Path, data: bytes, columns: Columns) -> RawTable:
+    """A ``.json`` file holding one JSON array of objects; rows are its 0-based indices."""
+    try:
+        items = json.loads(data.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise ValueError(f"{path}: a JSON array file must be valid UTF-8 as a whole ({describe_bad_bytes(data)}); "
+                         "write one object per line (JSON Lines) to have bad rows rejected one by one") from None
+    except (json.JSONDecodeError, RecursionError) as err:
+        raise ValueError(f"{path}: not valid JSON as a whole ({err}); write one object per line (JSON Lines) to "
+                         "have bad rows rejected one by one") from None
+    if not isinstance(items, list):
+        raise ValueError(f"{path}: a .json file must hold an array of objects or one object per line")
+    rows, early = [], []
+    for i, obj in enumerate(items):
+        if isinstance(obj, dict):
+            rows.append((i, obj))
+        else:
+            early.append(Reject(i, "index", None, "not_an_object", f"a JSON {type(obj).__name__}, not an object",
+                                {"raw": representable(obj)}))
+    return _json_table(path, "json", "index", rows, early, 0, columns)
+
+
+def _json_table(path: Path, format: str, unit: str, rows: list[tuple[int, dict]], early: list[Reject], blank: int,
+                columns: Columns) -> RawTable:
     found = list(dict.fromkeys(k for _, obj in rows for k in obj))
     weighted = _check_columns(found, columns, str(path)) if rows else False
-    table = RawTable(str(path), "jsonl", "line", columns, found, weighted, early_rejects=early, blank_lines=blank)
+    table = RawTable(str(path), format, unit, columns, found, weighted, early_rejects=early, blank_lines=blank)
     wanted = [(f, c) for f, c in _wanted(columns) if f != "weight" or weighted]
     table.locations = [n for n, _ in rows]
     table.content = [representable(obj) for _, obj in rows]

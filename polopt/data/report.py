@@ -30,12 +30,16 @@ def write_rejects(rejects: list[Reject], path: str | Path) -> Path:
 
 
 def histogram(lengths: list[int], bins: int = 10) -> tuple[np.ndarray, np.ndarray]:
-    """(counts, edges) of ``lengths`` in ``bins`` equal-width integer bins (numpy's histogram)."""
+    """(counts, edges) of ``lengths`` in at most ``bins`` bins of equal integer width: bin k
+    holds ``edges[k] <= length < edges[k + 1]`` (numpy's histogram with integer edges)."""
     if not lengths:
-        return np.zeros(0, dtype=int), np.zeros(0)
+        return np.zeros(0, dtype=int), np.zeros(0, dtype=int)
     low, high = min(lengths), max(lengths)
-    bins = max(1, min(bins, high - low + 1))
-    return np.histogram(lengths, bins=bins, range=(low, high + 1))
+    width = max(1, -(-(high - low + 1) // bins))  # ceiling division
+    edges = np.arange(low, high + width + 1, width)
+    edges = edges[: int(np.searchsorted(edges, high, side="right")) + 1]
+    counts, _ = np.histogram(lengths, bins=edges)
+    return counts, edges
 
 
 def summary_text(data: PairData, rejects_path: str | Path | None = None, *, show: int = 10) -> str:
@@ -64,7 +68,7 @@ def summary_text(data: PairData, rejects_path: str | Path | None = None, *, show
         top = max(int(counts.max()), 1)
         for c, lo, hi in zip(counts, edges[:-1], edges[1:], strict=True):
             bar = "#" * int(round(BAR * int(c) / top))
-            lines.append(f"    {int(lo):>7}-{int(np.ceil(hi)) - 1:<7} {int(c):>7} {bar}")
+            lines.append(f"    {int(lo):>7}-{int(hi) - 1:<7} {int(c):>7} {bar}")
     if data.rejects:
         lines.append(f"  first rejects ({a['row_numbering']}):")
         lines += [f"    {r.message()}" for r in data.rejects[:show]]

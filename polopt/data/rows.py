@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 
 TEXT_FIELDS = ("prompt", "winner", "loser")
 FIELDS = (*TEXT_FIELDS, "weight")
@@ -97,10 +97,10 @@ class Reject:
 
     def record(self) -> dict:
         """The rejects-file line: ``{"line": 7, "field": ..., "reason": ..., "detail": ..., "row": ...}``."""
-        out = asdict(self)
-        out[out.pop("unit")] = out.pop("location")
-        if not out["other_problems"]:
-            del out["other_problems"]
+        out = {self.unit: self.location, "field": self.field, "reason": self.reason, "detail": self.detail}
+        if self.other_problems:
+            out["other_problems"] = self.other_problems
+        out["row"] = self.row
         return out
 
     def message(self) -> str:
