@@ -157,8 +157,8 @@ def _read_jsonl(path: Path, columns: Columns) -> RawTable:
             continue
         try:
             obj = json.loads(text)
-        except (json.JSONDecodeError, RecursionError) as err:
-            detail = f"{err.msg} at column {err.colno}" if isinstance(err, json.JSONDecodeError) else "nested too deep"
+        except (ValueError, RecursionError) as err:  # ValueError also: an integer of over 4300 digits
+            detail = _json_error(err)
             early.append(Reject(number, "line", None, "invalid_json", f"not valid JSON: {detail}", {"raw": text}))
             continue
         if not isinstance(obj, dict):
@@ -176,9 +176,9 @@ def _read_json_array(path: Path, data: bytes, columns: Columns) -> RawTable:
     except UnicodeDecodeError:
         raise ValueError(f"{path}: a JSON array file must be valid UTF-8 as a whole ({describe_bad_bytes(data)}); "
                          "write one object per line (JSON Lines) to have bad rows rejected one by one") from None
-    except (json.JSONDecodeError, RecursionError) as err:
-        raise ValueError(f"{path}: not valid JSON as a whole ({err}); write one object per line (JSON Lines) to "
-                         "have bad rows rejected one by one") from None
+    except (ValueError, RecursionError) as err:
+        raise ValueError(f"{path}: not valid JSON as a whole ({_json_error(err)}); write one object per line "
+                         "(JSON Lines) to have bad rows rejected one by one") from None
     if not isinstance(items, list):
         raise ValueError(f"{path}: a .json file must hold an array of objects or one object per line")
     rows, early = [], []
@@ -210,7 +210,7 @@ def _undecodable_json_line(number: int, raw: bytes, columns: Columns) -> Reject:
     detail = describe_bad_bytes(raw)
     try:
         obj = json.loads(raw.decode("utf-8", errors="surrogateescape"))
-    except (json.JSONDecodeError, RecursionError):
+    except (ValueError, RecursionError):
         obj = None
     if not isinstance(obj, dict):
         return Reject(number, "line", None, "invalid_utf8", detail, {"raw": representable(raw)})
@@ -218,6 +218,15 @@ def _undecodable_json_line(number: int, raw: bytes, columns: Columns) -> Reject:
     if bad:
         detail = f"{bad[0]}: {describe_bad_bytes(obj[columns.column(bad[0])].encode('utf-8', 'surrogateescape'))}"
     return Reject(number, "line", bad[0] if bad else None, "invalid_utf8", detail, representable(obj))
+
+
+def _json_error(err: Exception) -> str:
+    if isinstance(err, json.JSONDecodeError):
+        where = f"line {err.lineno} column {err.colno}" if err.lineno > 1 else f"column {err.colno}"
+        return f"{err.msg} at {where}"
+    if isinstance(err, RecursionError):
+        return "nested too deep"
+    return str(err).split(";")[0]
 
 
 def _undecodable(text: str) -> bool:
