@@ -56,7 +56,7 @@ def test_default_rejects_file_is_written_in_the_current_folder(files, tmp_path, 
 @pytest.mark.parametrize(("args", "message"), [
     (["missing.jsonl"], r"^polopt data: error: pair file not found: 'missing.jsonl'"),
     (["{file}", "--columns", "prompt=question"], r"^polopt data: error: .*missing column\(s\) question; the file has: "
-                                                 r"prompt, winner, loser, weight"),
+                                                 r"'prompt', 'winner', 'loser', 'weight'"),
     (["{file}", "--max-length", "1"], r"^polopt data: error: max_length must be an integer >= 2"),
 ])
 def test_file_level_problems_are_one_line_and_exit_2(files, tmp_path, monkeypatch, capsys, args, message):

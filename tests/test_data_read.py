@@ -110,5 +110,6 @@ def test_invalid_utf8_is_located_to_the_field_and_byte(weighted):
 
 def test_a_weight_column_named_explicitly_must_exist(mapped):
     out, _ = mapped
-    with pytest.raises(ValueError, match=r"missing column\(s\) w; the file has: question, chosen_text, other_text"):
+    message = r"missing column\(s\) w; the file has: 'question', 'chosen_text', 'other_text'"
+    with pytest.raises(ValueError, match=message):
         load_pairs(out / "pairs.jsonl", columns=MAPPED)

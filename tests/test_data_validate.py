@@ -177,6 +177,27 @@ def test_json_array_file_uses_indices(tmp_path):
                                                                       ("index", 2, "empty")]
 
 
+def test_json_array_with_a_bad_byte_rejects_only_that_row(tmp_path):
+    path = tmp_path / "p.json"
+    path.write_bytes(b'[{"prompt": "caf\xe9?", "winner": "b", "loser": "c"},\n'
+                     b' {"prompt": "ok", "winner": "b", "loser": "c"}]')
+    data = load_pairs(path)
+    assert data.prompt == ["ok"]
+    (reject,) = data.rejects
+    assert (reject.location, reject.field, reject.reason) == (0, "prompt", "invalid_utf8")
+    assert reject.detail == "prompt: byte 4 (0xe9) is not valid UTF-8"
+    assert reject.row["prompt"] == "caf\\xe9?"  # the byte, shown escaped in the rejects file
+
+
+def test_an_unbalanced_csv_quote_loses_only_its_own_line(tmp_path):
+    path = tmp_path / "p.csv"
+    path.write_text('prompt,winner,loser\na,b,c\n"d,e,f\ng,h,i\nj,k,l\n', encoding="utf-8")
+    data = load_pairs(path)
+    assert data.prompt == ["a", "g", "j"] and data.location == [2, 4, 5]
+    assert [(r.location, r.reason) for r in data.rejects] == [(3, "wrong_field_count")]
+    assert "only line 3 is rejected" in data.rejects[0].detail
+
+
 def test_saved_dataset_dict_picks_the_split(tmp_path):
     import datasets
 

@@ -122,7 +122,7 @@ def _check_columns(found: list[str], columns: Columns, source: str) -> bool:
     if columns.weight_required and columns.weight not in found:
         missing.append(columns.weight)
     if missing:
-        shown = ", ".join(found[:20]) + (" ..." if len(found) > 20 else "") if found else "none"
+        shown = ", ".join(map(repr, found[:20])) + (" ..." if len(found) > 20 else "") if found else "none"
         raise ValueError(f"{source}: missing column(s) {', '.join(missing)}; the file has: {shown}. "
                          "Map your names with columns, e.g. task.columns='{prompt: question, winner: chosen_text, "
                          "loser: other_text}' or polopt data --columns prompt=question,winner=chosen_text,"
@@ -172,10 +172,8 @@ def _read_jsonl(path: Path, columns: Columns) -> RawTable:
 def _read_json_array(path: Path, data: bytes, columns: Columns) -> RawTable:
     """A ``.json`` file holding one JSON array of objects; rows are its 0-based indices."""
     try:
-        items = json.loads(data.decode("utf-8"))
-    except UnicodeDecodeError:
-        raise ValueError(f"{path}: a JSON array file must be valid UTF-8 as a whole ({describe_bad_bytes(data)}); "
-                         "write one object per line (JSON Lines) to have bad rows rejected one by one") from None
+        # undecodable bytes ride along as U+DC80..U+DCFF, so only the rows holding them are rejected
+        items = json.loads(data.decode("utf-8", errors="surrogateescape"))
     except (ValueError, RecursionError) as err:
         raise ValueError(f"{path}: not valid JSON as a whole ({_json_error(err)}); write one object per line "
                          "(JSON Lines) to have bad rows rejected one by one") from None
@@ -223,7 +221,7 @@ def _undecodable_json_line(number: int, raw: bytes, columns: Columns) -> Reject:
 def _json_error(err: Exception) -> str:
     if isinstance(err, json.JSONDecodeError):
         where = f"line {err.lineno} column {err.colno}" if err.lineno > 1 else f"column {err.colno}"
-        return f"{err.msg} at {where}"
+        return f"{err.msg.removesuffix(' at')} at {where}"
     if isinstance(err, RecursionError):
         return "nested too deep"
     return str(err).split(";")[0]
@@ -258,8 +256,18 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
     text = data.decode("utf-8", errors="surrogateescape")
     delimiter = "\t" if path.suffix.lower() == ".tsv" else ","
     csv.field_size_limit(sys.maxsize)  # the default 128 KiB per field would reject long responses
-    # newline="": records end at \n, \r\n or \r only, and quoted newlines stay in their field
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    # newline="": lines end at \n, \r\n or \r only, and quoted newlines stay in their field
+    physical = io.StringIO(text, newline="").readlines()
+    position = 0  # lines handed to the csv reader so far
+
+    def lines_from(k: int):
+        nonlocal position
+        position = k
+        while position < len(physical):
+            position += 1
+            yield physical[position - 1]
+
+    reader = csv.reader(lines_from(0), delimiter=delimiter)
     try:
         header = next(reader)
     except StopIteration:
@@ -274,17 +282,27 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
         raise ValueError(f"{path}: the CSV header names column(s) {', '.join(map(repr, dupes))} more than once")
     rows: list[tuple[int, dict]] = []
     early: list[Reject] = []
-    blank, previous = 0, reader.line_num
+    blank = 0
     while True:
+        start = position + 1
         try:
             record = next(reader)
         except StopIteration:
             break
         except csv.Error as err:
-            raise ValueError(f"{path}: CSV cannot be parsed at line {reader.line_num}: {err}") from None
-        start, previous = previous + 1, reader.line_num
+            raise ValueError(f"{path}: CSV cannot be parsed at line {start}: {err}") from None
         if not record or (len(record) == 1 and not record[0].strip() and len(header) > 1):
             blank += 1
+            continue
+        if len(record) != len(header) and position > start:
+            # most likely an unbalanced quote that swallowed the lines after it: reject only the line
+            # where it starts and read on from the next line, so the rows after it are not lost
+            early.append(Reject(start, "line", None, "wrong_field_count",
+                                f"{len(record)} fields over lines {start}-{position}, the header has {len(header)} "
+                                f"(an unbalanced quote?); only line {start} is rejected",
+                                {"raw": representable(physical[start - 1])}))
+            position = start
+            reader = csv.reader(lines_from(start), delimiter=delimiter)
             continue
         bad = [i for i, v in enumerate(record) if _undecodable(v)]
         named = dict(zip(header, record, strict=False))
@@ -297,7 +315,8 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
             continue
         if len(record) != len(header):
             early.append(Reject(start, "line", None, "wrong_field_count",
-                                f"{len(record)} fields, the header has {len(header)}", {"fields": record}))
+                                f"{len(record)} fields, the header has {len(header)}",
+                                {"fields": representable(record)}))
             continue
         rows.append((start, named))
     weighted = _check_columns(header, columns, str(path)) if header else False

@@ -150,8 +150,7 @@ def _field_problems(raw: dict, present: set, text_values: bool) -> list[dict]:
             problems.append({"field": name, "reason": "not_a_string",
                              "detail": f"{name} is a {type(value).__name__} ({_short(value)}), not text"})
         elif not _encodable(value):
-            problems.append({"field": name, "reason": "invalid_utf8",
-                             "detail": f"{name} holds a lone surrogate, which has no UTF-8 form"})
+            problems.append({"field": name, "reason": "invalid_utf8", "detail": _surrogate_detail(name, value)})
         elif not value.strip():
             problems.append({"field": name, "reason": "empty",
                              "detail": f"{name} is empty" if not value else f"{name} is only whitespace"})
@@ -252,6 +251,13 @@ def _accounting(table: RawTable, out: PairData, tokenizer, *, max_length, trunca
         "duplicates": duplicates,
         "duplicate_rows": n_duplicates,
     }
+
+
+def _surrogate_detail(name: str, text: str) -> str:
+    try:  # bytes that a reader kept with surrogateescape come back out as the bytes
+        return f"{name}: {describe_bad_bytes(text.encode('utf-8', 'surrogateescape'))}"
+    except UnicodeEncodeError:
+        return f"{name} holds a lone surrogate, which has no UTF-8 form"
 
 
 def _encodable(text: str) -> bool:
