@@ -70,8 +70,11 @@ def good_pairs(n: int, seed: int = 0, *, weights: bool = False) -> list[dict]:
     newlines, non-ASCII, emoji, surrounding spaces) and one is a contradicting label (the
     pair before it with winner and loser swapped), which is valid data, not a duplicate."""
     rng = random.Random(seed)
-    rows, seen = [], set()
+    rows, seen, tries = [], set(), 0
     while len(rows) < n:
+        tries += 1
+        if tries > 100 * n + 1000:
+            raise ValueError(f"the library desk can make about 6000 distinct pairs, asked for {n}")
         task_t, good_t, bad_t = rng.choice(_TOPICS)
         state = rng.getstate()
         task = _fill(task_t, rng)

@@ -13,8 +13,6 @@ from __future__ import annotations
 import argparse
 import sys
 
-from polopt import losses
-
 _GROUPS = ("loss", "task", "model", "optim")
 
 
@@ -91,6 +89,8 @@ def _data(argv: list[str]) -> int:
 
 
 def _list_losses(argv: list[str]) -> int:
+    from polopt import losses  # imported here: torch loads in seconds, and `polopt data` needs none of it
+
     for name in losses.names():
         loss = losses.get(name)
         f0, d1, d2 = loss.derivatives_at(0.0)

@@ -15,10 +15,10 @@ Every tokenizer offers the same small interface: ``encode(text)``,
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import torch
-
-Tensor = torch.Tensor
+if TYPE_CHECKING:  # torch is imported when a batch is built, so `polopt data` starts quickly
+    from torch import Tensor
 
 
 class _Batching:
@@ -33,6 +33,8 @@ class _Batching:
         """Ids ``(B, T)`` (int64) right-padded with ``pad_id``, and a mask ``(B, T)`` (bool,
         True on real tokens). ``max_length`` cuts each sequence on the right (the special ids
         count); T is the longest sequence after that."""
+        import torch
+
         rows = [self.encode(t, add_bos=add_bos, add_eos=add_eos) for t in texts]
         if max_length is not None:
             rows = [r[:max_length] for r in rows]
