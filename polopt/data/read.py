@@ -2,18 +2,19 @@
 
 Owns the formats: JSON Lines (``.jsonl``, ``.ndjson``, ``.json``; a ``.json``
 file may also hold one array of objects), CSV (``.csv``; ``.tsv`` with tabs),
-Parquet (``.parquet``, ``.pq``), a folder written by ``datasets``' ``save_to_disk``,
-and (only when asked for with ``hub=True``) a data set name on the hub. The
-result is a :class:`RawTable`: the mapped
-columns' raw values per row, each row's location and original content, and the
-rows that could not even be read as rows (undecodable or unparsable lines).
-Checking the values is :mod:`polopt.data.validate`'s job.
+Parquet (``.parquet``, ``.pq``), a folder written by ``datasets``'
+``save_to_disk``, and (only when asked for with ``hub=True``) a data set name on
+the hub. The result is a :class:`RawTable`: the mapped columns' raw values per
+row, each row's location and original content, and the rows that could not
+even be read as rows (undecodable or unparsable lines). Checking the values is
+:mod:`polopt.data.validate`'s job.
 
 Why text files are scanned record by record first: ``datasets`` reads JSON Lines
-with pyarrow and CSV with pandas, and both fail the whole file on one
-undecodable byte or one malformed line, without saying which line. So both are
-scanned with the standard library, with line numbers: undecodable records
-(strict UTF-8, RFC 3629) and unparsable ones become rejects.
+with pyarrow and CSV with pandas, and both stop on the whole file at one
+undecodable byte or one malformed line (a ``DatasetGenerationError``, naming at
+most the first bad line). So both are scanned with the standard library, with
+line numbers: undecodable records (strict UTF-8, RFC 3629) and unparsable ones
+become rejects, and reading goes on.
 
 - CSV: ``datasets`` then loads a copy of the mapped columns of the records that
   parsed, every column typed string and with pandas' NA guessing off, so an
@@ -347,6 +348,8 @@ def _through_datasets_csv(plain: dict[str, list], n: int) -> tuple[dict[str, lis
             # every value is text, and an empty field stays "" (pandas would make it NaN)
             values = _load_with_datasets("csv", copy, Path(tmp) / "cache", list(plain), n, features=features,
                                          keep_default_na=False, na_filter=False)
+        if values != plain:  # never seen; if pandas ever parses a record differently, trust the scan
+            return plain, "csv (standard library; datasets read some values differently)"
         return values, "datasets csv (after a record-by-record pre-scan)"
     except Exception as err:
         return plain, f"csv (standard library; datasets could not hold the rows: {type(err).__name__})"

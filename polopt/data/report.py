@@ -65,10 +65,10 @@ def summary_text(data: PairData, rejects_path: str | Path | None = None, *, show
     counts, edges = histogram(data.length)
     if len(counts):
         lines.append(f"  pair length ({unit}: prompt + longer response) of the accepted rows:")
-        top = max(int(counts.max()), 1)
+        top, longest = max(int(counts.max()), 1), max(data.length)
         for c, lo, hi in zip(counts, edges[:-1], edges[1:], strict=True):
             bar = "#" * int(round(BAR * int(c) / top))
-            lines.append(f"    {int(lo):>7}-{int(hi) - 1:<7} {int(c):>7} {bar}")
+            lines.append(f"    {int(lo):>7}-{min(int(hi) - 1, longest):<7} {int(c):>7} {bar}")
     if data.rejects:
         lines.append(f"  first rejects ({a['row_numbering']}):")
         lines += [f"    {r.message()}" for r in data.rejects[:show]]
