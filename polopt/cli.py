@@ -59,7 +59,7 @@ def _export(argv: list[str]) -> int:
     from hydra.utils import instantiate
     from omegaconf import OmegaConf
 
-    from polopt.app import CONFIG_DIR, _TASK_RUN_KEYS
+    from polopt.app import _TASK_RUN_KEYS, CONFIG_DIR
 
     parser = argparse.ArgumentParser(prog="polopt export",
                                      description="Write a task out as a finite-task JSON file, so that "

@@ -13,6 +13,8 @@ from __future__ import annotations
 import json
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from examples.library_desk import MAX_LENGTH, write_all
 from polopt.data import load_pairs, write_rejects
@@ -113,3 +115,54 @@ def test_a_weight_column_named_explicitly_must_exist(mapped):
     message = r"missing column\(s\) w; the file has: 'question', 'chosen_text', 'other_text'"
     with pytest.raises(ValueError, match=message):
         load_pairs(out / "pairs.jsonl", columns=MAPPED)
+
+
+_PIECES = [b'{"prompt": "a", "winner": "b", "loser": "c"}', b'"', b",", b"\n", b"\r", b"\xff", b"\xe9", b"{", b"}",
+           b"[", b"]", b'"prompt"', b'"winner"', b'"loser"', b'"weight"', b":", b"1", b"-0", b"null", b"NaN", b" ",
+           b"prompt,winner,loser\n", b"prompt,winner,loser,weight\n", b"\xef\xbb\xbf", b"\x00", b"\\", b"\\ud800"]
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.sampled_from(_PIECES), max_size=40).map(b"".join) | st.binary(max_size=200),
+       st.sampled_from([".jsonl", ".csv", ".json", ".tsv"]))
+def test_any_bytes_give_a_file_error_or_exact_accounting(tmp_path, data, suffix):
+    """Whatever the bytes, the loader either raises one ValueError for the file or accounts for
+    every row (common practice for loaders: no other exception escapes)."""
+    path = tmp_path / f"fuzz{suffix}"
+    path.write_bytes(data)
+    try:
+        loaded = load_pairs(path, max_length=8, truncation="truncate_response")
+    except ValueError as err:
+        assert str(err) and "\n" not in str(err).strip()
+        return
+    a = loaded.accounting
+    assert a["rows_in"] == a["rows_accepted"] + a["rows_rejected"] == len(loaded) + len(loaded.rejects)
+    json.dumps([r.record() for r in loaded.rejects], allow_nan=False)  # every reject can be written
+
+
+_VALUES = st.one_of(st.none(), st.booleans(), st.integers(), st.floats(), st.text(max_size=6),
+                    st.sampled_from(["", " ", "\t\n", "a\ud800", "x"]), st.lists(st.text(max_size=2), max_size=2))
+
+
+@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.fixed_dictionaries({}, optional={"prompt": _VALUES, "winner": _VALUES, "loser": _VALUES}),
+                min_size=1, max_size=12))
+def test_jsonl_rows_accepted_exactly_when_their_fields_are_valid(tmp_path, rows):
+    """An oracle written from the rules alone: text fields are strings with a UTF-8 form that are
+    not blank, and winner differs from loser."""
+    rows = [{"prompt": "p", "winner": "w", "loser": "l"}] + rows  # the columns exist in the file
+    path = tmp_path / "f.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+
+    def valid(text):
+        try:
+            text.encode("utf-8")
+        except (UnicodeEncodeError, AttributeError):
+            return False
+        return isinstance(text, str) and bool(text.strip())
+
+    expected = [i + 1 for i, r in enumerate(rows)
+                if all(valid(r.get(f)) for f in ("prompt", "winner", "loser")) and r["winner"] != r["loser"]]
+    data = load_pairs(path, duplicates="keep")
+    assert data.location == expected
+    assert data.rows() == [dict(rows[i - 1], weight=1.0) for i in expected]
