@@ -20,7 +20,7 @@ from examples.library_desk import MAX_LENGTH, write_all
 from polopt.data import load_pairs, write_rejects
 
 FILES = {"jsonl": "pairs.jsonl", "csv": "pairs.csv", "parquet": "pairs.parquet", "folder": "pairs_folder"}
-MAPPED = {"prompt": "question", "winner": "chosen_text", "loser": "other_text", "weight": "w"}
+MAPPED = {"prompt": "question", "winner": "good_reply", "loser": "other_reply", "weight": "w"}
 
 
 @pytest.fixture(scope="module")
@@ -62,7 +62,7 @@ def test_column_mapping_reads_other_names(mapped, fmt):
     assert _found(data) == manifest["expected"][fmt]
     assert [{k: r[k] for k in ("prompt", "winner", "loser")} for r in data.rows()] == manifest["good"]
     assert data.weight == [1.0] * len(manifest["good"])  # no weight column: weight 1
-    assert data.accounting["columns"] == {"prompt": "question", "winner": "chosen_text", "loser": "other_text",
+    assert data.accounting["columns"] == {"prompt": "question", "winner": "good_reply", "loser": "other_reply",
                                           "weight": None}
 
 
@@ -112,7 +112,7 @@ def test_invalid_utf8_is_located_to_the_field_and_byte(weighted):
 
 def test_a_weight_column_named_explicitly_must_exist(mapped):
     out, _ = mapped
-    message = r"missing column\(s\) w; the file has: 'question', 'chosen_text', 'other_text'"
+    message = r"missing column\(s\) w; the file has: 'question', 'good_reply', 'other_reply'"
     with pytest.raises(ValueError, match=message):
         load_pairs(out / "pairs.jsonl", columns=MAPPED)
 

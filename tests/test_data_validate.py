@@ -276,8 +276,8 @@ def test_column_mapping_errors(mapping, error, message):
 
 
 def test_column_mapping_from_the_command_line_form():
-    cols = Columns.parse("prompt=question, winner=chosen_text,loser=other_text,weight=w")
-    assert cols.mapping() == {"prompt": "question", "winner": "chosen_text", "loser": "other_text", "weight": "w"}
+    cols = Columns.parse("prompt=question, winner=good_reply,loser=other_reply,weight=w")
+    assert cols.mapping() == {"prompt": "question", "winner": "good_reply", "loser": "other_reply", "weight": "w"}
     assert cols.weight_required and not Columns.parse({"prompt": "q"}).weight_required
 
 

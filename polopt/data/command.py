@@ -1,7 +1,7 @@
 """``polopt data FILE``: check and summarise a preference-pair file without training.
 
     polopt data pairs.jsonl
-    polopt data answers.csv --columns prompt=question,winner=chosen_text,loser=other_text
+    polopt data answers.csv --columns prompt=question,winner=good_reply,loser=other_reply
     polopt data pairs.parquet --max-length 512 --truncation truncate_response --plot lengths.png
     polopt data pairs_folder --json
 
@@ -30,7 +30,7 @@ def build_parser() -> argparse.ArgumentParser:
                "bad_weight, identical, too_long, duplicate.")
     parser.add_argument("file", help="a .jsonl/.csv/.tsv/.parquet file or a folder written by datasets' save_to_disk")
     parser.add_argument("--columns", default=None,
-                        help="our field=the file's column, e.g. prompt=question,winner=chosen_text,loser=other_text"
+                        help="our field=the file's column, e.g. prompt=question,winner=good_reply,loser=other_reply"
                              "[,weight=w]; default prompt, winner, loser and weight (used when present)")
     parser.add_argument("--format", default="auto", choices=[f for f in FORMATS if f != "hub"],
                         help="the file's format (default: from the suffix)")

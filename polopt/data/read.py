@@ -125,9 +125,9 @@ def _check_columns(found: list[str], columns: Columns, source: str) -> bool:
     if missing:
         shown = ", ".join(map(repr, found[:20])) + (" ..." if len(found) > 20 else "") if found else "none"
         raise ValueError(f"{source}: missing column(s) {', '.join(missing)}; the file has: {shown}. "
-                         "Map your names with columns, e.g. task.columns='{prompt: question, winner: chosen_text, "
-                         "loser: other_text}' or polopt data --columns prompt=question,winner=chosen_text,"
-                         "loser=other_text")
+                         "Map your names with columns, e.g. task.columns='{prompt: question, winner: good_reply, "
+                         "loser: other_reply}' or polopt data --columns prompt=question,winner=good_reply,"
+                         "loser=other_reply")
     return columns.weight is not None and columns.weight in found
 
 

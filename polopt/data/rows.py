@@ -46,8 +46,8 @@ class Columns:
 
     @classmethod
     def parse(cls, mapping: Mapping | str | None) -> Columns:
-        """From a mapping ``{prompt: question, winner: chosen_text, ...}`` (config
-        ``task.columns``) or the CLI's ``prompt=question,winner=chosen_text``."""
+        """From a mapping ``{prompt: question, winner: good_reply, ...}`` (config
+        ``task.columns``) or the CLI's ``prompt=question,winner=good_reply``."""
         if mapping is None:
             return cls()
         if isinstance(mapping, str):
