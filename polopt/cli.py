@@ -3,6 +3,7 @@
     polopt train [GROUP=OPTION ...] [KEY=VALUE ...]   train one loss on one task (Hydra overrides)
     polopt losses                                      list the registered losses
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
+    polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -11,8 +12,6 @@ from __future__ import annotations
 
 import argparse
 import sys
-
-from polopt import losses
 
 _GROUPS = ("loss", "task", "model", "optim")
 
@@ -83,7 +82,15 @@ def _export(argv: list[str]) -> int:
     return 0
 
 
+def _data(argv: list[str]) -> int:
+    from polopt.data.command import main as data_main
+
+    return data_main(argv)
+
+
 def _list_losses(argv: list[str]) -> int:
+    from polopt import losses  # imported here: torch loads in seconds, and `polopt data` needs none of it
+
     for name in losses.names():
         loss = losses.get(name)
         f0, d1, d2 = loss.derivatives_at(0.0)
@@ -96,6 +103,7 @@ COMMANDS = {
     "train": (_train, "train one loss on one task; Hydra overrides, see 'polopt train --help'"),
     "losses": (_list_losses, "list the registered losses with f'(0), f''(0) and their papers"),
     "export": (_export, "write a built-in task out as a finite-task JSON file"),
+    "data": (_data, "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
 }
 
 

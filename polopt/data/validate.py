@@ -1,0 +1,273 @@
+"""Checking raw rows: every row is either accepted or rejected with a reason, never lost.
+
+Owns the row checks, in this order (a row gets the first failing check as its
+reason; the other field problems found are listed beside it):
+
+1. fields: each of prompt, winner, loser present (``missing``), text
+   (``not_a_string``), valid UTF-8 (``invalid_utf8``), not empty or only
+   whitespace (``empty``); the weight, where used, a finite number > 0
+   (``bad_weight``; in CSV, where every value is text, parsed with ``float``);
+2. winner and loser differ (``identical``; exact comparison of the texts);
+3. length: ``count(prompt) + max(count(winner), count(loser))`` tokens of the
+   tokenizer (bytes for the built-in one) against ``max_length``, by the
+   truncation policy (:data:`TRUNCATION`); truncated rows are counted;
+4. duplicates: the same (prompt, winner, loser, weight) as an earlier accepted
+   row, compared on the original texts; the first is kept, later ones are
+   rejected (``duplicates="reject"``) or kept and counted (``"keep"``). The same
+   pair with winner and loser swapped is not a duplicate: it is a
+   contradicting label, which is data.
+
+The accounting dict says ``rows_in == rows_accepted + rows_rejected``, and
+:func:`validate` raises if that ever fails to hold.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from dataclasses import dataclass, field
+
+from polopt.data.read import RawTable
+from polopt.data.rows import REASONS, TEXT_FIELDS, Reject, describe_bad_bytes
+
+TRUNCATION = {
+    "reject": "reject pairs longer than max_length",
+    "truncate_response": "cut winner and loser on the right to fit beside the whole prompt",
+    "truncate_prompt": "cut the prompt on the left (keep its end, nearest the response) to fit beside the "
+                       "longer response",
+}
+DUPLICATES = ("reject", "keep")
+
+
+@dataclass
+class PairData:
+    """Accepted pairs as parallel lists, the rejects, and the accounting.
+
+    ``location[i]`` is where pair i came from (1-based line, or 0-based index; see
+    ``accounting["row_unit"]``); ``length[i]`` its tokens after any truncation.
+    """
+
+    prompt: list[str] = field(default_factory=list)
+    winner: list[str] = field(default_factory=list)
+    loser: list[str] = field(default_factory=list)
+    weight: list[float] = field(default_factory=list)
+    location: list[int] = field(default_factory=list)
+    length: list[int] = field(default_factory=list)
+    rejects: list[Reject] = field(default_factory=list)
+    accounting: dict = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return len(self.prompt)
+
+    def rows(self) -> list[dict]:
+        """The accepted pairs as dicts ``{prompt, winner, loser, weight}``."""
+        return [{"prompt": p, "winner": w, "loser": lo, "weight": wt}
+                for p, w, lo, wt in zip(self.prompt, self.winner, self.loser, self.weight, strict=True)]
+
+    def to_dataset(self):
+        """The accepted pairs as a ``datasets.Dataset`` with columns prompt, winner, loser,
+        weight and the row's location (``line`` or ``index``)."""
+        import datasets
+
+        return datasets.Dataset.from_dict({"prompt": self.prompt, "winner": self.winner, "loser": self.loser,
+                                           "weight": self.weight,
+                                           self.accounting.get("row_unit", "line"): self.location})
+
+
+def check_policies(max_length, truncation: str, duplicates: str) -> None:
+    if truncation not in TRUNCATION:
+        raise ValueError(f"truncation must be one of {', '.join(TRUNCATION)}, got {truncation!r}")
+    if duplicates not in DUPLICATES:
+        raise ValueError(f"duplicates must be one of {', '.join(DUPLICATES)}, got {duplicates!r}")
+    if max_length is not None and (isinstance(max_length, bool) or not isinstance(max_length, int)
+                                   or max_length < 2):
+        raise ValueError(f"max_length must be an integer >= 2 (tokens) or null (no limit), got {max_length!r}")
+
+
+def validate(table: RawTable, tokenizer, *, max_length: int | None = None, truncation: str = "reject",
+             duplicates: str = "reject") -> PairData:
+    """Check every row of ``table`` (see the module docstring); return the accepted pairs."""
+    check_policies(max_length, truncation, duplicates)
+    out = PairData(rejects=list(table.early_rejects))
+    seen: dict[tuple, int] = {}
+    n_duplicates, n_truncated, removed = 0, 0, 0
+    truncated_fields: Counter = Counter()
+    for i, location in enumerate(table.locations):
+        raw = {f: v[i] for f, v in table.values.items()}
+
+        def reject(field_name, reason, detail, others=(), *, _i=i, _location=location):
+            out.rejects.append(Reject(_location, table.unit, field_name, reason, detail, table.content[_i],
+                                      list(others)))
+
+        problems = _field_problems(raw, table.present[i], table.text_values)
+        if problems:
+            first, *others = problems
+            reject(first["field"], first["reason"], first["detail"], others)
+            continue
+        prompt, winner, loser = (raw[f] for f in TEXT_FIELDS)
+        weight = _as_float(raw["weight"]) if table.weighted else 1.0
+        if winner == loser:
+            reject("loser", "identical", "winner and loser are the same text")
+            continue
+        key = (prompt, winner, loser, weight)
+        fitted = _fit(prompt, winner, loser, tokenizer, max_length, truncation)
+        if isinstance(fitted, Reject):
+            reject(fitted.field, fitted.reason, fitted.detail)
+            continue
+        (prompt, winner, loser), cut, length = fitted
+        if key in seen:
+            n_duplicates += 1
+            if duplicates == "reject":
+                reject(None, "duplicate", f"the same pair and weight as {table.unit} {seen[key]}")
+                continue
+        else:
+            seen[key] = location
+        if cut:
+            n_truncated += 1
+            truncated_fields.update(cut.keys())
+            removed += sum(cut.values())
+        for name, value in (("prompt", prompt), ("winner", winner), ("loser", loser), ("weight", weight),
+                            ("location", location), ("length", length)):
+            getattr(out, name).append(value)
+    out.rejects.sort(key=lambda r: r.location)
+    out.accounting = _accounting(table, out, tokenizer, max_length=max_length, truncation=truncation,
+                                 duplicates=duplicates, n_duplicates=n_duplicates, n_truncated=n_truncated,
+                                 truncated_fields=truncated_fields, removed=removed)
+    return out
+
+
+def _field_problems(raw: dict, present: set, text_values: bool) -> list[dict]:
+    """Every problem of the single fields of one row, in field order."""
+    problems = []
+    for name in TEXT_FIELDS:
+        value = raw[name]
+        if value is None:
+            problems.append({"field": name, "reason": "missing",
+                             "detail": f"{name} is null" if name in present else f"{name} is absent"})
+        elif isinstance(value, bytes):
+            problems.append({"field": name, "reason": "invalid_utf8", "detail": describe_bad_bytes(value)})
+        elif not isinstance(value, str):
+            problems.append({"field": name, "reason": "not_a_string",
+                             "detail": f"{name} is a {type(value).__name__} ({_short(value)}), not text"})
+        elif not _encodable(value):
+            problems.append({"field": name, "reason": "invalid_utf8", "detail": _surrogate_detail(name, value)})
+        elif not value.strip():
+            problems.append({"field": name, "reason": "empty",
+                             "detail": f"{name} is empty" if not value else f"{name} is only whitespace"})
+    if "weight" in raw:
+        detail = _weight_problem(raw["weight"], "weight" in present, text_values)
+        if detail is not None:
+            problems.append({"field": "weight", "reason": "bad_weight", "detail": detail})
+    return problems
+
+
+def _weight_problem(value, present: bool, text_values: bool) -> str | None:
+    if value is None:
+        return "weight is null" if present else "weight is absent"
+    if text_values and isinstance(value, str):
+        try:
+            number = float(value)
+        except ValueError:
+            return f"weight {_short(value)} is not a number"
+    elif isinstance(value, bool) or not isinstance(value, (int, float)):
+        return f"weight is a {type(value).__name__} ({_short(value)}), not a number"
+    else:
+        number = _as_float(value)
+    if not math.isfinite(number):
+        return f"weight {_short(value)} is not finite"
+    if number <= 0:
+        return f"weight {_short(value)} is not > 0"
+    return None
+
+
+def _as_float(value) -> float:
+    try:
+        return float(value)
+    except OverflowError:  # an integer beyond the float range
+        return math.inf
+
+
+def _fit(prompt: str, winner: str, loser: str, tokenizer, max_length: int | None, truncation: str):
+    """((prompt, winner, loser), {field: tokens removed}, length) within ``max_length`` by the
+    policy, or a Reject (its location is filled in by the caller)."""
+    n_p, n_w, n_l = (tokenizer.count(t) for t in (prompt, winner, loser))
+    length = n_p + max(n_w, n_l)
+    if max_length is None or length <= max_length:
+        return (prompt, winner, loser), {}, length
+    unit = "bytes" if getattr(tokenizer, "name", "") == "byte" else "tokens"
+    too_long = f"{length} {unit} (prompt {n_p} + longer response {max(n_w, n_l)}) > max_length {max_length}"
+    if truncation == "reject":
+        return Reject(0, "", None, "too_long", too_long)
+    if truncation == "truncate_response":
+        budget = max_length - n_p
+        if budget < 1:
+            return Reject(0, "", "prompt", "too_long", f"{too_long}, and the prompt alone leaves no room to cut "
+                                                       "the responses to")
+        cut_w, cut_l = tokenizer.truncate(winner, budget), tokenizer.truncate(loser, budget)
+        if cut_w == cut_l:
+            return Reject(0, "", "loser", "identical", f"winner and loser are the same text after truncation "
+                                                       f"to {budget} {unit}")
+        m_w, m_l = tokenizer.count(cut_w), tokenizer.count(cut_l)
+        cut = {f: k for f, k in (("winner", n_w - m_w), ("loser", n_l - m_l)) if k > 0}
+        return (prompt, cut_w, cut_l), cut, n_p + max(m_w, m_l)
+    budget = max_length - max(n_w, n_l)  # truncate_prompt
+    if budget < 1:
+        return Reject(0, "", "winner" if n_w >= n_l else "loser", "too_long",
+                      f"{too_long}, and the longer response alone leaves no room for the prompt")
+    cut_p = tokenizer.truncate(prompt, budget, side="left")
+    if not cut_p.strip():
+        return Reject(0, "", "prompt", "too_long", f"{too_long}; the prompt cut to {budget} {unit} is empty")
+    return (cut_p, winner, loser), {"prompt": n_p - tokenizer.count(cut_p)}, tokenizer.count(cut_p) + max(n_w, n_l)
+
+
+def _accounting(table: RawTable, out: PairData, tokenizer, *, max_length, truncation, duplicates, n_duplicates,
+                n_truncated, truncated_fields, removed) -> dict:
+    rows_in = len(table) + len(table.early_rejects)
+    accepted, rejected = len(out), len(out.rejects)
+    if rows_in != accepted + rejected:  # never: every row is accepted or rejected exactly once
+        raise RuntimeError(f"row accounting broke: rows_in {rows_in} != accepted {accepted} + rejected {rejected}")
+    by_reason = Counter(r.reason for r in out.rejects)
+    return {
+        "source": table.source,
+        "format": table.format,
+        "reader": table.reader,
+        "row_unit": table.unit,
+        "row_numbering": "1-based line where the record starts" if table.unit == "line" else "0-based row index",
+        "columns": table.columns.mapping() | ({} if table.weighted else {"weight": None}),
+        "columns_found": table.columns_found,
+        "weighted": table.weighted,
+        "rows_in": rows_in,
+        "rows_accepted": accepted,
+        "rows_rejected": rejected,
+        "rejected_by_reason": {k: by_reason[k] for k in REASONS if by_reason[k]},
+        "balance": f"rows_in {rows_in} = rows_accepted {accepted} + rows_rejected {rejected}",
+        "blank_lines": table.blank_lines,
+        "tokenizer": getattr(tokenizer, "name", type(tokenizer).__name__),
+        "max_length": max_length,
+        "truncation": truncation,
+        "rows_truncated": n_truncated,
+        "truncated_fields": {f: truncated_fields[f] for f in TEXT_FIELDS if truncated_fields[f]},
+        "tokens_removed": removed,
+        "duplicates": duplicates,
+        "duplicate_rows": n_duplicates,
+    }
+
+
+def _surrogate_detail(name: str, text: str) -> str:
+    try:  # bytes that a reader kept with surrogateescape come back out as the bytes
+        return f"{name}: {describe_bad_bytes(text.encode('utf-8', 'surrogateescape'))}"
+    except UnicodeEncodeError:
+        return f"{name} holds a lone surrogate, which has no UTF-8 form"
+
+
+def _encodable(text: str) -> bool:
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+def _short(value, limit: int = 40) -> str:
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit - 3] + "..."

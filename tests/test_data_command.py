@@ -1,0 +1,78 @@
+"""``polopt data FILE``: the report, the JSON accounting, the rejects file, the PNG, and one-line
+errors with exit code 2. The file comes from examples/library_desk.py with its own record of
+where the bad rows are."""
+
+from __future__ import annotations
+
+import json
+import re
+
+import pytest
+
+from examples.library_desk import MAX_LENGTH, write_all
+from polopt.cli import main
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    out = tmp_path_factory.mktemp("desk")
+    return out, write_all(out, 40, seed=3, bad=True, weights=True)
+
+
+def test_text_report_rejects_file_and_plot(files, tmp_path, capsys):
+    out, manifest = files
+    rejects, plot = tmp_path / "r.jsonl", tmp_path / "len.png"
+    code = main(["data", str(out / "pairs.jsonl"), "--max-length", str(MAX_LENGTH), "--rejects", str(rejects),
+                 "--plot", str(plot)])
+    text = capsys.readouterr().out
+    n_bad, n_good = len(manifest["expected"]["jsonl"]), len(manifest["good"])
+    assert code == 0
+    assert f"rows_in {n_good + n_bad} = rows_accepted {n_good} + rows_rejected {n_bad}" in text
+    assert "pair length (bytes: prompt + longer response)" in text and "first rejects (1-based line" in text
+    assert len(rejects.read_text(encoding="utf-8").splitlines()) == n_bad
+    assert plot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
+
+
+def test_json_accounting(files, tmp_path, capsys):
+    out, manifest = files
+    code = main(["data", str(out / "pairs.csv"), "--max-length", "200", "--truncation", "truncate_response",
+                 "--rejects", str(tmp_path / "r.jsonl"), "--json"])
+    report = json.loads(capsys.readouterr().out)
+    assert code == 0
+    assert report["rows_in"] == report["rows_accepted"] + report["rows_rejected"]
+    assert report["rows_in"] == len(manifest["good"]) + len(manifest["expected"]["csv"])
+    assert report["truncation"] == "truncate_response" and report["rows_truncated"] > 0
+    assert report["rejects_file"] == str(tmp_path / "r.jsonl")
+
+
+def test_default_rejects_file_is_written_in_the_current_folder(files, tmp_path, monkeypatch, capsys):
+    out, _ = files
+    monkeypatch.chdir(tmp_path)
+    assert main(["data", str(out / "pairs_folder")]) == 0
+    assert (tmp_path / "pairs_folder.rejects.jsonl").is_file()
+    assert "rejects file: pairs_folder.rejects.jsonl" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize(("args", "message"), [
+    (["missing.jsonl"], r"^polopt data: error: pair file not found: 'missing.jsonl'"),
+    (["{file}", "--columns", "prompt=question"], r"^polopt data: error: .*missing column\(s\) question; the file has: "
+                                                 r"'prompt', 'winner', 'loser', 'weight'"),
+    (["{file}", "--max-length", "1"], r"^polopt data: error: max_length must be an integer >= 2"),
+])
+def test_file_level_problems_are_one_line_and_exit_2(files, tmp_path, monkeypatch, capsys, args, message):
+    out, _ = files
+    monkeypatch.chdir(tmp_path)
+    code = main(["data", *[a.format(file=out / "pairs.jsonl") for a in args]])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1
+    assert re.search(message, err)
+
+
+def test_help_lists_the_command(capsys):
+    assert main(["--help"]) == 0
+    assert "data" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as stop:
+        main(["data", "--help"])
+    assert stop.value.code == 0
+    assert "truncate_response" in capsys.readouterr().out
