@@ -14,7 +14,7 @@ import sys
 
 from polopt import losses
 
-_GROUPS = ("loss", "task", "model", "optim")
+_GROUPS = ("loss", "task", "model", "optim", "method")
 
 
 def _group_options(group: str) -> list[str]:
