@@ -3,6 +3,7 @@
     polopt train [GROUP=OPTION ...] [KEY=VALUE ...]   train one loss on one task (Hydra overrides)
     polopt losses                                      list the registered losses
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
+    polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -83,6 +84,12 @@ def _export(argv: list[str]) -> int:
     return 0
 
 
+def _compare(argv: list[str]) -> int:
+    from polopt.compare import main as compare_main
+
+    return compare_main(argv)
+
+
 def _list_losses(argv: list[str]) -> int:
     for name in losses.names():
         loss = losses.get(name)
@@ -96,6 +103,7 @@ COMMANDS = {
     "train": (_train, "train one loss on one task; Hydra overrides, see 'polopt train --help'"),
     "losses": (_list_losses, "list the registered losses with f'(0), f''(0) and their papers"),
     "export": (_export, "write a built-in task out as a finite-task JSON file"),
+    "compare": (_compare, "several losses / methods on one task: one table and one plot"),
 }
 
 

@@ -50,7 +50,7 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
             mu = logp.exp()  # the opponent: a stop-gradient copy of the policy
             weight = env.prompt_weights[x] * mu[x, i] * mu[x, j] * env.preference[x, i, j]  # (E,)
         rho = margins(logp[x, i], logp[x, j], env.reference[x, i], env.reference[x, j])  # (E,)
-        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float((weight * rho).sum()
+        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float((weight * rho.detach()).sum()
                                                                                              / weight.sum())}
 
     def sampled(step: int) -> tuple[Tensor, dict]:
@@ -64,6 +64,6 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
         logp_w, logp_l = logp.chunk(2)
         rho = margins(logp_w, logp_l, env.reference_logprobs(prompt, winner), env.reference_logprobs(prompt, loser))
         weight = env.prompt_weights[prompt]
-        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float(rho.mean())}
+        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float(rho.detach().mean())}
 
     return exact if estimator == "exact" else sampled
