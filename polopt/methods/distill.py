@@ -66,6 +66,6 @@ def distill_objective(policy: torch.nn.Module, env: FiniteEnvironment, *, target
     def objective(step: int) -> tuple[Tensor, dict]:
         logp = policy.log_distribution()  # (X, K)
         cross = -(env.prompt_weights * (data * logp).sum(-1)).sum()
-        return cross, {"kl_to_data": float(cross - entropy)}
+        return cross, {"kl_to_data": float(cross.detach() - entropy)}
 
     return objective

@@ -53,7 +53,7 @@ def optimise(policy: torch.nn.Module, step_objective: Callable[[int], tuple[Tens
             scheduler.step()
             # 4. log
             if step % log_every == 0 or step == steps or step == 1:
-                record = {"step": step, "loss": float(value), "lr": lr, "grad_norm": grad_norm, **stats}
+                record = {"step": step, "loss": float(value.detach()), "lr": lr, "grad_norm": grad_norm, **stats}
                 if evaluate is not None:
                     with torch.no_grad():
                         record.update(evaluate(policy))
