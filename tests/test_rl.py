@@ -95,3 +95,29 @@ def test_a_task_without_rewards_is_refused(run_method):
 def test_unknown_estimator_is_refused(run_method):
     with pytest.raises(ValueError, match=r"method.estimator must be one of exact, sampled, got 'mc'"):
         run_method(bradley_terry(), "rl", estimator="mc")
+
+
+def test_the_train_command_refuses_in_one_line(tmp_path, capsys):
+    from polopt.cli import main
+
+    with pytest.raises(SystemExit) as stop:
+        main(["train", "method=rl", "task=nontransitive", f"hydra.run.dir={tmp_path}"])
+    assert stop.value.code == 2
+    assert capsys.readouterr().err.startswith("polopt train: error: method=rl needs rewards and task "
+                                              "'nontransitive' has none")
+
+
+def test_the_run_summary_carries_the_common_fields(tmp_path):
+    from hydra import compose, initialize_config_dir
+
+    from polopt.app import CONFIG_DIR, run
+
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        summary = run(compose("config", overrides=["method=rl", "train.steps=600", "train.progress=false"]), tmp_path)
+    task = bradley_terry()
+    np.testing.assert_allclose(summary["optimum"], kl_optimum(task, task.rewards, 0.5), atol=1e-12)
+    assert summary["tv_to_optimum"] < 1e-3 and summary["loss_gap"] < 1e-6
+    assert summary["steps"] == 600 and summary["seconds"] > 0
+    assert summary["kl_to_reference"] == pytest.approx(float(scipy.special.rel_entr(
+        np.asarray(summary["policy"]), task.reference).sum()), abs=1e-12)
+    assert (tmp_path / "summary.json").is_file() and (tmp_path / "metrics.jsonl").is_file()

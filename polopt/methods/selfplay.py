@@ -50,8 +50,8 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
             mu = logp.exp()  # the opponent: a stop-gradient copy of the policy
             weight = env.prompt_weights[x] * mu[x, i] * mu[x, j] * env.preference[x, i, j]  # (E,)
         rho = margins(logp[x, i], logp[x, j], env.reference[x, i], env.reference[x, j])  # (E,)
-        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float((weight * rho.detach()).sum()
-                                                                                             / weight.sum())}
+        margin_mean = float((weight * rho.detach()).sum() / weight.sum())
+        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": margin_mean}
 
     def sampled(step: int) -> tuple[Tensor, dict]:
         prompt, first = env.sample(policy, batch_size, generator)  # (X * B,)
