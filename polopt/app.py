@@ -90,8 +90,11 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     metrics_path = run_dir / "metrics.jsonl"
     metrics_path.unlink(missing_ok=True)
     method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
-    view = session.for_method(**method)  # the method's environment and exact target
+    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
     if method["name"] != "offline":
+        if view is None:
+            raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
+                             "this task trains with method=offline only")
         result = train_method(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
                               beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
                               optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
@@ -104,7 +107,9 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
                        smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
                        seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
                        metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision)
-        summary = view.extend_offline(session.summarise(policy, result), policy)
+        summary = session.summarise(policy, result)
+        if view is not None:
+            summary = view.extend_offline(summary, policy)
     torch.save({"policy": policy.state_dict(), "step": result.steps,
                 "config": OmegaConf.to_container(cfg, resolve=True)}, run_dir / "checkpoint.pt")
     write_json(run_dir / "summary.json", summary)

@@ -74,3 +74,11 @@ def test_offline_squared_and_selfplay_end_at_different_policies_on_a_nontransiti
     assert tv(offline["policy"], selfplay["policy"]) > 1e-2
     np.testing.assert_allclose(selfplay["equilibrium"], equilibrium(nontransitive(), 0.5), atol=1e-12)
     assert any("Nash equilibrium" in note for note in selfplay["notes"])
+
+
+def test_an_unconverged_run_says_so(tmp_path):
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        summary = run(compose("config", overrides=["task=nontransitive", "beta=0.05", "task.seed=5", "train.steps=50",
+                                                   "method=selfplay", "train.progress=false"]), tmp_path)
+    assert summary["tv_to_optimum"] > 1e-3
+    assert any(note.startswith("self-play has not converged (TV > 1e-3)") for note in summary["notes"])

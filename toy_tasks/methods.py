@@ -210,6 +210,11 @@ class MethodView:
                 f"the Nash equilibrium of the regularised preference game (tau = beta / 2 = {self.equilibrium.tau:g})"
                 f" is {self._format(self.equilibrium.policy)}; self-play ends at TV "
                 f"{summary['tv_to_equilibrium']:.2g} from it")
+            if self.target is not None and summary["tv_to_optimum"] > 1e-3:
+                summary["notes"].append(
+                    "self-play has not converged (TV > 1e-3): at small beta the game's cyclic part dominates "
+                    "its regularisation and gradient steps circle the equilibrium; lower optim.lr (roughly in "
+                    "proportion to beta) and raise train.steps")
         elif name == "best_of_n":
             n = self.method.get("n", 4)
             kl_bon = scipy.special.rel_entr(self.target, pi).sum(1)

@@ -43,7 +43,7 @@ def optimise(policy: torch.nn.Module, step_objective: Callable[[int], tuple[Tens
             # 2. the method's objective (it draws its own batch)
             value, stats = step_objective(step)
             if not torch.isfinite(value):
-                raise FloatingPointError(f"the objective became {float(value)} at step {step}; lower optim.lr")
+                raise FloatingPointError(f"the objective became {float(value.detach())} at step {step}; lower optim.lr")
             # 3. backward, clip, step
             optimiser.zero_grad(set_to_none=True)
             value.backward()
