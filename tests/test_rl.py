@@ -121,3 +121,28 @@ def test_the_run_summary_carries_the_common_fields(tmp_path):
     assert summary["kl_to_reference"] == pytest.approx(float(scipy.special.rel_entr(
         np.asarray(summary["policy"]), task.reference).sum()), abs=1e-12)
     assert (tmp_path / "summary.json").is_file() and (tmp_path / "metrics.jsonl").is_file()
+
+
+class _SessionWithoutMethods:
+    """A task session that offers only offline training (as a pairs-file task may)."""
+
+    def build_policy(self, **model):
+        return TabularPolicy(torch.zeros(1, 2, dtype=torch.float64))
+
+
+def task_without_methods(**keys):
+    task = type("TaskWithoutMethods", (), {})()
+    task.prepare = lambda loss, **run_keys: _SessionWithoutMethods()
+    return task
+
+
+def test_a_task_that_does_not_offer_the_method_is_refused(tmp_path):
+    from hydra import compose, initialize_config_dir
+
+    from polopt.app import CONFIG_DIR, run
+
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        cfg = compose("config", overrides=["method=rl", f"task._target_={__name__}.task_without_methods"])
+    with pytest.raises(ValueError, match=r"method=rl needs a task that offers it \(the finite tasks do\); this task "
+                                         r"trains with method=offline only"):
+        run(cfg, tmp_path)
