@@ -23,6 +23,7 @@ from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
 from polopt import losses
+from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
 
@@ -102,12 +103,27 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     policy = session.build_policy(**model)
     metrics_path = run_dir / "metrics.jsonl"
     metrics_path.unlink(missing_ok=True)
-    result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=cfg.train.steps,
-                   optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
-                   smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
-                   seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
-                   metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision)
-    summary = session.summarise(policy, result)
+    method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
+    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
+    if method["name"] != "offline":
+        if view is None:
+            raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
+                             "this task trains with method=offline only")
+        result = train_method(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
+                              beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
+                              optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
+                              seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=view.evaluate,
+                              metrics_path=metrics_path, progress=cfg.train.progress)
+        summary, session = view.summarise(policy, result), view
+    else:
+        result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=cfg.train.steps,
+                       optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
+                       smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
+                       seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
+                       metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision)
+        summary = session.summarise(policy, result)
+        if view is not None:
+            summary = view.extend_offline(summary, policy)
     torch.save({"policy": policy.state_dict(), "step": result.steps,
                 "config": OmegaConf.to_container(cfg, resolve=True)}, run_dir / "checkpoint.pt")
     write_json(run_dir / "summary.json", summary)

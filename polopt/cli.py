@@ -4,6 +4,7 @@
     polopt losses                                      list the registered losses
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
+    polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -13,7 +14,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-_GROUPS = ("loss", "task", "model", "optim")
+_GROUPS = ("loss", "task", "model", "optim", "method")
 
 
 def _group_options(group: str) -> list[str]:
@@ -88,6 +89,12 @@ def _data(argv: list[str]) -> int:
     return data_main(argv)
 
 
+def _compare(argv: list[str]) -> int:
+    from polopt.compare import main as compare_main
+
+    return compare_main(argv)
+
+
 def _list_losses(argv: list[str]) -> int:
     from polopt import losses  # imported here: torch loads in seconds, and `polopt data` needs none of it
 
@@ -104,6 +111,7 @@ COMMANDS = {
     "losses": (_list_losses, "list the registered losses with f'(0), f''(0) and their papers"),
     "export": (_export, "write a built-in task out as a finite-task JSON file"),
     "data": (_data, "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
+    "compare": (_compare, "several losses / methods on one task: one table and one plot"),
 }
 
 

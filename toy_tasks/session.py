@@ -45,6 +45,12 @@ class FiniteSession:
         return build_policy(kind, torch.as_tensor(np.log(self.task.reference), dtype=DTYPE), width=width, seed=seed,
                             score_scale=1.0 / self.beta)
 
+    def for_method(self, name: str = "offline", **params):
+        """This session as the ``method`` group's option ``name`` sees it (see :mod:`toy_tasks.methods`)."""
+        from toy_tasks.methods import MethodView  # methods build on this module
+
+        return MethodView.build(self, name, **params)
+
     @staticmethod
     def logratios(policy) -> np.ndarray:
         """h = log pi - log pi_ref, (X, K)."""

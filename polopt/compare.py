@@ -1,0 +1,245 @@
+"""``polopt compare``: several losses and methods on one task, one table and one plot.
+
+    polopt compare task=nontransitive loss=logistic,squared,hinge method=offline,selfplay beta=0.5
+
+Comma lists (and Hydra's other sweep forms, e.g. ``range()``) expand to their
+Cartesian product, as with ``polopt train -m``. Each combination is one ordinary
+training run (:func:`polopt.app.run`) in a sub-folder of the comparison folder;
+then one table (comparison.txt, .csv, .json) and one plot (comparison.png) hold
+for every run: KL to the reference, the win rate over the reference
+P(pi > pi_ref), the expected reward where the task has rewards, the TV distance
+to the run's own exact optimum and to the Nash equilibrium of the regularised
+preference game (tau = beta / 2), steps and seconds.
+
+Why a loop over Hydra's compose API rather than Hydra's multirun sweeper: the
+table needs every run's summary in one process, which the sweeper's launcher
+does not hand back to the app; the loop also skips duplicate runs (methods other
+than ``offline`` do not read the ``loss`` group, so ``loss=a,b method=rl`` is
+one rl run). Hydra's own override parser expands the sweeps, so they mean what
+they mean to ``-m``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import csv
+import io
+import itertools
+import json
+import sys
+import time
+from pathlib import Path
+
+from polopt.methods import METHODS
+
+COLUMNS = ("run", "method", "loss", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
+           "tv_to_optimum", "tv_to_equilibrium", "steps", "seconds")
+EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
+
+
+def expand(overrides: list[str]) -> list[list[str]]:
+    """The Cartesian product of the sweep overrides, by Hydra's override grammar.
+
+    ``["loss=a,b", "beta=1"]`` -> ``[["loss=a", "beta=1"], ["loss=b", "beta=1"]]``.
+    """
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+
+    axes = []
+    for override in OverridesParser.create().parse_overrides(overrides):
+        key = override.get_key_element()
+        values = list(override.sweep_string_iterator()) if override.is_sweep_override() else [
+            override.get_value_element_as_str()]
+        axes.append([f"{key}={v}" for v in values])
+    return [list(combo) for combo in itertools.product(*axes)]
+
+
+def _value(combo: list[str], key: str) -> str | None:
+    for item in combo:
+        k, _, v = item.partition("=")
+        if k == key:
+            return v
+    return None
+
+
+def plan(overrides: list[str]) -> list[list[str]]:
+    """The runs of a comparison: the expanded combinations, without the ``loss`` override for
+    methods that do not use it, duplicates removed (order kept)."""
+    runs, seen = [], set()
+    for combo in expand(overrides):
+        method = _value(combo, "method") or "offline"
+        if method not in METHODS:
+            raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
+        if method != "offline":
+            combo = [item for item in combo if item.partition("=")[0] != "loss"]
+        key = tuple(combo)
+        if key not in seen:
+            seen.add(key)
+            runs.append(combo)
+    return runs
+
+
+def label(summary: dict) -> str:
+    method = summary.get("method", "offline")
+    if method == "offline":
+        return f"offline {summary['loss_name']}"
+    if method == "selfplay":
+        return f"selfplay {summary['method_config'].get('loss', 'squared')}"
+    if method == "best_of_n":
+        return f"best_of_{summary['method_config'].get('n', 4)}"
+    return method
+
+
+def row(name: str, summary: dict) -> dict:
+    method = summary.get("method", "offline")
+    loss = summary.get("loss_name") if method == "offline" else summary.get("method_config", {}).get("loss")
+    return {"run": name, "method": method, "loss": loss, "beta": summary["beta"],
+            **{k: summary.get(k) for k in COLUMNS[4:]}}
+
+
+def equilibrium_notes(rows: list[dict], summaries: list[dict]) -> list[str]:
+    """Per beta: the equilibrium, which runs end at it, and how far offline squared ends from it."""
+    notes = []
+    for beta in sorted({r["beta"] for r in rows}):
+        members = [(r, s) for r, s in zip(rows, summaries, strict=True) if r["beta"] == beta]
+        eq = members[0][1].get("equilibrium")
+        if eq is None:
+            continue
+        shown = "; ".join("[" + ", ".join(f"{v:.4f}" for v in p) + "]" for p in eq)
+        at = [r["run"] for r, _ in members if r["tv_to_equilibrium"] is not None
+              and r["tv_to_equilibrium"] <= EQUILIBRIUM_TV]
+        notes.append(f"beta={beta:g}: the Nash equilibrium of the regularised preference game "
+                     f"(tau = beta / 2 = {beta / 2:g}) is {shown}; "
+                     + (f"at it (TV <= {EQUILIBRIUM_TV:g}): {', '.join(at)}" if at else "no run ends at it"))
+        for r, _ in members:
+            if r["method"] == "offline" and r["loss"] == "squared":
+                where = "also at the equilibrium" if r["tv_to_equilibrium"] <= EQUILIBRIUM_TV else "elsewhere"
+                notes.append(f"beta={beta:g}: {r['run']} ends {where}: TV {r['tv_to_equilibrium']:.3g} from the "
+                             f"equilibrium, TV {_fmt(r['tv_to_optimum'])} from its own optimum "
+                             "pi_ref exp(P(y > mu) / tau), which is the equilibrium only when mu is")
+    return notes
+
+
+def _fmt(value, spec: str = ".3g") -> str:
+    return "-" if value is None else format(value, spec)
+
+
+def render(rows: list[dict], notes: list[str], task: str) -> str:
+    head = ["run", "beta", "kl_ref", "win_rate_ref", "reward", "tv_optimum", "tv_equilibrium", "steps", "seconds"]
+    body = [[r["run"], _fmt(r["beta"], "g"), _fmt(r["kl_to_reference"], ".4f"),
+             _fmt(r["win_rate_over_reference"], ".4f"), _fmt(r["expected_reward"], ".4f"),
+             _fmt(r["tv_to_optimum"], ".2e"), _fmt(r["tv_to_equilibrium"], ".2e"), str(r["steps"]),
+             _fmt(r["seconds"], ".2f")] for r in rows]
+    widths = [max(len(line[c]) for line in [head, *body]) for c in range(len(head))]
+    lines = [f"task {task}"] + ["  ".join(cell.ljust(w) for cell, w in zip(line, widths, strict=True))
+                                for line in [head, *body]]
+    lines += ["", "kl_ref: KL(pi || pi_ref); win_rate_ref: P(pi > pi_ref); tv_optimum: TV to the run's own exact "
+                  "target; tv_equilibrium: TV to the Nash equilibrium at tau = beta / 2"]
+    lines += [f"note: {n}" for n in notes]
+    return "\n".join(lines)
+
+
+def plot(rows: list[dict], path: Path, task: str) -> Path:
+    """One PNG: KL against win rate over the reference, and the distances to optimum and equilibrium."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5))
+    for r in rows:
+        left.scatter(r["kl_to_reference"], r["win_rate_over_reference"], s=40)
+        left.annotate(f"{r['run']} (beta={r['beta']:g})", (r["kl_to_reference"], r["win_rate_over_reference"]),
+                      textcoords="offset points", xytext=(5, 4), fontsize=8)
+    left.set_xlabel("KL(pi || pi_ref)")
+    left.set_ylabel("win rate over the reference P(pi > pi_ref)")
+    left.set_title(f"{task}: gain against drift")
+    left.grid(alpha=0.3)
+    floor = 1e-16  # zero distances drawn at the bottom of the log axis
+    x = range(len(rows))
+    width = 0.4
+    for offset, key, text in ((-width / 2, "tv_to_optimum", "TV to own optimum"),
+                              (width / 2, "tv_to_equilibrium", "TV to Nash equilibrium")):
+        right.bar([i + offset for i in x], [max(r[key], floor) if r[key] is not None else floor for r in rows],
+                  width, label=text)
+    right.axhline(EQUILIBRIUM_TV, color="grey", linestyle="--", linewidth=1, label=f"TV {EQUILIBRIUM_TV:g}")
+    right.set_yscale("log")
+    right.set_xticks(list(x), [f"{r['run']}\nbeta={r['beta']:g}" for r in rows], rotation=30, ha="right",
+                     fontsize=8)
+    right.set_ylabel("total variation")
+    right.set_title("distance to the exact targets")
+    right.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
+    """Run every combination, write the table and the plot under ``out``, return the table."""
+    from hydra import compose, initialize_config_dir
+    from tqdm.auto import tqdm
+
+    from polopt.app import CONFIG_DIR, run
+    from polopt.cli import rewrite_overrides
+
+    runs = plan(overrides)
+    out.mkdir(parents=True, exist_ok=True)
+    rows, summaries, task = [], [], ""
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        for number, combo in enumerate(tqdm(runs, desc="compare", disable=not progress)):
+            cfg = compose("config", overrides=[*rewrite_overrides(combo), "train.progress=false"])
+            with contextlib.redirect_stdout(io.StringIO()) as text:
+                summary = run(cfg, out / f"{number:02d}")
+            (out / f"{number:02d}" / "report.txt").write_text(text.getvalue(), encoding="utf-8")
+            task = summary.get("task", "")
+            rows.append(row(label(summary), summary))
+            summaries.append(summary)
+    names = [r["run"] for r in rows]
+    for r in rows:  # runs that differ in something else than method and loss get their folder number
+        if names.count(r["run"]) > 1:
+            r["run"] = f"{r['run']} #{rows.index(r):02d}"
+    notes = equilibrium_notes(rows, summaries)
+    table = render(rows, notes, task)
+    (out / "comparison.txt").write_text(table + "\n", encoding="utf-8")
+    with (out / "comparison.csv").open("w", newline="", encoding="utf-8") as f:
+        writer = csv.DictWriter(f, fieldnames=COLUMNS)
+        writer.writeheader()
+        writer.writerows(rows)
+    result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
+              "notes": notes}
+    (out / "comparison.json").write_text(json.dumps(result, indent=1) + "\n", encoding="utf-8")
+    plot(rows, out / "comparison.png", task)
+    return {**result, "table": table}
+
+
+def main(argv: list[str]) -> int:
+    """The ``polopt compare`` subcommand."""
+    from polopt.cli import rewrite_overrides
+
+    parser = argparse.ArgumentParser(
+        prog="polopt compare",
+        description="Train several losses / methods on one task and tabulate them side by side: KL to the "
+                    "reference, win rate over the reference, expected reward, TV to each run's exact optimum "
+                    "and to the Nash equilibrium, steps, seconds. Writes comparison.txt/.csv/.json/.png.",
+        epilog="example: polopt compare task=nontransitive loss=logistic,squared,hinge "
+               "method=offline,selfplay beta=0.5")
+    parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train'; comma lists sweep")
+    parser.add_argument("--out", default=None, help="the comparison folder (default runs/compare/DATE-TIME)")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    args = parser.parse_args(argv)
+    out = Path(args.out) if args.out else Path("runs") / "compare" / time.strftime("%Y-%m-%d/%H-%M-%S")
+    try:
+        for combo in expand(args.overrides):
+            rewrite_overrides(combo)  # one line naming the options for a mistyped group option
+        result = compare(args.overrides, out, progress=not args.quiet)
+    except Exception as err:  # config, override-grammar and task errors alike: one line
+        cause = err.__cause__ or err
+        if not isinstance(cause, (ValueError, TypeError, FloatingPointError)) and "Override" not in type(
+                cause).__name__ and "Config" not in type(cause).__name__:
+            raise
+        print(f"polopt compare: error: {cause}", file=sys.stderr)
+        return 2
+    print(result["table"])
+    print(f"comparison folder: {out}")
+    return 0

@@ -1,0 +1,63 @@
+"""Methods beyond the offline losses, chosen by the ``method`` config group.
+
+- ``offline``: the offline losses of :mod:`polopt.train` (the default path).
+- ``rl``: KL-regularised REINFORCE (:mod:`polopt.methods.rl`); target pi_ref e^{r / beta}.
+- ``selfplay``: pairs from the current policy (:mod:`polopt.methods.selfplay`); target the
+  Nash equilibrium of the regularised preference game at tau = beta / 2.
+- ``best_of_n``: distillation of best-of-n of the reference (:mod:`polopt.methods.distill`).
+
+Each method talks to a policy through log-probabilities and to a task through a
+:class:`polopt.methods.environment.FiniteEnvironment`; the task computes each
+method's exact target itself, independently of this code.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from pathlib import Path
+
+import torch
+
+from polopt.losses import Loss
+from polopt.methods.distill import distill_objective
+from polopt.methods.environment import FiniteEnvironment
+from polopt.methods.loop import optimise
+from polopt.methods.rl import rl_objective
+from polopt.methods.selfplay import selfplay_objective
+from polopt.train import OptimConfig, TrainResult
+
+METHODS = ("offline", "rl", "selfplay", "best_of_n")
+
+
+def check_method(name: str) -> None:
+    if name not in METHODS:
+        raise ValueError(f"method must be one of {', '.join(METHODS)}, got {name!r}")
+
+
+def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, *, loss: Loss, beta: float,
+                     target: torch.Tensor | None, seed: int) -> Callable:
+    """The per-step objective of the method named by ``method['name']`` with its keys."""
+    name = method["name"]
+    check_method(name)
+    generator = torch.Generator().manual_seed(seed)
+    estimator = method.get("estimator", "exact")
+    if name == "rl":
+        return rl_objective(policy, env, beta=beta, estimator=estimator, batch_size=method.get("batch_size", 64),
+                            generator=generator)
+    if name == "selfplay":
+        return selfplay_objective(policy, env, loss, beta=beta, estimator=estimator,
+                                  batch_size=method.get("batch_size", 64), generator=generator)
+    if name == "best_of_n":
+        return distill_objective(policy, env, target=target, estimator=estimator, n=method.get("n", 4),
+                                 n_samples=method.get("n_samples", 4096), generator=generator)
+    raise ValueError("method=offline trains with polopt.train.train, not through polopt.methods")
+
+
+def train_method(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, *, loss: Loss, beta: float,
+                 steps: int, optim: OptimConfig, target: torch.Tensor | None = None, seed: int = 0,
+                 log_every: int = 10, evaluate: Callable | None = None, metrics_path: Path | None = None,
+                 progress: bool = True) -> TrainResult:
+    """Train ``policy`` with the method ``method['name']`` (not offline)."""
+    objective = method_objective(method, policy, env, loss=loss, beta=beta, target=target, seed=seed)
+    return optimise(policy, objective, steps=steps, optim=optim, seed=seed, log_every=log_every,
+                    evaluate=evaluate, metrics_path=metrics_path, progress=progress, desc=method["name"])

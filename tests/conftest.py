@@ -1,0 +1,29 @@
+"""Shared helpers for the tests of the methods beyond the offline losses."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+
+from polopt import losses
+from polopt.methods import train_method
+from polopt.train import OptimConfig
+
+torch.set_num_threads(1)  # the finite tasks' tensors are tiny: a thread pool only adds overhead on a shared CPU
+
+
+@pytest.fixture
+def run_method():
+    """``run_method(task, name, beta=..., steps=..., **method_keys) -> (view, policy, result)``:
+    one method trained on a finite task through the same calls as ``polopt train``."""
+
+    def run(task, name, *, beta=0.5, steps=1000, lr=0.05, offline_loss="squared", **params):
+        session = task.prepare(losses.get(offline_loss), beta=beta)
+        view = session.for_method(name, **params)
+        policy = session.build_policy("tabular")
+        result = train_method({"name": name, **params}, policy, view.environment(),
+                              loss=losses.get(params.get("loss", "squared")), beta=beta, steps=steps,
+                              optim=OptimConfig(lr=lr), target=view.target_tensor(), progress=False)
+        return view, policy, result
+
+    return run
