@@ -283,7 +283,7 @@ def _problem(path: Path, entry: dict) -> tuple[str | None, dict | None]:
     except OSError as err:
         return f"cannot be read: {err.strerror}", None
     if entry["bytes"] is not None and len(data) != entry["bytes"]:
-        return f"truncated or grown: {len(data)} bytes, the manifest says {entry['bytes']}", None
+        return f"truncated or grown: {len(data)} bytes, the manifest says {entry['bytes']} bytes", None
     digest = sha256_hex(data)
     if digest != entry["sha256"]:
         return f"checksum mismatch: SHA-256 {digest[:12]}..., expected {entry['sha256'][:12]}...", None
