@@ -188,8 +188,11 @@ def train_main(cfg: DictConfig) -> None:
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
         run(cfg, run_dir)
-    except (ValueError, TypeError, FloatingPointError, checkpoint.CheckpointError) as err:
+    except (ValueError, TypeError, FloatingPointError, checkpoint.CheckpointError, OSError) as err:
         if os.environ.get("POLOPT_DEBUG"):
             raise
+        if isinstance(err, OSError):  # e.g. a full disk while writing metrics or the summary
+            err = f"cannot write to {err.filename or run_dir}: {err.strerror or err}; the newest good checkpoint " \
+                  "is kept: rerun the same command to resume"
         print(f"polopt train: error: {err}", file=sys.stderr)
         sys.exit(2)

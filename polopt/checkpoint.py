@@ -23,7 +23,14 @@ it falls back to the checksum files beside the checkpoints.
 The payload holds everything a bit-identical resume needs (common practice):
 model, optimiser and scheduler state dicts, the step, the batch-order generator's
 state with the current order and cursor, torch's global RNG state, the logged
-history and the skipped steps.
+history and the skipped steps. A resumed run then ends bit-identical to an
+uninterrupted one (tests/test_checkpoint.py, tests/test_kill_resume.py) on the same
+machine, torch version and thread count. Where that cannot hold: another torch
+version or CPU (kernels differ by instruction set, bf16 most visibly); another
+number of intra-op threads for tensors large enough to be split (summation order);
+GPUs without deterministic algorithms; any source of randomness outside torch's
+global RNG and the batch-order generator (a new one must be added to the payload).
+Wall-clock ``seconds`` differ by nature.
 """
 
 from __future__ import annotations

@@ -210,7 +210,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             optimiser.zero_grad(set_to_none=True)
             problem, grad_norm = None, math.nan
             if not torch.isfinite(value):
-                problem = f"the loss is {float(value)}"
+                problem = f"the loss is {float(value.detach())}"
             else:
                 value.backward()
                 clip = optim.grad_clip if optim.grad_clip else math.inf

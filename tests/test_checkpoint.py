@@ -123,6 +123,34 @@ class TestFullDisk:
         assert state["step"] == 2 and torch.equal(state["policy"]["weight"], torch.full((1, 2), 2.0))
 
 
+    @pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="needs Linux's /proc/self/fd")
+    def test_cli_says_disk_full_in_one_line_and_a_rerun_resumes(self, tmp_path, monkeypatch, capsys):
+        from polopt.cli import main
+
+        run_dir = tmp_path / "run"
+        args = ["train", "train.steps=6", "train.checkpoint_every=2", "train.progress=false",
+                f"hydra.run.dir={run_dir}"]
+        real_write = os.write
+
+        def full_when_step_4(fd, data):  # the disk fills up while ckpt-00000004.pt is written
+            if "ckpt-00000004.pt" in os.readlink(f"/proc/self/fd/{fd}"):
+                raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+            return real_write(fd, data)
+
+        monkeypatch.setattr(os, "write", full_when_step_4)
+        with pytest.raises(SystemExit) as stop:
+            main(args)
+        monkeypatch.undo()
+        err = capsys.readouterr().err.strip().splitlines()
+        assert stop.value.code == 2 and len(err) == 1
+        assert re.fullmatch(r"polopt train: error: cannot write checkpoint .*ckpt-00000004.pt: the disk is full "
+                            r"\(No space left on device\) in .*checkpoints; the previous checkpoint ckpt-00000002.pt "
+                            r"is intact; free some space and rerun the same command to resume", err[0])
+        assert main(args) == 0
+        assert "resuming from" in capsys.readouterr().err
+        assert checkpoint.load_latest(run_dir / "checkpoints", warn=_no_warning)["step"] == 6
+
+
 class TestFallback:
     def _two(self, tmp_path):
         _save(tmp_path, 2, value=2.0)

@@ -10,9 +10,8 @@ tasks with one field broken either load or raise ValueError with a one-line mess
 else escapes. When a file loads, nothing is lost: as many prompts and responses as it holds, and
 every number exactly as written.
 
-Hook for the preference-pair data loader (issue 6): `assert_loads_or_one_line_error` and the
-`json_values` / `junk_bytes` strategies below take any loader ``load(path)``; give it the
-loader with a test that also checks the row accounting (rows read = rows kept + rows reported).
+The strategies and the one-line check live in ``helpers_fuzz`` so that the preference-pair data
+loader (issue 6) can be fuzzed the same way (see that module's docstring).
 """
 
 from __future__ import annotations
@@ -22,14 +21,14 @@ import json
 import numpy as np
 import pytest
 import torch
-from hypothesis import HealthCheck, given, settings
+from helpers_fuzz import FUZZ, assert_loads_or_one_line_error, json_values, junk_bytes, scalars
+from hypothesis import given
 from hypothesis import strategies as st
 
 from polopt import losses
 from polopt.objective import margins, preference_loss
 from toy_tasks.finite import FiniteTask, load_task, task_from_dict
 
-FUZZ = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 DTYPES = [torch.float32, torch.bfloat16]
 
 # --------------------------------------------------------------------- losses
@@ -71,31 +70,6 @@ def test_objective_from_extreme_log_probabilities(name, dtype, columns, beta):
 
 
 # --------------------------------------------------------------------- task files
-
-scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**30, 10**30), st.floats(allow_nan=True),
-                    st.text(max_size=8))
-json_values = st.recursive(scalars, lambda inner: st.one_of(
-    st.lists(inner, max_size=5),
-    st.dictionaries(st.sampled_from(["reference", "preference", "rewards", "sampling", "responses", "prompts",
-                                     "prompt", "weight", "description", "_target_", "x"]), inner, max_size=5)),
-    max_leaves=30)
-junk_bytes = st.one_of(st.binary(max_size=200),
-                       json_values.map(lambda v: json.dumps(v).encode()),
-                       st.sampled_from([b"[" * 5000, b'{"reference": ' + b"[" * 3000 + b"]" * 3000 + b"}",
-                                        b'{"reference": [1e400, 0]}', b'{"reference": [NaN, 1]}',
-                                        b'{"reference": [0.5, 0.5], "rewards": [10' + b"0" * 400 + b', 1]}',
-                                        b"\xef\xbb\xbf{}", b"", b"null"]))
-
-
-def assert_loads_or_one_line_error(load, arg):
-    """``load(arg)`` returns, or raises ValueError whose message is one non-empty line."""
-    try:
-        return load(arg)
-    except ValueError as err:
-        message = str(err)
-        assert message and "\n" not in message, repr(message)
-        return None
-
 
 def _reference_rows(data) -> list:
     return [e["reference"] for e in data["prompts"]] if "prompts" in data else [data["reference"]]
