@@ -187,7 +187,12 @@ def train_main(cfg: DictConfig) -> None:
     """Hydra's entry point for ``polopt train``: user errors become one line and exit code 2."""
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
-        run(cfg, run_dir)
+        with checkpoint.exclusive(run_dir):
+            run(cfg, run_dir)
+    except KeyboardInterrupt:
+        print(f"polopt train: interrupted; rerun the same command to resume from the newest checkpoint in "
+              f"{run_dir / 'checkpoints'}", file=sys.stderr)
+        sys.exit(130)
     except (ValueError, TypeError, FloatingPointError, checkpoint.CheckpointError, OSError) as err:
         if os.environ.get("POLOPT_DEBUG"):
             raise

@@ -35,6 +35,7 @@ Wall-clock ``seconds`` differ by nature.
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import hashlib
 import io
@@ -98,11 +99,15 @@ def restore_training_state(state: dict, *, policy: torch.nn.Module, optimiser, s
                            generator: torch.Generator) -> dict:
     """Load ``state`` into the given objects; return the loop variables
     (step, order, cursor, history, skipped, seconds)."""
-    policy.load_state_dict(state["policy"])
-    optimiser.load_state_dict(state["optimiser"])
-    scheduler.load_state_dict(state["scheduler"])
-    generator.set_state(state["generator"])
-    torch.set_rng_state(state["torch_rng"])
+    try:
+        policy.load_state_dict(state["policy"])
+        optimiser.load_state_dict(state["optimiser"])
+        scheduler.load_state_dict(state["scheduler"])
+        generator.set_state(state["generator"])
+        torch.set_rng_state(state["torch_rng"])
+    except (RuntimeError, KeyError, ValueError, TypeError) as err:
+        raise ValueError(f"the checkpoint of step {state.get('step')} does not fit this model and optimiser: "
+                         f"{str(err).strip().splitlines()[0][:160]}") from err
     return {k: state[k] for k in ("step", "order", "cursor", "history", "skipped", "seconds")}
 
 
@@ -305,6 +310,9 @@ def _problem(path: Path, entry: dict) -> tuple[str | None, dict | None]:
         return f"missing entries {missing}", None
     if payload["step"] != entry["step"]:
         return f"holds step {payload['step']}, the manifest says {entry['step']}", None
+    bad = nonfinite_entries(payload)
+    if bad:
+        return f"holds non-finite values in {', '.join(bad[:3])}", None
     return None, payload
 
 
@@ -338,6 +346,30 @@ def load_latest(directory: str | Path, *, warn: Callable[[str], None] = _warn) -
             "no earlier checkpoint is left; starting from step 0"
         warn(f"checkpoint {path} is unusable ({why}); {nxt}")
     return None
+
+
+@contextlib.contextmanager
+def exclusive(run_dir: str | Path):
+    """Hold an exclusive lock on ``run_dir`` (``run_dir/.lock``, flock) while the block runs, so that two
+    processes never train into one run folder at once; the system drops the lock when a process dies,
+    even by SIGKILL."""
+    try:
+        import fcntl
+    except ImportError:  # not POSIX (Windows): no lock, one process per run folder is up to the user
+        yield
+        return
+    run_dir = Path(run_dir)
+    run_dir.mkdir(parents=True, exist_ok=True)
+    with (run_dir / ".lock").open("a") as handle:
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError as err:
+            raise ValueError(f"another polopt train is running in {run_dir}; wait for it to end or give "
+                             "another hydra.run.dir") from err
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
 
 
 def list_checkpoints(directory: str | Path) -> list[dict]:

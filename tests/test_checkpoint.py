@@ -13,7 +13,6 @@ import hashlib
 import io
 import json
 import os
-import pickle
 import re
 
 import pytest
@@ -219,6 +218,47 @@ class TestFallback:
         assert checkpoint.load_latest(tmp_path, warn=_no_warning) is None
 
 
+def _write_listed(directory, payload: dict, step: int = 2) -> None:
+    """A checkpoint file with a correct manifest entry, whatever its content."""
+    buffer = io.BytesIO()
+    torch.save(payload, buffer)
+    data = buffer.getvalue()
+    (directory / checkpoint.checkpoint_name(step)).write_bytes(data)
+    (directory / "manifest.json").write_text(json.dumps({"format": 1, "run_id": "r", "checkpoints": [
+        {"file": checkpoint.checkpoint_name(step), "step": step, "sha256": hashlib.sha256(data).hexdigest(),
+         "bytes": len(data)}]}))
+
+
+def test_a_non_finite_checkpoint_is_not_loaded_either(tmp_path):
+    _write_listed(tmp_path, {**_state(2, float("inf")), "run_id": "r", "fingerprint": "f", "config": {}})
+    warnings = []
+    assert checkpoint.load_latest(tmp_path, warn=warnings.append) is None
+    assert "(holds non-finite values in policy.weight" in warnings[0]
+
+
+def test_a_checkpoint_of_another_shape_is_one_line():
+    state = _state(2)
+    policy = torch.nn.Linear(3, 1)
+    optimiser = torch.optim.Adam(policy.parameters())
+    scheduler = torch.optim.lr_scheduler.ConstantLR(optimiser, factor=1.0, total_iters=0)
+    with pytest.raises(ValueError, match=r"^the checkpoint of step 2 does not fit this model and optimiser: "
+                                         r"Error\(s\) in loading state_dict for Linear:$"):
+        checkpoint.restore_training_state(state, policy=policy, optimiser=optimiser, scheduler=scheduler,
+                                          generator=torch.Generator())
+
+
+def test_one_run_folder_one_process(tmp_path, capsys):
+    from polopt.cli import main
+
+    with checkpoint.exclusive(tmp_path):  # as if another polopt train were running there
+        with pytest.raises(SystemExit) as stop:
+            main(["train", "train.steps=2", "train.progress=false", f"hydra.run.dir={tmp_path}"])
+    assert stop.value.code == 2
+    assert capsys.readouterr().err.strip() == (f"polopt train: error: another polopt train is running in {tmp_path}; "
+                                               "wait for it to end or give another hydra.run.dir")
+    assert main(["train", "train.steps=2", "train.progress=false", f"hydra.run.dir={tmp_path}"]) == 0
+
+
 class _Marker:
     """Unpickling this would create a file: what a malicious checkpoint could do with plain pickle."""
 
@@ -231,15 +271,8 @@ class _Marker:
 
 def test_loading_never_runs_pickled_code(tmp_path):
     marker = tmp_path / "ran"
-    data = pickle.dumps({**_state(2), "extra": _Marker(str(marker))})
-    buffer = io.BytesIO()
-    torch.save({**_state(2), "run_id": "r", "fingerprint": "f", "config": {}, "extra": _Marker(str(marker))}, buffer)
-    assert data  # plain pickle would have happily stored it too
-    data = buffer.getvalue()
-    (tmp_path / "ckpt-00000002.pt").write_bytes(data)
-    digest = hashlib.sha256(data).hexdigest()
-    (tmp_path / "manifest.json").write_text(json.dumps({"format": 1, "run_id": "r", "checkpoints": [
-        {"file": "ckpt-00000002.pt", "step": 2, "sha256": digest, "bytes": len(data)}]}))
+    _write_listed(tmp_path, {**_state(2), "run_id": "r", "fingerprint": "f", "config": {},
+                             "extra": _Marker(str(marker))})
     warnings = []
     assert checkpoint.load_latest(tmp_path, warn=warnings.append) is None
     assert not marker.exists()
@@ -293,3 +326,20 @@ class TestBitIdenticalResume:
 
 def _copy(state):
     return copy.deepcopy(state)  # state dicts share storage with the live parameters
+
+
+def test_cli_checkpoints_verifies_and_names_the_resume_point(tmp_path, capsys):
+    from polopt.cli import main
+
+    folder = tmp_path / "checkpoints"
+    _save(folder, 2)
+    _save(folder, 4)
+    assert main(["checkpoints", str(tmp_path)]) == 0
+    assert capsys.readouterr().out.splitlines()[-1] == "resume point: ckpt-00000004.pt"
+    (folder / "ckpt-00000004.pt").write_bytes(b"x")
+    assert main(["checkpoints", str(tmp_path)]) == 1
+    out = capsys.readouterr().out.splitlines()
+    assert out[1].startswith("ckpt-00000004.pt  step        4  BAD: truncated or grown: 1 bytes")
+    assert out[-1] == "resume point: ckpt-00000002.pt"
+    assert main(["checkpoints", str(tmp_path / "nowhere")]) == 2
+    assert capsys.readouterr().err.startswith("polopt checkpoints: error: ")
