@@ -5,6 +5,7 @@ from __future__ import annotations
 import torch
 
 from polopt import losses
+from polopt.policies import TabularPolicy
 from polopt.train import OptimConfig, train
 from toy_tasks.families import bradley_terry
 from toy_tasks.session import prepare
@@ -19,14 +20,28 @@ SETUPS = {
                           batch_size=None, precision="fp32"),
     "adamw-bf16": dict(mode="sampled", kind="loglinear", optim=OptimConfig("adamw", 0.05, weight_decay=0.01),
                        batch_size=5, precision="bf16"),
+    # draws from torch's global RNG every step, as dropout in a sequence model does
+    "adam-dropout": dict(mode="sampled", kind="dropout", optim=OptimConfig("adam", 0.05), batch_size=6,
+                         precision="fp32"),
 }
+
+
+class DropoutPolicy(TabularPolicy):
+    """A tabular policy whose scores pass through dropout (p = 0.3) while training."""
+
+    def log_distribution(self):
+        scores = torch.nn.functional.dropout(self.scores_table(), p=0.3, training=self.training)  # (X, K)
+        return torch.log_softmax(self.reference_logprobs + scores, dim=-1)
 
 
 def build(setup: str, loss_name: str = "logistic"):
     s = SETUPS[setup]
     loss = losses.get(loss_name)
     session = prepare(bradley_terry(n_responses=4, seed=3), loss, beta=0.5, mode=s["mode"], n_pairs=23, seed=1)
-    policy = session.build_policy(kind=s["kind"], width=6, seed=2)
+    if s["kind"] == "dropout":
+        policy = DropoutPolicy(session.build_policy().reference_logprobs, score_scale=2.0)
+    else:
+        policy = session.build_policy(kind=s["kind"], width=6, seed=2)
     return session, policy, loss
 
 
