@@ -135,3 +135,24 @@ def test_a_changed_config_is_refused_by_name(tmp_path, monkeypatch):
 def test_checkpoint_keys_are_checked(tmp_path, override, message):
     with pytest.raises(ValueError, match=message):
         run(_cfg(override), tmp_path)
+
+
+def test_changed_data_under_the_same_config_is_refused(tmp_path, monkeypatch):
+    from toy_tasks.families import bradley_terry
+
+    path = tmp_path / "task.json"
+    bradley_terry(n_responses=3, rewards=[0.0, 1.0, 2.0]).save(path)
+    cfg = ["task=file", f"task.path={path}"]
+    real = checkpoint.save
+
+    def save_then_crash(directory, state, **kwargs):
+        real(directory, state, **kwargs)
+        raise Crash
+
+    monkeypatch.setattr(checkpoint, "save", save_then_crash)
+    with pytest.raises(Crash):
+        run(_cfg(*cfg), tmp_path / "run")
+    monkeypatch.undo()
+    bradley_terry(n_responses=3, rewards=[0.0, 1.0, 2.5]).save(path)  # same file name, other preferences
+    with pytest.raises(ValueError, match=r"belong to another run \(the training data differ\); give a new"):
+        run(_cfg(*cfg), tmp_path / "run")
