@@ -7,13 +7,22 @@ itself), the loss comes from the registry, and the plain functions of
 ``prepare(loss, beta=, smoothing=, mode=, n_pairs=, seed=)`` returning a session
 with ``pairs``, ``build_policy(...)``, ``evaluate(policy)``,
 ``summarise(policy, result)`` and ``table(summary)``.
+
+Rerunning the same command with the same ``hydra.run.dir`` resumes from the
+newest good checkpoint in its ``checkpoints/`` folder (``train.resume=false``
+starts over); ``metrics.jsonl`` is then rewritten from the checkpoint's history,
+so it keeps exactly one line per logged step. A task's ``_target_`` must name a
+builder in ``toy_tasks`` or ``polopt``: a config file cannot make the kit import
+or call anything else (a user loss comes only from ``loss.name=pkg.module:name``).
 """
 
 from __future__ import annotations
 
+import io
 import json
 import os
 import sys
+import uuid
 from pathlib import Path
 
 import hydra
@@ -22,7 +31,7 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import losses
+from polopt import checkpoint, losses
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
@@ -32,6 +41,9 @@ if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ besi
     CONFIG_DIR = Path(__file__).resolve().parent.parent / "conf"
 
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
+TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
+# keys that change how a run is kept, not what it computes: a resume may change them
+_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every")
 
 
 def build_loss(cfg: DictConfig) -> losses.Loss:
@@ -43,13 +55,33 @@ def build_loss(cfg: DictConfig) -> losses.Loss:
 def build_task(cfg: DictConfig):
     """The task object from the ``task`` group, by its ``_target_``."""
     builder = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in _TASK_RUN_KEYS}
+    check_target(builder)
     try:
-        return instantiate(builder, _convert_="all")
+        return instantiate(builder, _convert_="all", _recursive_=False)
     except Exception as err:  # Hydra wraps the builder's own error; show the builder's words
         cause = err.__cause__ or err
         if isinstance(cause, (ValueError, TypeError)):
             raise ValueError(str(cause)) from err
         raise
+
+
+def check_target(builder: dict) -> None:
+    """Allow only a top-level ``_target_`` inside :data:`TASK_PACKAGES`, so that no config can
+    import or call arbitrary code; nested ``_target_`` keys are refused too."""
+    target = builder.get("_target_")
+    if not isinstance(target, str) or not target.startswith(TASK_PACKAGES):
+        raise ValueError(f"task._target_ must name a task builder in {' or '.join(p[:-1] for p in TASK_PACKAGES)}, "
+                         f"got {target!r}; a loss of your own goes in loss.name=pkg.module:name")
+    stack = [v for k, v in builder.items() if k != "_target_"]
+    while stack:
+        value = stack.pop()
+        if isinstance(value, dict):
+            if "_target_" in value:
+                raise ValueError(f"task: a nested _target_ ({value['_target_']!r}) is not allowed; "
+                                 "task keys hold data only")
+            stack.extend(value.values())
+        elif isinstance(value, list):
+            stack.extend(value)
 
 
 def json_ready(value):
@@ -89,11 +121,41 @@ def check_complete(cfg: DictConfig) -> None:
         raise ValueError("; ".join(_MISSING_HINTS.get(k, f"{k} has no value; give {k}=VALUE") for k in missing))
 
 
+def resume_config(config: dict) -> dict:
+    """The part of the resolved config a resume must match (all but :data:`_RESUME_FREE_KEYS`)."""
+    return {**config, "train": {k: v for k, v in config.get("train", {}).items() if k not in _RESUME_FREE_KEYS}}
+
+
+def _changed_keys(old: dict, new: dict, prefix: str = "") -> list[str]:
+    out = []
+    for key in sorted(set(old) | set(new), key=str):
+        a, b = old.get(key), new.get(key)
+        if isinstance(a, dict) and isinstance(b, dict):
+            out += _changed_keys(a, b, f"{prefix}{key}.")
+        elif a != b:
+            out.append(f"{prefix}{key}: {a!r} -> {b!r}")
+    return out
+
+
+def resume_state(cfg: DictConfig, directory: Path, fingerprint: str) -> dict | None:
+    """The newest good checkpoint in ``directory`` if ``train.resume`` and it continues this very run;
+    a ValueError naming the changed keys when it belongs to another configuration or data."""
+    if not cfg.train.resume:
+        return None
+    state = checkpoint.load_latest(directory)
+    if state is None or state["fingerprint"] == fingerprint:
+        return state
+    changed = _changed_keys(state["config"], resume_config(OmegaConf.to_container(cfg, resolve=True)))
+    what = "; ".join(changed[:4]) if changed else "the training data differ"
+    raise ValueError(f"the run folder's checkpoints ({directory}) belong to another run ({what}); "
+                     "give a new hydra.run.dir, or train.resume=false to start over there")
+
+
 def run(cfg: DictConfig, run_dir: Path) -> dict:
     """Train as ``cfg`` says, write the run folder, return summary.json's content."""
     check_complete(cfg)
     run_dir.mkdir(parents=True, exist_ok=True)
-    (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True), encoding="utf-8")
+    checkpoint.atomic_write(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
     loss = build_loss(cfg.loss)
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
     task = build_task(cfg.task)
@@ -101,31 +163,55 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
                            mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed)
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
+    # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
+    config = resume_config(OmegaConf.to_container(cfg, resolve=True))
+    p = session.pairs
+    fingerprint = checkpoint.fingerprint(config, p.prompt, p.winner, p.loser, p.reference_winner,
+                                         p.reference_loser, p.weight)
+    ckpt_dir = run_dir / "checkpoints"
+    checkpoint.validate_keep(cfg.train.keep_checkpoints)
+    state = resume_state(cfg, ckpt_dir, fingerprint)
+    run_id = state["run_id"] if state is not None else uuid.uuid4().hex
     metrics_path = run_dir / "metrics.jsonl"
-    metrics_path.unlink(missing_ok=True)
     method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
     view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
     if method["name"] != "offline":
         if view is None:
             raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
                              "this task trains with method=offline only")
+        metrics_path.unlink(missing_ok=True)  # method runs are short and start over; they do not resume
         result = train_method(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
                               beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
                               optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
                               seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=view.evaluate,
                               metrics_path=metrics_path, progress=cfg.train.progress)
         summary, session = view.summarise(policy, result), view
+        buffer = io.BytesIO()
+        torch.save({"policy": policy.state_dict(), "step": result.steps, "config": config}, buffer)
+        checkpoint.atomic_write(run_dir / "policy.pt", buffer.getvalue())
     else:
+        if state is None:
+            metrics_path.unlink(missing_ok=True)
+        else:  # exactly the lines up to the checkpoint, as the uninterrupted run wrote them
+            checkpoint.atomic_write(metrics_path, "".join(json.dumps(r) + "\n" for r in state["history"]).encode())
+            print(f"polopt train: resuming from {ckpt_dir / checkpoint.checkpoint_name(state['step'])} "
+                  f"(step {state['step']} of {cfg.train.steps})", file=sys.stderr)
+
+        def save(train_state: dict) -> None:
+            checkpoint.save(ckpt_dir, train_state, run_id=run_id, fingerprint=fingerprint, config=config,
+                            keep=cfg.train.keep_checkpoints)
+
         result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=cfg.train.steps,
                        optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
                        smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
                        seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
-                       metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision)
+                       metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision,
+                       checkpoint_every=cfg.train.checkpoint_every, save_checkpoint=save, resume=state,
+                       on_nonfinite=cfg.train.on_nonfinite)
         summary = session.summarise(policy, result)
+        summary["skipped_steps"] = result.skipped
         if view is not None:
             summary = view.extend_offline(summary, policy)
-    torch.save({"policy": policy.state_dict(), "step": result.steps,
-                "config": OmegaConf.to_container(cfg, resolve=True)}, run_dir / "checkpoint.pt")
     write_json(run_dir / "summary.json", summary)
     print(session.table(summary))
     print(f"run folder: {run_dir}")
@@ -137,9 +223,17 @@ def train_main(cfg: DictConfig) -> None:
     """Hydra's entry point for ``polopt train``: user errors become one line and exit code 2."""
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
-        run(cfg, run_dir)
-    except (ValueError, TypeError, FloatingPointError) as err:
+        with checkpoint.exclusive(run_dir):
+            run(cfg, run_dir)
+    except KeyboardInterrupt:
+        print(f"polopt train: interrupted; rerun the same command to resume from the newest checkpoint in "
+              f"{run_dir / 'checkpoints'}", file=sys.stderr)
+        sys.exit(130)
+    except (ValueError, TypeError, FloatingPointError, checkpoint.CheckpointError, OSError) as err:
         if os.environ.get("POLOPT_DEBUG"):
             raise
+        if isinstance(err, OSError):  # e.g. a full disk while writing metrics or the summary
+            err = f"cannot write to {err.filename or run_dir}: {err.strerror or err}; the newest good checkpoint " \
+                  "is kept: rerun the same command to resume"
         print(f"polopt train: error: {err}", file=sys.stderr)
         sys.exit(2)

@@ -5,6 +5,7 @@
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
+    polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -106,12 +107,37 @@ def _list_losses(argv: list[str]) -> int:
     return 0
 
 
+def _checkpoints(argv: list[str]) -> int:
+    from pathlib import Path
+
+    from polopt.checkpoint import list_checkpoints
+
+    parser = argparse.ArgumentParser(prog="polopt checkpoints",
+                                     description="Verify every checkpoint of a run folder: size, SHA-256 and "
+                                                 "torch.load(weights_only=True); the newest good one is what a "
+                                                 "rerun resumes from.")
+    parser.add_argument("run_dir", help="a run folder (hydra.run.dir of polopt train)")
+    args = parser.parse_args(argv)
+    folder = Path(args.run_dir) / "checkpoints"
+    if not folder.is_dir():
+        print(f"polopt checkpoints: error: {folder} does not exist; give the run folder of a polopt train run",
+              file=sys.stderr)
+        return 2
+    entries = list_checkpoints(folder)
+    for e in entries:
+        print(f"{e['file']}  step {e['step']:>8}  {'ok' if e['ok'] else 'BAD: ' + e['problem']}")
+    good = [e for e in entries if e["ok"]]
+    print(f"resume point: {good[-1]['file'] if good else 'none (a rerun starts from step 0)'}")
+    return 0 if len(good) == len(entries) else 1
+
+
 COMMANDS = {
     "train": (_train, "train one loss on one task; Hydra overrides, see 'polopt train --help'"),
     "losses": (_list_losses, "list the registered losses with f'(0), f''(0) and their papers"),
     "export": (_export, "write a built-in task out as a finite-task JSON file"),
     "data": (_data, "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
     "compare": (_compare, "several losses / methods on one task: one table and one plot"),
+    "checkpoints": (_checkpoints, "verify a run folder's checkpoints and show the resume point"),
 }
 
 
@@ -121,7 +147,7 @@ def main(argv: list[str] | None = None) -> int:
         lines = ["usage: polopt COMMAND [ARGS ...]", "",
                  "Offline preference optimisation on small models, checked against exact optima.", "",
                  "commands:"]
-        lines += [f"  {name:<8} {text}" for name, (_, text) in COMMANDS.items()]
+        lines += [f"  {name:<11} {text}" for name, (_, text) in COMMANDS.items()]
         lines += ["", "'polopt COMMAND --help' explains each command."]
         known = not argv or argv[0] in ("-h", "--help")
         print("\n".join(lines), file=sys.stdout if known else sys.stderr)

@@ -8,14 +8,20 @@ The policy is any ``nn.Module`` with ``logprobs(prompt, response) -> (B,)``.
 
 One step reads top to bottom:
     1. learning rate (the scheduler), 2. batch, 3. policy log-probs of winners
-    and losers, 4. margins and loss, 5. backward, clip, step, 6. log.
+    and losers, 4. margins and loss, 5. backward, clip, step (or, on a
+    non-finite loss or gradient, stop or skip: ``on_nonfinite``), 6. log,
+    7. checkpoint (every ``checkpoint_every`` steps and at the end; see
+    :mod:`polopt.checkpoint`). ``resume`` continues from a checkpoint's state so
+    that the run ends bit-identical to an uninterrupted one.
 """
 
 from __future__ import annotations
 
 import json
 import math
+import sys
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -23,8 +29,9 @@ from pathlib import Path
 import torch
 from tqdm.auto import tqdm
 
+from polopt.checkpoint import restore_training_state, training_state
 from polopt.losses import Loss
-from polopt.objective import margins, preference_loss
+from polopt.objective import margins, pair_losses, preference_loss
 
 Tensor = torch.Tensor
 
@@ -73,6 +80,7 @@ class TrainResult:
     seconds: float
     final: dict
     history: list[dict] = field(default_factory=list)
+    skipped: list[int] = field(default_factory=list)  # steps skipped for a non-finite loss or gradient
 
 
 _OPTIMISERS = {"adam": torch.optim.Adam, "adamw": torch.optim.AdamW, "sgd": torch.optim.SGD}
@@ -110,17 +118,42 @@ def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight
     }
 
 
+ON_NONFINITE = ("stop", "skip")
+
+
+def nonfinite_report(step: int, what: str, index: Tensor, batch: PairSet, per_pair: Tensor) -> str:
+    """One line naming the step, the batch (pair indices and prompts) and the pairs whose loss is
+    not finite, for the NaN/inf guard."""
+    def show(t: Tensor) -> str:
+        items = t.tolist()
+        return str(items[:8])[:-1] + (f", ... {len(items)} in all]" if len(items) > 8 else "]")
+
+    bad = torch.nonzero(~torch.isfinite(per_pair)).flatten()  # positions within the batch
+    where = f"; non-finite at pairs {show(index[bad])}" if len(bad) else ""
+    return (f"step {step}: {what} on a batch of {len(index)} pairs {show(index)} "
+            f"(prompts {show(batch.prompt)}){where}")
+
+
 def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, steps: int,
           optim: OptimConfig, smoothing: float = 0.0, batch_size: int | None = None, seed: int = 0,
           log_every: int = 10, evaluate: Callable[[torch.nn.Module], dict] | None = None,
           metrics_path: Path | None = None, progress: bool = True,
-          precision: str = "fp32") -> TrainResult:
+          precision: str = "fp32", checkpoint_every: int = 0,
+          save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
+          on_nonfinite: str = "stop") -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters.
 
     ``batch_size`` None (or >= N) uses every pair each step (full batch);
     otherwise each epoch visits the pairs in a fresh order drawn from ``seed``.
     Metrics of every ``log_every``-th step (and the last) go to ``metrics_path``
-    as JSON lines.
+    as JSON lines (appended: on resume the caller leaves the lines up to the
+    checkpoint there). ``save_checkpoint(state)`` receives
+    :func:`polopt.checkpoint.training_state` every ``checkpoint_every`` steps
+    (0: only at the end) and after the last; ``resume`` is such a state to
+    continue from. A non-finite loss or gradient norm raises FloatingPointError
+    naming the step and the batch (``on_nonfinite="stop"``), or leaves the
+    parameters and the optimiser's moments untouched for that step, which still
+    consumes its batch and its learning rate (``"skip"``; counted in ``skipped``).
     """
     if not isinstance(steps, int) or steps < 1:
         raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
@@ -128,26 +161,42 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
         raise ValueError(f"train.batch_size must be a positive integer or null (all pairs), got {batch_size!r}")
     if precision not in ("fp32", "bf16"):
         raise ValueError(f"precision must be fp32 or bf16, got {precision!r}")
+    if on_nonfinite not in ON_NONFINITE:
+        raise ValueError(f"train.on_nonfinite must be stop or skip, got {on_nonfinite!r}")
+    if not isinstance(checkpoint_every, int) or isinstance(checkpoint_every, bool) or checkpoint_every < 0:
+        raise ValueError(f"train.checkpoint_every must be an integer >= 0 (0: only at the end), "
+                         f"got {checkpoint_every!r}")
     torch.manual_seed(seed)
     generator = torch.Generator().manual_seed(seed)
     optimiser, scheduler = make_optimiser(policy.parameters(), optim, steps)
     full_batch = batch_size is None or batch_size >= len(pairs)
     order, cursor = torch.randperm(len(pairs), generator=generator), 0
     history: list[dict] = []
+    skipped: list[int] = []
+    done, seconds_before = 0, 0.0
+    if resume is not None:  # every piece of state the next step reads comes back exactly
+        restored = restore_training_state(resume, policy=policy, optimiser=optimiser, scheduler=scheduler,
+                                          generator=generator)
+        done, order, cursor = restored["step"], restored["order"], restored["cursor"]
+        history, skipped, seconds_before = restored["history"], restored["skipped"], restored["seconds"]
+        if done > steps:
+            raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
-    start = time.perf_counter()
-    bar = tqdm(range(1, steps + 1), desc=f"train {loss.name}", disable=not progress, leave=False)
+    start = time.perf_counter() - seconds_before
+    bar = tqdm(range(done + 1, steps + 1), desc=f"train {loss.name}", disable=not progress, leave=False,
+               initial=done, total=steps)
     try:
         for step in bar:
             # 1. learning rate of this step
             lr = optimiser.param_groups[0]["lr"]
             # 2. batch
             if full_batch:
-                batch = pairs
+                index, batch = torch.arange(len(pairs)), pairs
             else:
                 if cursor + batch_size > len(pairs):
                     order, cursor = torch.randperm(len(pairs), generator=generator), 0
-                batch = pairs.select(order[cursor:cursor + batch_size])
+                index = order[cursor:cursor + batch_size]
+                batch = pairs.select(index)
                 cursor += batch_size
             # 3. policy log-probs of winners and losers
             with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bf16"):
@@ -157,18 +206,34 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             # 4. margins and loss
             rho = margins(logp_w, logp_l, batch.reference_winner, batch.reference_loser)  # (B,)
             value = preference_loss(loss, rho, beta=beta, smoothing=smoothing, weights=batch.weight)
-            if not torch.isfinite(value):
-                raise FloatingPointError(f"the loss became {float(value)} at step {step}; lower optim.lr "
-                                         "or beta, or check the loss function")
-            # 5. backward, clip, step
+            # 5. backward, clip, step; a non-finite loss or gradient never reaches the parameters
             optimiser.zero_grad(set_to_none=True)
-            value.backward()
-            clip = optim.grad_clip if optim.grad_clip else math.inf
-            grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
-            optimiser.step()
-            scheduler.step()
-            # 6. log
-            if step % log_every == 0 or step == steps or step == 1:
+            problem, grad_norm = None, math.nan
+            if not torch.isfinite(value):
+                problem = f"the loss is {float(value.detach())}"
+            else:
+                value.backward()
+                clip = optim.grad_clip if optim.grad_clip else math.inf
+                grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
+                if not math.isfinite(grad_norm):
+                    problem = f"the gradient norm is {grad_norm}"
+            if problem is None:
+                optimiser.step()
+            else:
+                with torch.no_grad():
+                    report = nonfinite_report(step, problem, index, batch,
+                                              pair_losses(loss, rho, beta=beta, smoothing=smoothing))
+                if on_nonfinite == "stop":
+                    raise FloatingPointError(f"{report}; lower optim.lr or beta, check the loss function "
+                                             "and the data, or set train.on_nonfinite=skip")
+                optimiser.zero_grad(set_to_none=True)
+                skipped.append(step)
+                tqdm.write(f"polopt: warning: skipped {report}", file=sys.stderr)
+            with warnings.catch_warnings():  # a skipped first step makes torch warn about the order
+                warnings.filterwarnings("ignore", message=r"Detected call of `lr_scheduler.step\(\)`")
+                scheduler.step()
+            # 6. log (a skipped step has no metrics)
+            if problem is None and (step % log_every == 0 or step == steps or step == 1):
                 with torch.no_grad():
                     record = {"step": step, "loss": float(value), "lr": lr, "grad_norm": grad_norm,
                               **batch_statistics(rho, logp_w - batch.reference_winner,
@@ -181,8 +246,13 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                     sink.write(json.dumps(record) + "\n")
                     sink.flush()
                 bar.set_postfix(loss=f"{record['loss']:.4g}", margin=f"{record['margin_mean']:.3g}")
+            # 7. checkpoint
+            if save_checkpoint is not None and (step == steps or checkpoint_every and step % checkpoint_every == 0):
+                save_checkpoint(training_state(step=step, policy=policy, optimiser=optimiser, scheduler=scheduler,
+                                               generator=generator, order=order, cursor=cursor, history=history,
+                                               skipped=skipped, seconds=time.perf_counter() - start))
     finally:
         bar.close()
         if sink is not None:
             sink.close()
-    return TrainResult(steps, time.perf_counter() - start, history[-1], history)
+    return TrainResult(steps, time.perf_counter() - start, history[-1] if history else {}, history, skipped)

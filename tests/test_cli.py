@@ -31,7 +31,7 @@ def test_default_train_prints_the_policy_beside_the_optimum(tmp_path):
     assert summary["tv_to_optimum"] <= 1e-3
     lines = (tmp_path / "metrics.jsonl").read_text().splitlines()
     assert json.loads(lines[-1])["step"] == summary["steps"] == 2000
-    assert (tmp_path / "config.yaml").is_file() and (tmp_path / "checkpoint.pt").is_file()
+    assert (tmp_path / "config.yaml").is_file() and list((tmp_path / "checkpoints").glob("ckpt-*.pt"))
 
 
 def test_swapping_loss_task_and_mode_by_overrides(tmp_path):

@@ -239,6 +239,12 @@ def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt
             raise ValueError(f"{where}: prompt weights must be {n_prompts} non-negative numbers, not all 0")
         weights = weights / weights.sum()
 
+    if responses is not None and (not isinstance(responses, (list, tuple)) or len(responses) != k
+                                  or not all(isinstance(r, str) for r in responses)):
+        raise ValueError(f"{where}: field 'responses' must be a list of {k} labels (strings), one per "
+                         f"entry of 'reference', got {str(responses)[:60]!r}")
+    if prompts is not None and not all(isinstance(p, str) for p in prompts):
+        raise ValueError(f"{where}: every field 'prompt' must be a string, got {str(prompts)[:60]!r}")
     labels = list(responses) if responses is not None else []
     if labels and len(labels) != k:
         raise ValueError(f"{where}: field 'responses' has {len(labels)} labels but 'reference' has {k} entries")
@@ -246,12 +252,31 @@ def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt
     return FiniteTask(ref, mu, pref, weights, r, labels, prompt_labels, name, description)
 
 
+def _only_numbers(value) -> bool:
+    """Whether ``value`` is a number or nested lists of numbers: JSON's strings and booleans are not
+    numbers (numpy would turn "0.5" and true into floats without a word)."""
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, (list, tuple)):
+            stack.extend(item)
+        elif isinstance(item, (bool, np.bool_)) or not isinstance(item, (int, float, np.number, np.ndarray)):
+            return False
+    return True
+
+
 def _as_array(value, field_name: str, where: str) -> np.ndarray:
+    shown = str(value)[:60]
+    if not _only_numbers(value):
+        raise ValueError(f"{where}: field '{field_name}' must hold numbers in a regular (rectangular) "
+                         f"list, got {shown!r}")
     try:
         arr = np.asarray(value, dtype=np.float64)
+    except OverflowError as err:
+        raise ValueError(f"{where}: field '{field_name}' holds a number too large for a float, got {shown!r}") from err
     except (TypeError, ValueError) as err:
         raise ValueError(f"{where}: field '{field_name}' must hold numbers in a regular (rectangular) "
-                         f"list, got {str(value)[:60]!r}") from err
+                         f"list, got {shown!r}") from err
     if not np.all(np.isfinite(arr)):
         raise ValueError(f"{where}: field '{field_name}' holds a non-finite number (NaN or infinity)")
     return arr
@@ -296,6 +321,8 @@ def load_task(path: str | Path) -> FiniteTask:
         raise ValueError(f"{where}: not valid UTF-8 text ({err.reason} at byte {err.start})") from err
     except json.JSONDecodeError as err:
         raise ValueError(f"{where}: not valid JSON: {err.msg} at line {err.lineno}, column {err.colno}") from err
+    except RecursionError as err:  # json's decoder recurses once per nesting level
+        raise ValueError(f"{where}: nested too deeply to be a task file") from err
     if not isinstance(data, dict):
         raise ValueError(f"{where}: the top level must be a JSON object with 'reference' and "
                          "'preference' (or 'rewards'), or with 'prompts'")
@@ -307,7 +334,9 @@ _ENTRY_FIELDS = {"prompt", "responses", "reference", "sampling", "preference", "
 
 def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> FiniteTask:
     """Build a task from the JSON contract's dictionary form."""
-    description = str(data.get("description", ""))
+    description = data.get("description", "")
+    if not isinstance(description, str):
+        raise ValueError(f"{where}: field 'description' must be a string, got {str(description)[:60]!r}")
     if "prompts" in data:
         entries = data["prompts"]
         if not isinstance(entries, list) or not entries or not all(isinstance(e, dict) for e in entries):
@@ -336,7 +365,7 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
         sampling = [e.get("sampling", e["reference"]) for e in entries] if len(entries) > 1 else entries[0]["sampling"]
     responses = entries[0].get("responses")
     weights = [e.get("weight", 1.0) for e in entries] if len(entries) > 1 else None
-    prompts = [str(e.get("prompt", f"prompt {x}")) for x, e in enumerate(entries)] if len(entries) > 1 else None
+    prompts = [e.get("prompt", f"prompt {x}") for x, e in enumerate(entries)] if len(entries) > 1 else None
     return make_task(
         stack("reference"),
         stack("preference") if has_pref[0] else None,
