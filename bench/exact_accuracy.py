@@ -11,6 +11,7 @@ import argparse
 import json
 
 import numpy as np
+import torch
 
 from polopt import losses
 from polopt.train import OptimConfig, train
@@ -34,6 +35,7 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=3)
     parser.add_argument("--json", default=None, help="also write the rows here")
     args = parser.parse_args()
+    torch.set_num_threads(1)  # as polopt train does for finite tasks
     tasks = [families.bradley_terry(), families.noisy_labels(), families.nontransitive(), families.contextual()]
     tasks += [random_task(s, 50, kind) for s in range(args.seeds) for kind in ("bt", "P")]
     rows = []

@@ -161,6 +161,9 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     task = build_task(cfg.task)
     session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
                            mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed)
+    threads = cfg.get("threads") or getattr(session, "threads", None)
+    if threads:  # tiny finite-task tensors run fastest on one thread; a pool only adds overhead
+        torch.set_num_threads(int(threads))
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit

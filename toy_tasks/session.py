@@ -38,6 +38,7 @@ class FiniteSession:
     pairs: PairSet
     optimum: Optimum  # of the trained objective
     population_optimum: Optimum  # of the population objective (the same object in exact mode)
+    threads: int = 1  # the run's torch thread count unless the config sets `threads`
 
     # ------------------------------------------------------------ model
 
