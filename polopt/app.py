@@ -4,7 +4,7 @@ This is the one place where configuration meets code: the task is built by
 Hydra's ``_target_`` instantiation (so ``polopt`` never imports ``toy_tasks``
 itself), the loss comes from the registry, and the plain functions of
 :mod:`polopt.train` do the work. A task object only has to offer
-``prepare(loss, beta=, smoothing=, mode=, n_pairs=, seed=)`` returning a session
+``prepare(loss, beta=, smoothing=, mode=, n_pairs=, seed=, run_dir=)`` returning a session
 with ``pairs``, ``build_policy(...)``, ``evaluate(policy)``,
 ``summarise(policy, result)`` and ``table(summary)``.
 """
@@ -83,7 +83,7 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
     task = build_task(cfg.task)
     session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
-                           mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed)
+                           mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
     metrics_path = run_dir / "metrics.jsonl"

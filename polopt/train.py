@@ -35,7 +35,9 @@ class PairSet:
 
     ``winner``/``loser`` are whatever the policy's ``logprobs`` takes (response
     indices for finite tasks). ``reference_winner``/``reference_loser`` (N,) are
-    the cached reference log-probabilities; ``weight`` (N,) or None.
+    the cached reference log-probabilities; ``weight`` (N,) or None; ``tokens`` (N,)
+    the real tokens of each pair (prompt with winner plus prompt with loser, no
+    padding) for the ``tokens_per_s`` metric, or None.
     """
 
     prompt: Tensor
@@ -44,6 +46,7 @@ class PairSet:
     reference_winner: Tensor
     reference_loser: Tensor
     weight: Tensor | None = None
+    tokens: Tensor | None = None
 
     def __len__(self) -> int:
         return len(self.prompt)
@@ -51,7 +54,8 @@ class PairSet:
     def select(self, index: Tensor) -> PairSet:
         return PairSet(self.prompt[index], self.winner[index], self.loser[index],
                        self.reference_winner[index], self.reference_loser[index],
-                       None if self.weight is None else self.weight[index])
+                       None if self.weight is None else self.weight[index],
+                       None if self.tokens is None else self.tokens[index])
 
 
 @dataclass
@@ -135,7 +139,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     order, cursor = torch.randperm(len(pairs), generator=generator), 0
     history: list[dict] = []
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
-    start = time.perf_counter()
+    start, tokens_seen = time.perf_counter(), 0
     bar = tqdm(range(1, steps + 1), desc=f"train {loss.name}", disable=not progress, leave=False)
     try:
         for step in bar:
@@ -149,6 +153,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                     order, cursor = torch.randperm(len(pairs), generator=generator), 0
                 batch = pairs.select(order[cursor:cursor + batch_size])
                 cursor += batch_size
+            if batch.tokens is not None:
+                tokens_seen += int(batch.tokens.sum())
             # 3. policy log-probs of winners and losers
             with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bf16"):
                 # winners and losers in one forward pass: (2B,) -> two halves of (B,)
@@ -176,6 +182,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                     if evaluate is not None:
                         record.update(evaluate(policy))
                 record["seconds"] = time.perf_counter() - start
+                if pairs.tokens is not None:
+                    record["tokens_per_s"] = tokens_seen / record["seconds"]
                 history.append(record)
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")

@@ -183,8 +183,9 @@ def displacement_warning(history: list[dict]) -> str | None:
 
 
 def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
-            n_pairs: int = 2000, seed: int = 0) -> FiniteSession:
-    """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``."""
+            n_pairs: int = 2000, seed: int = 0, run_dir=None) -> FiniteSession:
+    """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``. ``run_dir`` is
+    unused: a finite task's reference log-probabilities are its table."""
     if mode not in MODES:
         raise ValueError(f"task.mode must be one of {', '.join(MODES)}, got {mode!r}")
     population = task.win_weights()
