@@ -41,7 +41,10 @@ class FiniteSession:
 
     # ------------------------------------------------------------ model
 
-    def build_policy(self, kind: str = "tabular", width: int = 16, seed: int = 0) -> torch.nn.Module:
+    def build_policy(self, kind: str = "tabular", width: int = 16, seed: int = 0, **sequence_keys) -> torch.nn.Module:
+        if sequence_keys:  # model=transformer or model=bigram: keys only sequence models take
+            raise ValueError(f"model={kind} is a sequence model and needs a sequence task (task=sequence); "
+                             "finite tasks take model=tabular or model=loglinear")
         return build_policy(kind, torch.as_tensor(np.log(self.task.reference), dtype=DTYPE), width=width, seed=seed,
                             score_scale=1.0 / self.beta)
 
