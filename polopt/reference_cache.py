@@ -40,11 +40,13 @@ def fingerprint(model: nn.Module, prompt: Tensor, response: Tensor) -> str:
 
 
 def reference_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pad_id: int,
-                       path: str | Path | None = None, batch_size: int = 4096, progress: bool = False) -> Tensor:
+                       path: str | Path | None = None, batch_size: int = 4096,
+                       progress: bool = False) -> tuple[Tensor, bool]:
     """``log pi_ref(response | prompt)`` for every row (N,), from ``path`` when it matches.
 
-    ``path`` None keeps them in memory only. The model runs in eval mode and
-    without gradients.
+    Returns the log-probabilities and whether they were read from ``path``
+    (False: computed now). ``path`` None keeps them in memory only. The model
+    runs in eval mode and without gradients.
     """
     key = fingerprint(model, prompt, response)
     if path is not None:
@@ -52,7 +54,7 @@ def reference_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pa
         if path.is_file():
             stored = torch.load(path, weights_only=True)
             if isinstance(stored, dict) and stored.get("fingerprint") == key:
-                return stored["logprobs"]
+                return stored["logprobs"], True
     model.eval()
     values = batched_logprobs(model, prompt, response, pad_id=pad_id, batch_size=batch_size, progress=progress,
                               desc="reference log-probs")
@@ -61,4 +63,4 @@ def reference_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pa
         tmp = path.with_suffix(path.suffix + ".tmp")
         torch.save({"fingerprint": key, "logprobs": values}, tmp)
         tmp.replace(path)
-    return values
+    return values, False

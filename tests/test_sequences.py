@@ -191,9 +191,11 @@ def test_sampled_mode_reference_cache(tmp_path):
     assert result.final["tokens_per_s"] > 0
     summary = session.summarise(policy, result)
     assert summary["tv_to_optimum"] is not None and summary["tv_to_population_optimum"] is not None
+    assert summary["reference_cache_reused"] is False
 
     again = task.prepare(loss, beta=0.5, mode="sampled", n_pairs=300, seed=1, run_dir=tmp_path)
     assert counter.calls == 1  # the same run folder and dataset: read from the file
+    assert again.reference_cache_reused
     torch.testing.assert_close(again.pairs.reference_winner, pairs.reference_winner)
     task.prepare(loss, beta=0.5, mode="sampled", n_pairs=300, seed=2, run_dir=tmp_path)
     assert counter.calls == 2  # another dataset: recomputed

@@ -48,6 +48,7 @@ class SequenceSession:
     finite: FiniteSession
     pairs: PairSet
     reference_cache: Path | None
+    reference_cache_reused: bool = False
 
     def build_policy(self, kind: str = "transformer", width: int = 32, layers: int = 2, heads: int = 2,
                      context: int = 16, seed: int = 0, init: str = "reference") -> torch.nn.Module:
@@ -82,6 +83,7 @@ class SequenceSession:
             "max_length": self.task.max_length,
             "n_responses": self.task.n_responses,
             "reference_cache": None if self.reference_cache is None else str(self.reference_cache),
+            "reference_cache_reused": self.reference_cache_reused,
         })
         summary["notes"].append("policy, reference and optimum are sequence-level distributions over the "
                                 "enumerated responses, one list per prompt, in the order of 'responses'")
@@ -111,17 +113,18 @@ class SequenceSession:
         return "\n".join(lines)
 
 
-def token_pairs(task: SequenceTask, index_pairs: PairSet, *, cache: Path | None) -> PairSet:
+def token_pairs(task: SequenceTask, index_pairs: PairSet, *, cache: Path | None) -> tuple[PairSet, bool]:
     """The sampled pairs as token tensors, with the reference's log-probabilities computed
-    once over the dataset (winners and losers in one pass) and cached at ``cache``."""
+    once over the dataset (winners and losers in one pass) and cached at ``cache``;
+    and whether the cache file was reused."""
     prompt, winner = task.rows(index_pairs.prompt, index_pairs.winner)  # (N, T_p), (N, L)
     _, loser = task.rows(index_pairs.prompt, index_pairs.loser)  # (N, L)
-    both = reference_logprobs(task.reference_model, torch.cat([prompt, prompt]), torch.cat([winner, loser]),
+    both, reused = reference_logprobs(task.reference_model, torch.cat([prompt, prompt]), torch.cat([winner, loser]),
                               pad_id=task.vocab.pad_id, path=cache)  # (2N,)
     ref_w, ref_l = both.chunk(2)
     pad = task.vocab.pad_id
     tokens = real_tokens(prompt, winner, pad_id=pad) + real_tokens(prompt, loser, pad_id=pad)  # (N,)
-    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens)
+    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens), reused
 
 
 def prepare(task: SequenceTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
@@ -132,4 +135,5 @@ def prepare(task: SequenceTask, loss: Loss, *, beta: float, smoothing: float = 0
     cache = Path(run_dir) / FILE_NAME if run_dir is not None and task.cache_reference else None
     if mode == "exact":
         return SequenceSession(task, finite, finite.pairs, None)
-    return SequenceSession(task, finite, token_pairs(task, finite.pairs, cache=cache), cache)
+    pairs, reused = token_pairs(task, finite.pairs, cache=cache)
+    return SequenceSession(task, finite, pairs, cache, reused)
