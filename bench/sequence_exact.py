@@ -6,8 +6,8 @@ Prints, for the logistic and the squared loss in exact mode on ``task=sequence``
 (the settings of ``+experiment=sequence``): the first logged step at which the
 sequence-level tv_to_optimum is <= 0.05, the seconds it took, and the final
 distance; then the forward+backward throughput of a wider transformer in
-bfloat16 autocast against float32 (a ratio measured in the same run). Figures
-only; nothing passes or fails.
+bfloat16 autocast against float32, and of one bare matrix product (ratios
+measured in the same run). Figures only; nothing passes or fails.
 """
 
 from __future__ import annotations
@@ -68,6 +68,17 @@ def throughput(precision: str, *, width: int, batch: int, length: int, repeats: 
     return repeats * batch * length / (time.perf_counter() - start)
 
 
+def matmul_rate(dtype: torch.dtype, n: int = 1024) -> float:
+    """GFLOP/s of one n x n matrix product."""
+    a, b = torch.randn(n, n).to(dtype), torch.randn(n, n).to(dtype)
+    a @ b  # warm-up
+    repeats = 10
+    start = time.perf_counter()
+    for _ in range(repeats):
+        a @ b
+    return 2 * n**3 * repeats / (time.perf_counter() - start) / 1e9
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--threads", type=int, default=1, help="torch CPU threads (default 1)")
@@ -91,6 +102,9 @@ def main() -> None:
     fp32 = throughput("fp32", width=256, batch=64, length=64, repeats=5)
     bf16 = throughput("bf16", width=256, batch=64, length=64, repeats=5)
     print(f"fp32 {fp32:,.0f} tokens/s   bf16 {bf16:,.0f} tokens/s   bf16 / fp32 = {bf16 / fp32:.2f}")
+    mm32, mm16 = matmul_rate(torch.float32), matmul_rate(torch.bfloat16)
+    print(f"one 1024 x 1024 matrix product: fp32 {mm32:.0f} GFLOP/s   bf16 {mm16:.0f} GFLOP/s   "
+          f"bf16 / fp32 = {mm16 / mm32:.2f}")
 
 
 if __name__ == "__main__":
