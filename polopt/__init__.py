@@ -3,6 +3,9 @@
 - :mod:`polopt.losses`: the loss family f and its registry.
 - :mod:`polopt.objective`: log-probabilities -> margins -> one reduced loss.
 - :mod:`polopt.policies`: tabular and log-linear policies for finite tasks.
+- :mod:`polopt.models`: sequence models (a tiny causal transformer, a bigram table).
+- :mod:`polopt.logprobs`: sequence log-probabilities with prompt masking and padding.
+- :mod:`polopt.reference_cache`: the reference's log-probs over a dataset, computed once and cached.
 - :mod:`polopt.train`: the training loop.
 - :mod:`polopt.app`, :mod:`polopt.cli`: the command line (``polopt train ...``).
 """

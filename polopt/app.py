@@ -4,7 +4,7 @@ This is the one place where configuration meets code: the task is built by
 Hydra's ``_target_`` instantiation (so ``polopt`` never imports ``toy_tasks``
 itself), the loss comes from the registry, and the plain functions of
 :mod:`polopt.train` do the work. A task object only has to offer
-``prepare(loss, beta=, smoothing=, mode=, n_pairs=, seed=)`` returning a session
+``prepare(loss, beta=, smoothing=, mode=, n_pairs=, seed=, run_dir=)`` returning a session
 with ``pairs``, ``build_policy(...)``, ``evaluate(policy)``,
 ``summarise(policy, result)`` and ``table(summary)``.
 
@@ -43,7 +43,7 @@ if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ besi
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 # keys that change how a run is kept, not what it computes: a resume may change them
-_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every")
+_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads")
 
 
 def build_loss(cfg: DictConfig) -> losses.Loss:
@@ -160,8 +160,8 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
     task = build_task(cfg.task)
     session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
-                           mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed)
-    threads = cfg.get("threads") or getattr(session, "threads", None)
+                           mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
+    threads = cfg.train.get("threads") or getattr(session, "threads", None)
     if threads:  # tiny finite-task tensors run fastest on one thread; a pool only adds overhead
         torch.set_num_threads(int(threads))
     model = OmegaConf.to_container(cfg.model, resolve=True)

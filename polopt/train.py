@@ -42,7 +42,9 @@ class PairSet:
 
     ``winner``/``loser`` are whatever the policy's ``logprobs`` takes (response
     indices for finite tasks). ``reference_winner``/``reference_loser`` (N,) are
-    the cached reference log-probabilities; ``weight`` (N,) or None.
+    the cached reference log-probabilities; ``weight`` (N,) or None; ``tokens`` (N,)
+    the real tokens of each pair (prompt with winner plus prompt with loser, no
+    padding) for the ``tokens_per_s`` metric, or None.
     """
 
     prompt: Tensor
@@ -51,6 +53,7 @@ class PairSet:
     reference_winner: Tensor
     reference_loser: Tensor
     weight: Tensor | None = None
+    tokens: Tensor | None = None
 
     def __len__(self) -> int:
         return len(self.prompt)
@@ -58,7 +61,8 @@ class PairSet:
     def select(self, index: Tensor) -> PairSet:
         return PairSet(self.prompt[index], self.winner[index], self.loser[index],
                        self.reference_winner[index], self.reference_loser[index],
-                       None if self.weight is None else self.weight[index])
+                       None if self.weight is None else self.weight[index],
+                       None if self.tokens is None else self.tokens[index])
 
 
 @dataclass
@@ -183,6 +187,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     start = time.perf_counter() - seconds_before
+    loop_start, tokens_seen = time.perf_counter(), 0  # token throughput of this process, resumed or not
     bar = tqdm(range(done + 1, steps + 1), desc=f"train {loss.name}", disable=not progress, leave=False,
                initial=done, total=steps)
     try:
@@ -198,6 +203,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 index = order[cursor:cursor + batch_size]
                 batch = pairs.select(index)
                 cursor += batch_size
+            if batch.tokens is not None:
+                tokens_seen += int(batch.tokens.sum())
             # 3. policy log-probs of winners and losers
             with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bf16"):
                 # winners and losers in one forward pass: (2B,) -> two halves of (B,)
@@ -241,6 +248,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                     if evaluate is not None:
                         record.update(evaluate(policy))
                 record["seconds"] = time.perf_counter() - start
+                if pairs.tokens is not None:
+                    record["tokens_per_s"] = tokens_seen / (time.perf_counter() - loop_start)
                 history.append(record)
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")

@@ -42,7 +42,10 @@ class FiniteSession:
 
     # ------------------------------------------------------------ model
 
-    def build_policy(self, kind: str = "tabular", width: int = 16, seed: int = 0) -> torch.nn.Module:
+    def build_policy(self, kind: str = "tabular", width: int = 16, seed: int = 0, **sequence_keys) -> torch.nn.Module:
+        if sequence_keys:  # model=transformer or model=bigram: keys only sequence models take
+            raise ValueError(f"model={kind} is a sequence model and needs a sequence task (task=sequence); "
+                             "finite tasks take model=tabular or model=loglinear")
         return build_policy(kind, torch.as_tensor(np.log(self.task.reference), dtype=DTYPE), width=width, seed=seed,
                             score_scale=1.0 / self.beta)
 
@@ -190,8 +193,9 @@ def displacement_warning(history: list[dict]) -> str | None:
 
 
 def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
-            n_pairs: int = 2000, seed: int = 0) -> FiniteSession:
-    """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``."""
+            n_pairs: int = 2000, seed: int = 0, run_dir=None) -> FiniteSession:
+    """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``. ``run_dir`` is
+    unused: a finite task's reference log-probabilities are its table."""
     if mode not in MODES:
         raise ValueError(f"task.mode must be one of {', '.join(MODES)}, got {mode!r}")
     population = task.win_weights()

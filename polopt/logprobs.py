@@ -1,0 +1,111 @@
+"""Log-probabilities of responses under an autoregressive model, with masks.
+
+For a prompt x and a response y = (y_1, ..., y_n) the chain rule gives
+
+    log pi(y | x) = sum_{t=1..n} log pi(y_t | x, y_<t)
+
+Prompts and responses arrive as separate right-padded token tensors
+``(B, T_p)`` and ``(B, T_r)``. :func:`pack` lays each prompt and its response
+side by side with no gap, padding at the end only, and marks which positions are
+response tokens; the model reads ``tokens[:, :-1]`` and each response token is
+scored by the logits one position earlier. Prompt tokens and padding are masked
+out of the sum. With a causal model and right padding, real tokens never see a
+pad token, so neither the amount of padding nor the order of the batch can
+change a log-probability.
+
+:class:`SequencePolicy` is the trainer's view of a sequence model
+(``logprobs(prompt, response) -> (B,)``); winners and losers go through it in
+one forward pass, concatenated along the batch.
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import nn
+from tqdm.auto import tqdm
+
+Tensor = torch.Tensor
+
+
+def lengths(tokens: Tensor, *, pad_id: int) -> Tensor:
+    """Real (non-pad) tokens per row of a right-padded (B, T) tensor: (B,)."""
+    return (tokens != pad_id).sum(dim=1)
+
+
+def pack(prompt: Tensor, response: Tensor, *, pad_id: int) -> tuple[Tensor, Tensor]:
+    """Prompt then response with no gap, right-padded, trimmed to the longest row.
+
+    Args:
+        prompt: (B, T_p) right-padded prompt tokens; every prompt has >= 1 token.
+        response: (B, T_r) right-padded response tokens (may be empty rows).
+
+    Returns:
+        tokens (B, T) and a boolean mask (B, T) that is True on response tokens.
+    """
+    if prompt.shape[0] != response.shape[0]:
+        raise ValueError(f"prompt and response batches differ: {prompt.shape[0]} and {response.shape[0]} rows")
+    n_prompt = lengths(prompt, pad_id=pad_id)  # (B,)
+    n_response = lengths(response, pad_id=pad_id)  # (B,)
+    if bool((n_prompt < 1).any()):
+        raise ValueError("every prompt needs at least one token (the first response token is scored "
+                         "by the logits at the prompt's last token)")
+    total = int((n_prompt + n_response).max())
+    t = torch.arange(total, device=prompt.device)[None, :]  # (1, T)
+    in_prompt = t < n_prompt[:, None]  # (B, T)
+    offset = t - n_prompt[:, None]  # (B, T): index into the response
+    in_response = (offset >= 0) & (offset < n_response[:, None])  # (B, T)
+    from_prompt = prompt.gather(1, t.clamp(max=prompt.shape[1] - 1).expand(len(prompt), -1))  # (B, T)
+    from_response = response.gather(1, offset.clamp(0, max(response.shape[1] - 1, 0)).expand(len(prompt), -1))
+    tokens = torch.where(in_prompt, from_prompt, torch.where(in_response, from_response, pad_id))  # (B, T)
+    return tokens, in_response
+
+
+def token_logprobs(model: nn.Module, tokens: Tensor, response_mask: Tensor) -> Tensor:
+    """Per-token ``log pi(y_t | x, y_<t)`` (B, T - 1), 0 off the response.
+
+    Entry t scores ``tokens[:, t + 1]``. The log-softmax runs in at least float32,
+    even under bfloat16 autocast: its sums over the vocabulary need the precision.
+    """
+    logits = model(tokens[:, :-1])  # (B, T-1, V)
+    logp = torch.log_softmax(logits.to(torch.promote_types(logits.dtype, torch.float32)), dim=-1)  # (B, T-1, V)
+    targets = tokens[:, 1:]  # (B, T-1)
+    mask = response_mask[:, 1:]  # (B, T-1)
+    safe = torch.where(mask, targets, 0)  # padding ids may lie outside the output vocabulary
+    picked = logp.gather(-1, safe[..., None]).squeeze(-1)  # (B, T-1)
+    return torch.where(mask, picked, 0.0)
+
+
+def sequence_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pad_id: int) -> Tensor:
+    """``log pi(response | prompt)`` summed over response tokens: (B, T_p), (B, T_r) -> (B,)."""
+    tokens, mask = pack(prompt, response, pad_id=pad_id)
+    return token_logprobs(model, tokens, mask).sum(dim=1)
+
+
+def real_tokens(prompt: Tensor, response: Tensor, *, pad_id: int) -> Tensor:
+    """Prompt plus response tokens per row, padding excluded: (B,)."""
+    return lengths(prompt, pad_id=pad_id) + lengths(response, pad_id=pad_id)
+
+
+class SequencePolicy(nn.Module):
+    """A sequence model seen as a policy: ``logprobs(prompt, response)`` of token tensors."""
+
+    def __init__(self, model: nn.Module, *, pad_id: int):
+        super().__init__()
+        self.model = model
+        self.pad_id = pad_id
+
+    def logprobs(self, prompt: Tensor, response: Tensor) -> Tensor:
+        """(B, T_p), (B, T_r) right-padded -> (B,)."""
+        return sequence_logprobs(self.model, prompt, response, pad_id=self.pad_id)
+
+
+@torch.no_grad()
+def batched_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pad_id: int,
+                     batch_size: int = 4096, progress: bool = False, desc: str = "log-probs") -> Tensor:
+    """:func:`sequence_logprobs` over a whole dataset in chunks, without gradients: (N,)."""
+    out = []
+    starts = range(0, len(prompt), batch_size)
+    for start in tqdm(starts, desc=desc, disable=not progress, leave=False):
+        stop = start + batch_size
+        out.append(sequence_logprobs(model, prompt[start:stop], response[start:stop], pad_id=pad_id))
+    return torch.cat(out) if out else torch.zeros(0)
