@@ -207,7 +207,7 @@ class Loss:
             (d2,) = torch.autograd.grad(d1, t)
         else:  # f is linear around x: autograd leaves no graph for the second derivative
             d2 = torch.zeros((), dtype=torch.float64)
-        return float(value), float(d1), float(d2)
+        return float(value.detach()), float(d1.detach()), float(d2)
 
     def pair_objective(self, x: np.ndarray | float, p: float) -> np.ndarray:
         """``p f(x) + (1 - p) f(-x)``: the expected loss of one pair whose first
