@@ -55,6 +55,7 @@ STATUSES = ("pass", "warn", "fail", "skip")
 EXTREME_MARGINS = (-1e4, -1e3, -100.0, -50.0, -20.0, -5.0, -1.0, 0.0, 1.0, 5.0, 20.0, 50.0, 100.0, 1e3, 1e4)
 CURVE_P = np.round(np.linspace(0.02, 0.98, 49), 10)  # includes 1/2
 CONVEXITY_GRID = (-30.0, 30.0, 0.01)  # start, stop, step of the second differences
+STILL_MARGIN = 1e-5  # |beta * weighted mean margin| below this: the policy did not move (rounding noise only)
 NO_SIGNAL_SLOPE = 1e-8  # |f'(0)| below this (relative to max(1, |f''(0)|)) is no signal
 
 
@@ -595,9 +596,9 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
     # 1. direction of the trained margins
     if balanced:
         notes.append("preferences balanced (no direction to check)")
-    elif mean_margin < -1e-9:
+    elif beta * mean_margin < -STILL_MARGIN:
         problems.append(f"the trained policy prefers the losers: weighted mean margin {mean_margin:.4g} < 0")
-    elif mean_margin <= 1e-9:
+    elif beta * mean_margin <= STILL_MARGIN:
         problems.append("the trained policy did not move from the reference (weighted mean margin "
                         f"{mean_margin:.3g}) although the winners outweigh the losers")
     else:
