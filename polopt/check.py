@@ -55,7 +55,7 @@ STATUSES = ("pass", "warn", "fail", "skip")
 EXTREME_MARGINS = (-1e4, -1e3, -100.0, -50.0, -20.0, -5.0, -1.0, 0.0, 1.0, 5.0, 20.0, 50.0, 100.0, 1e3, 1e4)
 CURVE_P = np.round(np.linspace(0.02, 0.98, 49), 10)  # includes 1/2
 CONVEXITY_GRID = (-30.0, 30.0, 0.01)  # start, stop, step of the second differences
-STILL_MARGIN = 1e-5  # |beta * weighted mean margin| below this: the policy did not move (rounding noise only)
+STILL_MARGIN = 1e-3  # |beta * weighted mean margin| below this: the policy did not move (Adam amplifies rounding)
 NO_SIGNAL_SLOPE = 1e-8  # |f'(0)| below this (relative to max(1, |f''(0)|)) is no signal
 
 
