@@ -87,7 +87,7 @@ def plot_report(report: Report, loss: Loss, path: str | Path) -> Path:
         shown = True
     ax_t.plot([0, 1], [0, 1], color="grey", lw=0.8)
     ax_t.set(title="trained vs exact optimum (exact mode)", xlabel="exact optimal probability",
-             ylabel="trained probability", xlim=(0, 1), ylim=(0, 1))
+             ylabel="trained probability", xlim=(-0.03, 1.03), ylim=(-0.03, 1.03))
     if shown:
         ax_t.legend(fontsize=7)
     else:
