@@ -127,6 +127,7 @@ def _check_tasks(names: list[str]) -> tuple[list, dict]:
 def _check(argv: list[str]) -> int:
     import json
     import re
+    import textwrap
 
     from polopt import check
     from polopt.app import json_ready
@@ -134,11 +135,14 @@ def _check(argv: list[str]) -> int:
 
     parser = argparse.ArgumentParser(
         prog="polopt check",
-        description="Unit-test a loss f against the analytic optimum before a big run: elementwise and finite, "
-                    "f'(0) < 0, convexity, Taylor coefficients and the GPO ratio f''(0)/|f'(0)| with the "
-                    "equal-regularisation beta of every built-in, the per-pair optimum x*(p) and p = 1, "
-                    "whether f is a rescaled built-in, and the exact population optimum of small finite tasks "
-                    "against what the trainer reaches in exact mode. Exit code 1 on any failure.",
+        description=textwrap.fill(
+            "Unit-test a loss f against the analytic optimum before a big run: elementwise and finite, "
+            "f'(0) < 0, convexity, Taylor coefficients and the GPO ratio f''(0)/|f'(0)| with the "
+            "equal-regularisation beta of every built-in, the per-pair optimum x*(p) and p = 1, "
+            "whether f is a rescaled built-in, and the exact population optimum of small finite tasks "
+            "against what the trainer reaches in exact mode. FAIL: the loss cannot do its job; WARN: it "
+            "works, but not as one would likely assume (not convex; a rescaled built-in). Exit code 1 on "
+            "any failure, 2 on a usage error.", 78),
         epilog="examples:\n  polopt check logistic\n  polopt check huber --param delta=0.5 --beta 0.1\n"
                "  polopt check mypkg.losses:my_loss --json > report.json\n  polopt check mypkg.losses:my_loss "
                "--quick --plot my_loss.png",
