@@ -570,10 +570,11 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
     Reached: TV to the optimum <= tol where the optimum is unique, else a relative
     loss gap <= tol (hinge, non-convex losses); where no finite optimum exists, the
     mass on the responses that take it all in the limit must have grown.
-    Direction: for convex f with f'(0) < 0, f(b x) >= f(0) + f'(0) b x gives
-    f'(0) beta E_W[rho*] <= L(h*) - L(0) <= 0, so the optimal weighted mean margin is
-    >= 0, and > 0 unless the preferences are balanced (derived here; a sign error
-    makes it negative, a loss with no signal leaves it at 0).
+    Direction: for convex f, f(x) >= f(0) + f'(0) x gives
+    L(h*) >= L(0) + f'(0) beta sum_ij W_ij rho*_ij, so with f'(0) < 0 and L(h*) <= L(0)
+    the optimal weighted mean margin is >= 0, and > 0 unless h = 0 is already optimal,
+    i.e. the preferences are balanced (derived here; a sign error makes it negative, a
+    loss with no signal leaves it at 0).
     """
     label = name or getattr(task, "name", type(task).__name__)
     check = f"population:{label}"
@@ -616,7 +617,9 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
             notes.insert(0, f"{measured} <= {tol:g} after {steps} steps")
         else:
             problems.append(f"training did not reach the exact optimum: {measured} > {tol:g} after {steps} steps "
-                            f"(trained loss {summary['loss']:.6g}, optimal {value:.6g}; TV {tv:.3g})")
+                            f"(trained loss {summary['loss']:.6g}, optimal {value:.6g}; TV {tv:.3g}); either "
+                            "the loss's optimum is slow to reach (try more --steps) or the exact solver and the "
+                            "trainer disagree about f")
     else:
         support = summary.get("limit_support") or []
         policy_p, reference_p = np.asarray(summary["policy"]), np.asarray(summary["reference"])
@@ -624,6 +627,7 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
         start = [float(reference_p[x, s].sum()) for x, s in enumerate(support)]
         facts.update({"limit_mass": mass, "limit_mass_reference": start})
         moved = ", ".join(f"{a:.3g} -> {b:.4g}" for a, b in zip(start, mass, strict=True))
+        support = support[0] if len(support) == 1 else support  # one prompt: just its responses
         if all(b > a for a, b in zip(start, mass, strict=True)):
             notes.insert(0, f"no finite optimum (as theory says for this loss and task); mass on the responses that "
                          f"take it all in the limit {support} grew {moved}")
