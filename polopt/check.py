@@ -127,8 +127,13 @@ def is_builtin(loss: Loss) -> bool:
     return base is not None and base.fn is loss.fn and not loss.params and base.source != "user-supplied"
 
 
+def builtin_names() -> list[str]:
+    """The registry's own members (defined in :mod:`polopt.losses`), not users' additions."""
+    return [name for name in losses.names() if losses._REGISTRY[name].fn.__module__ == losses.__name__]
+
+
 def _builtins() -> list[Loss]:
-    return [losses.get(name) for name in losses.names() if losses._REGISTRY[name].fn.__module__ == losses.__name__]
+    return [losses.get(name) for name in builtin_names()]
 
 
 def _call(loss: Loss, x: Tensor) -> Tensor:

@@ -22,7 +22,7 @@ import numpy as np  # noqa: E402
 import torch  # noqa: E402
 
 from polopt import losses  # noqa: E402
-from polopt.check import Report, pair_optimum_curve  # noqa: E402
+from polopt.check import Report, builtin_names, pair_optimum_curve  # noqa: E402
 from polopt.losses import Loss  # noqa: E402
 
 _X = np.linspace(-4.0, 4.0, 401)
@@ -30,7 +30,7 @@ _MARGIN_LIMIT = 6.0  # the optimum panel shows scaled margins in [-6, 6]
 
 
 def _builtins() -> list[Loss]:
-    return [losses.get(n) for n in losses.names() if losses._REGISTRY[n].fn.__module__ == losses.__name__]
+    return [losses.get(name) for name in builtin_names()]
 
 
 def plot_report(report: Report, loss: Loss, path: str | Path) -> Path:

@@ -89,7 +89,15 @@ def _static(fn, beta=0.5):
 # ---------------------------------------------------------------- every built-in passes
 
 
-@pytest.mark.parametrize("name", losses.names())
+# the registry's own members (users' registrations, e.g. from other test modules, are not built-ins)
+BUILTINS = check.builtin_names()
+
+
+def test_the_registry_holds_the_published_members():
+    assert set(BUILTINS) == {"logistic", "squared", "hinge", "huber", "exponential", "truncated_quadratic", "savage"}
+
+
+@pytest.mark.parametrize("name", BUILTINS)
 def test_every_builtin_passes_the_static_checks(name):
     report = _static(name)
     assert report.failures == [], [f"{r.name}: {r.reason}" for r in report.failures]
@@ -98,7 +106,7 @@ def test_every_builtin_passes_the_static_checks(name):
     assert warned == ({"convexity"} if name == "savage" else set())
 
 
-@pytest.mark.parametrize("name", losses.names())
+@pytest.mark.parametrize("name", BUILTINS)
 def test_every_builtin_reaches_the_exact_population_optimum(name, tasks):
     report = check.run_checks(name, beta=0.5, tasks=tasks, steps=STEPS)
     population = [r for r in report.results if r.name.startswith("population:")]
@@ -321,3 +329,17 @@ def test_cli_user_errors_are_one_line_with_exit_code_2(argv, message, capsys):
     rc = main(argv)
     err = capsys.readouterr().err
     assert rc == 2 and err.startswith(message) and err.count("\n") == 1
+
+
+def test_a_double_well_loss_manufactures_a_margin_at_p_one_half():
+    # (x^2 - 1)^2 - x/2: at p = 1/2 the pair objective is (x^2 - 1)^2, minimised at +-1 (by hand)
+    result = check.check_pair_optimum(check.as_loss(lambda x: (x**2 - 1) ** 2 - 0.5 * x))
+    assert result.status == "fail" and "!= 0: a pair with no preference still gets a non-zero margin" in result.reason
+    assert abs(result.facts["x_half"]) == pytest.approx(1.0, abs=1e-4)
+
+
+def test_a_curve_that_decreases_in_p_fails():
+    bent = Loss("bent", losses.logistic, {}, True, "test",
+                lambda p: float(scipy.special.logit(p)) if p < 0.8 else 0.1 * float(scipy.special.logit(p)))
+    result = check.check_pair_optimum(bent)
+    assert result.status == "fail" and "x*(p) decreases in p (x*(0.78)" in result.reason
