@@ -341,6 +341,10 @@ def pair_optimum(loss: Loss, p: float) -> float:
     is approached only at infinity) is reported as infinite. Flat to rounding: no better
     at the search bound 60 than at x*, and less than 1e-9 lower at x* than one unit
     before it (a hinge's flat minimum, reached with slope -1, stays finite)."""
+    if loss.closed_form_optimum is None:
+        values = loss.pair_objective(np.linspace(-60.0, 60.0, 241), p)
+        if np.ptp(values) <= 1e-12 * max(1.0, float(np.abs(values).max())):
+            return math.nan  # flat in x: every margin is optimal
     x = loss.pair_optimum(p)
     if loss.closed_form_optimum is None and math.isfinite(x) and abs(x) > 1.0:
         step = math.copysign(1.0, x)
@@ -395,7 +399,11 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
         problems.append(f"x*(1/2) = {_fmt(x_half)} != 0: a pair with no preference still gets a non-zero margin, "
                         "in a direction chosen by where training starts")
     upper = CURVE_P > 0.5
-    if np.all(xs[upper] <= 1e-9):
+    if np.any(np.isnan(xs[upper])):
+        k = int(np.flatnonzero(upper & np.isnan(xs))[0])
+        problems.append(f"the pair objective is flat in the margin at p = {CURVE_P[k]:g}: every margin is optimal, "
+                        "so the loss carries no preference")
+    elif np.all(xs[upper] <= 1e-9):
         kind = "0 for every p" if np.all(np.abs(xs) <= 1e-9) else "negative for p > 1/2"
         problems.append(f"x*(p) is {kind} (e.g. x*(0.8) = {_fmt(xs[np.argmin(np.abs(CURVE_P - 0.8))])}):"
                         " the optimum does not favour the preferred response")
@@ -438,6 +446,8 @@ def check_certainty(loss: Loss) -> CheckResult:
     except Exception as err:
         return _error(name, err)
     facts = {"optimum_at_1": x1, "finite": math.isfinite(x1)}
+    if math.isnan(x1):
+        return CheckResult(name, "fail", "the pair objective at p = 1 is flat: every margin is optimal", facts)
     if x1 == -math.inf or (math.isfinite(x1) and x1 < -1e-9):
         return CheckResult(name, "fail", f"x*(1) = {_fmt(x1)}: with certain labels the optimum favours the loser",
                            facts)
@@ -484,10 +494,10 @@ def fit_rescaled(loss: Loss, reference: Loss) -> tuple[float, float, float, floa
     c_all = (g_c @ t_c) / np.maximum((g_c**2).sum(1), 1e-300)  # (A,) least-squares slope per a
     coarse = np.sqrt(np.mean((c_all[:, None] * g_c - t_c[None]) ** 2, axis=1)) / spread  # (A,)
     j = int(np.argmin(coarse))
-    lo, hi = _FIT_A[max(j - 1, 0)], _FIT_A[min(j + 1, len(_FIT_A) - 1)]
-    if lo * hi <= 0:  # the bracket must not cross a = 0
-        lo, hi = (_FIT_A[j], _FIT_A[j]) if j in (0, len(_FIT_A) - 1) else (lo, hi)
-    best = scipy.optimize.minimize_scalar(lambda a: residual(a)[0], bounds=(min(lo, hi), max(lo, hi)),
+    # refine between the neighbours of the best grid point, never across a = 0
+    bracket = [_FIT_A[i] for i in (j - 1, j, j + 1) if 0 <= i < len(_FIT_A) and _FIT_A[i] * _FIT_A[j] > 0]
+    lo, hi = min(bracket), max(bracket)
+    best = scipy.optimize.minimize_scalar(lambda a: residual(a)[0], bounds=(lo, hi),
                                           method="bounded", options={"xatol": 1e-12}) if lo != hi else None
     a = float(best.x) if best is not None and best.fun <= coarse[j] else float(_FIT_A[j])
     res, c, k = residual(a)
@@ -508,7 +518,7 @@ def check_scale(loss: Loss, *, beta: float, tolerance: float = 1e-6) -> CheckRes
             if is_builtin(loss) and ref.name == loss.name:
                 continue
             a, c, k, res = fit_rescaled(loss, ref)
-            if res <= tolerance:
+            if res <= tolerance and abs(c) > 1e-9:  # c = 0 would "match" a constant f
                 matches.append({"builtin": ref.name, "a": a, "c": c, "k": k, "residual": res})
     except Exception as err:
         return _error(name, err)

@@ -343,3 +343,10 @@ def test_a_curve_that_decreases_in_p_fails():
                 lambda p: float(scipy.special.logit(p)) if p < 0.8 else 0.1 * float(scipy.special.logit(p)))
     result = check.check_pair_optimum(bent)
     assert result.status == "fail" and "x*(p) decreases in p (x*(0.78)" in result.reason
+
+
+def test_a_constant_loss_has_no_signal_and_a_flat_pair_objective():
+    report = _static(lambda x: 0.0 * x + 1.0)
+    assert "no preference signal" in report.result("signal").reason
+    assert "flat in the margin" in report.result("pair_optimum").reason
+    assert report.result("scale").facts["matches"] == []  # c = 0 is no rescaled built-in
