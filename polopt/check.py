@@ -671,7 +671,8 @@ def run_checks(loss: Loss | str | Callable[..., Tensor], *, beta: float = 0.5, t
                progress: bool | None = False, params: dict | None = None) -> Report:
     """Every check of the module docstring; the population checks on ``tasks``
     (objects with ``prepare``, or ``(name, task)`` pairs). When f is not elementwise
-    the other checks are skipped: f of a single margin is then not defined."""
+    the other checks are skipped: f of a single margin is then not defined.
+    ``progress``: a tqdm bar over the checks (None: only on a terminal)."""
     from tqdm.auto import tqdm
 
     loss = as_loss(loss, **(params or {}))
@@ -687,7 +688,8 @@ def run_checks(loss: Loss | str | Callable[..., Tensor], *, beta: float = 0.5, t
             loss, task, beta=beta, steps=steps, optim=optim, tol=tol, name=label)))
     results = [_guarded("elementwise", lambda: check_elementwise(loss))]
     elementwise = results[0].status != "fail"
-    for name, fn in tqdm(checks, desc=f"check {loss.name}", disable=progress is False, leave=False):
+    quiet = None if progress is None else not progress  # tqdm: None hides the bar off a terminal
+    for name, fn in tqdm(checks, desc=f"check {loss.name}", disable=quiet, leave=False):
         if elementwise:
             results.append(_guarded(name, fn))
         else:
