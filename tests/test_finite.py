@@ -33,7 +33,8 @@ def test_bradley_terry_preference_is_a_sigmoid_of_reward_differences():
     (dict(reference=REF, preference=CYCLE, rewards=[1, 2, 3]), r"give exactly one of 'preference'"),
     (dict(reference=REF, rewards=[1.0, float("nan"), 0.0]), r"field 'rewards' holds a non-finite number"),
     (dict(reference=[1.0], rewards=[1.0]), r"needs at least 2 responses"),
-    (dict(reference=REF, preference=CYCLE, responses=["a", "b"]), r"field 'responses' must be a list of 3 labels \(strings\), one per entry of 'reference'"),
+    (dict(reference=REF, preference=CYCLE, responses=["a", "b"]),
+     r"field 'responses' must be a list of 3 labels \(strings\), one per entry of 'reference'"),
 ])
 def test_validation_names_the_field_and_the_fix(kwargs, message):
     with pytest.raises(ValueError, match=message):

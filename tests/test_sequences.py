@@ -214,7 +214,8 @@ def test_experiment_config_composes():
         cfg = compose("config", overrides=["+experiment=sequence", "loss=squared"])
     assert cfg.task._target_ == "toy_tasks.sequences.sequence_task"
     assert cfg.model.kind == "transformer" and cfg.model.init == "reference"
-    assert cfg.optim.lr == 0.003 and cfg.optim.warmup_steps == 20 and cfg.loss.name == "squared" and cfg.precision == "fp32"
+    assert cfg.optim.lr == 0.003 and cfg.optim.warmup_steps == 20
+    assert cfg.loss.name == "squared" and cfg.precision == "fp32"
     assert (cfg.task.n_symbols, cfg.task.max_length) == (3, 5)
 
 
