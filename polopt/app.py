@@ -164,6 +164,11 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     threads = cfg.train.get("threads") or getattr(session, "threads", None)
     if threads:  # tiny finite-task tensors run fastest on one thread; a pool only adds overhead
         torch.set_num_threads(int(threads))
+    method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
+    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
+    if method["name"] != "offline" and view is None:
+        raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
+                         "this task trains with method=offline only")
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
@@ -176,12 +181,7 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     state = resume_state(cfg, ckpt_dir, fingerprint)
     run_id = state["run_id"] if state is not None else uuid.uuid4().hex
     metrics_path = run_dir / "metrics.jsonl"
-    method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
-    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
     if method["name"] != "offline":
-        if view is None:
-            raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
-                             "this task trains with method=offline only")
         metrics_path.unlink(missing_ok=True)  # method runs are short and start over; they do not resume
         result = train_method(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
                               beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
