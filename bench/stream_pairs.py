@@ -9,8 +9,8 @@ chunk by chunk (:func:`polopt.stream.write_arrow`), and then trains the tiny tra
 ``--steps`` minibatch steps twice, each in a fresh process: once from the file through
 :class:`polopt.stream.MappedPairs` (memory-mapped, one batch read at a time), once from the
 same pairs as in-memory tensors (:class:`polopt.train.PairSet`, as ``polopt train`` holds
-them). Prints the peak resident set size (getrusage ru_maxrss) of each process, the size of
-the file, and their ratio; never passes or fails.
+them). Prints the peak resident set size (VmHWM) of each process and its resident set
+after training (VmRSS), the size of the file, and the ratios; never passes or fails.
 """
 
 from __future__ import annotations
@@ -29,7 +29,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 import numpy as np  # noqa: E402
 import torch  # noqa: E402
 
-CHUNK = 100_000
+CHUNK = 20_000  # the toy sampler holds a (2 CHUNK, K) table of cumulative probabilities
 
 
 def task():
@@ -43,6 +43,29 @@ def draw(t, n: int, k: int):
     m = min(CHUNK, n - k * CHUNK)
     s = t.finite_task().sample_pairs(m, seed=1000 + k)
     return s.prompt, s.winner, s.loser
+
+
+def peak_rss_mib() -> float:
+    """The peak resident set size of this process image (Linux VmHWM; unlike getrusage's ru_maxrss it
+    does not carry the parent's peak across exec), else ru_maxrss."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def rss_now_mib() -> float:
+    """The resident set size now (Linux VmRSS; file pages of a memory map count while resident); NaN elsewhere."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return float("nan")
 
 
 def list_array(table: np.ndarray, lengths: np.ndarray, rows: np.ndarray):
@@ -99,17 +122,17 @@ def train_once(mode: str, path: Path, n: int, steps: int, batch_size: int) -> di
 
     torch.set_num_threads(1)
     t = task()
-    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    before = peak_rss_mib()
     pairs = MappedPairs(path, pad_id=t.vocab.pad_id) if mode == "mapped" else in_ram(n)
-    loaded = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    loaded = peak_rss_mib()
     model = build_model("transformer", vocab_size=t.vocab.size, output_size=t.vocab.output_size,
                         context=t.context_needed)
     copy_weights(model, t.reference_model)
     start = time.perf_counter()
     result = train(EnumeratedSequencePolicy(model, t), pairs, losses.get("logistic"), beta=0.5, steps=steps,
                    optim=OptimConfig("adam", 0.003), batch_size=batch_size, log_every=steps, progress=False)
-    return {"mode": mode, "rows": len(pairs), "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
-            "rss_after_setup_mb": loaded / 1024, "rss_at_start_mb": before / 1024,
+    return {"mode": mode, "rows": len(pairs), "peak_rss_mb": peak_rss_mib(), "rss_end_mb": rss_now_mib(),
+            "rss_after_setup_mb": loaded, "rss_at_start_mb": before,
             "seconds": time.perf_counter() - start, "loss": result.final["loss"],
             "tokens_per_s": result.final.get("tokens_per_s")}
 
@@ -138,10 +161,12 @@ def main() -> None:
                                   capture_output=True, text=True, check=True)
             out[mode] = json.loads(done.stdout.strip().splitlines()[-1])
             r = out[mode]
-            print(f"{mode:>6}: peak RSS {r['peak_rss_mb']:.0f} MiB (after building the pair set "
-                  f"{r['rss_after_setup_mb']:.0f} MiB, at start {r['rss_at_start_mb']:.0f} MiB); "
+            print(f"{mode:>6}: peak RSS {r['peak_rss_mb']:.0f} MiB (peak after building the pair set "
+                  f"{r['rss_after_setup_mb']:.0f} MiB, before it {r['rss_at_start_mb']:.0f} MiB; "
+                  f"RSS after training {r['rss_end_mb']:.0f} MiB); "
                   f"{args.steps} steps of {args.batch_size} in {r['seconds']:.1f} s; final loss {r['loss']:.4f}")
-        print(f"peak RSS mapped / in RAM: {out['mapped']['peak_rss_mb'] / out['ram']['peak_rss_mb']:.2f}")
+        print(f"peak RSS mapped / in RAM: {out['mapped']['peak_rss_mb'] / out['ram']['peak_rss_mb']:.2f}; "
+              f"RSS after training mapped / in RAM: {out['mapped']['rss_end_mb'] / out['ram']['rss_end_mb']:.2f}")
 
 
 if __name__ == "__main__":
