@@ -134,8 +134,8 @@ def train_sft(model: torch.nn.Module, prompt: Tensor, response: Tensor, *, pad_i
         optimiser.step()
         scheduler.step()
         if step % log_every == 0 or step in (1, steps):
-            history.append({"step": step, "loss": float(value), "lr": lr_now})
-            bar.set_postfix(loss=f"{float(value):.3f}")
+            history.append({"step": step, "loss": float(value.detach()), "lr": lr_now})
+            bar.set_postfix(loss=f"{history[-1]['loss']:.3f}")
     bar.close()
     model.eval()
     return SFTResult(steps, time.perf_counter() - start, history)
