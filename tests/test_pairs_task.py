@@ -131,3 +131,10 @@ def test_a_reference_too_short_for_the_file(reference_checkpoint, tmp_path):
     path.write_text(json.dumps({"prompt": "q", "winner": "y" * 80, "loser": "n"}) + "\n", encoding="utf-8")
     with pytest.raises(ValueError, match=r"task.reference has context 48 but the longest pair needs 82"):
         run(_cfg(f"task.path={path}", f"task.reference={reference_checkpoint}"), tmp_path / "run")
+
+
+def test_the_pairs_experiment_composes():
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        cfg = compose("config", overrides=["+experiment=pairs", "task.path=x.jsonl"])
+    assert cfg.task._target_ == "polopt.pairs_task.pair_task" and cfg.model.kind == "transformer"
+    assert cfg.task.mode == "sampled" and cfg.optim.lr == 0.0002
