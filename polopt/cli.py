@@ -91,6 +91,18 @@ def _data(argv: list[str]) -> int:
     return data_main(argv)
 
 
+def _sft(argv: list[str]) -> int:
+    from polopt.sft import main as sft_main
+
+    return sft_main(argv)
+
+
+def _demo(argv: list[str]) -> int:
+    from polopt.demo import main as demo_main
+
+    return demo_main(argv)
+
+
 def _compare(argv: list[str]) -> int:
     from polopt.compare import main as compare_main
 
@@ -253,6 +265,8 @@ COMMANDS = {
     "losses": (_list_losses, "list the registered losses with f'(0), f''(0) and their papers"),
     "export": (_export, "write a built-in task out as a finite-task JSON file"),
     "data": (_data, "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
+    "sft": (_sft, "train the tiny transformer on plain text and save it as a reference model (task.reference)"),
+    "demo": (_demo, "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
     "compare": (_compare, "several losses / methods on one task: one table and one plot"),
     "checkpoints": (_checkpoints, "verify a run folder's checkpoints and show the resume point"),
     "check": (_check, "unit-test a loss against the analytic optimum; exit code 1 on any failure"),
