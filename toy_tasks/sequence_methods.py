@@ -158,6 +158,12 @@ class SequenceMethodView(MethodView):
                                 "enumerated responses, one list per prompt, in the order of 'responses'")
         return summary
 
+    def _format(self, p: np.ndarray) -> str:
+        """Notes name a distribution over hundreds of responses by its most likely ones."""
+        labels = self.task.responses
+        return "; ".join(", ".join(f"{labels[i]}: {row[i]:.4f}" for i in np.argsort(-row)[:3]) + ", ..."
+                         for row in p) + " (all of it in summary.json's 'equilibrium')"
+
     def table(self, summary: dict) -> str:
         """The most likely responses under the method's target (or the reference), then the figures."""
         labels = summary["responses"]
