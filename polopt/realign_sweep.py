@@ -39,6 +39,7 @@ SERIES = (("tv_geometric", "sequence-level mixture pi_ref^(1-lambda) pi^lambda /
           ("tv_per_token_exact", "per-token mixing of the exact optimum (no training error)", "^--"),
           ("tv_retrained", "retrained at beta / lambda", "d-"),
           ("tv_per_token_to_retrained", "per-token mixing vs retrained (TV between them)", "x:"))
+PLOT_FLOOR = 1e-5  # TVs below this (the exact cases) are drawn on the floor line
 
 
 def parse_lambdas(text: str) -> list[float]:
@@ -60,7 +61,7 @@ def tv(p, q, weights) -> float:
 
 def rows(base: dict, retrained: dict[float, dict]) -> list[dict]:
     """One row per lambda from the base run's ``realigned`` entries and the retrained summaries."""
-    weights = base.get("prompt_weights") or [1.0 / len(base["policy"])] * len(base["policy"])
+    weights = base["prompt_weights"]
     out = []
     for entry in base["realigned"]:
         lam = entry["lambda"]
@@ -110,9 +111,15 @@ def plot(table: list[dict], path: Path, base: dict) -> Path:
     for key, text, style in SERIES:
         points = [(r["lambda"], r[key]) for r in shown if r[key] is not None]
         if points:
-            ax.plot(*zip(*[(lam, max(v, 1e-16)) for lam, v in points], strict=True), style, label=text)
+            ax.plot(*zip(*[(lam, max(v, PLOT_FLOOR)) for lam, v in points], strict=True), style, label=text)
+    ax.axhline(PLOT_FLOOR, color="grey", linewidth=0.8)
+    ax.annotate(f"below {PLOT_FLOOR:g} (exact: lambda = 1 is the trained policy itself)", (0.01, 0.02),
+                xycoords="axes fraction", fontsize=7, color="grey")
     ax.set_xscale("log", base=2)
+    lambdas = [r["lambda"] for r in shown]
+    ax.set_xticks(lambdas, [f"{lam:g}" for lam in lambdas])
     ax.set_yscale("log")
+    ax.set_ylim(PLOT_FLOOR / 2, 1.5)  # TV lies in [0, 1]
     ax.set_xlabel("lambda (emulates beta / lambda; 1: the trained policy)")
     ax.set_ylabel("total variation")
     ax.set_title(f"realignment on {base.get('task')} ({base.get('loss_name')}, beta={base['beta']:g}): "

@@ -222,3 +222,13 @@ def test_compare_runs_methods_on_the_sequence_task(tmp_path):
     assert [r["method"] for r in result["rows"]] == ["offline", "rl", "best_of_n"]
     assert result["task"] == "sequence"
     assert all(r["tv_to_optimum"] is not None and r["kl_to_reference"] is not None for r in result["rows"])
+
+
+def test_realign_command_on_a_finite_task_has_no_per_token_rows(tmp_path):
+    # finite tasks: the sequence-level mixture is exact (Liu et al. 2024), per-token mixing does not apply
+    out = tmp_path / "finite"
+    assert main(["realign", "task=contextual", "train.steps=600", "train.progress=false", "--lambdas", "0.5,2",
+                 "--out", str(out), "--quiet"]) == 0
+    rows = json.loads((out / "realign.json").read_text())["rows"]
+    assert all(r["tv_geometric"] < 1e-3 and r["tv_per_token"] is None for r in rows)
+    assert all(r["tv_retrained"] < 1e-3 and r["tv_geometric_to_retrained"] < 2e-3 for r in rows)

@@ -152,8 +152,7 @@ class SequenceMethodView(MethodView):
     def summarise(self, policy, result) -> dict:
         summary = super().summarise(policy, result)
         summary.update({"task": "sequence", "n_symbols": self.sequence.vocab.n_symbols,
-                        "max_length": self.sequence.max_length, "n_responses": self.sequence.n_responses,
-                        "prompt_weights": [float(w) for w in self.task.prompt_weights]})
+                        "max_length": self.sequence.max_length, "n_responses": self.sequence.n_responses})
         summary["notes"].append("policy, reference and optimum are sequence-level distributions over the "
                                 "enumerated responses, one list per prompt, in the order of 'responses'")
         return summary
