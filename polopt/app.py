@@ -18,6 +18,7 @@ or call anything else (a user loss comes only from ``loss.name=pkg.module:name``
 
 from __future__ import annotations
 
+import contextlib
 import io
 import json
 import os
@@ -31,7 +32,7 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, losses
+from polopt import checkpoint, distributed, losses
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
@@ -111,6 +112,7 @@ def write_json(path: Path, data: dict) -> None:
 _MISSING_HINTS = {
     "task.path": "task=file needs task.path=PATH to a JSON task file",
     "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x))",
+    "model.path": "model=hf needs model.path=DIR, a local folder saved by a transformers causal LM",
 }
 
 
@@ -151,19 +153,31 @@ def resume_state(cfg: DictConfig, directory: Path, fingerprint: str) -> dict | N
                      "give a new hydra.run.dir, or train.resume=false to start over there")
 
 
-def run(cfg: DictConfig, run_dir: Path) -> dict:
-    """Train as ``cfg`` says, write the run folder, return summary.json's content."""
+def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE) -> dict:
+    """Train as ``cfg`` says, write the run folder, return summary.json's content.
+
+    With several processes (``context``, from torchrun) every rank trains and only rank 0 writes."""
     check_complete(cfg)
+    main = context.is_main
     run_dir.mkdir(parents=True, exist_ok=True)
-    checkpoint.atomic_write(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
+    if main:
+        checkpoint.atomic_write(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
     loss = build_loss(cfg.loss)
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
     task = build_task(cfg.task)
-    session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
-                           mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
+    with distributed.main_first(context):  # rank 0 writes any cache in the run folder before the others read it
+        session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
+                               mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
     threads = cfg.train.get("threads") or getattr(session, "threads", None)
     if threads:  # tiny finite-task tensors run fastest on one thread; a pool only adds overhead
         torch.set_num_threads(int(threads))
+    method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
+    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
+    if method["name"] != "offline" and view is None:
+        raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
+                         "this task trains with method=offline only")
+    if method["name"] != "offline" and context.active:
+        raise ValueError(f"method={method['name']} runs on one process; torchrun trains method=offline only")
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
@@ -174,14 +188,10 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
     ckpt_dir = run_dir / "checkpoints"
     checkpoint.validate_keep(cfg.train.keep_checkpoints)
     state = resume_state(cfg, ckpt_dir, fingerprint)
+    distributed.barrier(context)  # every rank has read the same checkpoint before rank 0 writes a new one
     run_id = state["run_id"] if state is not None else uuid.uuid4().hex
     metrics_path = run_dir / "metrics.jsonl"
-    method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
-    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
     if method["name"] != "offline":
-        if view is None:
-            raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
-                             "this task trains with method=offline only")
         metrics_path.unlink(missing_ok=True)  # method runs are short and start over; they do not resume
         result = train_method(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
                               beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
@@ -193,9 +203,9 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
         torch.save({"policy": policy.state_dict(), "step": result.steps, "config": config}, buffer)
         checkpoint.atomic_write(run_dir / "policy.pt", buffer.getvalue())
     else:
-        if state is None:
+        if main and state is None:
             metrics_path.unlink(missing_ok=True)
-        else:  # exactly the lines up to the checkpoint, as the uninterrupted run wrote them
+        elif main:  # exactly the lines up to the checkpoint, as the uninterrupted run wrote them
             checkpoint.atomic_write(metrics_path, "".join(json.dumps(r) + "\n" for r in state["history"]).encode())
             print(f"polopt train: resuming from {ckpt_dir / checkpoint.checkpoint_name(state['step'])} "
                   f"(step {state['step']} of {cfg.train.steps})", file=sys.stderr)
@@ -208,13 +218,18 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
                        optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
                        smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
                        seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
-                       metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision,
-                       checkpoint_every=cfg.train.checkpoint_every, save_checkpoint=save, resume=state,
-                       on_nonfinite=cfg.train.on_nonfinite)
+                       metrics_path=metrics_path if main else None, progress=cfg.train.progress and main,
+                       precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
+                       save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
+                       context=context)
         summary = session.summarise(policy, result)
         summary["skipped_steps"] = result.skipped
         if view is not None:
             summary = view.extend_offline(summary, policy)
+        if context.active:
+            summary["processes"] = context.world_size
+    if not main:
+        return summary
     write_json(run_dir / "summary.json", summary)
     print(session.table(summary))
     print(f"run folder: {run_dir}")
@@ -226,8 +241,12 @@ def train_main(cfg: DictConfig) -> None:
     """Hydra's entry point for ``polopt train``: user errors become one line and exit code 2."""
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
-        with checkpoint.exclusive(run_dir):
-            run(cfg, run_dir)
+        context = distributed.setup()
+        # every rank uses rank 0's folder (a ${now:...} in hydra.run.dir may differ between processes)
+        run_dir = distributed.broadcast_path(run_dir, context)
+        with checkpoint.exclusive(run_dir) if context.is_main else contextlib.nullcontext():
+            run(cfg, run_dir, context)
+        distributed.teardown(context)
     except KeyboardInterrupt:
         print(f"polopt train: interrupted; rerun the same command to resume from the newest checkpoint in "
               f"{run_dir / 'checkpoints'}", file=sys.stderr)

@@ -29,6 +29,7 @@ from pathlib import Path
 import torch
 from tqdm.auto import tqdm
 
+from polopt import distributed
 from polopt.checkpoint import restore_training_state, training_state
 from polopt.losses import Loss
 from polopt.objective import margins, pair_losses, preference_loss
@@ -109,9 +110,13 @@ def make_optimiser(params, cfg: OptimConfig, steps: int):
     return optimiser, torch.optim.lr_scheduler.SequentialLR(optimiser, [warmup, main], milestones=[cfg.warmup_steps])
 
 
-def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None) -> dict:
+def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None,
+                     context: distributed.Context | None = None) -> dict:
     """Weighted means of the margin, the share of pairs with a positive margin, and
-    the two log-ratios (both falling together is likelihood displacement)."""
+    the two log-ratios (both falling together is likelihood displacement); over the global
+    batch of all ranks when ``context`` is given."""
+    if context is not None:
+        return distributed.batch_statistics(rho, logratio_w, logratio_l, weight, context)
     w = torch.ones_like(rho) if weight is None else weight.to(rho.dtype)
     w = w / w.sum()
     return {
@@ -144,7 +149,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
           metrics_path: Path | None = None, progress: bool = True,
           precision: str = "fp32", checkpoint_every: int = 0,
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
-          on_nonfinite: str = "stop") -> TrainResult:
+          on_nonfinite: str = "stop", context: distributed.Context = distributed.SINGLE) -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters.
 
     ``batch_size`` None (or >= N) uses every pair each step (full batch);
@@ -158,6 +163,9 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     naming the step and the batch (``on_nonfinite="stop"``), or leaves the
     parameters and the optimiser's moments untouched for that step, which still
     consumes its batch and its learning rate (``"skip"``; counted in ``skipped``).
+    ``context`` (from :func:`polopt.distributed.setup`) with several processes: each rank takes
+    its slice of every global batch and the gradients are averaged (:mod:`polopt.distributed`);
+    the caller passes ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
     """
     if not isinstance(steps, int) or steps < 1:
         raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
@@ -185,6 +193,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
         history, skipped, seconds_before = restored["history"], restored["skipped"], restored["seconds"]
         if done > steps:
             raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
+    score = distributed.scorer(policy, context)  # policy.logprobs, or its DDP view
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     start = time.perf_counter() - seconds_before
     loop_start, tokens_seen = time.perf_counter(), 0  # token throughput of this process, resumed or not
@@ -205,21 +214,28 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 cursor += batch_size
             if batch.tokens is not None:
                 tokens_seen += int(batch.tokens.sum())
+            if context.active:  # this rank's slice of the global batch, and the global batch's weight
+                batch, index, total_weight = distributed.shard(batch, index, context)
             # 3. policy log-probs of winners and losers
             with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bf16"):
                 # winners and losers in one forward pass: (2B,) -> two halves of (B,)
-                logp = policy.logprobs(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
+                logp = score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
                 logp_w, logp_l = logp.to(batch.reference_winner.dtype).chunk(2)
             # 4. margins and loss
             rho = margins(logp_w, logp_l, batch.reference_winner, batch.reference_loser)  # (B,)
-            value = preference_loss(loss, rho, beta=beta, smoothing=smoothing, weights=batch.weight)
+            if not context.active:
+                value = objective = preference_loss(loss, rho, beta=beta, smoothing=smoothing, weights=batch.weight)
+            else:  # objective: this rank's share (see sharded_loss); value: the global loss
+                objective, value = distributed.sharded_loss(loss, rho, beta=beta, smoothing=smoothing,
+                                                            weight=batch.weight, total_weight=total_weight,
+                                                            context=context)
             # 5. backward, clip, step; a non-finite loss or gradient never reaches the parameters
             optimiser.zero_grad(set_to_none=True)
             problem, grad_norm = None, math.nan
             if not torch.isfinite(value):
                 problem = f"the loss is {float(value.detach())}"
             else:
-                value.backward()
+                objective.backward()
                 clip = optim.grad_clip if optim.grad_clip else math.inf
                 grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
                 if not math.isfinite(grad_norm):
@@ -235,16 +251,17 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                                              "and the data, or set train.on_nonfinite=skip")
                 optimiser.zero_grad(set_to_none=True)
                 skipped.append(step)
-                tqdm.write(f"polopt: warning: skipped {report}", file=sys.stderr)
+                if context.is_main:
+                    tqdm.write(f"polopt: warning: skipped {report}", file=sys.stderr)
             with warnings.catch_warnings():  # a skipped first step makes torch warn about the order
                 warnings.filterwarnings("ignore", message=r"Detected call of `lr_scheduler.step\(\)`")
                 scheduler.step()
             # 6. log (a skipped step has no metrics)
             if problem is None and (step % log_every == 0 or step == steps or step == 1):
                 with torch.no_grad():
-                    record = {"step": step, "loss": float(value), "lr": lr, "grad_norm": grad_norm,
-                              **batch_statistics(rho, logp_w - batch.reference_winner,
-                                                 logp_l - batch.reference_loser, batch.weight)}
+                    statistics = batch_statistics(rho, logp_w - batch.reference_winner, logp_l - batch.reference_loser,
+                                                  batch.weight, context if context.active else None)
+                    record = {"step": step, "loss": float(value), "lr": lr, "grad_norm": grad_norm, **statistics}
                     if evaluate is not None:
                         record.update(evaluate(policy))
                 record["seconds"] = time.perf_counter() - start

@@ -136,10 +136,13 @@ def task_without_methods(**keys):
     return task
 
 
-def test_a_task_that_does_not_offer_the_method_is_refused(tmp_path):
+def test_a_task_that_does_not_offer_the_method_is_refused(tmp_path, monkeypatch):
     from hydra import compose, initialize_config_dir
 
+    from polopt import app
     from polopt.app import CONFIG_DIR, run
+
+    monkeypatch.setattr(app, "TASK_PACKAGES", (*app.TASK_PACKAGES, f"{__name__}."))  # admit this test's builder
 
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose("config", overrides=["method=rl", f"task._target_={__name__}.task_without_methods"])

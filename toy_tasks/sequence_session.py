@@ -51,8 +51,16 @@ class SequenceSession:
     reference_cache_reused: bool = False
 
     def build_policy(self, kind: str = "transformer", width: int = 32, layers: int = 2, heads: int = 2,
-                     context: int = 16, seed: int = 0, init: str = "reference") -> torch.nn.Module:
-        """A sequence model over the task's vocabulary, wrapped to score enumerated responses."""
+                     context: int = 16, seed: int = 0, init: str = "reference",
+                     path: str | None = None) -> torch.nn.Module:
+        """A sequence model over the task's vocabulary, wrapped to score enumerated responses
+        (``kind="hf"``: the transformers causal LM saved in ``path``, at its own weights)."""
+        if kind == "hf":
+            from polopt.hf import causal_lm_policy  # the optional extra: imported only when asked for
+
+            lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
+                                  vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
+            return EnumeratedSequencePolicy(lm.model, self.task)
         if kind in ("tabular", "loglinear"):
             if self.finite.mode != "exact":
                 raise ValueError(f"model={kind} scores enumerated responses, not tokens: on task=sequence it "

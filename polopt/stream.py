@@ -1,0 +1,117 @@
+"""Pairs that stay on disk: an Arrow file, memory-mapped, read one batch at a time.
+
+A :class:`polopt.train.PairSet` holds every pair in RAM as tensors. For a large
+dataset, :class:`MappedPairs` offers the part of its interface the trainer's
+minibatch path reads (``len``, ``select(index) -> PairSet``, ``weight``,
+``tokens``): the rows live in an Arrow file that ``datasets.Dataset.from_file``
+memory-maps, and ``select`` reads the rows of one batch and pads them into
+tensors. The operating system pages the file in and out as it likes, so resident
+memory stays near the size of the model plus a batch, not the dataset
+(bench/stream_pairs.py prints the peak RSS for a million pairs).
+
+Columns (Arrow): ``prompt``, ``winner``, ``loser`` (token lists, or integer ids for
+finite tasks), ``reference_winner``, ``reference_loser`` (float64, the cached
+reference log-probabilities), optional ``weight`` (float64). :func:`write_arrow`
+writes such a file chunk by chunk, never holding the whole dataset.
+
+Full-batch training (``train.batch_size=null``) would read every row each step;
+a mapped set refuses it with a ValueError.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from polopt.train import PairSet
+
+Tensor = torch.Tensor
+
+COLUMNS = ("prompt", "winner", "loser", "reference_winner", "reference_loser")
+
+
+def write_arrow(path: str | Path, chunks: Iterable[dict]) -> Path:
+    """Write chunks (dicts of equal-length columns: numpy arrays, lists of token lists, or pyarrow
+    arrays) to one Arrow stream file, the format ``datasets.Dataset.from_file`` memory-maps."""
+    import pyarrow as pa
+
+    path = Path(path)
+    writer = None
+    try:
+        for chunk in chunks:
+            columns = {k: v if isinstance(v, pa.Array) else pa.array(v) for k, v in chunk.items()}
+            batch = pa.RecordBatch.from_pydict(columns)
+            if writer is None:
+                writer = pa.ipc.new_stream(str(path), batch.schema)
+            writer.write_batch(batch)
+    finally:
+        if writer is not None:
+            writer.close()
+    if writer is None:
+        raise ValueError(f"write_arrow: no rows to write to {path}")
+    return path
+
+
+def _pad(rows: list, pad_id: int) -> Tensor:
+    """Token lists -> right-padded (B, T) int64; plain integers -> (B,)."""
+    if not rows or not isinstance(rows[0], (list, tuple, np.ndarray)):
+        return torch.as_tensor(rows, dtype=torch.long)  # (B,)
+    width = max(len(r) for r in rows)
+    out = torch.full((len(rows), width), pad_id, dtype=torch.long)  # (B, T)
+    for i, r in enumerate(rows):
+        out[i, : len(r)] = torch.as_tensor(r, dtype=torch.long)
+    return out
+
+
+class MappedPairs:
+    """Pairs in a memory-mapped Arrow file; ``select(index)`` reads one batch into a PairSet.
+
+    ``pad_id``: the padding of token-list columns; ``count_tokens``: give each batch its real
+    token count (prompt with winner plus prompt with loser) for ``tokens_per_s``.
+    """
+
+    def __init__(self, path: str | Path, *, pad_id: int = 0, count_tokens: bool = True):
+        import datasets
+
+        self.path = Path(path)
+        if not self.path.is_file():
+            raise ValueError(f"pairs file {str(path)!r} does not exist (write one with polopt.stream.write_arrow)")
+        self.dataset = datasets.Dataset.from_file(str(self.path), in_memory=False)
+        missing = [c for c in COLUMNS if c not in self.dataset.column_names]
+        if missing:
+            raise ValueError(f"pairs file {self.path} lacks the columns {missing}; it needs {', '.join(COLUMNS)} "
+                             "(and may have weight)")
+        self.pad_id = pad_id
+        self.weighted = "weight" in self.dataset.column_names
+        # the trainer reads only whether these are None (each batch carries its own): empty markers
+        self.weight = torch.zeros(0) if self.weighted else None
+        token_lists = isinstance(self.dataset.features["prompt"], datasets.Sequence | datasets.List | list)
+        self.tokens = torch.zeros(0) if count_tokens and token_lists else None
+
+    def __len__(self) -> int:
+        return self.dataset.num_rows
+
+    def __getattr__(self, name: str):
+        if name in COLUMNS:
+            raise ValueError("a memory-mapped pair set is read one batch at a time: set train.batch_size "
+                             "(full-batch training would read the whole file every step)")
+        raise AttributeError(name)
+
+    def select(self, index: Tensor) -> PairSet:
+        """The rows ``index`` (B,) as an in-memory PairSet, token lists right-padded with ``pad_id``."""
+        rows = self.dataset[index.tolist()]
+        prompt, winner, loser = (_pad(rows[c], self.pad_id) for c in ("prompt", "winner", "loser"))
+        if winner.dim() == 2:  # one response width for winners and losers, as PairSet has
+            width = max(winner.shape[1], loser.shape[1])
+            winner, loser = (torch.nn.functional.pad(t, (0, width - t.shape[1]), value=self.pad_id)
+                             for t in (winner, loser))  # (B, T_r)
+        tokens = None
+        if self.tokens is not None:
+            n = (prompt != self.pad_id).sum(1)  # (B,)
+            tokens = 2 * n + (winner != self.pad_id).sum(1) + (loser != self.pad_id).sum(1)  # (B,)
+        weight = torch.as_tensor(rows["weight"], dtype=torch.float64) if self.weighted else None
+        return PairSet(prompt, winner, loser, torch.as_tensor(rows["reference_winner"], dtype=torch.float64),
+                       torch.as_tensor(rows["reference_loser"], dtype=torch.float64), weight, tokens)
