@@ -118,8 +118,8 @@ def plot(table: list[dict], path: Path, base: dict) -> Path:
     ax.set_xscale("log", base=2)
     lambdas = [r["lambda"] for r in shown]
     ax.set_xticks(lambdas, [f"{lam:g}" for lam in lambdas])
+    ax.set_ylim(PLOT_FLOOR / 2, 1.5)  # TV lies in [0, 1]; set first, as all points may lie on the floor
     ax.set_yscale("log")
-    ax.set_ylim(PLOT_FLOOR / 2, 1.5)  # TV lies in [0, 1]
     ax.set_xlabel("lambda (emulates beta / lambda; 1: the trained policy)")
     ax.set_ylabel("total variation")
     ax.set_title(f"realignment on {base.get('task')} ({base.get('loss_name')}, beta={base['beta']:g}): "
