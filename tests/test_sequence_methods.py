@@ -222,6 +222,7 @@ def test_compare_runs_methods_on_the_sequence_task(tmp_path):
     assert [r["method"] for r in result["rows"]] == ["offline", "rl", "best_of_n"]
     assert result["task"] == "sequence"
     assert all(r["tv_to_optimum"] is not None and r["kl_to_reference"] is not None for r in result["rows"])
+    assert "is a distribution over 15 responses per prompt" in result["notes"][0]  # not 30 numbers in a note
 
 
 def test_realign_command_on_a_finite_task_has_no_per_token_rows(tmp_path):
