@@ -35,6 +35,7 @@ from polopt.methods import METHODS
 
 COLUMNS = ("run", "method", "loss", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
            "tv_to_optimum", "tv_to_equilibrium", "steps", "seconds")
+SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not written out in the notes
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
 
@@ -105,7 +106,8 @@ def equilibrium_notes(rows: list[dict], summaries: list[dict]) -> list[str]:
         eq = members[0][1].get("equilibrium")
         if eq is None:
             continue
-        shown = "; ".join("[" + ", ".join(f"{v:.4f}" for v in p) + "]" for p in eq)
+        shown = "; ".join("[" + ", ".join(f"{v:.4f}" for v in p) + "]" for p in eq) if len(eq[0]) <= SHOWN_RESPONSES \
+            else f"a distribution over {len(eq[0])} responses per prompt (in each run's summary.json)"
         at = [r["run"] for r, _ in members if r["tv_to_equilibrium"] is not None
               and r["tv_to_equilibrium"] <= EQUILIBRIUM_TV]
         notes.append(f"beta={beta:g}: the Nash equilibrium of the regularised preference game "

@@ -68,6 +68,14 @@ def token_logprobs(model: nn.Module, tokens: Tensor, response_mask: Tensor) -> T
     """
     logits = model(tokens[:, :-1])  # (B, T-1, V)
     logp = torch.log_softmax(logits.to(torch.promote_types(logits.dtype, torch.float32)), dim=-1)  # (B, T-1, V)
+    return pick_tokens(logp, tokens, response_mask)
+
+
+def pick_tokens(logp: Tensor, tokens: Tensor, response_mask: Tensor) -> Tensor:
+    """The log-probability of each next token from per-position log-distributions, 0 off the response.
+
+    ``logp`` (B, T-1, V) scores ``tokens[:, 1:]``; returns (B, T-1).
+    """
     targets = tokens[:, 1:]  # (B, T-1)
     mask = response_mask[:, 1:]  # (B, T-1)
     safe = torch.where(mask, targets, 0)  # padding ids may lie outside the output vocabulary

@@ -138,6 +138,7 @@ class MethodView:
         task, eq = self.task, self.equilibrium
         out = {
             "method": self.method["name"],
+            "prompt_weights": [float(w) for w in task.prompt_weights],
             "kl_to_reference": task.kl_to_reference(pi),
             "win_rate_over_reference": win_rate(pi, task.reference, task),
             "expected_reward": None if task.rewards is None else float(

@@ -82,6 +82,12 @@ class SequenceSession:
         with torch.no_grad():
             return self.finite.evaluate(policy)
 
+    def for_method(self, name: str = "offline", **params):
+        """This session as the ``method`` group's option ``name`` sees it (see :mod:`toy_tasks.sequence_methods`)."""
+        from toy_tasks.sequence_methods import SequenceMethodView  # builds on this module's session
+
+        return SequenceMethodView.build_for(self, name, **params)
+
     def summarise(self, policy, result) -> dict:
         with torch.no_grad():
             summary = self.finite.summarise(policy, result)
