@@ -49,6 +49,8 @@ class SequenceSession:
     pairs: PairSet
     reference_cache: Path | None
     reference_cache_reused: bool = False
+    threads: int = 1  # the run's torch threads unless train.threads says otherwise: the default width-32
+    # model's matrices are too small to share, and on busy cores two threads ran ten times slower than one
 
     def build_policy(self, kind: str = "transformer", width: int = 32, layers: int = 2, heads: int = 2,
                      context: int = 16, seed: int = 0, init: str = "reference",
