@@ -210,7 +210,7 @@ def run(cfg: DictConfig, run_dir: Path) -> dict:
                        seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
                        metrics_path=metrics_path, progress=cfg.train.progress, precision=cfg.precision,
                        checkpoint_every=cfg.train.checkpoint_every, save_checkpoint=save, resume=state,
-                       on_nonfinite=cfg.train.on_nonfinite)
+                       on_nonfinite=cfg.train.on_nonfinite, bucketing=cfg.train.get("bucketing", True))
         summary = session.summarise(policy, result)
         summary["skipped_steps"] = result.skipped
         if view is not None:
