@@ -23,9 +23,10 @@ at the maximum length) and prints a table, then writes the same figures as JSON:
   products; embeddings are lookups) and L, C the layers and width. This is the
   forward 2 N + 2 L n_ctx C per token of Kaplan et al., Scaling Laws for Neural
   Language Models, 2020, with n_ctx = n and the backward twice the forward;
-- configurations: fp32 vs bf16 autocast; length bucketing on vs off (off: random
-  batches, each padded to its own longest pair, which on this data is nearly
-  always the maximum); the reference cache on vs off (off: the reference model
+- configurations: fp32 vs bf16 autocast; length handling on vs off (on: length
+  bucketing of the batches and the length split of the forward pass in
+  polopt/logprobs.py; off: random batches, each one pass padded to its own longest
+  pair, which on this data is nearly always the maximum); the reference cache on vs off (off: the reference model
   recomputes its log-probabilities every step, over several epochs); and the
   hand-written loop of bench/baseline_loop.py (no polopt, every batch padded to the
   maximum) for a side-by-side ratio;
@@ -56,7 +57,7 @@ from bench import baseline_loop  # noqa: E402
 from bench.skewed_data import PAD_ID, VOCAB_SIZE, real_token_count, skewed_pairs  # noqa: E402
 from polopt import losses  # noqa: E402
 from polopt.batching import Batcher  # noqa: E402
-from polopt.logprobs import SequencePolicy, batched_logprobs  # noqa: E402
+from polopt.logprobs import SequencePolicy, batched_logprobs, length_split  # noqa: E402
 from polopt.models import TinyTransformer  # noqa: E402
 from polopt.objective import margins, preference_loss  # noqa: E402
 from polopt.train import OptimConfig, PairSet, train  # noqa: E402
@@ -115,6 +116,16 @@ def positions(batch: PairSet) -> torch.Tensor:
     return torch.cat([p + (batch.winner != PAD_ID).sum(1), p + (batch.loser != PAD_ID).sum(1)]) - 1
 
 
+def computed_positions(n: torch.Tensor, split: bool) -> int:
+    """Positions the forward pass computes, padding included, for rows of n real positions (one
+    pass at the longest, or the two passes of polopt.logprobs.length_split)."""
+    order, k = length_split(n + 1) if split else (None, 0)
+    if k == 0:
+        return len(n) * int(n.max())
+    short, long = n[order[:k]], n[order[k:]]
+    return len(short) * int(short.max()) + len(long) * int(long.max())
+
+
 def measure(cfg: dict) -> dict:
     """One configuration, start to end (run in a fresh process when isolated)."""
     torch.set_num_threads(cfg["threads"])
@@ -124,6 +135,7 @@ def measure(cfg: dict) -> dict:
         return {**cfg, **out, "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
                 "load": os.getloadavg()[0]}
     data, policy, reference = build(cfg)
+    policy.split_lengths = cfg["bucketing"]  # off: one pass at each batch's longest pair, as before
     start = time.perf_counter()
     both = batched_logprobs(reference.model, torch.cat([data["prompt"]] * 2),
                             torch.cat([data["winner"], data["loser"]]), pad_id=PAD_ID, batch_size=256)  # (2N,)
@@ -149,7 +161,7 @@ def measure(cfg: dict) -> dict:
         cursor += cfg["batch"]
         n = positions(batch)
         real.append(n)
-        padded += len(n) * int(n.max())
+        padded += computed_positions(n, split=cfg["bucketing"])
         batches.append(batch)
     real = torch.cat(real)
     tokens_per_batch = int(real.sum()) // cfg["steps"]
@@ -193,6 +205,8 @@ def configurations(args) -> list[dict]:
                 dict(base, width=width, cache=False, name="fp32, bucketing, no cache"),
                 dict(base, width=width, precision="bf16", name="bf16, bucketing, cache"),
                 dict(base, width=width, kind="baseline", bucketing=False, name="hand-written loop")]
+    if args.only:
+        out = [c for c in out if any(word in c["name"] for word in args.only)]
     return out
 
 
@@ -201,6 +215,8 @@ def ratios(rows: list[dict]) -> list[dict]:
     out = []
     for width in sorted({r["width"] for r in rows}):
         by = {r["name"]: r for r in rows if r["width"] == width}
+        if len(by) < 5:  # --only: some configurations were not run
+            continue
         main = by["fp32, bucketing, cache"]
         checks = [
             ("reference cache: steps/s on / off", main["steps_per_s"] / by["fp32, bucketing, no cache"]["steps_per_s"],
@@ -248,6 +264,8 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--steps", type=int, default=40, help="timed steps per configuration (default 40)")
     parser.add_argument("--max-length", type=int, default=128, help="longest response in tokens (default 128)")
     parser.add_argument("--threads", type=int, default=torch.get_num_threads(), help="torch CPU threads")
+    parser.add_argument("--only", nargs="+", default=None,
+                        help="run only the configurations whose name contains one of these words (e.g. bf16)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here (JSON)")
     parser.add_argument("--no-isolate", action="store_true",
                         help="run every configuration in this process (faster; peak memory then is a running max)")

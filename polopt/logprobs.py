@@ -113,18 +113,20 @@ class SequencePolicy(nn.Module):
     A batch whose rows differ much in length (winners and losers of one pair often
     do) runs as two forward passes, the short rows trimmed to their own longest
     (:func:`length_split`); rows are independent, so the values are those of one pass.
+    ``split_lengths=False`` keeps one pass (the bench's padding baseline).
     """
 
-    def __init__(self, model: nn.Module, *, pad_id: int):
+    def __init__(self, model: nn.Module, *, pad_id: int, split_lengths: bool = True):
         super().__init__()
         self.model = model
         self.pad_id = pad_id
+        self.split_lengths = split_lengths
 
     def logprobs(self, prompt: Tensor, response: Tensor) -> Tensor:
         """(B, T_p), (B, T_r) right-padded -> (B,)."""
         n = real_tokens(prompt, response, pad_id=self.pad_id)  # (B,)
-        order, k = length_split(n)
-        if k == 0 or k == len(n):
+        order, k = length_split(n) if self.split_lengths else (None, 0)
+        if k == 0:
             return sequence_logprobs(self.model, prompt, response, pad_id=self.pad_id)
         short, long = order[:k], order[k:]
         values = torch.cat([sequence_logprobs(self.model, prompt[rows], response[rows], pad_id=self.pad_id)
