@@ -12,9 +12,11 @@ at the maximum length) and prints a table, then writes the same figures as JSON:
 - step time and steps/s of the loop, and steps/s with the one-off reference pass
   added (the cache's cost, spread over the run);
 - peak memory: ``resource.getrusage(RUSAGE_SELF).ru_maxrss`` of a fresh process
-  per configuration (the whole process: torch itself, the data, the model);
-  ``--no-isolate`` runs everything in this process, where the figure is only the
-  high-water mark so far;
+  that runs only that configuration (the whole process: torch itself, the data,
+  the model, the optimiser); ``--no-isolate`` skips it;
+- timing: the configurations run interleaved, ``--rounds`` times each, and the
+  fastest round counts (as timeit takes the minimum): on a shared machine a burst
+  of load then slows one round, not one configuration;
 - MFU: achieved model FLOP/s over the FLOP/s of a matrix product of the model's
   own shape (tokens per batch x width times width x 4 width) measured in the same
   process just before, in the same precision. Model FLOPs count real positions
@@ -126,14 +128,11 @@ def computed_positions(n: torch.Tensor, split: bool) -> int:
     return len(short) * int(short.max()) + len(long) * int(long.max())
 
 
-def measure(cfg: dict) -> dict:
-    """One configuration, start to end (run in a fresh process when isolated)."""
+def prepare(cfg: dict) -> dict:
+    """Data, policy and reference log-probabilities of one configuration, warmed up."""
     torch.set_num_threads(cfg["threads"])
     if cfg["kind"] == "baseline":
-        out = baseline_loop.run(width=cfg["width"], layers=LAYERS, heads=HEADS, n_pairs=cfg["pairs"],
-                                batch=cfg["batch"], steps=cfg["steps"], max_length=cfg["max_length"], beta=BETA)
-        return {**cfg, **out, "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
-                "load": os.getloadavg()[0]}
+        return {"cfg": cfg}
     data, policy, reference = build(cfg)
     policy.split_lengths = cfg["bucketing"]  # off: one pass at each batch's longest pair, as before
     start = time.perf_counter()
@@ -141,18 +140,25 @@ def measure(cfg: dict) -> dict:
                             torch.cat([data["winner"], data["loser"]]), pad_id=PAD_ID, batch_size=256)  # (2N,)
     reference_s = time.perf_counter() - start
     ref_w, ref_l = both.chunk(2)
+    weights = linear_weights(policy)
     if not cfg["cache"]:
         ref_w, ref_l = torch.zeros_like(ref_w), torch.zeros_like(ref_l)
         policy = RecomputedReference(policy, reference)
     pairs = PairSet(data["prompt"], data["winner"], data["loser"], ref_w, ref_l, tokens=real_token_count(data))
-    loss = losses.get("logistic")
-    optim = OptimConfig("adam", 1e-4, schedule="constant")
-    kwargs = dict(beta=BETA, optim=optim, batch_size=cfg["batch"], progress=False, log_every=10**9,
-                  precision=cfg["precision"], bucketing=cfg["bucketing"])
-    train(policy, pairs, loss, steps=3, seed=1, **kwargs)  # warm-up: kernels, allocator
-    # the positions each step computes, padded and real, in the order the run will draw them
+    kwargs = dict(beta=BETA, optim=OptimConfig("adam", 1e-4, schedule="constant"), batch_size=cfg["batch"],
+                  progress=False, log_every=10**9, precision=cfg["precision"], bucketing=cfg["bucketing"])
+    state = {"cfg": cfg, "policy": policy, "pairs": pairs, "loss": losses.get("logistic"), "kwargs": kwargs,
+             "reference_s": reference_s, "weights": weights}
+    train(policy, pairs, state["loss"], steps=3, seed=10**6, **kwargs)  # warm-up: kernels, allocator
+    return state
+
+
+def drawn_batches(state: dict, seed: int) -> tuple[torch.Tensor, int, list[PairSet]]:
+    """Real input positions (all sequences of the run), computed positions, and the batches that
+    ``train(seed=seed)`` draws: the same Batcher and generator as the trainer."""
+    cfg, pairs = state["cfg"], state["pairs"]
     batcher = Batcher(pairs, batch_size=cfg["batch"], pad_id=PAD_ID, bucketing=cfg["bucketing"])
-    generator = torch.Generator().manual_seed(0)
+    generator = torch.Generator().manual_seed(seed)
     order, cursor, real, padded, batches = batcher.epoch_order(generator), 0, [], 0, []
     for _ in range(cfg["steps"]):
         if cursor + cfg["batch"] > len(pairs):
@@ -163,22 +169,36 @@ def measure(cfg: dict) -> dict:
         real.append(n)
         padded += computed_positions(n, split=cfg["bucketing"])
         batches.append(batch)
-    real = torch.cat(real)
-    tokens_per_batch = int(real.sum()) // cfg["steps"]
+    return torch.cat(real), padded, batches
+
+
+def time_round(state: dict, seed: int) -> dict:
+    """One timed run of ``cfg["steps"]`` steps with the matrix-product reference measured just before."""
+    cfg = state["cfg"]
+    if cfg["kind"] == "baseline":
+        out = baseline_loop.run(width=cfg["width"], layers=LAYERS, heads=HEADS, n_pairs=cfg["pairs"],
+                                batch=cfg["batch"], steps=cfg["steps"], max_length=cfg["max_length"], beta=BETA,
+                                seed=seed)
+        return {**cfg, **out, "load": os.getloadavg()[0]}
+    real, padded, batches = drawn_batches(state, seed)
     dtype = torch.bfloat16 if cfg["precision"] == "bf16" else torch.float32
-    mm = matmul_flops_per_s(max(tokens_per_batch, 1), cfg["width"], 4 * cfg["width"], dtype)
-    result = train(policy, pairs, loss, steps=cfg["steps"], seed=0, **kwargs)
+    mm = matmul_flops_per_s(max(int(real.sum()) // cfg["steps"], 1), cfg["width"], 4 * cfg["width"], dtype)
+    result = train(state["policy"], state["pairs"], state["loss"], steps=cfg["steps"], seed=seed, **state["kwargs"])
     step_s = result.seconds / cfg["steps"]
-    flops = model_flops(real, weights=linear_weights(policy), layers=LAYERS, width=cfg["width"]) \
-        if cfg["cache"] else model_flops(real, weights=linear_weights(policy.policy), layers=LAYERS,
-                                         width=cfg["width"])
-    out = {**cfg, "tokens_per_s": result.final["tokens_per_s"], "step_s": step_s, "steps_per_s": 1 / step_s,
-           "steps_per_s_with_reference": cfg["steps"] / (result.seconds + (reference_s if cfg["cache"] else 0.0)),
-           "reference_pass_s": reference_s, "padding_share": 1 - int(real.sum()) / padded,
-           "model_flops_per_s": flops / result.seconds, "matmul_flops_per_s": mm,
-           "mfu": flops / result.seconds / mm, "loss_share": loss_share(batches[:8], policy, loss, cfg, step_s),
-           "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, "load": os.getloadavg()[0]}
-    return out
+    flops = model_flops(real, weights=state["weights"], layers=LAYERS, width=cfg["width"])
+    ref_s = state["reference_s"] if cfg["cache"] else 0.0
+    return {**cfg, "tokens_per_s": result.final["tokens_per_s"], "step_s": step_s, "steps_per_s": 1 / step_s,
+            "steps_per_s_with_reference": cfg["steps"] / (result.seconds + ref_s),
+            "reference_pass_s": state["reference_s"], "padding_share": 1 - int(real.sum()) / padded,
+            "model_flops_per_s": flops / result.seconds, "matmul_flops_per_s": mm, "mfu": flops / result.seconds / mm,
+            "loss_share": loss_share(batches[:8], state["policy"], state["loss"], cfg, step_s),
+            "load": os.getloadavg()[0]}
+
+
+def peak_memory(cfg: dict) -> float:
+    """ru_maxrss (MiB) of a process that prepares ``cfg`` and runs it (run in a fresh process)."""
+    time_round(prepare(cfg), seed=0)
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def loss_share(batches: list[PairSet], policy, loss, cfg: dict, step_s: float) -> float:
@@ -243,10 +263,11 @@ def table(rows: list[dict], checks: list[dict]) -> str:
         return format(r[key] * scale, spec) if key in r else format("-", spec[0] + spec[1:].split(".")[0])
 
     for r in rows:
+        rss = "-" if r["peak_rss_mib"] is None else f"{r['peak_rss_mib']:.0f}"
         lines.append(f"{r['width']:>5}  {r['name']:<30} {r['tokens_per_s']:>9,.0f} {r['step_s'] * 1000:>8.1f} "
                      f"{1 / r['step_s']:>7.2f} {fmt(r, 'steps_per_s_with_reference', '>8.2f')} "
                      f"{fmt(r, 'padding_share', '>6.1f', 100)} {fmt(r, 'mfu', '>6.2f')} "
-                     f"{fmt(r, 'loss_share', '>6.2f', 100)} {r['peak_rss_mib']:>8.0f} {r['load']:>5.2f}")
+                     f"{fmt(r, 'loss_share', '>6.2f', 100)} {rss:>8} {r['load']:>5.2f}")
     lines.append("")
     lines.append(f"{'width':>5}  {'figure':<44} {'value':>7} {'target':>7}  met")
     for c in checks:
@@ -266,27 +287,40 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--threads", type=int, default=torch.get_num_threads(), help="torch CPU threads")
     parser.add_argument("--only", nargs="+", default=None,
                         help="run only the configurations whose name contains one of these words (e.g. bf16)")
+    parser.add_argument("--rounds", type=int, default=3,
+                        help="timed runs per configuration, interleaved; the fastest counts (default 3)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here (JSON)")
     parser.add_argument("--no-isolate", action="store_true",
-                        help="run every configuration in this process (faster; peak memory then is a running max)")
+                        help="skip the fresh process per configuration that measures its peak memory")
     args = parser.parse_args(argv)
     print(f"torch {torch.__version__}, {args.threads} thread(s), {os.cpu_count()} CPUs, "
           f"load average {os.getloadavg()[0]:.2f} at the start")
     print(f"{args.pairs} pairs, responses 2..24 tokens or (5%) {args.max_length}, batch {args.batch}, "
-          f"{args.steps} timed steps, {LAYERS} layers, {HEADS} heads")
-    rows = []
+          f"{args.steps} timed steps x {args.rounds} interleaved rounds (the fastest shown), {LAYERS} layers, "
+          f"{HEADS} heads")
+    configs = configurations(args)
+    states = [prepare(cfg) for cfg in configs]
+    best: list[dict | None] = [None] * len(configs)
+    for r in range(args.rounds):  # configurations interleaved, so that a change of load hits them all
+        for i, state in enumerate(states):
+            row = time_round(state, seed=r)
+            if best[i] is None or row["tokens_per_s"] > best[i]["tokens_per_s"]:
+                best[i] = {**row, "round": r}
+        print(f"  round {r + 1} of {args.rounds} done, load {os.getloadavg()[0]:.2f}", file=sys.stderr, flush=True)
+    rows = best
     context = multiprocessing.get_context("spawn")
-    for cfg in configurations(args):
+    for row, cfg in zip(rows, configs, strict=True):
         if args.no_isolate:
-            rows.append(measure(cfg))
-        else:
-            with context.Pool(1) as pool:
-                rows.append(pool.apply(measure, (cfg,)))
-        print(f"  done: width {cfg['width']}, {cfg['name']}", file=sys.stderr, flush=True)
+            row["peak_rss_mib"] = None
+            continue
+        with context.Pool(1) as pool:
+            row["peak_rss_mib"] = pool.apply(peak_memory, (dict(cfg, steps=min(cfg["steps"], 4)),))
     checks = ratios(rows)
     print(table(rows, checks))
     report = {"torch": torch.__version__, "threads": args.threads, "cpus": os.cpu_count(),
-              "load_end": os.getloadavg()[0], "peak_memory": "ru_maxrss of the process that ran the configuration",
+              "load_end": os.getloadavg()[0],
+              "peak_memory": "ru_maxrss of a fresh process that ran only that configuration",
+              "timing": "fastest of the interleaved rounds",
               "flops": "6 N n + 6 L n^2 C per sequence of n real input positions (Kaplan et al. 2020)",
               "rows": rows, "targets": checks}
     text = json.dumps(report, indent=2)
