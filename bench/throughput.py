@@ -299,6 +299,14 @@ def main(argv: list[str] | None = None) -> None:
           f"{args.steps} timed steps x {args.rounds} interleaved rounds (the fastest shown), {LAYERS} layers, "
           f"{HEADS} heads")
     configs = configurations(args)
+    # peak memory first, while this process is small: a child starts from the parent's resident size
+    floor = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    memory: list[float | None] = [None] * len(configs)
+    if not args.no_isolate:
+        context = multiprocessing.get_context("spawn")
+        for i, cfg in enumerate(configs):
+            with context.Pool(1) as pool:
+                memory[i] = pool.apply(peak_memory, (dict(cfg, steps=min(cfg["steps"], 3)),))
     states = [prepare(cfg) for cfg in configs]
     best: list[dict | None] = [None] * len(configs)
     for r in range(args.rounds):  # configurations interleaved, so that a change of load hits them all
@@ -308,16 +316,12 @@ def main(argv: list[str] | None = None) -> None:
                 best[i] = {**row, "round": r}
         print(f"  round {r + 1} of {args.rounds} done, load {os.getloadavg()[0]:.2f}", file=sys.stderr, flush=True)
     rows = best
-    context = multiprocessing.get_context("spawn")
-    for row, cfg in zip(rows, configs, strict=True):
-        if args.no_isolate:
-            row["peak_rss_mib"] = None
-            continue
-        with context.Pool(1) as pool:
-            row["peak_rss_mib"] = pool.apply(peak_memory, (dict(cfg, steps=min(cfg["steps"], 4)),))
+    for row, peak in zip(rows, memory, strict=True):
+        row["peak_rss_mib"] = peak
     checks = ratios(rows)
     print(table(rows, checks))
-    report = {"torch": torch.__version__, "threads": args.threads, "cpus": os.cpu_count(),
+    print(f"peak memory: ru_maxrss of a fresh process per configuration; the parent held {floor:.0f} MiB")
+    report = {"torch": torch.__version__, "parent_rss_mib": floor, "threads": args.threads, "cpus": os.cpu_count(),
               "load_end": os.getloadavg()[0],
               "peak_memory": "ru_maxrss of a fresh process that ran only that configuration",
               "timing": "fastest of the interleaved rounds",
