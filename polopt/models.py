@@ -47,7 +47,13 @@ class CausalSelfAttention(nn.Module):
         b, t, c = x.shape  # (B, T, C)
         q, k, v = self.qkv(x).split(c, dim=2)  # 3 x (B, T, C)
         q, k, v = (z.view(b, t, self.heads, c // self.heads).transpose(1, 2) for z in (q, k, v))  # (B, H, T, D)
-        y = F.scaled_dot_product_attention(q, k, v, is_causal=True)  # (B, H, T, D)
+        if torch.is_autocast_enabled("cpu") and x.device.type == "cpu":
+            # the CPU's bf16 attention backward runs several times slower than its fp32 one (bench/throughput.py),
+            # and attention is a small share of the FLOPs: compute it in fp32, the matrix products stay in bf16
+            with torch.autocast("cpu", enabled=False):
+                y = F.scaled_dot_product_attention(q.float(), k.float(), v.float(), is_causal=True).to(q.dtype)
+        else:
+            y = F.scaled_dot_product_attention(q, k, v, is_causal=True)  # (B, H, T, D)
         return self.proj(y.transpose(1, 2).reshape(b, t, c))  # (B, T, C)
 
 

@@ -30,6 +30,7 @@ import torch
 from tqdm.auto import tqdm
 
 from polopt import distributed
+from polopt.batching import Batcher
 from polopt.checkpoint import restore_training_state, training_state
 from polopt.losses import Loss
 from polopt.objective import margins, pair_losses, preference_loss
@@ -149,7 +150,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
           metrics_path: Path | None = None, progress: bool = True,
           precision: str = "fp32", checkpoint_every: int = 0,
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
-          on_nonfinite: str = "stop", context: distributed.Context = distributed.SINGLE) -> TrainResult:
+          on_nonfinite: str = "stop", bucketing: bool = True,
+          context: distributed.Context = distributed.SINGLE) -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters.
 
     ``batch_size`` None (or >= N) uses every pair each step (full batch);
@@ -163,6 +165,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     naming the step and the batch (``on_nonfinite="stop"``), or leaves the
     parameters and the optimiser's moments untouched for that step, which still
     consumes its batch and its learning rate (``"skip"``; counted in ``skipped``).
+    Token pairs (a policy with a ``pad_id``) come in batches trimmed to their longest
+    row, grouped by length when ``bucketing`` (see :mod:`polopt.batching`).
     ``context`` (from :func:`polopt.distributed.setup`) with several processes: each rank takes
     its slice of every global batch and the gradients are averaged (:mod:`polopt.distributed`);
     the caller passes ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
@@ -182,7 +186,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     generator = torch.Generator().manual_seed(seed)
     optimiser, scheduler = make_optimiser(policy.parameters(), optim, steps)
     full_batch = batch_size is None or batch_size >= len(pairs)
-    order, cursor = torch.randperm(len(pairs), generator=generator), 0
+    batcher = Batcher(pairs, batch_size=batch_size, pad_id=getattr(policy, "pad_id", None), bucketing=bucketing)
+    order, cursor = batcher.epoch_order(generator), 0
     history: list[dict] = []
     skipped: list[int] = []
     done, seconds_before = 0, 0.0
@@ -208,9 +213,9 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 index, batch = torch.arange(len(pairs)), pairs
             else:
                 if cursor + batch_size > len(pairs):
-                    order, cursor = torch.randperm(len(pairs), generator=generator), 0
+                    order, cursor = batcher.epoch_order(generator), 0
                 index = order[cursor:cursor + batch_size]
-                batch = pairs.select(index)
+                batch = batcher.take(index)  # trimmed to its longest row
                 cursor += batch_size
             if batch.tokens is not None:
                 tokens_seen += int(batch.tokens.sum())

@@ -1,0 +1,74 @@
+"""The throughput bench runs end to end on a tiny configuration: table, JSON, the hand-written loop.
+
+No timing is asserted (RULES: benches print figures, they never pass or fail); what is checked is
+that every configuration is measured, the table and the JSON carry the figures, and the counts the
+figures rest on are right: the model FLOPs of the formula in bench/throughput.py on a case worked
+by hand, and the synthetic data's real-token count.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import torch
+
+from bench import baseline_loop, throughput
+from bench.skewed_data import PAD_ID, real_token_count, skewed_pairs
+
+TINY = ["--widths", "16", "--pairs", "48", "--batch", "8", "--steps", "3", "--max-length", "16", "--threads", "1",
+        "--rounds", "2", "--no-isolate"]
+
+
+def test_throughput_prints_the_table_and_valid_json(tmp_path, capsys):
+    out = tmp_path / "bench.json"
+    throughput.main([*TINY, "--json", str(out)])
+    text = capsys.readouterr().out
+    assert "configuration" in text and "tokens/s" in text and "hand-written loop" in text
+    assert "reference cache: steps/s on / off" in text
+    report = json.loads(text.split("JSON:\n", 1)[1])
+    assert report == json.loads(out.read_text())
+    names = {r["name"] for r in report["rows"]}
+    assert names == {"fp32, bucketing, cache", "fp32, padding to the longest", "fp32, bucketing, no cache",
+                     "bf16, bucketing, cache", "hand-written loop"}
+    for row in report["rows"]:
+        assert row["tokens_per_s"] > 0 and math.isfinite(row["step_s"]) and row["peak_rss_mib"] is None
+    assert len(report["targets"]) == 6 and all(math.isfinite(t["value"]) for t in report["targets"])
+    main = next(r for r in report["rows"] if r["name"] == "fp32, bucketing, cache")
+    padded = next(r for r in report["rows"] if r["name"] == "fp32, padding to the longest")
+    assert 0 <= main["padding_share"] < padded["padding_share"] < 1
+
+
+def test_peak_memory_of_one_configuration():
+    cfg = {"pairs": 16, "batch": 4, "steps": 2, "max_length": 16, "threads": 1, "kind": "polopt", "width": 16,
+           "precision": "fp32", "bucketing": True, "cache": True, "name": "fp32, bucketing, cache"}
+    assert throughput.peak_memory(cfg) > 10  # MiB: at least torch itself
+
+
+def test_the_cache_off_policy_gives_the_cached_margin():
+    data, policy, reference = throughput.build({"pairs": 8, "max_length": 16, "width": 16})
+    prompt, winner = data["prompt"], data["winner"]
+    cached = policy.logprobs(prompt, winner) - reference.logprobs(prompt, winner)
+    recomputed = throughput.RecomputedReference(policy, reference).logprobs(prompt, winner)
+    torch.testing.assert_close(recomputed, cached)
+
+
+def test_model_flops_formula_by_hand():
+    # two sequences of 3 and 5 positions, 100 weights, 2 layers, width 4:
+    # 6*100*(3+5) + 6*2*4*(9+25) = 4800 + 1632 = 6432 (derived by hand)
+    assert throughput.model_flops(torch.tensor([3, 5]), weights=100, layers=2, width=4) == 6432
+
+
+def test_skewed_data_counts_real_tokens():
+    data = skewed_pairs(200, max_length=32, long_share=0.1, seed=1)
+    lengths = {k: (v != PAD_ID).sum(1) for k, v in data.items()}
+    assert (lengths["winner"] == 32).any() and float((lengths["winner"] <= 24).float().mean()) > 0.8
+    assert torch.equal(real_token_count(data), 2 * lengths["prompt"] + lengths["winner"] + lengths["loser"])
+    for v in data.values():  # right padding: no real token after a pad
+        assert not ((v[:, 1:] != PAD_ID) & (v[:, :-1] == PAD_ID)).any()
+
+
+def test_baseline_loop_runs():
+    torch.set_num_threads(1)
+    r = baseline_loop.run(width=16, layers=1, heads=2, n_pairs=24, batch=8, steps=2, warmup=1, max_length=16)
+    assert r["tokens_per_s"] > 0 and math.isfinite(r["loss"])
