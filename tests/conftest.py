@@ -1,4 +1,4 @@
-"""Shared helpers for the tests of the methods beyond the offline losses."""
+"""Shared test set-up: one torch thread for the whole suite, and helpers for the methods' tests."""
 
 from __future__ import annotations
 

@@ -15,15 +15,6 @@ PAD = 9
 V, V_OUT = 10, 5  # outputs 0..4 (what responses hold); prompt tokens 5..8; padding 9
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    """Tiny models: one torch thread avoids thread contention on shared cores (common practice)."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
-
-
 
 @pytest.fixture(scope="module")
 def model():

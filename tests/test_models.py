@@ -9,15 +9,6 @@ from polopt.models import BigramTable, TinyTransformer, build_model, copy_weight
 V, V_OUT = 7, 4
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    """Tiny models: one torch thread avoids thread contention on shared cores (common practice)."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
-
-
 
 def tokens(b=3, t=6, seed=0):
     return torch.randint(0, V, (b, t), generator=torch.Generator().manual_seed(seed))

@@ -30,15 +30,6 @@ MODEL = dict(kind="transformer", width=16, layers=1, heads=2, context=8, seed=0)
 SMALL_OVERRIDES = [f"task.{k}={v}" for k, v in SMALL.items()] + [f"model.{k}={v}" for k, v in MODEL.items()]
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    """Tiny models: one torch thread avoids thread contention on shared cores (common practice)."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
-
-
 
 @pytest.fixture(scope="module")
 def task():

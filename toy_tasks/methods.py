@@ -36,6 +36,7 @@ from polopt.train import TrainResult
 from toy_tasks.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
 from toy_tasks.finite import FiniteTask, total_variation
+from toy_tasks.session import policy_rows
 from toy_tasks.solve import solve
 
 REWARDS = ("task", "win_rate")
@@ -239,11 +240,7 @@ class MethodView:
         for x in range(self.task.n_prompts):
             if self.task.n_prompts > 1:
                 lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
-            lines.append(f"  {'response':<{width}}  reference   trained    target")
-            for i, label in enumerate(labels):
-                target = f"{summary['optimum'][x][i]:9.4f}" if summary["optimum"] is not None else "        -"
-                lines.append(f"  {label:<{width}}  {summary['reference'][x][i]:9.4f} "
-                             f"{summary['policy'][x][i]:9.4f} {target}")
+            lines += policy_rows(summary, x, range(len(labels)), labels, width, target="target")
         tv = summary["tv_to_optimum"]
         lines.append(f"method {summary['method']}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
                      f"kl_to_reference {summary['kl_to_reference']:.4g}  "

@@ -36,6 +36,7 @@ from polopt.realign import realign, realigned_sequence_logprobs
 from toy_tasks.finite import total_variation
 from toy_tasks.methods import MethodView
 from toy_tasks.sequences import SequenceTask
+from toy_tasks.session import policy_rows
 
 TABLE_ROWS = 8  # responses shown per prompt by ``table``
 
@@ -171,11 +172,7 @@ class SequenceMethodView(MethodView):
         for x in range(self.task.n_prompts):
             rank = np.asarray(summary["optimum"][x] if summary["optimum"] is not None else summary["reference"][x])
             lines.append(f"prompt {x}: top {TABLE_ROWS} of {len(labels)} responses")
-            lines.append(f"  {'response':<{width}}  reference   trained    target")
-            for i in np.argsort(-rank)[:TABLE_ROWS]:
-                target = f"{summary['optimum'][x][i]:9.4f}" if summary["optimum"] is not None else "        -"
-                lines.append(f"  {labels[i]:<{width}}  {summary['reference'][x][i]:9.4f} "
-                             f"{summary['policy'][x][i]:9.4f} {target}")
+            lines += policy_rows(summary, x, np.argsort(-rank)[:TABLE_ROWS], labels, width, target="target")
         tv = summary["tv_to_optimum"]
         lines.append(f"method {summary['method']}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
                      f"kl_to_reference {summary['kl_to_reference']:.4g}  "

@@ -33,7 +33,7 @@ from polopt.models import build_model, copy_weights
 from polopt.reference_cache import FILE_NAME, reference_logprobs
 from polopt.train import PairSet
 from toy_tasks.sequences import EnumeratedSequencePolicy, SequenceTask
-from toy_tasks.session import FiniteSession
+from toy_tasks.session import FiniteSession, policy_rows
 from toy_tasks.session import prepare as prepare_finite
 
 INITS = ("reference", "random")
@@ -113,11 +113,7 @@ class SequenceSession:
         for x in range(self.task.n_prompts):
             ranking = np.asarray(summary["optimum"][x] if summary["optimum"] is not None else summary["reference"][x])
             lines.append(f"prompt {x}: top {TABLE_ROWS} of {len(labels)} responses")
-            lines.append(f"  {'response':<{width}}  reference   trained   optimum")
-            for i in np.argsort(-ranking)[:TABLE_ROWS]:
-                opt = f"{summary['optimum'][x][i]:9.4f}" if summary["optimum"] is not None else "        -"
-                lines.append(f"  {labels[i]:<{width}}  {summary['reference'][x][i]:9.4f} "
-                             f"{summary['policy'][x][i]:9.4f} {opt}")
+            lines += policy_rows(summary, x, np.argsort(-ranking)[:TABLE_ROWS], labels, width)
         tv = summary["tv_to_optimum"]
         lines.append(f"loss {summary['loss']:.6g}  optimum {summary['optimum_value']:.6g}  "
                      f"gap {summary['loss_gap']:.3g}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "

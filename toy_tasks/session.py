@@ -143,17 +143,12 @@ class FiniteSession:
     def table(self, summary: dict) -> str:
         """The trained policy beside the reference and the exact optimum, as text."""
         lines = []
-        optimum = summary["optimum"]
         labels = self.task.responses or [f"response {i}" for i in range(self.task.n_responses)]
         width = max(len(s) for s in labels + ["response"])
         for x in range(self.task.n_prompts):
             if self.task.n_prompts > 1:
                 lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
-            lines.append(f"  {'response':<{width}}  reference   trained   optimum")
-            for i, label in enumerate(labels):
-                opt = f"{optimum[x][i]:9.4f}" if optimum is not None else "        -"
-                lines.append(f"  {label:<{width}}  {summary['reference'][x][i]:9.4f} "
-                             f"{summary['policy'][x][i]:9.4f} {opt}")
+            lines += policy_rows(summary, x, range(len(labels)), labels, width)
         tv = summary["tv_to_optimum"]
         lines.append(f"loss {summary['loss']:.6g}  optimum {summary['optimum_value']:.6g}  "
                      f"gap {summary['loss_gap']:.3g}  "
@@ -164,6 +159,17 @@ class FiniteSession:
                          f"(n_pairs = {summary['n_pairs']})")
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
+
+
+def policy_rows(summary: dict, x: int, indices, labels: list[str], width: int, target: str = "optimum") -> list[str]:
+    """Prompt ``x``'s table: a header, then per response index its reference, trained and target
+    probabilities (summary.json's ``reference``, ``policy`` and ``optimum``; '-' where none is finite)."""
+    optimum = summary["optimum"]
+    lines = [f"  {'response':<{width}}  reference   trained   {target:>7}"]
+    for i in indices:
+        opt = f"{optimum[x][i]:9.4f}" if optimum is not None else "        -"
+        lines.append(f"  {labels[i]:<{width}}  {summary['reference'][x][i]:9.4f} {summary['policy'][x][i]:9.4f} {opt}")
+    return lines
 
 
 def _per_prompt(p: np.ndarray) -> list[list[float]]:
