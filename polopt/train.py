@@ -276,7 +276,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")
                     sink.flush()
-                bar.set_postfix(loss=f"{record['loss']:.4g}", margin=f"{record['margin_mean']:.3g}")
+                bar.set_postfix(loss=f"{record['loss']:.4g}", margin=f"{record['margin_mean']:.3g}", refresh=False)
             # 7. checkpoint
             if save_checkpoint is not None and (step == steps or checkpoint_every and step % checkpoint_every == 0):
                 save_checkpoint(training_state(step=step, policy=policy, optimiser=optimiser, scheduler=scheduler,

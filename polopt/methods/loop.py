@@ -62,7 +62,7 @@ def optimise(policy: torch.nn.Module, step_objective: Callable[[int], tuple[Tens
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")
                     sink.flush()
-                bar.set_postfix(loss=f"{record['loss']:.4g}")
+                bar.set_postfix(loss=f"{record['loss']:.4g}", refresh=False)
     finally:
         bar.close()
         if sink is not None:
