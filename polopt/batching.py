@@ -69,8 +69,9 @@ def bucketed_order(permutation: Tensor, size: Tensor, batch_size: int, generator
 class Batcher:
     """The trainer's batches of ``pairs``: ``epoch_order(generator)`` and ``take(index)``.
 
-    ``pad_id`` None (or pairs that are not token tensors) means nothing to trim or
-    bucket: ``take`` is ``pairs.select`` and the order is a plain permutation.
+    ``pad_id`` None (or pairs that are not token tensors, or pairs streamed from disk,
+    which have no whole-set tensors to measure) means nothing to trim or bucket: ``take``
+    is ``pairs.select`` and the order is a plain permutation.
     """
 
     def __init__(self, pairs, *, batch_size: int | None, pad_id: int | None, bucketing: bool = True):
@@ -78,7 +79,8 @@ class Batcher:
             raise ValueError(f"train.bucketing must be true or false, got {bucketing!r}")
         self.pairs = pairs
         self.batch_size = batch_size
-        self.tokens = pad_id is not None and pairs.winner.dim() == 2
+        streamed = getattr(pairs, "streamed", False)
+        self.tokens = pad_id is not None and not streamed and pairs.winner.dim() == 2
         self.bucketing = bucketing and self.tokens and batch_size is not None and batch_size < len(pairs)
         if self.tokens:
             self.prompt_len, self.response_len = pair_lengths(pairs.prompt, pairs.winner, pairs.loser,

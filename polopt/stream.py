@@ -73,6 +73,8 @@ class MappedPairs:
     token count (prompt with winner plus prompt with loser) for ``tokens_per_s``.
     """
 
+    streamed = True  # the batcher reads it batch by batch through select(); no whole-set tensors
+
     def __init__(self, path: str | Path, *, pad_id: int = 0, count_tokens: bool = True):
         import datasets
 
