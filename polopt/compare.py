@@ -203,16 +203,21 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
             r["run"] = f"{r['run']} #{rows.index(r):02d}"
     notes = equilibrium_notes(rows, summaries)
     table = render(rows, notes, task)
-    (out / "comparison.txt").write_text(table + "\n", encoding="utf-8")
-    with (out / "comparison.csv").open("w", newline="", encoding="utf-8") as f:
-        writer = csv.DictWriter(f, fieldnames=COLUMNS)
-        writer.writeheader()
-        writer.writerows(rows)
     result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
               "notes": notes}
-    (out / "comparison.json").write_text(json.dumps(result, indent=1) + "\n", encoding="utf-8")
+    write_tables(out / "comparison", table, rows, COLUMNS, result)
     plot(rows, out / "comparison.png", task)
     return {**result, "table": table}
+
+
+def write_tables(stem: Path, text: str, rows: list[dict], columns: list[str] | tuple[str, ...], result: dict) -> None:
+    """One table three ways: ``stem.txt`` (as printed), ``stem.csv`` (``columns``) and ``stem.json``."""
+    stem.with_suffix(".txt").write_text(text + "\n", encoding="utf-8")
+    with stem.with_suffix(".csv").open("w", newline="", encoding="utf-8") as f:
+        writer = csv.DictWriter(f, fieldnames=columns)
+        writer.writeheader()
+        writer.writerows(rows)
+    stem.with_suffix(".json").write_text(json.dumps(result, indent=1) + "\n", encoding="utf-8")
 
 
 def main(argv: list[str]) -> int:

@@ -23,14 +23,14 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import csv
 import io
-import json
 import sys
 import time
 from pathlib import Path
 
 import numpy as np
+
+from polopt.compare import write_tables
 
 COLUMNS = ("lambda", "beta_equivalent", "tv_geometric", "tv_per_token", "tv_per_token_exact", "tv_retrained",
            "tv_per_token_to_retrained", "tv_geometric_to_retrained", "kl_per_token", "kl_retrained")
@@ -164,14 +164,9 @@ def realign_sweep(overrides: list[str], lambdas: list[float], out: Path, *, retr
         bar.close()
     table = rows(base, summaries)
     text = render(table, base)
-    (out / "realign.txt").write_text(text + "\n", encoding="utf-8")
-    with (out / "realign.csv").open("w", newline="", encoding="utf-8") as f:
-        writer = csv.DictWriter(f, fieldnames=COLUMNS)
-        writer.writeheader()
-        writer.writerows(table)
     result = {"task": base.get("task"), "loss": base.get("loss_name"), "beta": beta, "overrides": overrides,
               "rows": table}
-    (out / "realign.json").write_text(json.dumps(result, indent=1) + "\n", encoding="utf-8")
+    write_tables(out / "realign", text, table, COLUMNS, result)
     plot(table, out / "realign.png", base)
     return {**result, "table": text}
 

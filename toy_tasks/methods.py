@@ -65,6 +65,17 @@ def _rows(p: np.ndarray) -> list[list[float]]:
     return [[float(v) for v in row] for row in p]
 
 
+def method_footer(summary: dict) -> list[str]:
+    """The figures under a method's policy table: TV to its target, KL, win-rate, TV to the
+    equilibrium, then the notes."""
+    tv = summary["tv_to_optimum"]
+    return [f"method {summary['method']}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
+            f"kl_to_reference {summary['kl_to_reference']:.4g}  "
+            f"win_rate_over_reference {summary['win_rate_over_reference']:.4f}  "
+            f"tv_to_equilibrium {summary['tv_to_equilibrium']:.3g}  (target: {summary['optimum_method']})",
+            *(f"note: {n}" for n in summary["notes"])]
+
+
 @dataclass
 class MethodView:
     """One finite session as one method sees it. Build with :meth:`build`."""
@@ -241,10 +252,4 @@ class MethodView:
             if self.task.n_prompts > 1:
                 lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
             lines += policy_rows(summary, x, range(len(labels)), labels, width, target="target")
-        tv = summary["tv_to_optimum"]
-        lines.append(f"method {summary['method']}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
-                     f"kl_to_reference {summary['kl_to_reference']:.4g}  "
-                     f"win_rate_over_reference {summary['win_rate_over_reference']:.4f}  "
-                     f"tv_to_equilibrium {summary['tv_to_equilibrium']:.3g}  (target: {summary['optimum_method']})")
-        lines.extend(f"note: {n}" for n in summary["notes"])
-        return "\n".join(lines)
+        return "\n".join(lines + method_footer(summary))

@@ -34,7 +34,7 @@ import torch
 
 from polopt.realign import realign, realigned_sequence_logprobs
 from toy_tasks.finite import total_variation
-from toy_tasks.methods import MethodView
+from toy_tasks.methods import MethodView, method_footer
 from toy_tasks.sequences import SequenceTask
 from toy_tasks.session import policy_rows
 
@@ -173,10 +173,4 @@ class SequenceMethodView(MethodView):
             rank = np.asarray(summary["optimum"][x] if summary["optimum"] is not None else summary["reference"][x])
             lines.append(f"prompt {x}: top {TABLE_ROWS} of {len(labels)} responses")
             lines += policy_rows(summary, x, np.argsort(-rank)[:TABLE_ROWS], labels, width, target="target")
-        tv = summary["tv_to_optimum"]
-        lines.append(f"method {summary['method']}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
-                     f"kl_to_reference {summary['kl_to_reference']:.4g}  "
-                     f"win_rate_over_reference {summary['win_rate_over_reference']:.4f}  "
-                     f"tv_to_equilibrium {summary['tv_to_equilibrium']:.3g}  (target: {summary['optimum_method']})")
-        lines.extend(f"note: {n}" for n in summary["notes"])
-        return "\n".join(lines)
+        return "\n".join(lines + method_footer(summary))
