@@ -210,6 +210,16 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     return {**result, "table": table}
 
 
+def user_error(err: Exception) -> Exception | None:
+    """The user's mistake behind ``err`` (a bad value, a config or override error, Hydra's wrapping
+    unwrapped), or None for a bug that should keep its traceback."""
+    cause = err.__cause__ or err
+    name = type(cause).__name__
+    if isinstance(cause, (ValueError, TypeError, FloatingPointError)) or "Override" in name or "Config" in name:
+        return cause
+    return None
+
+
 def write_tables(stem: Path, text: str, rows: list[dict], columns: list[str] | tuple[str, ...], result: dict) -> None:
     """One table three ways: ``stem.txt`` (as printed), ``stem.csv`` (``columns``) and ``stem.json``."""
     stem.with_suffix(".txt").write_text(text + "\n", encoding="utf-8")
@@ -241,9 +251,8 @@ def main(argv: list[str]) -> int:
             rewrite_overrides(combo)  # one line naming the options for a mistyped group option
         result = compare(args.overrides, out, progress=not args.quiet)
     except Exception as err:  # config, override-grammar and task errors alike: one line
-        cause = err.__cause__ or err
-        if not isinstance(cause, (ValueError, TypeError, FloatingPointError)) and "Override" not in type(
-                cause).__name__ and "Config" not in type(cause).__name__:
+        cause = user_error(err)
+        if cause is None:
             raise
         print(f"polopt compare: error: {cause}", file=sys.stderr)
         return 2

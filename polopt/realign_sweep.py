@@ -30,7 +30,7 @@ from pathlib import Path
 
 import numpy as np
 
-from polopt.compare import write_tables
+from polopt.compare import user_error, write_tables
 
 COLUMNS = ("lambda", "beta_equivalent", "tv_geometric", "tv_per_token", "tv_per_token_exact", "tv_retrained",
            "tv_per_token_to_retrained", "tv_geometric_to_retrained", "kl_per_token", "kl_retrained")
@@ -191,9 +191,8 @@ def main(argv: list[str]) -> int:
         lambdas = parse_lambdas(args.lambdas)
         result = realign_sweep(args.overrides, lambdas, out, retrain=not args.no_retrain, progress=not args.quiet)
     except Exception as err:  # config, override-grammar and task errors alike: one line
-        cause = err.__cause__ or err
-        if not isinstance(cause, (ValueError, TypeError, FloatingPointError)) and "Override" not in type(
-                cause).__name__ and "Config" not in type(cause).__name__:
+        cause = user_error(err)
+        if cause is None:
             raise
         print(f"polopt realign: error: {cause}", file=sys.stderr)
         return 2
