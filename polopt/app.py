@@ -32,7 +32,7 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, distributed, losses
+from polopt import checkpoint, devices, distributed, losses
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
@@ -44,7 +44,7 @@ if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ besi
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 # keys that change how a run is kept, not what it computes: a resume may change them
-_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads")
+_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device")
 
 
 def build_loss(cfg: DictConfig) -> losses.Loss:
@@ -154,11 +154,16 @@ def resume_state(cfg: DictConfig, directory: Path, fingerprint: str) -> dict | N
                      "give a new hydra.run.dir, or train.resume=false to start over there")
 
 
-def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE) -> dict:
+def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE,
+        device: torch.device | None = None) -> dict:
     """Train as ``cfg`` says, write the run folder, return summary.json's content.
 
-    With several processes (``context``, from torchrun) every rank trains and only rank 0 writes."""
+    With several processes (``context``, from torchrun) every rank trains and only rank 0 writes.
+    ``device``: where the training loop runs (``train.device`` resolved; None: resolve it here)."""
     check_complete(cfg)
+    if device is None:
+        device = devices.resolve(cfg.train.get("device"), local_rank=context.local_rank,
+                                 processes=context.world_size)
     main = context.is_main
     run_dir.mkdir(parents=True, exist_ok=True)
     if main:
@@ -179,6 +184,9 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                          "this task trains with method=offline only")
     if method["name"] != "offline" and context.active:
         raise ValueError(f"method={method['name']} runs on one process; torchrun trains method=offline only")
+    if device.type != "cpu" and (method["name"] != "offline" or not getattr(session, "trains_on_gpu", False)):
+        raise ValueError(f"train.device={cfg.train.device} trains task=pairs with method=offline; this task "
+                         "and method are small enough for the CPU: use train.device=cpu")
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
@@ -215,6 +223,7 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
             checkpoint.save(ckpt_dir, train_state, run_id=run_id, fingerprint=fingerprint, config=config,
                             keep=cfg.train.keep_checkpoints)
 
+        policy.to(device)  # the training loop only; the summary and the files below work on the CPU
         result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=cfg.train.steps,
                        optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
                        smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
@@ -222,7 +231,8 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                        metrics_path=metrics_path if main else None, progress=cfg.train.progress and main,
                        precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
                        save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
-                       bucketing=cfg.train.get("bucketing", True), context=context)
+                       bucketing=cfg.train.get("bucketing", True), context=context, device=device)
+        policy.to("cpu")
         summary = session.summarise(policy, result)
         summary["skipped_steps"] = result.skipped
         if view is not None:
@@ -242,11 +252,15 @@ def train_main(cfg: DictConfig) -> None:
     """Hydra's entry point for ``polopt train``: user errors become one line and exit code 2."""
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
-        context = distributed.setup()
+        context = distributed.from_environment()
+        device = devices.resolve(cfg.train.get("device"), local_rank=context.local_rank, processes=context.world_size)
+        if device.type == "cuda":
+            torch.cuda.set_device(device)
+        context = distributed.setup(backend=devices.process_group_backend(device))
         # every rank uses rank 0's folder (a ${now:...} in hydra.run.dir may differ between processes)
         run_dir = distributed.broadcast_path(run_dir, context)
         with checkpoint.exclusive(run_dir) if context.is_main else contextlib.nullcontext():
-            run(cfg, run_dir, context)
+            run(cfg, run_dir, context, device)
         distributed.teardown(context)
     except KeyboardInterrupt:
         print(f"polopt train: interrupted; rerun the same command to resume from the newest checkpoint in "

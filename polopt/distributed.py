@@ -17,7 +17,8 @@ module's state dict (the trainer never saves the DDP wrapper), and the rest of
 a checkpoint (step, batch order, cursor, RNG states) describes the global
 batch, not a rank; so a checkpoint written by N processes resumes on M.
 
-The backend is gloo (CPU): the trainer keeps its tensors on the CPU. One process
+The backend is gloo on the CPU and NCCL where ``train.device=cuda`` puts each rank
+on its GPU (:mod:`polopt.devices`). One process
 (no ``WORLD_SIZE``, or ``WORLD_SIZE=1``) takes none of these paths, and the
 trainer runs exactly as before.
 """
@@ -78,12 +79,13 @@ def from_environment(environ=os.environ) -> Context:
     return Context(rank, world, local)
 
 
-def setup(environ=os.environ, *, timeout_s: float = 600.0) -> Context:
-    """Join the process group torchrun describes (backend gloo) and return this rank's Context;
-    with one process, return :data:`SINGLE` without touching torch.distributed."""
+def setup(environ=os.environ, *, backend: str = "gloo", timeout_s: float = 600.0) -> Context:
+    """Join the process group torchrun describes (``backend``: gloo on the CPU, nccl on GPUs) and
+    return this rank's Context; with one process, return :data:`SINGLE` without touching
+    torch.distributed."""
     context = from_environment(environ)
     if context.active and not dist.is_initialized():
-        dist.init_process_group("gloo", rank=context.rank, world_size=context.world_size,
+        dist.init_process_group(backend, rank=context.rank, world_size=context.world_size,
                                 timeout=timedelta(seconds=timeout_s))
     return context
 
@@ -199,11 +201,13 @@ class _Scorer(nn.Module):
         return self.policy.logprobs(prompt, response)
 
 
-def scorer(policy: nn.Module, context: Context):
+def scorer(policy: nn.Module, context: Context, device: torch.device | None = None):
     """The callable the trainer scores pairs with: ``policy.logprobs`` itself with one process,
-    a DDP-wrapped view of it with several (gradients averaged over ranks in the backward pass).
-    The policy stays the unwrapped module, so its state dict has no ``module.`` prefix."""
+    a DDP-wrapped view of it with several (gradients averaged over ranks in the backward pass;
+    on a GPU, DDP is told which one). The policy stays the unwrapped module, so its state dict
+    has no ``module.`` prefix."""
     if not context.active:
         return policy.logprobs
+    device_ids = [device.index] if device is not None and device.type == "cuda" else None
     # buffers (reference tables, enumerations) are the same on every rank by construction
-    return nn.parallel.DistributedDataParallel(_Scorer(policy), forward_sync_buffers=False)
+    return nn.parallel.DistributedDataParallel(_Scorer(policy), device_ids=device_ids, forward_sync_buffers=False)

@@ -104,6 +104,8 @@ def pair_task(path: str | None = None, format: str = "auto", columns: dict | str
 class PairSession:
     """One run's view of a pair file; see the module docstring."""
 
+    trains_on_gpu = True  # train.device=cuda: token pairs through a sequence model (polopt.devices)
+
     data: PairData
     tokenizer: object
     file_tokenizer: str

@@ -66,6 +66,14 @@ class PairSet:
                        None if self.weight is None else self.weight[index],
                        None if self.tokens is None else self.tokens[index])
 
+    def to(self, device: torch.device) -> PairSet:
+        """The same pairs with every tensor on ``device`` (no copy when they are there already)."""
+        def move(t: Tensor | None) -> Tensor | None:
+            return None if t is None else t.to(device, non_blocking=True)
+
+        return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
+                                           self.reference_loser, self.weight, self.tokens)))
+
 
 @dataclass
 class OptimConfig:
@@ -138,7 +146,7 @@ def nonfinite_report(step: int, what: str, index: Tensor, batch: PairSet, per_pa
         items = t.tolist()
         return str(items[:8])[:-1] + (f", ... {len(items)} in all]" if len(items) > 8 else "]")
 
-    bad = torch.nonzero(~torch.isfinite(per_pair)).flatten()  # positions within the batch
+    bad = torch.nonzero(~torch.isfinite(per_pair)).flatten().cpu()  # positions within the batch (index: CPU)
     where = f"; non-finite at pairs {show(index[bad])}" if len(bad) else ""
     return (f"step {step}: {what} on a batch of {len(index)} pairs {show(index)} "
             f"(prompts {show(batch.prompt)}){where}")
@@ -151,7 +159,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
           precision: str = "fp32", checkpoint_every: int = 0,
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
           on_nonfinite: str = "stop", bucketing: bool = True,
-          context: distributed.Context = distributed.SINGLE) -> TrainResult:
+          context: distributed.Context = distributed.SINGLE, device: torch.device | str = "cpu") -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters.
 
     ``batch_size`` None (or >= N) uses every pair each step (full batch);
@@ -170,6 +178,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     ``context`` (from :func:`polopt.distributed.setup`) with several processes: each rank takes
     its slice of every global batch and the gradients are averaged (:mod:`polopt.distributed`);
     the caller passes ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
+    ``device``: where the policy already is (the caller moves it, :mod:`polopt.devices`); each batch
+    goes there, the batch order and the data stay on the CPU.
     """
     if not isinstance(steps, int) or steps < 1:
         raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
@@ -186,6 +196,10 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     generator = torch.Generator().manual_seed(seed)
     optimiser, scheduler = make_optimiser(policy.parameters(), optim, steps)
     full_batch = batch_size is None or batch_size >= len(pairs)
+    if full_batch and getattr(pairs, "streamed", False):
+        raise ValueError(f"these {len(pairs)} pairs stream from disk and are read one batch at a time: set "
+                         f"train.batch_size below {len(pairs)} (full-batch training would read the whole file "
+                         "every step)")
     batcher = Batcher(pairs, batch_size=batch_size, pad_id=getattr(policy, "pad_id", None), bucketing=bucketing)
     order, cursor = batcher.epoch_order(generator), 0
     history: list[dict] = []
@@ -198,7 +212,9 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
         history, skipped, seconds_before = restored["history"], restored["skipped"], restored["seconds"]
         if done > steps:
             raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
-    score = distributed.scorer(policy, context)  # policy.logprobs, or its DDP view
+    device = torch.device(device)
+    score = distributed.scorer(policy, context, device)  # policy.logprobs, or its DDP view
+    whole = pairs.to(device) if full_batch else None  # the full batch moves once
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     start = time.perf_counter() - seconds_before
     loop_start, tokens_seen = time.perf_counter(), 0  # token throughput of this process, resumed or not
@@ -210,7 +226,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             lr = optimiser.param_groups[0]["lr"]
             # 2. batch
             if full_batch:
-                index, batch = torch.arange(len(pairs)), pairs
+                index, batch = torch.arange(len(pairs)), whole
             else:
                 if cursor + batch_size > len(pairs):
                     order, cursor = batcher.epoch_order(generator), 0
@@ -221,8 +237,9 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 tokens_seen += int(batch.tokens.sum())
             if context.active:  # this rank's slice of the global batch, and the global batch's weight
                 batch, index, total_weight = distributed.shard(batch, index, context)
+            batch = batch.to(device)
             # 3. policy log-probs of winners and losers
-            with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bf16"):
+            with torch.autocast(device.type, dtype=torch.bfloat16, enabled=precision == "bf16"):
                 # winners and losers in one forward pass: (2B,) -> two halves of (B,)
                 logp = score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
                 logp_w, logp_l = logp.to(batch.reference_winner.dtype).chunk(2)
