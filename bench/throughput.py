@@ -92,6 +92,22 @@ def model_flops(n_real: torch.Tensor, *, weights: int, layers: int, width: int) 
     return float((6 * weights * n + 6 * layers * width * n**2).sum())
 
 
+def cpu_features() -> dict:
+    """What decides the bf16 ratio: torch's CPU kernel level and the CPU's bf16 instructions
+    (avx512_bf16, amx_bf16 in the Linux /proc/cpuinfo flags); without them bf16 matrix products
+    are emulated and autocast can be slower than fp32."""
+    flags: set[str] = set()
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("flags"):
+                flags = set(line.split(":", 1)[1].split())
+                break
+    except OSError:
+        pass
+    return {"capability": torch.backends.cpu.get_cpu_capability(),
+            "bf16_instructions": sorted(flags & {"avx512_bf16", "amx_bf16", "amx_tile"}) if flags else None}
+
+
 def matmul_flops_per_s(m: int, k: int, n: int, dtype: torch.dtype, seconds: float = 0.5) -> float:
     a, b = torch.randn(m, k).to(dtype), torch.randn(k, n).to(dtype)
     for _ in range(3):
@@ -135,6 +151,7 @@ def prepare(cfg: dict) -> dict:
         return {"cfg": cfg}
     data, policy, reference = build(cfg)
     policy.split_lengths = cfg["bucketing"]  # off: one pass at each batch's longest pair, as before
+    batched_logprobs(reference.model, data["prompt"][:8], data["winner"][:8], pad_id=PAD_ID)  # warm-up
     start = time.perf_counter()
     both = batched_logprobs(reference.model, torch.cat([data["prompt"]] * 2),
                             torch.cat([data["winner"], data["loser"]]), pad_id=PAD_ID, batch_size=256)  # (2N,)
@@ -293,8 +310,10 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--no-isolate", action="store_true",
                         help="skip the fresh process per configuration that measures its peak memory")
     args = parser.parse_args(argv)
+    cpu = cpu_features()
     print(f"torch {torch.__version__}, {args.threads} thread(s), {os.cpu_count()} CPUs, "
-          f"load average {os.getloadavg()[0]:.2f} at the start")
+          f"load average {os.getloadavg()[0]:.2f} at the start; CPU kernels {cpu['capability']}, "
+          f"bf16 instructions: {', '.join(cpu['bf16_instructions'] or []) or 'none found'}")
     print(f"{args.pairs} pairs, responses 2..24 tokens or (5%) {args.max_length}, batch {args.batch}, "
           f"{args.steps} timed steps x {args.rounds} interleaved rounds (the fastest shown), {LAYERS} layers, "
           f"{HEADS} heads")
@@ -322,7 +341,7 @@ def main(argv: list[str] | None = None) -> None:
     print(table(rows, checks))
     print(f"peak memory: ru_maxrss of a fresh process per configuration; the parent held {floor:.0f} MiB")
     report = {"torch": torch.__version__, "parent_rss_mib": floor, "threads": args.threads, "cpus": os.cpu_count(),
-              "load_end": os.getloadavg()[0],
+              "cpu": cpu, "load_end": os.getloadavg()[0],
               "peak_memory": "ru_maxrss of a fresh process that ran only that configuration",
               "timing": "fastest of the interleaved rounds",
               "flops": "6 N n + 6 L n^2 C per sequence of n real input positions (Kaplan et al. 2020)",

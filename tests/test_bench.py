@@ -72,3 +72,33 @@ def test_baseline_loop_runs():
     torch.set_num_threads(1)
     r = baseline_loop.run(width=16, layers=1, heads=2, n_pairs=24, batch=8, steps=2, warmup=1, max_length=16)
     assert r["tokens_per_s"] > 0 and math.isfinite(r["loss"])
+
+
+def test_the_streaming_bench_maps_the_pairs_it_holds_in_ram(tmp_path):
+    # the two processes of bench/stream_pairs.py must train on the same pairs: the Arrow file read
+    # through MappedPairs gives, row for row, the padded tensors of the in-RAM PairSet
+    from bench import stream_pairs
+    from polopt.stream import MappedPairs
+
+    path = tmp_path / "pairs.arrow"
+    stream_pairs.write_skewed(path, 60, 16)
+    mapped, held = MappedPairs(path, pad_id=PAD_ID), stream_pairs.skewed_in_ram(60, 16)
+    rows = torch.tensor([0, 7, 59, 31])
+    got, want = mapped.select(rows), held.select(rows)
+    for name in ("prompt", "winner", "loser"):
+        a, b = getattr(got, name), getattr(want, name)
+        assert torch.equal(a, b[:, : a.shape[1]]) and bool((b[:, a.shape[1]:] == PAD_ID).all()), name
+    assert torch.equal(got.tokens, want.tokens)
+
+
+def test_the_streaming_bench_runs_and_writes_json(tmp_path, capsys):
+    from bench import stream_pairs
+
+    out = tmp_path / "stream.json"
+    stream_pairs.main(["--pairs", "300", "--steps", "2", "--batch-size", "16", "--max-length", "16",
+                       "--json", str(out)])
+    report = json.loads(out.read_text())
+    assert "peak RSS mapped / in RAM" in capsys.readouterr().out
+    assert {report["runs"][m]["rows"] for m in ("mapped", "ram")} == {300}
+    assert report["peak_rss_mapped_over_ram"] > 0 and all(math.isfinite(report["runs"][m]["loss"])
+                                                           for m in ("mapped", "ram"))
