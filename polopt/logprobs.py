@@ -106,7 +106,7 @@ def length_split(n_tokens: Tensor) -> tuple[Tensor, int]:
     """
     sorted_n, order = torch.sort(n_tokens, stable=True)  # (B,)
     b = len(sorted_n)
-    k = torch.arange(1, b + 1)  # (B,)
+    k = torch.arange(1, b + 1, device=sorted_n.device)  # (B,)
     cost = k * sorted_n + (b - k) * sorted_n[-1]  # (B,): a cut after the k-th shortest row
     best = int(torch.argmin(cost))
     whole = b * int(sorted_n[-1])
@@ -147,13 +147,15 @@ def batched_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pad_
                      batch_size: int = 4096, progress: bool = False, desc: str = "log-probs") -> Tensor:
     """:func:`sequence_logprobs` over a whole dataset in chunks, without gradients: (N,).
 
-    Rows go shortest first, so that each chunk is trimmed to lengths close to its own
-    (rows are independent: the order changes no value).
+    Rows go shortest first, so that each chunk is trimmed to lengths close to its own, and a
+    chunk whose rows still differ much in length runs as two passes (:class:`SequencePolicy`;
+    rows are independent: neither the order nor the split changes a value).
     """
     out = []
+    policy = SequencePolicy(model, pad_id=pad_id)
     order = torch.sort(real_tokens(prompt, response, pad_id=pad_id), stable=True).indices  # (N,)
     starts = range(0, len(prompt), batch_size)
     for start in tqdm(starts, desc=desc, disable=not progress, leave=False):
         rows = order[start:start + batch_size]
-        out.append(sequence_logprobs(model, prompt[rows], response[rows], pad_id=pad_id))
+        out.append(policy.logprobs(prompt[rows], response[rows]))
     return torch.cat(out)[torch.argsort(order)] if out else torch.zeros(0)

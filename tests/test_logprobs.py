@@ -8,7 +8,7 @@ time, no padding, a Python loop over the response tokens adding
 import pytest
 import torch
 
-from polopt.logprobs import SequencePolicy, pack, real_tokens, sequence_logprobs, token_logprobs
+from polopt.logprobs import SequencePolicy, batched_logprobs, pack, real_tokens, sequence_logprobs, token_logprobs
 from polopt.models import BigramTable, TinyTransformer
 
 PAD = 9
@@ -92,6 +92,18 @@ def test_winners_and_losers_in_one_pass(model):
     first, second = both.chunk(2)
     torch.testing.assert_close(first, policy.logprobs(prompt, winner), atol=1e-6, rtol=0)
     torch.testing.assert_close(second, policy.logprobs(prompt, loser), atol=1e-6, rtol=0)
+
+
+def test_chunked_whole_dataset_pass_matches_plain_loop(model):
+    # many short rows and two long ones: the chunk that holds them is split in two passes,
+    # and the values come back in the dataset's order
+    g = torch.Generator().manual_seed(3)
+    prompts = [[5 + int(torch.randint(0, 4, (), generator=g))] for _ in range(20)]
+    responses = [torch.randint(0, V_OUT, (int(n),), generator=g).tolist()
+                 for n in torch.randint(0, 3, (20,), generator=g)]
+    responses[4], responses[17] = [1, 2, 3, 4, 0, 1, 2, 3, 4, 0], [4, 3, 2, 1, 0, 4, 3, 2, 1]
+    got = batched_logprobs(model, right_pad(prompts, 1), right_pad(responses, 10), pad_id=PAD, batch_size=16)
+    torch.testing.assert_close(got, plain_loop(model, prompts, responses), atol=1e-5, rtol=0)
 
 
 def test_bigram_matches_plain_loop():
