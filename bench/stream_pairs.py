@@ -229,7 +229,8 @@ def main(argv: list[str] | None = None) -> None:
             write(path, args.pairs)
         else:
             write_skewed(path, args.pairs, args.max_length)
-        print(f"wrote {args.pairs} {args.data} pairs to an Arrow file of {path.stat().st_size / 2**20:.1f} MiB "
+        size = path.stat().st_size / 2**20
+        print(f"wrote {args.pairs} {args.data} pairs to an Arrow file of {size:.1f} MiB "
               f"in {time.perf_counter() - start:.1f} s")
         out = {}
         for mode in ("mapped", "ram"):
@@ -243,7 +244,6 @@ def main(argv: list[str] | None = None) -> None:
                   f"{r['rss_after_setup_mb']:.0f} MiB, before it {r['rss_at_start_mb']:.0f} MiB; "
                   f"RSS after training {r['rss_end_mb']:.0f} MiB); "
                   f"{args.steps} steps of {args.batch_size} in {r['seconds']:.1f} s; final loss {r['loss']:.4f}")
-        size = path.stat().st_size / 2**20
     ratios = {"peak_rss_mapped_over_ram": out["mapped"]["peak_rss_mb"] / out["ram"]["peak_rss_mb"],
               "rss_end_mapped_over_ram": out["mapped"]["rss_end_mb"] / out["ram"]["rss_end_mb"]}
     print(f"peak RSS mapped / in RAM: {ratios['peak_rss_mapped_over_ram']:.2f}; "
