@@ -230,9 +230,12 @@ def plus_winner_nll(pair: PairScores, beta: float, *, base: str = "reference_fre
 def _log_odds(logp: Tensor) -> Tensor:
     """``log(p / (1 - p))`` of ``p = e^logp``, overflow-safe. (B,) -> (B,)."""
     logp = logp.clamp(max=_LOGP_CAP)  # p = 1 has infinite odds
-    # log(1 - e^x): expm1 near 0, log1p(-e^x) further out (both exact where used)
-    log1m = torch.where(logp > -math.log(2.0), torch.log(-torch.expm1(logp)), torch.log1p(-torch.exp(logp)))
-    return logp - log1m
+    # log(1 - e^x): expm1 near 0, log1p(-e^x) further out (Maechler's rule); each branch's input is
+    # clamped to where it is used, so the branch torch.where drops has finite gradients too
+    cut = -math.log(2.0)
+    near = torch.log(-torch.expm1(logp.clamp(min=cut)))
+    far = torch.log1p(-torch.exp(logp.clamp(max=cut)))
+    return logp - torch.where(logp > cut, near, far)
 
 
 def odds_ratio_with_nll(pair: PairScores, beta: float, *, weight: float = 0.1) -> Tensor:
