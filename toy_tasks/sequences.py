@@ -183,13 +183,6 @@ class SequenceTask:
         return np.broadcast_to(p, (self.n_prompts, *p.shape)).copy()
 
     @cached_property
-    def lengths(self) -> np.ndarray:
-        """Tokens of every enumerated response, the end token included (what its log-probability
-        sums over), (X, K), float64: the lengths pair objectives read."""
-        per_response = (self.response_tokens != self.vocab.pad_id).sum(dim=1).double().numpy()  # (K,)
-        return np.broadcast_to(per_response, (self.n_prompts, self.n_responses)).copy()
-
-    @cached_property
     def finite(self) -> FiniteTask:
         """The same task over the enumerated responses, as a finite task (pairs drawn from pi_ref)."""
         reference = np.exp(self.reference_logprobs)
