@@ -193,7 +193,14 @@ class SequenceTask:
                        f"per response, {self.n_responses} responses per prompt, {kind}")
         preference = None if self.rewards is not None else self.cyclic_preference()
         return make_task(reference, preference, rewards=self.rewards, responses=labels, prompts=prompts,
+                         lengths=np.broadcast_to(self.token_counts, (self.n_prompts, self.n_responses)),
                          name="sequence", description=description)
+
+    @property
+    def token_counts(self) -> np.ndarray:
+        """Tokens the model generates for each enumerated response, (K,): its symbols plus the end
+        token (a response of ``max_length`` symbols stops without one)."""
+        return np.array([len(r) for r in self.responses], dtype=np.float64)
 
     def finite_task(self) -> FiniteTask:
         return self.finite
