@@ -35,9 +35,6 @@ import torch
 import torch.distributed as dist
 from torch import nn
 
-from polopt.losses import Loss
-from polopt.objective import pair_losses
-
 Tensor = torch.Tensor
 
 _ENV = ("RANK", "WORLD_SIZE", "LOCAL_RANK")
@@ -149,8 +146,7 @@ def shard(batch, index: Tensor, context: Context):
     return batch.select(part), index[part], total
 
 
-def sharded_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float, weight: Tensor | None,
-                 total_weight, context: Context) -> tuple[Tensor, Tensor]:
+def sharded_loss(values: Tensor, *, weight: Tensor | None, total_weight, context: Context) -> tuple[Tensor, Tensor]:
     """(the loss this rank backpropagates, the global loss of the batch).
 
     The global loss is the weighted mean over the global batch, ``L = sum_i w_i l_i / W``
@@ -163,9 +159,11 @@ def sharded_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float, weig
     weight sums differ. The global loss for metrics and the non-finite check is
     ``L = (1/N) sum_r L_r`` (one all_reduce), so every rank takes the same decision.
 
-    Shape: rho (B_r,), weight (B_r,) or None; both outputs are scalars.
+    ``values`` are this rank's per-pair losses (:func:`polopt.objective.batch_losses`, a margin
+    loss or any pair objective alike).
+
+    Shape: values (B_r,), weight (B_r,) or None; both outputs are scalars.
     """
-    values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)  # (B_r,)
     local_sum = values.sum() if weight is None else (weight.to(values.dtype) * values).sum()
     objective = local_sum * (context.world_size / torch.as_tensor(total_weight, dtype=values.dtype))
     global_loss = objective.detach().clone()

@@ -36,7 +36,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
+from polopt.logprobs import SequencePolicy, batched_logprobs, lengths, real_tokens
 from polopt.train import PairSet
 
 Tensor = torch.Tensor
@@ -155,4 +155,5 @@ def text_pairs(reference: SequencePolicy, tokenizer, prompt: list[str], winner: 
     ref_w, ref_l = both.double().chunk(2)
     tokens = real_tokens(p, w, pad_id=PAD) + real_tokens(p, lo, pad_id=PAD)  # (N,)
     weights = None if weight is None else torch.as_tensor(weight, dtype=torch.float64)
-    return PairSet(p, w, lo, ref_w, ref_l, weights, tokens=tokens)
+    return PairSet(p, w, lo, ref_w, ref_l, weights, tokens=tokens, len_winner=lengths(w, pad_id=PAD),
+                   len_loser=lengths(lo, pad_id=PAD))  # (N,) each: response tokens for pair objectives

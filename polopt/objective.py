@@ -1,14 +1,18 @@
-"""From four log-probabilities to one scalar objective.
+"""From log-probabilities to one scalar objective.
 
 This module owns the only place where the margin is computed, and the only
-place where per-pair losses are reduced:
+place where per-pair losses are smoothed and reduced:
 
     h(x, y)  = log pi(y|x) - log pi_ref(y|x)                (log-ratio)
     rho      = h(x, y_w) - h(x, y_l)                          (margin)
-    loss     = sum_k w_k [(1 - eps) f(beta rho_k) + eps f(-beta rho_k)] / sum_k w_k
+    loss     = sum_k w_k [(1 - eps) ell(y_w, y_l)_k + eps ell(y_l, y_w)_k] / sum_k w_k
 
 with optional per-pair weights ``w`` (exact mode passes the population win
-weights) and label smoothing ``eps`` (the label is flipped with probability eps).
+weights) and label smoothing ``eps`` (the label is flipped with probability eps:
+winner and loser swap, lengths included). ``ell`` is a pair objective
+(:mod:`polopt.objectives`); for a margin loss ``f`` it is ``f(beta rho)``, so the
+swapped pair gives ``f(-beta rho)``. The trainer calls :func:`batch_losses` and
+:func:`reduce`, and nothing else of the objective.
 """
 
 from __future__ import annotations
@@ -16,6 +20,8 @@ from __future__ import annotations
 import torch
 
 from polopt.losses import Loss
+from polopt.objectives import PairObjective, as_objective, check_values
+from polopt.pair_scores import PairScores
 
 Tensor = torch.Tensor
 
@@ -47,11 +53,52 @@ def preference_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float = 
 
     ``weights`` (B,) need not be normalised; None means equal weights.
     """
-    values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)
+    return reduce(pair_losses(loss, rho, beta=beta, smoothing=smoothing), weights)
+
+
+def reduce(values: Tensor, weights: Tensor | None = None) -> Tensor:
+    """``sum_k w_k values_k / sum_k w_k`` (the mean when ``weights`` is None). (B,) -> scalar."""
     if weights is None:
         return values.mean()
     weights = weights.to(values.dtype)
     return (weights * values).sum() / weights.sum()
+
+
+def scores(batch, logp_w: Tensor, logp_l: Tensor) -> PairScores:
+    """The :class:`PairScores` of a batch (a PairSet) given the policy's log-probs (B,) of its
+    winners and losers; lengths of 1 where the batch has none."""
+    def length(t: Tensor | None) -> Tensor:
+        return torch.ones_like(logp_w) if t is None else t.to(device=logp_w.device, dtype=logp_w.dtype)
+
+    return PairScores(logp_w, logp_l, batch.reference_winner, batch.reference_loser,
+                      length(getattr(batch, "len_winner", None)), length(getattr(batch, "len_loser", None)))
+
+
+def swapped(pair: PairScores) -> PairScores:
+    """The pair with winner and loser exchanged (the flipped label of smoothing)."""
+    return PairScores(pair.loser, pair.winner, pair.ref_loser, pair.ref_winner, pair.len_loser, pair.len_winner)
+
+
+def objective_values(loss: Loss | PairObjective, pair: PairScores, *, beta: float,
+                     smoothing: float = 0.0) -> Tensor:
+    """Per-pair losses ``(1 - eps) ell(pair) + eps ell(swapped pair)``, validated: a ValueError
+    (one line) when ``ell`` does not return shape (B,). (B,) -> (B,).
+
+    For a margin loss this is :func:`pair_losses` of the same margins, bit for bit."""
+    objective = as_objective(loss)
+    values = objective(pair, beta)
+    check_values(objective.name, values, pair.winner.shape[0])
+    if smoothing:
+        flipped = objective(swapped(pair), beta)
+        values = (1.0 - smoothing) * values + smoothing * flipped
+    return values
+
+
+def batch_losses(loss: Loss | PairObjective, batch, logp_w: Tensor, logp_l: Tensor, *, beta: float,
+                 smoothing: float = 0.0) -> Tensor:
+    """The trainer's one call: per-pair losses (B,) of a batch (a PairSet) from the policy's
+    log-probs of its winners and losers (B,), for a margin loss or a pair objective alike."""
+    return objective_values(loss, scores(batch, logp_w, logp_l), beta=beta, smoothing=smoothing)
 
 
 def validate_hyperparameters(beta: float, smoothing: float = 0.0) -> None:

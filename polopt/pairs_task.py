@@ -33,10 +33,10 @@ import torch
 
 from polopt.data import PAIR_FILE_KEYS, PairData, load_pairs_from_config, write_rejects
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
-from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
+from polopt.logprobs import SequencePolicy, batched_logprobs, lengths, real_tokens
 from polopt.losses import Loss
 from polopt.models import TinyTransformer
-from polopt.objective import margins, preference_loss
+from polopt.objective import batch_losses, margins, reduce
 from polopt.reference_cache import FILE_NAME, reference_logprobs
 from polopt.sft import load_reference
 from polopt.tokenizer import load_tokenizer
@@ -163,7 +163,9 @@ class PairSession:
             model, torch.cat([self.prompt, self.prompt]), self.pair_responses(), pad_id=self.ids.pad,
             path=self.cache, batch_size=256)  # (2N,)
         ref_w, ref_l = both.chunk(2)
-        self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens)
+        self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens,
+                             len_winner=lengths(self.winner, pad_id=self.ids.pad),
+                             len_loser=lengths(self.loser, pad_id=self.ids.pad))  # (N,) response tokens
 
     def pair_responses(self) -> Tensor:
         """Winners then losers: (2N, T_r)."""
@@ -226,7 +228,8 @@ class PairSession:
         policy.train(training)
         logp_w, logp_l = logp.chunk(2)
         rho = margins(logp_w, logp_l, p.reference_winner, p.reference_loser)  # (N,)
-        value = preference_loss(self.loss, rho, beta=self.beta, smoothing=self.smoothing, weights=p.weight)
+        per_pair = batch_losses(self.loss, p, logp_w, logp_l, beta=self.beta, smoothing=self.smoothing)  # (N,)
+        value = reduce(per_pair, p.weight)
         return {"loss": float(value), **batch_statistics(rho, logp_w - p.reference_winner,
                                                          logp_l - p.reference_loser, p.weight)}
 

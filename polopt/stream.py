@@ -116,4 +116,5 @@ class MappedPairs:
             tokens = 2 * n + (winner != self.pad_id).sum(1) + (loser != self.pad_id).sum(1)  # (B,)
         weight = torch.as_tensor(rows["weight"], dtype=torch.float64) if self.weighted else None
         return PairSet(prompt, winner, loser, torch.as_tensor(rows["reference_winner"], dtype=torch.float64),
-                       torch.as_tensor(rows["reference_loser"], dtype=torch.float64), weight, tokens)
+                       torch.as_tensor(rows["reference_loser"], dtype=torch.float64), weight, tokens,
+                       *((t != self.pad_id).sum(1) if t.dim() == 2 else None for t in (winner, loser)))  # (B,)

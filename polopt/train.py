@@ -1,4 +1,4 @@
-"""The training loop: any loss of the family on any task that hands over pairs.
+"""The training loop: any loss of the family or pair objective on any task that hands over pairs.
 
 A task gives the trainer a :class:`PairSet` (prompt, winner, loser, optional
 weight, and the reference log-probabilities of winner and loser, computed once
@@ -33,7 +33,8 @@ from polopt import distributed
 from polopt.batching import Batcher
 from polopt.checkpoint import restore_training_state, training_state
 from polopt.losses import Loss
-from polopt.objective import margins, pair_losses, preference_loss
+from polopt.objective import batch_losses, margins, reduce
+from polopt.objectives import PairObjective
 
 Tensor = torch.Tensor
 
@@ -46,7 +47,8 @@ class PairSet:
     indices for finite tasks). ``reference_winner``/``reference_loser`` (N,) are
     the cached reference log-probabilities; ``weight`` (N,) or None; ``tokens`` (N,)
     the real tokens of each pair (prompt with winner plus prompt with loser, no
-    padding) for the ``tokens_per_s`` metric, or None.
+    padding) for the ``tokens_per_s`` metric, or None; ``len_winner``/``len_loser`` (N,)
+    the responses' lengths in tokens for pair objectives that read them (None: 1 each).
     """
 
     prompt: Tensor
@@ -56,15 +58,19 @@ class PairSet:
     reference_loser: Tensor
     weight: Tensor | None = None
     tokens: Tensor | None = None
+    len_winner: Tensor | None = None
+    len_loser: Tensor | None = None
 
     def __len__(self) -> int:
         return len(self.prompt)
 
+    def _optional(self) -> tuple:
+        return self.weight, self.tokens, self.len_winner, self.len_loser
+
     def select(self, index: Tensor) -> PairSet:
         return PairSet(self.prompt[index], self.winner[index], self.loser[index],
                        self.reference_winner[index], self.reference_loser[index],
-                       None if self.weight is None else self.weight[index],
-                       None if self.tokens is None else self.tokens[index])
+                       *(None if t is None else t[index] for t in self._optional()))
 
     def to(self, device: torch.device) -> PairSet:
         """The same pairs with every tensor on ``device`` (no copy when they are there already)."""
@@ -72,7 +78,7 @@ class PairSet:
             return None if t is None else t.to(device, non_blocking=True)
 
         return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
-                                           self.reference_loser, self.weight, self.tokens)))
+                                           self.reference_loser, *self._optional())))
 
 
 @dataclass
@@ -152,7 +158,7 @@ def nonfinite_report(step: int, what: str, index: Tensor, batch: PairSet, per_pa
             f"(prompts {show(batch.prompt)}){where}")
 
 
-def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, steps: int,
+def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss | PairObjective, *, beta: float, steps: int,
           optim: OptimConfig, smoothing: float = 0.0, batch_size: int | None = None, seed: int = 0,
           log_every: int = 10, evaluate: Callable[[torch.nn.Module], dict] | None = None,
           metrics_path: Path | None = None, progress: bool = True,
@@ -243,13 +249,13 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 # winners and losers in one forward pass: (2B,) -> two halves of (B,)
                 logp = score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
                 logp_w, logp_l = logp.to(batch.reference_winner.dtype).chunk(2)
-            # 4. margins and loss
+            # 4. margins and loss (a margin loss or any pair objective: polopt.objective)
             rho = margins(logp_w, logp_l, batch.reference_winner, batch.reference_loser)  # (B,)
+            per_pair = batch_losses(loss, batch, logp_w, logp_l, beta=beta, smoothing=smoothing)  # (B,)
             if not context.active:
-                value = objective = preference_loss(loss, rho, beta=beta, smoothing=smoothing, weights=batch.weight)
+                value = objective = reduce(per_pair, batch.weight)
             else:  # objective: this rank's share (see sharded_loss); value: the global loss
-                objective, value = distributed.sharded_loss(loss, rho, beta=beta, smoothing=smoothing,
-                                                            weight=batch.weight, total_weight=total_weight,
+                objective, value = distributed.sharded_loss(per_pair, weight=batch.weight, total_weight=total_weight,
                                                             context=context)
             # 5. backward, clip, step; a non-finite loss or gradient never reaches the parameters
             optimiser.zero_grad(set_to_none=True)
@@ -266,8 +272,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 optimiser.step()
             else:
                 with torch.no_grad():
-                    report = nonfinite_report(step, problem, index, batch,
-                                              pair_losses(loss, rho, beta=beta, smoothing=smoothing))
+                    report = nonfinite_report(step, problem, index, batch, per_pair)
                 if on_nonfinite == "stop":
                     raise FloatingPointError(f"{report}; lower optim.lr or beta, check the loss function "
                                              "and the data, or set train.on_nonfinite=skip")

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from polopt.logprobs import real_tokens
+from polopt.logprobs import lengths, real_tokens
 from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
 from polopt.reference_cache import FILE_NAME, reference_logprobs
@@ -138,7 +138,8 @@ def token_pairs(task: SequenceTask, index_pairs: PairSet, *, cache: Path | None)
     ref_w, ref_l = both.chunk(2)
     pad = task.vocab.pad_id
     tokens = real_tokens(prompt, winner, pad_id=pad) + real_tokens(prompt, loser, pad_id=pad)  # (N,)
-    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens), reused
+    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens,
+                   len_winner=lengths(winner, pad_id=pad), len_loser=lengths(loser, pad_id=pad)), reused
 
 
 def prepare(task: SequenceTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",

@@ -209,6 +209,19 @@ def displacement_warning(history: list[dict]) -> str | None:
     return None
 
 
+def pair_lengths(task: FiniteTask, x: np.ndarray, i: np.ndarray, j: np.ndarray):
+    """The lengths (N,) of the winners ``i`` and losers ``j`` of prompts ``x`` from the task's
+    ``lengths`` (X, K); (None, None) where the task has none or every length is 1 (pair objectives
+    then read 1, and the checkpoints' fingerprints stay those of tasks without lengths)."""
+    lengths = getattr(task, "lengths", None)
+    if lengths is None:
+        return None, None
+    lengths = np.broadcast_to(np.asarray(lengths, dtype=np.float64), task.reference.shape)  # (X, K)
+    if np.all(lengths == 1.0):
+        return None, None
+    return torch.as_tensor(lengths[x, i], dtype=DTYPE), torch.as_tensor(lengths[x, j], dtype=DTYPE)
+
+
 def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
             n_pairs: int = 2000, seed: int = 0, run_dir=None) -> FiniteSession:
     """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``. ``run_dir`` is
@@ -226,12 +239,13 @@ def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0
         weights = task.empirical_win_weights(sample)
         pair_weight = None
     log_ref = np.log(task.reference)
+    len_w, len_l = pair_lengths(task, x, i, j)
     pairs = PairSet(
         prompt=torch.as_tensor(x, dtype=torch.long), winner=torch.as_tensor(i, dtype=torch.long),
         loser=torch.as_tensor(j, dtype=torch.long),
         reference_winner=torch.as_tensor(log_ref[x, i], dtype=DTYPE),  # cached once, never recomputed
         reference_loser=torch.as_tensor(log_ref[x, j], dtype=DTYPE),
-        weight=pair_weight,
+        weight=pair_weight, len_winner=len_w, len_loser=len_l,
     )
     closed_ok = smoothing == 0.0
     trained = smoothed_weights(weights, smoothing)

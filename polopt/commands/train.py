@@ -32,7 +32,7 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, devices, distributed, losses
+from polopt import checkpoint, devices, distributed, losses, objectives
 from polopt.commands.config import CONFIG_DIR, rewrite_overrides
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
@@ -44,10 +44,11 @@ TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 _RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device")
 
 
-def build_loss(cfg: DictConfig) -> losses.Loss:
-    """The loss named by ``loss.name`` with its parameters (every key but name and smoothing)."""
+def build_loss(cfg: DictConfig) -> losses.Loss | objectives.PairObjective:
+    """The margin loss or pair objective named by ``loss.name`` with its parameters (every key but
+    name and smoothing); see :mod:`polopt.objectives`."""
     params = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in ("name", "smoothing")}
-    return losses.get(cfg.name, **params)
+    return objectives.resolve(cfg.name, **params)
 
 
 def build_task(cfg: DictConfig):
@@ -109,7 +110,8 @@ def write_json(path: Path, data: dict) -> None:
 _MISSING_HINTS = {
     "task.path": "task=file needs task.path=PATH to a JSON task file; task=pairs needs task.path=PATH to a pair "
                  "file (JSONL, CSV, Parquet or a saved dataset folder)",
-    "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x))",
+    "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x) or a pair objective "
+                 "f(pair, beta))",
     "model.path": "model=hf needs model.path=DIR, a local folder saved by a transformers causal LM",
 }
 
@@ -189,8 +191,11 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
     p = session.pairs
+    # lengths of index pairs are data of their own (a task file's "lengths"); token pairs' follow from the tokens
+    lengths = () if getattr(policy, "pad_id", None) is not None else (getattr(p, "len_winner", None),
+                                                                       getattr(p, "len_loser", None))
     fingerprint = checkpoint.fingerprint(config, p.prompt, p.winner, p.loser, p.reference_winner,
-                                         p.reference_loser, p.weight)
+                                         p.reference_loser, p.weight, *lengths)
     ckpt_dir = run_dir / "checkpoints"
     checkpoint.validate_keep(cfg.train.keep_checkpoints)
     state = resume_state(cfg, ckpt_dir, fingerprint)
