@@ -32,6 +32,7 @@ from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
 from polopt.reference_cache import FILE_NAME, reference_logprobs
 from polopt.train import PairSet
+from polopt.verdict import reached_line
 from toy_tasks.sequences import EnumeratedSequencePolicy, SequenceTask
 from toy_tasks.session import FiniteSession, policy_rows
 from toy_tasks.session import prepare as prepare_finite
@@ -121,6 +122,7 @@ class SequenceSession:
         if summary.get("tv_to_population_optimum") is not None:
             lines.append(f"tv_to_population_optimum {summary['tv_to_population_optimum']:.3g} "
                          f"(n_pairs = {summary['n_pairs']})")
+        lines.append(reached_line(summary))
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
 

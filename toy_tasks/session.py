@@ -19,8 +19,10 @@ import torch
 from polopt.losses import Loss
 from polopt.policies import build_policy
 from polopt.train import PairSet, TrainResult
+from polopt.verdict import REACHED_TOLERANCE, reached_line, reached_optimum
 from toy_tasks.finite import FiniteTask, total_variation
-from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
+from toy_tasks.pair_solve import exact_optimum, objective_value
+from toy_tasks.solve import Optimum, smoothed_weights
 
 MODES = ("exact", "sampled")
 DTYPE = torch.float64  # finite tasks are small: train them in double precision
@@ -82,7 +84,7 @@ class FiniteSession:
         """The finite-task fields of summary.json (DESIGN.md's contract, plus diagnostics)."""
         h = self.logratios(policy)
         pi = self.task.policy_from_logratios(h)
-        value = population_loss(self.loss, self.weights, h, beta=self.beta)
+        value = self.objective_value(self.weights, h)
         opt = self.optimum
         summary = {
             "task": self.task.name,
@@ -106,13 +108,17 @@ class FiniteSession:
             "loss_gap": value - opt.value,
             "relative_loss_gap": (value - opt.value) / abs(opt.value) if opt.value else None,
             "kl_to_reference": self.task.kl_to_reference(pi),
+            "reached_optimum_tolerance": REACHED_TOLERANCE,
             "steps": result.steps,
             "seconds": result.seconds,
             "notes": list(opt.notes),
         }
+        summary["reached_optimum"] = reached_optimum(summary["tv_to_optimum"], optimum_finite=opt.finite,
+                                                     unique=opt.unique,
+                                                     relative_loss_gap=summary["relative_loss_gap"])
         if self.mode == "sampled":
             pop = self.population_optimum
-            pop_value = population_loss(self.loss, self.population_weights, h, beta=self.beta)
+            pop_value = self.objective_value(self.population_weights, h)
             summary.update({
                 "population_loss": pop_value,
                 "population_optimum": _per_prompt(self.task.policy_from_logratios(pop.aligned_to(h)))
@@ -140,6 +146,10 @@ class FiniteSession:
             summary["notes"].append(displacement)
         return summary
 
+    def objective_value(self, weights: np.ndarray, h: np.ndarray) -> float:
+        """The population loss of the trained objective (margin loss or pair objective) at log-ratios h."""
+        return objective_value(self.loss, weights, h, self.task.reference, self.task.lengths, beta=self.beta)
+
     def table(self, summary: dict) -> str:
         """The trained policy beside the reference and the exact optimum, as text."""
         lines = []
@@ -157,6 +167,7 @@ class FiniteSession:
         if "tv_to_population_optimum" in summary and summary["tv_to_population_optimum"] is not None:
             lines.append(f"tv_to_population_optimum {summary['tv_to_population_optimum']:.3g} "
                          f"(n_pairs = {summary['n_pairs']})")
+        lines.append(reached_line(summary))
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
 
@@ -239,7 +250,7 @@ def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0
     closed_ok = smoothing == 0.0
     trained = smoothed_weights(weights, smoothing)
     pop = smoothed_weights(population, smoothing)
-    extras = dict(rewards=task.rewards, sampling=task.sampling, preference=task.preference)
-    optimum = solve(loss, trained, beta=beta, population=mode == "exact" and closed_ok, **extras)
-    population_optimum = optimum if mode == "exact" else solve(loss, pop, beta=beta, population=closed_ok, **extras)
+    optimum = exact_optimum(loss, trained, task=task, beta=beta, population=mode == "exact" and closed_ok)
+    population_optimum = optimum if mode == "exact" else exact_optimum(loss, pop, task=task, beta=beta,
+                                                                       population=closed_ok)
     return FiniteSession(task, loss, beta, smoothing, mode, trained, pop, pairs, optimum, population_optimum)
