@@ -140,7 +140,10 @@ def test_wrong_shape_at_run_time_is_one_line():
 
 
 def test_non_finite_at_run_time_stops_with_one_line():
-    """1 / h_w is finite on the probe batch but infinite at the reference, where training starts."""
-    objective = objectives.resolve("user_losses:inverse_logratio")
+    """1 / h_w is infinite at the reference, where training starts; built by hand (no probe), the
+    trainer's own guard stops it with one line naming the step."""
+    from user_losses import inverse_logratio
+
+    objective = objectives.PairObjective("inverse_logratio", inverse_logratio, {}, "user-supplied")
     with pytest.raises(FloatingPointError, match=r"step 1: the loss is (nan|inf)"):
         trained_policy(objective, task_with_lengths(), steps=2)
