@@ -163,7 +163,7 @@ def _check(argv: list[str]) -> int:
 
     from polopt import check
     from polopt.app import json_ready
-    from polopt.train import OptimConfig
+    from polopt.optim import OptimConfig
 
     parser = argparse.ArgumentParser(
         prog="polopt check",
