@@ -16,8 +16,9 @@ import torch
 
 from polopt import losses, objectives
 from polopt.objective import batch_losses, reduce
+from polopt.optim import OptimConfig
 from polopt.pair_scores import PairScores
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 from toy_tasks.families import noisy_labels
 from toy_tasks.finite import total_variation
 from toy_tasks.session import prepare
@@ -59,8 +60,9 @@ def trained_policy(objective, task, *, beta=0.5, steps=2000, kind="tabular", mod
     """Train ``objective`` with the pairs of ``task`` (the pairs and weights do not depend on the loss)."""
     session = prepare(task, losses.get("logistic"), beta=beta, mode=mode, n_pairs=300, seed=0)
     policy = session.build_policy(kind=kind)
-    result = train(policy, session.pairs, objective, beta=beta, steps=steps, optim=OptimConfig(lr=lr),
-                   progress=False, log_every=max(steps // 10, 1), **kwargs)
+    result = train(policy, session.pairs, objective, TrainSettings(beta=beta, steps=steps, optim=OptimConfig(lr=lr),
+                                                                 progress=False, log_every=max(steps // 10, 1),
+                                                                 **kwargs))
     with torch.no_grad():
         return policy.log_distribution().exp().double().numpy(), result
 
@@ -127,8 +129,8 @@ def test_sampled_minibatches_lower_the_objective_over_all_pairs():
             return float(reduce(batch_losses(objective, p, *logp.chunk(2), beta=0.5), p.weight))
 
     before = full_objective()
-    result = train(policy, session.pairs, objective, beta=0.5, steps=300, batch_size=32, optim=OptimConfig(lr=0.05),
-                   progress=False)
+    result = train(policy, session.pairs, objective, TrainSettings(beta=0.5, steps=300, batch_size=32,
+                                                                 optim=OptimConfig(lr=0.05), progress=False))
     assert result.steps == 300 and full_objective() < before - 0.01
 
 
