@@ -149,3 +149,15 @@ def test_non_finite_at_run_time_stops_with_one_line():
     objective = objectives.PairObjective("inverse_logratio", inverse_logratio, {}, "user-supplied")
     with pytest.raises(FloatingPointError, match=r"step 1: the loss is (nan|inf)"):
         trained_policy(objective, task_with_lengths(), steps=2)
+
+
+def test_finite_pairs_carry_the_task_lengths_and_none_without():
+    """Lengths travel with each pair (winner's and loser's, from the task's (X, K) lengths); a task
+    without lengths (1 each) leaves them None, so its checkpoints' fingerprints are unchanged."""
+    task = task_with_lengths()
+    pairs = prepare(task, losses.get("logistic"), beta=0.5).pairs
+    lengths = torch.as_tensor(task.lengths[0])
+    assert torch.equal(pairs.len_winner, lengths[pairs.winner]) and torch.equal(pairs.len_loser, lengths[pairs.loser])
+    assert prepare(noisy_labels(n_responses=4), losses.get("logistic"), beta=0.5).pairs.len_winner is None
+    batch = pairs.select(torch.tensor([2, 0]))
+    assert batch.len_winner.tolist() == [pairs.len_winner[2].item(), pairs.len_winner[0].item()]
