@@ -162,8 +162,8 @@ def _check(argv: list[str]) -> int:
     import textwrap
 
     from polopt import check
-    from polopt.app import json_ready
     from polopt.optim import OptimConfig
+    from polopt.run_folder import json_ready
 
     parser = argparse.ArgumentParser(
         prog="polopt check",
