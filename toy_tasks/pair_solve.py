@@ -50,6 +50,8 @@ Tensor = torch.Tensor
 PairObjective = Callable[[PairScores, float], Tensor]
 
 GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
+CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
+CERTIFIED = 1e-7  # an answer whose gradient is larger is reported as not certified
 DENSE_LIMIT = 128  # above this many responses per prompt, Hessian-vector products instead of the Hessian
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
@@ -58,9 +60,18 @@ BOUNDARY_ROUNDS = 4  # continuations along the ray before the infimum is reporte
 VANISHED_DROP = 2.0  # a response whose log-probability fell by more than this while continuing has no mass in the limit
 
 
+def margin_of(objective) -> Loss | None:
+    """The margin loss f behind ``objective`` (a :class:`polopt.losses.Loss`, or a pair objective
+    made from one by :func:`polopt.objectives.from_margin`), else None."""
+    if isinstance(objective, Loss):
+        return objective
+    margin = getattr(objective, "margin", None)
+    return margin if isinstance(margin, Loss) else None
+
+
 def is_margin_loss(objective) -> bool:
-    """Whether ``objective`` is a margin loss f of :mod:`polopt.losses` (solved by :mod:`toy_tasks.solve`)."""
-    return isinstance(objective, Loss)
+    """Whether ``objective`` is a margin loss f (solved by :mod:`toy_tasks.solve`)."""
+    return margin_of(objective) is not None
 
 
 def margin_objective(loss: Loss | Callable[[Tensor], Tensor]) -> PairObjective:
@@ -105,8 +116,9 @@ def pair_population_loss(objective: PairObjective, weights: np.ndarray, policy: 
 def objective_value(objective, weights: np.ndarray, h: np.ndarray, reference: np.ndarray, lengths: np.ndarray,
                     *, beta: float) -> float:
     """The population loss at log-ratios h (X, K) for a margin loss or a pair objective alike."""
-    if is_margin_loss(objective):
-        return population_loss(objective, weights, h, beta=beta)
+    margin = margin_of(objective)
+    if margin is not None:
+        return population_loss(margin, weights, h, beta=beta)
     policy = scipy.special.softmax(np.log(reference) + h, axis=1)
     return pair_population_loss(objective, weights, policy, reference, lengths, beta=beta)
 
@@ -262,20 +274,55 @@ def divergence_optimum(ratio_link: Callable[[Tensor], Tensor], reference: np.nda
         return scipy.optimize.brentq(lambda t: link(t) - target, low_t, high_t, xtol=1e-14, rtol=1e-15)
 
     s = np.asarray(rewards, dtype=np.float64) / beta
-    mass = lambda c: float(np.sum(reference * np.exp([log_ratio(v + c) for v in s])))  # noqa: E731
-    c_lo, c_hi = low - s.min(), high - s.max()  # every target inside the range of f'
-    if not c_lo < c_hi or not mass(c_lo) < 1.0 < mass(c_hi):
-        return None
-    c = scipy.optimize.brentq(lambda c: mass(c) - 1.0, c_lo, c_hi, xtol=1e-15, rtol=4 * np.finfo(float).eps)
-    t = np.array([log_ratio(v + c) for v in s])
+    # c found through the top response's log-ratio t_top in [-60, 60] (c = f'(e^t_top) - max s): the mass
+    # grows with t_top from below 1 (every ratio at e^-60) to above 1 (the top one at e^60)
+    ratios = lambda t_top: np.array([log_ratio(v + link(t_top) - s.max()) for v in s])  # noqa: E731
+    t_top = scipy.optimize.brentq(lambda t: float(np.sum(reference * np.exp(ratios(t)))) - 1.0, low_t, high_t,
+                                  xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=500)
+    t = ratios(t_top)
     if np.any(t <= low_t) or np.any(t >= high_t):
         return None
     pi = reference * np.exp(t)
     return pi / pi.sum()
 
 
+def _alpha_link(u: Tensor, alpha: float = 0.5) -> Tensor:
+    return (1.0 - u ** (-alpha)) / alpha
+
+
+def _chi_link(u: Tensor, clip: float | None = None) -> Tensor | None:
+    return None if clip is not None else u + torch.log(u)
+
+
+# f' of the registered divergence-family members (polopt.pair_objectives), by function name; each
+# takes the member's keyword parameters. chi-PO's link u + log u (Huang et al. 2024) is the same
+# family; its clipped form is not (the closed form holds only without clipping).
+RATIO_LINKS: dict[str, Callable[..., Tensor | None]] = {
+    "divergence_reverse_kl": lambda u: torch.log(u) + 1.0,  # f(u) = u log u
+    "divergence_forward_kl": lambda u: -1.0 / u,  # f(u) = -log u
+    "divergence_jensen_shannon": lambda u: torch.log(2.0 * u / (1.0 + u)),  # f(u) = u log u - (1+u) log((1+u)/2)
+    "divergence_alpha": _alpha_link,
+    "chi_squared_link": _chi_link,
+}
+
+
+def ratio_link(objective) -> Callable[[Tensor], Tensor] | None:
+    """The objective's f' as a function of u = pi / pi_ref, where it belongs to the divergence family:
+    its own ``ratio_link`` attribute, or the link of a registered member; else None."""
+    own = getattr(objective, "ratio_link", None)
+    if own is not None:
+        return own
+    fn, params = getattr(objective, "fn", None), getattr(objective, "params", {})
+    link = RATIO_LINKS.get(getattr(fn, "__name__", ""))
+    if link is None or getattr(fn, "__module__", "") != "polopt.pair_objectives":
+        return None
+    if link(torch.ones(1, dtype=torch.float64), **params) is None:
+        return None
+    return lambda u: link(u, **params)
+
+
 def _closed_form(objective, weights, reference, rewards, beta, population) -> np.ndarray | None:
-    link = getattr(objective, "ratio_link", None)
+    link = ratio_link(objective)
     if link is None or rewards is None or not population:
         return None
     if not np.all(weights + np.swapaxes(weights, 1, 2) + np.eye(weights.shape[1]) > 0):
@@ -307,13 +354,22 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     weights, reference, lengths = (np.asarray(a, dtype=np.float64) for a in (weights, reference, lengths))
     n_prompts, k = reference.shape
     log_ref = np.log(reference)
+    problems = [_Prompt(objective, weights[x], log_ref[x], lengths[x], beta) for x in range(n_prompts)]
+    components = [np.zeros(k, dtype=int)] * n_prompts
     closed = _closed_form(objective, weights, reference, rewards, beta, population)
+    if closed is not None:  # used where its certificate holds
+        residual = max(float(np.abs(p.grad(np.log(closed[x]))).max()) for x, p in enumerate(problems))
+        if residual <= CLOSED_FORM_TOLERANCE:
+            h = np.log(closed) - log_ref
+            value = sum(p.value(np.log(closed[x])) for x, p in enumerate(problems))
+            return Optimum(True, h - h.mean(axis=1, keepdims=True), value,
+                           "closed form f'(pi / pi_ref) = r / beta + c (Wang et al. 2023), certified by its residual",
+                           residual, True, None, components)
     z = np.zeros((n_prompts, k))
     value, residual, finite, unique, support, notes = 0.0, 0.0, True, True, [], []
-    for x in range(n_prompts):
-        problem = _Prompt(objective, weights[x], log_ref[x], lengths[x], beta)
-        runs = [_solve_prompt(problem, z0) for z0 in _starts(log_ref[x], starts if k <= DENSE_LIMIT else 2,
-                                                             seed + x)]
+    n_starts = starts if k <= DENSE_LIMIT else min(starts, 2)
+    for x, problem in enumerate(problems):
+        runs = [_solve_prompt(problem, z0) for z0 in _starts(log_ref[x], n_starts, seed + x)]
         best = min(runs, key=lambda r: r["value"])
         value += best["value"]
         z[x], residual = best["z"], max(residual, best["residual"])
@@ -323,23 +379,17 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     if not finite:
         return Optimum(False, None, value, "no finite optimum: the infimum lies on the simplex's boundary "
                        "(trust-region Newton in the softmax logits, continued along the descent ray)",
-                       residual, False, support, [np.zeros(k, dtype=int)] * n_prompts,
+                       residual, False, support, components,
                        notes + [f"{_name(objective)}: some responses' probabilities fall to 0 in the limit; "
                                 f"'limit_support' lists, per prompt, the responses that keep mass"])
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
     scheme = "trust-exact" if k <= DENSE_LIMIT else "trust-krylov"
     method = (f"trust-region Newton in the softmax logits (scipy {scheme}, torch autograd float64), "
-              f"{starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
-    if closed is not None:
-        h_closed = np.log(closed) - log_ref
-        problem_residual = max(float(np.abs(_Prompt(objective, weights[x], log_ref[x], lengths[x], beta).grad(
-            np.log(closed[x]))).max()) for x in range(n_prompts))
-        h, residual = h_closed, problem_residual
-        value = sum(_Prompt(objective, weights[x], log_ref[x], lengths[x], beta).value(np.log(closed[x]))
-                    for x in range(n_prompts))
-        method = "closed form f'(pi / pi_ref) = r / beta + c (Wang et al. 2023), certified by its residual"
-    h = h - h.mean(axis=1, keepdims=True)
-    return Optimum(True, h, value, method, residual, unique, None, [np.zeros(k, dtype=int)] * n_prompts, notes)
+              f"{n_starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
+    if residual > CERTIFIED:
+        notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
+                     "may not be differentiable there (a max(0, .) term), or the solve stopped early")
+    return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes)
 
 
 def _agree(runs: list[dict], best: dict, notes: list[str], x: int) -> bool:
@@ -362,8 +412,9 @@ def exact_optimum(objective, weights: np.ndarray, *, task, beta: float, populati
     """The optimum of ``objective`` (a margin loss or a pair objective) on ``task``'s win weights
     ``weights``: margin losses through :func:`toy_tasks.solve.solve`, unchanged; pair objectives
     through :func:`solve_pairs`."""
-    if is_margin_loss(objective):
-        return solve(objective, weights, beta=beta, rewards=task.rewards, sampling=task.sampling,
+    margin = margin_of(objective)
+    if margin is not None:
+        return solve(margin, weights, beta=beta, rewards=task.rewards, sampling=task.sampling,
                      preference=task.preference, population=population)
     return solve_pairs(objective, weights, task.reference, task.lengths, beta=beta, rewards=task.rewards,
                        population=population)
