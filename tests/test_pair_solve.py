@@ -255,3 +255,44 @@ def test_registered_divergences_use_their_closed_form(name):
     assert optimum.method.startswith("closed form") and optimum.residual <= 1e-9
     offset = links[name](reported_policy(optimum, task) / task.reference) - task.rewards / beta
     np.testing.assert_allclose(offset - offset[:, :1], 0.0, atol=1e-8)
+
+
+def dpop_by_slsqp(task, beta: float, penalty: float) -> np.ndarray:
+    """DPO-Positive's optimum by an independent route: the kink max(0, -h_w) becomes a variable s >= 0,
+    s >= -h (an epigraph; the loss grows with s, so s = max(0, -h) at the optimum), and the simplex is
+    the constraint sum_i pi_ref,i e^{h_i} = 1; scipy's SLSQP on this smooth problem, prompt by prompt."""
+    return np.stack([_dpop_prompt(task.win_weights()[x], task.reference[x], beta, penalty)
+                     for x in range(task.n_prompts)])
+
+
+def _dpop_prompt(weights: np.ndarray, ref: np.ndarray, beta: float, penalty: float) -> np.ndarray:
+    w, k = torch.as_tensor(weights), len(ref)
+
+    def loss(v):
+        v = torch.as_tensor(v, dtype=torch.float64).requires_grad_(True)
+        h, s = v[:k], v[k:]
+        margin = h[:, None] - h[None, :] - penalty * s[:, None]  # (K, K): winner i, loser j
+        value = (w * torch.nn.functional.softplus(-beta * margin)).sum()
+        (g,) = torch.autograd.grad(value, v)
+        return float(value.detach()), g.numpy()
+
+    constraints = [{"type": "eq", "fun": lambda v: ref @ np.exp(v[:k]) - 1.0,
+                    "jac": lambda v: np.concatenate([ref * np.exp(v[:k]), np.zeros(k)])},
+                   {"type": "ineq", "fun": lambda v: v[k:] + v[:k],
+                    "jac": lambda v: np.hstack([np.eye(k), np.eye(k)])}]
+    result = scipy.optimize.minimize(loss, np.zeros(2 * k), jac=True, method="SLSQP", constraints=constraints,
+                                     bounds=[(None, None)] * k + [(0.0, None)] * k,
+                                     options={"ftol": 1e-16, "maxiter": 2000})
+    return ref * np.exp(result.x[:k]) / (ref @ np.exp(result.x[:k]))
+
+
+@pytest.mark.parametrize(("penalty", "seed"), [(50.0, 0), (2.0, 1), (2.0, 2), (0.5, 3)])
+def test_winner_anchored_optimum_at_its_kink(penalty, seed):
+    # Pal et al. 2024 (DPO-Positive): the anchor max(0, -h_w) has a kink at the reference, where the
+    # optimum often sits; no gradient vanishes there, so the certificate is the steepest descent over
+    # every transfer of mass between two responses (one-sided slopes), checked against SLSQP here
+    task, beta = random_task(seed, bradley_terry=seed % 2 == 0), 0.7
+    objective = objectives.resolve("winner_anchored", penalty=penalty)
+    optimum = solve_pairs(objective, task.win_weights(), task.reference, task.lengths, beta=beta)
+    assert optimum.finite and optimum.residual <= 1e-7
+    np.testing.assert_allclose(reported_policy(optimum, task), dpop_by_slsqp(task, beta, penalty), atol=1e-6)

@@ -52,6 +52,8 @@ PairObjective = Callable[[PairScores, float], Tensor]
 GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
 CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
 CERTIFIED = 1e-7  # an answer whose gradient is larger is reported as not certified
+KINK_BAND = 1e-4  # log-ratios this close to 0 are taken to sit at an anchor term's kink
+MAX_ITERATIONS = 300  # trust-region iterations per solve: smooth problems need tens; a kink would take them all
 DENSE_LIMIT = 128  # above this many responses per prompt, Hessian-vector products instead of the Hessian
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
@@ -143,6 +145,12 @@ class _Prompt:
         with torch.no_grad():
             return float(self.loss(torch.as_tensor(z, dtype=torch.float64)))
 
+    def value_at(self, log_pi: np.ndarray) -> float:
+        """L at the policy of log-probabilities ``log_pi`` (K,) itself."""
+        with torch.no_grad():
+            return float(_pair_terms(self.objective, self.w, torch.as_tensor(log_pi, dtype=torch.float64),
+                                     self.log_ref, self.lengths, self.beta))
+
     def grad(self, z: np.ndarray) -> np.ndarray:
         zt = torch.as_tensor(z, dtype=torch.float64).requires_grad_(True)
         (g,) = torch.autograd.grad(self.loss(zt), zt)
@@ -173,7 +181,7 @@ def _minimise(problem: _Prompt, z0: np.ndarray) -> np.ndarray:
     else:
         kwargs = dict(hessp=problem.hessp, method="trust-krylov")
     result = scipy.optimize.minimize(problem.fun, z0 - z0.mean(), jac=True,
-                                     options={"gtol": GRADIENT_TOLERANCE, "maxiter": 1000}, **kwargs)
+                                     options={"gtol": GRADIENT_TOLERANCE, "maxiter": MAX_ITERATIONS}, **kwargs)
     z = result.x
     for _ in range(5):  # polish with plain Newton steps: trust-region methods may stop a little above gtol
         gradient = np.abs(problem.fun(z)[1]).max()
@@ -240,10 +248,91 @@ def _solve_prompt(problem: _Prompt, z0: np.ndarray) -> dict:
     log_pi = torch.log_softmax(torch.as_tensor(z), 0).numpy()
     out = {"z": z, "value": problem.value(z), "residual": float(np.abs(problem.grad(z)).max()),
            "finite": not on_boundary, "support": None}
+    if not on_boundary and out["residual"] > CERTIFIED:  # a kink: no gradient vanishes there
+        kinked = _kinked(problem, z)
+        if kinked is not None and kinked["value"] <= out["value"] + 1e-12 * (1.0 + abs(out["value"])):
+            return kinked
     if on_boundary:
         kept = (log_pi > first - VANISHED_DROP) & (log_pi > np.log(1e-12))
         out["support"] = [int(i) for i in np.flatnonzero(kept)] or [int(np.argmax(log_pi))]
     return out
+
+
+# ------------------------------------------------------------------ kinks at the reference
+
+
+class _Pinned(_Prompt):
+    """The prompt's L with the responses of ``pinned`` held at their reference probability (log-ratio
+    0, where anchor terms such as max(0, -h_w) have their kink); the others share the remaining mass
+    as a softmax of their own logits y."""
+
+    def __init__(self, base: _Prompt, pinned: np.ndarray):
+        self.__dict__.update(base.__dict__)
+        self.pinned = torch.as_tensor(pinned)
+        self.rest = float(torch.log1p(-self.log_ref[self.pinned].exp().sum()))  # log of the unpinned mass
+
+    def log_policy(self, y: Tensor) -> Tensor:
+        log_pi = self.log_ref.clone()
+        log_pi[~self.pinned] = self.rest + torch.log_softmax(y, dim=0)
+        return log_pi  # (K,)
+
+    def loss(self, y: Tensor) -> Tensor:
+        return _pair_terms(self.objective, self.w, self.log_policy(y), self.log_ref, self.lengths, self.beta)
+
+
+def _transfer_slopes(problem: _Prompt, log_pi: np.ndarray, step: float = 1e-6) -> np.ndarray:
+    """One-sided derivatives (K, K) of L when mass ``t pi_j`` moves from response j to response i,
+    by Richardson-extrapolated forward differences (error O(step^2)); the diagonal is 0."""
+    pi = np.exp(log_pi)
+    base = problem.value_at(log_pi)
+
+    def slope(i, j, t):
+        moved = pi.copy()
+        moved[i], moved[j] = pi[i] + t * pi[j], pi[j] * (1.0 - t)
+        return (problem.value_at(np.log(moved)) - base) / t
+
+    k = len(pi)
+    out = np.zeros((k, k))
+    for i in range(k):
+        for j in range(k):
+            if i != j:
+                out[i, j] = 2.0 * slope(i, j, step / 2) - slope(i, j, step)
+    return out
+
+
+def _kinked(problem: _Prompt, z: np.ndarray) -> dict | None:
+    """Where Newton stopped with a large gradient next to log-ratios of 0: an active-set solve with
+    those responses pinned at the reference, releasing any pinned response that a transfer of mass
+    can still improve. Returns the answer with its certificate (the largest of the free gradient and
+    the steepest descent over all transfers of mass), or None when it does not certify."""
+    h = torch.log_softmax(torch.as_tensor(z), 0).numpy() - problem.log_ref.numpy()
+    pinned = np.abs(h) < KINK_BAND
+    for _ in range(3 * len(z)):
+        if pinned.all():
+            log_pi, free_gradient = problem.log_ref.numpy(), 0.0
+        else:
+            reduced = _Pinned(problem, pinned)
+            y = _minimise(reduced, h[~pinned] + problem.log_ref.numpy()[~pinned])
+            with torch.no_grad():
+                log_pi = reduced.log_policy(torch.as_tensor(y)).numpy()
+            free_gradient = float(np.abs(reduced.grad(y)).max())
+        h = log_pi - problem.log_ref.numpy()
+        landed = ~pinned & (np.abs(h) < KINK_BAND)  # free responses that stopped at a kink of their own
+        if free_gradient > CERTIFIED and landed.any():
+            pinned |= landed
+            continue
+        slopes = _transfer_slopes(problem, log_pi)
+        descent = -min(0.0, slopes.min())
+        if descent <= CERTIFIED and free_gradient <= CERTIFIED:
+            z_out = log_pi - log_pi.mean()
+            return {"z": z_out, "value": problem.value(z_out), "residual": max(free_gradient, descent),
+                    "finite": True, "support": None}
+        i, j = np.unravel_index(int(slopes.argmin()), slopes.shape)  # the steepest transfer: j -> i
+        if not (pinned[i] or pinned[j]):
+            return None
+        pinned[i] = pinned[j] = False
+        h[i], h[j] = h[i] + 10 * KINK_BAND, h[j] - 10 * KINK_BAND  # start off the kink, on the descent side
+    return None
 
 
 def _starts(log_ref: np.ndarray, n: int, seed: int) -> list[np.ndarray]:
@@ -370,6 +459,8 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     n_starts = starts if k <= DENSE_LIMIT else min(starts, 2)
     for x, problem in enumerate(problems):
         runs = [_solve_prompt(problem, z0) for z0 in _starts(log_ref[x], n_starts, seed + x)]
+        certified = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
+        runs = certified
         best = min(runs, key=lambda r: r["value"])
         value += best["value"]
         z[x], residual = best["z"], max(residual, best["residual"])
