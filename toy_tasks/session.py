@@ -21,6 +21,7 @@ from polopt.policies import build_policy
 from polopt.train import PairSet, TrainResult
 from polopt.verdict import REACHED_TOLERANCE, reached_line, reached_optimum
 from toy_tasks.finite import FiniteTask, total_variation
+from toy_tasks.optimum_traits import traits
 from toy_tasks.pair_solve import exact_optimum, objective_value
 from toy_tasks.solve import Optimum, smoothed_weights
 
@@ -113,6 +114,7 @@ class FiniteSession:
             "seconds": result.seconds,
             "notes": list(opt.notes),
         }
+        summary.update(traits(self.task, self.weights, opt.logratios if opt.finite else None))
         summary["reached_optimum"] = reached_optimum(summary["tv_to_optimum"], optimum_finite=opt.finite,
                                                      unique=opt.unique,
                                                      relative_loss_gap=summary["relative_loss_gap"])
