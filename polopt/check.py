@@ -44,9 +44,10 @@ import numpy as np
 import scipy.optimize
 import torch
 
-from polopt import losses
+from polopt import losses, objectives
 from polopt.losses import Loss
 from polopt.objective import margins
+from polopt.objectives import PairObjective
 from polopt.train import OptimConfig, train
 
 Tensor = torch.Tensor
@@ -108,14 +109,21 @@ class Report:
 # ----------------------------------------------------------------------------
 
 
-def as_loss(loss: Loss | str | Callable[..., Tensor], **params) -> Loss:
-    """A :class:`Loss` from a Loss, a registered name / dotted path, or a bare callable."""
+def as_loss(loss: Loss | PairObjective | str | Callable[..., Tensor], **params) -> Loss | PairObjective:
+    """A :class:`Loss` (margin) or :class:`polopt.objectives.PairObjective` from either, a registered
+    name / dotted path, or a bare callable (told apart by its signature: f(x) or f(pair, beta))."""
     if isinstance(loss, Loss):
         return losses.get(loss.name, **params) if params else loss
+    if isinstance(loss, PairObjective):
+        return objectives.resolve(loss.name, **params) if params else loss
     if isinstance(loss, str):
-        return losses.get(loss, **params)
+        return objectives.resolve(loss, **params)
     if callable(loss):
         name = getattr(loss, "__name__", type(loss).__name__)
+        if objectives.kind_of(loss, name) == "pair":
+            objective = PairObjective(name, loss, dict(params), "user-supplied")
+            objectives.validate(objective)
+            return objective
         return Loss(name, loss, dict(params), None, "user-supplied", None)
     raise TypeError(f"loss must be a polopt Loss, a registered name, a dotted path or a callable f(x), "
                     f"got {type(loss).__name__}")
@@ -666,16 +674,24 @@ def _guarded(name: str, fn: Callable[[], CheckResult]) -> CheckResult:
         return CheckResult(name, "fail", f"could not run: {type(err).__name__}: {err}", {"error": str(err)})
 
 
-def run_checks(loss: Loss | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
+def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
                steps: int = 2000, optim: OptimConfig | None = None, tol: float = 1e-3,
-               progress: bool | None = False, params: dict | None = None) -> Report:
+               progress: bool | None = False, params: dict | None = None, noisy_task=None) -> Report:
     """Every check of the module docstring; the population checks on ``tasks``
     (objects with ``prepare``, or ``(name, task)`` pairs). When f is not elementwise
     the other checks are skipped: f of a single margin is then not defined.
+    A pair objective gets the checks of :mod:`polopt.pair_check` (``noisy_task``: the finite task
+    whose exact optimum's finiteness it reports).
     ``progress``: a tqdm bar over the checks (None: only on a terminal)."""
     from tqdm.auto import tqdm
 
     loss = as_loss(loss, **(params or {}))
+    if isinstance(loss, PairObjective) and loss.margin is None:
+        from polopt.pair_check import run_pair_checks  # builds on this module
+
+        return run_pair_checks(loss, beta=beta, tasks=tasks, noisy_task=noisy_task, steps=steps, optim=optim,
+                               tol=tol)
+    loss = loss.margin if isinstance(loss, PairObjective) else loss
     checks: list[tuple[str, Callable[[], CheckResult]]] = [
         ("finite", lambda: check_finite(loss)), ("signal", lambda: check_signal(loss)),
         ("convexity", lambda: check_convexity(loss)), ("taylor", lambda: check_taylor(loss, beta=beta)),

@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import functools
 import inspect
-import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
@@ -222,22 +221,25 @@ def check_values(name: str, values, n_pairs: int) -> None:
 
 
 def validate(objective: PairObjective, beta: float = 0.5) -> None:
-    """Call ``objective`` on :func:`probe_pair`: a ValueError (one line) unless it returns finite
-    losses of shape (4,)."""
-    pair = probe_pair()
-    try:
-        values = objective(pair, beta)
-    except (ValueError, TypeError):
-        raise
-    except Exception as err:  # a user's function can fail in any way; say which and where
-        raise ValueError(f"loss {objective.name!r} failed on a probe batch of 4 pairs: "
-                         f"{type(err).__name__}: {err}") from err
-    check_values(objective.name, values, len(pair.winner))
-    bad = [k for k, v in enumerate(values.detach().tolist()) if not math.isfinite(v)]
-    if bad:
-        raise ValueError(f"loss {objective.name!r} returned non-finite values {values.detach().tolist()} on a probe "
-                         f"batch of 4 ordinary pairs (winner log-probs {pair.winner.tolist()}); it must be finite for "
-                         "any log-probabilities and lengths")
+    """Call ``objective`` on :func:`probe_pair`, and on the same pairs at the reference (policy =
+    reference, where training starts): a ValueError (one line) unless it returns finite losses of
+    shape (4,) on both."""
+    probe = probe_pair()
+    at_reference = PairScores(probe.ref_winner, probe.ref_loser, probe.ref_winner, probe.ref_loser,
+                              probe.len_winner, probe.len_loser)
+    for where, pair in (("a probe batch of 4 ordinary pairs", probe),
+                        ("the same 4 pairs at the reference (every log-ratio 0, where training starts)",
+                         at_reference)):
+        try:
+            values = objective(pair, beta)
+        except (ValueError, TypeError):
+            raise
+        except Exception as err:  # a user's function can fail in any way; say which and where
+            raise ValueError(f"loss {objective.name!r} failed on {where}: {type(err).__name__}: {err}") from err
+        check_values(objective.name, values, len(pair.winner))
+        if not torch.isfinite(values.detach()).all():
+            raise ValueError(f"loss {objective.name!r} returned non-finite values {values.detach().tolist()} on "
+                             f"{where}; it must be finite for any log-probabilities and lengths")
 
 
 # ----------------------------------------------------------------------------

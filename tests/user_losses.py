@@ -13,10 +13,11 @@ def sqrt_abs(x):
 
 
 def anchored_squared(pair, beta, *, weight=1.0):
-    """IPO's squared loss of the margin plus ``weight * max(0, -h_w)``: a pair objective (two
-    positional arguments) with one keyword parameter."""
+    """IPO's squared loss of the margin plus ``weight * h_w^2``, an anchor on the winner's log-ratio:
+    a pair objective (two positional arguments) with one keyword parameter; smooth and convex in
+    the log-ratios."""
     rho = pair.logratio_winner - pair.logratio_loser
-    return (beta * rho - 1.0) ** 2 + weight * torch.relu(-pair.logratio_winner)
+    return (beta * rho - 1.0) ** 2 + weight * pair.logratio_winner ** 2
 
 
 def three_arguments(pair, beta, gamma):
