@@ -248,7 +248,7 @@ def _solve_prompt(problem: _Prompt, z0: np.ndarray) -> dict:
     log_pi = torch.log_softmax(torch.as_tensor(z), 0).numpy()
     out = {"z": z, "value": problem.value(z), "residual": float(np.abs(problem.grad(z)).max()),
            "finite": not on_boundary, "support": None}
-    if not on_boundary and out["residual"] > CERTIFIED:  # a kink: no gradient vanishes there
+    if not on_boundary and out["residual"] > CERTIFIED and len(z) <= DENSE_LIMIT:  # a kink: no gradient vanishes
         kinked = _kinked(problem, z)
         if kinked is not None and kinked["value"] <= out["value"] + 1e-12 * (1.0 + abs(out["value"])):
             return kinked
