@@ -14,7 +14,8 @@ import time
 import torch
 
 from polopt import objectives
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 from toy_tasks.sequences import sequence_task
 
 TASK = dict(n_symbols=3, max_length=3, n_prompts=2, reference_width=16, reference_layers=1, reference_heads=2,
@@ -40,8 +41,9 @@ def main() -> None:
         policy = session.build_policy(**MODEL, init="reference")
         start = session.evaluate(policy).get("tv_to_optimum")
         began = time.perf_counter()
-        result = train(policy, session.pairs, objective, beta=0.5, steps=args.steps, optim=OptimConfig(lr=args.lr),
-                       evaluate=session.evaluate, log_every=max(args.steps // 4, 1), progress=False)
+        settings = TrainSettings(beta=0.5, steps=args.steps, optim=OptimConfig(lr=args.lr),
+                                 log_every=max(args.steps // 4, 1), progress=False)
+        result = train(policy, session.pairs, objective, settings, evaluate=session.evaluate)
         tv = result.final.get("tv_to_optimum")
         print(f"{name:<26} finite optimum {session.finite.optimum.finite!s:<5}  TV start "
               f"{'-' if start is None else f'{start:.3f}'}  end {'-' if tv is None else f'{tv:.4f}'}  "

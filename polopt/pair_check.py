@@ -34,8 +34,8 @@ import torch
 
 from polopt.check import CheckResult, Report, _guarded, check_population
 from polopt.objectives import PairObjective, probe_pair
+from polopt.optim import OptimConfig
 from polopt.pair_scores import PairScores
-from polopt.train import OptimConfig
 
 Tensor = torch.Tensor
 

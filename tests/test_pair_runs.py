@@ -21,8 +21,9 @@ from hydra import compose, initialize_config_dir
 
 from polopt import objectives
 from polopt.commands.train import CONFIG_DIR, run
+from polopt.optim import OptimConfig
 from polopt.testing import assert_reaches_optimum, assert_sound_loss
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 from toy_tasks.families import noisy_labels
 from toy_tasks.sequences import sequence_task
 
@@ -139,8 +140,9 @@ def test_sequence_task_transformer_reaches_the_exact_optimum(small_sequence_task
     assert session.finite.optimum.finite
     assert len(set(session.finite.task.lengths[0].tolist())) > 1  # responses of different token counts
     policy = session.build_policy(**MODEL, init="reference")
-    result = train(policy, session.pairs, objective, beta=0.5, steps=300, optim=OptimConfig(lr=0.01),
-                   evaluate=session.evaluate, log_every=50, progress=False)
+    result = train(policy, session.pairs, objective, TrainSettings(beta=0.5, steps=300, optim=OptimConfig(lr=0.01),
+                                                                 log_every=50, progress=False),
+                   evaluate=session.evaluate)
     assert result.final["tv_to_optimum"] <= 0.05
 
 

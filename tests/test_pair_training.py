@@ -16,8 +16,9 @@ import torch
 
 from polopt import losses, objectives
 from polopt.objective import batch_losses, reduce
+from polopt.optim import OptimConfig
 from polopt.pair_scores import PairScores
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 from toy_tasks.families import noisy_labels
 from toy_tasks.finite import total_variation
 from toy_tasks.session import prepare
@@ -59,8 +60,9 @@ def trained_policy(objective, task, *, beta=0.5, steps=2000, kind="tabular", mod
     """Train ``objective`` with the pairs of ``task`` (the pairs and weights do not depend on the loss)."""
     session = prepare(task, losses.get("logistic"), beta=beta, mode=mode, n_pairs=300, seed=0)
     policy = session.build_policy(kind=kind)
-    result = train(policy, session.pairs, objective, beta=beta, steps=steps, optim=OptimConfig(lr=lr),
-                   progress=False, log_every=max(steps // 10, 1), **kwargs)
+    result = train(policy, session.pairs, objective, TrainSettings(beta=beta, steps=steps, optim=OptimConfig(lr=lr),
+                                                                 progress=False, log_every=max(steps // 10, 1),
+                                                                 **kwargs))
     with torch.no_grad():
         return policy.log_distribution().exp().double().numpy(), result
 
@@ -127,8 +129,8 @@ def test_sampled_minibatches_lower_the_objective_over_all_pairs():
             return float(reduce(batch_losses(objective, p, *logp.chunk(2), beta=0.5), p.weight))
 
     before = full_objective()
-    result = train(policy, session.pairs, objective, beta=0.5, steps=300, batch_size=32, optim=OptimConfig(lr=0.05),
-                   progress=False)
+    result = train(policy, session.pairs, objective, TrainSettings(beta=0.5, steps=300, batch_size=32,
+                                                                 optim=OptimConfig(lr=0.05), progress=False))
     assert result.steps == 300 and full_objective() < before - 0.01
 
 
@@ -147,3 +149,15 @@ def test_non_finite_at_run_time_stops_with_one_line():
     objective = objectives.PairObjective("inverse_logratio", inverse_logratio, {}, "user-supplied")
     with pytest.raises(FloatingPointError, match=r"step 1: the loss is (nan|inf)"):
         trained_policy(objective, task_with_lengths(), steps=2)
+
+
+def test_finite_pairs_carry_the_task_lengths_and_none_without():
+    """Lengths travel with each pair (winner's and loser's, from the task's (X, K) lengths); a task
+    without lengths (1 each) leaves them None, so its checkpoints' fingerprints are unchanged."""
+    task = task_with_lengths()
+    pairs = prepare(task, losses.get("logistic"), beta=0.5).pairs
+    lengths = torch.as_tensor(task.lengths[0])
+    assert torch.equal(pairs.len_winner, lengths[pairs.winner]) and torch.equal(pairs.len_loser, lengths[pairs.loser])
+    assert prepare(noisy_labels(n_responses=4), losses.get("logistic"), beta=0.5).pairs.len_winner is None
+    batch = pairs.select(torch.tensor([2, 0]))
+    assert batch.len_winner.tolist() == [pairs.len_winner[2].item(), pairs.len_winner[0].item()]

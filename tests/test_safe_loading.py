@@ -18,7 +18,15 @@ from polopt.commands.train import CONFIG_DIR, build_task
 from toy_tasks.finite import load_task
 
 ROOT = Path(__file__).resolve().parent.parent
-SOURCES = sorted([*ROOT.glob("polopt/*.py"), *ROOT.glob("toy_tasks/*.py")])
+SOURCES = sorted([*ROOT.glob("polopt/**/*.py"), *ROOT.glob("toy_tasks/**/*.py")])  # subpackages too
+
+
+def test_the_scan_reaches_every_module_of_the_subpackages():
+    names = {p.relative_to(ROOT).as_posix() for p in SOURCES}
+    assert {"polopt/data/read.py", "polopt/methods/rl.py", "polopt/checkpoint.py"} <= names
+    for package in ("polopt", "toy_tasks"):  # as many files as the file system holds, at any depth
+        assert len([p for p in SOURCES if p.parts[len(ROOT.parts)] == package]) == \
+            sum(1 for _ in (ROOT / package).rglob("*.py"))
 
 
 def _calls(path: Path):
@@ -46,7 +54,16 @@ def test_no_code_from_data(forbidden):
 def test_imports_by_name_only_for_the_dotted_loss_path():
     found = [f"{p.relative_to(ROOT)}" for p in SOURCES for _, name in _calls(p)
              if name in ("importlib.import_module", "import_module")]
-    assert found == ["polopt/losses.py"]
+    # the dotted loss path, and the dispatcher, which imports only the modules of its fixed table
+    assert sorted(found) == ["polopt/commands/main.py", "polopt/losses.py"]
+
+
+def test_the_dispatcher_imports_only_its_own_command_modules():
+    from polopt.commands import main
+
+    commands = ROOT / "polopt" / "commands"
+    for name, (module, _) in main.COMMANDS.items():
+        assert (commands / f"{module}.py").is_file(), name
 
 
 def _cfg(*overrides):
