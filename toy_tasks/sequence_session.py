@@ -32,6 +32,7 @@ from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
 from polopt.pair_set import PairSet, score_pairs
 from polopt.reference_cache import FILE_NAME, reference_logprobs
+from polopt.verdict import SEQUENCE_MODEL_TOLERANCE
 from toy_tasks.sequence_methods import SequenceMethodView
 from toy_tasks.sequence_policy import EnumeratedSequencePolicy
 from toy_tasks.session import FiniteSession
@@ -65,6 +66,8 @@ class SequenceSession:
             lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
                                   vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
             return EnumeratedSequencePolicy(lm.model, self.task)
+        if kind not in ("tabular", "loglinear"):  # a sequence model fits the enumerated distribution approximately
+            self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE
         if kind in ("tabular", "loglinear"):
             if self.finite.mode != "exact":
                 raise ValueError(f"model={kind} scores enumerated responses, not tokens: on task=sequence it "
