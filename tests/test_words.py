@@ -3,6 +3,7 @@
 Expected values are derived beside each check.
 """
 
+import pytest
 import torch
 
 from polopt.objective import batch_statistics
@@ -19,4 +20,4 @@ def test_pair_accuracy_counts_an_exact_tie_as_half():
 
 def test_a_policy_at_its_reference_has_pair_accuracy_one_half():
     rho = torch.zeros(6, dtype=torch.float64)  # every margin is 0 before the first step
-    assert batch_statistics(rho, rho, rho, None)["pair_accuracy"] == 0.5
+    assert batch_statistics(rho, rho, rho, None)["pair_accuracy"] == pytest.approx(0.5, abs=1e-15)

@@ -101,7 +101,7 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
     x, i, j = torch.nonzero(~torch.eye(k, dtype=torch.bool).expand(n_prompts, k, k), as_tuple=True)  # (E,) each
 
     def fixed_point(step: int) -> tuple[Tensor, dict]:
-        logp = policy.log_distribution()  # (X, K)
+        logp = policy.log_distribution().to(env.reference.dtype)  # (X, K); a transformer's float32 to float64
         divergence = best_response_divergence(logp, env.reference, env.preference, tau=beta / 2.0)  # (X,)
         with torch.no_grad():
             mu = logp.exp()
