@@ -59,8 +59,8 @@ class SequenceSession:
                      context: int = 16, seed: int = 0, init: str = "reference",
                      path: str | None = None) -> torch.nn.Module:
         """A sequence model over the task's vocabulary, wrapped to score enumerated responses
-        (``kind="hf"``: the transformers causal LM saved in ``path``, at its own weights)."""
-        if kind == "hf":
+        (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights)."""
+        if kind == "local_lm":
             from polopt.hf import causal_lm_policy  # the optional extra: imported only when asked for
 
             lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,

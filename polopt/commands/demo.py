@@ -168,7 +168,7 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
     pairs_path = write_pairs(out / "pairs.jsonl", pair_prompts, a, b, judge, rng)
     loss = losses.get(cfg.loss)
     # a sample cut mid-character decodes to U+FFFD (3 bytes): cut such rare long replies back to the context
-    task = pair_task(path=str(pairs_path), reference=str(reference_path), max_length=context - 1,
+    task = pair_task(path=str(pairs_path), reference_checkpoint=str(reference_path), max_length=context - 1,
                      truncation="truncate_response", duplicates="keep")  # repeated samples are data
     base = task.prepare(loss, beta=cfg.beta, run_dir=out)
     acc = base.data.accounting

@@ -88,7 +88,7 @@ _MISSING_HINTS = {
     "task.path": "task=file needs task.path=PATH to a JSON task file; task=pairs needs task.path=PATH to a pair "
                  "file (JSONL, CSV, Parquet or a saved dataset folder)",
     "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x))",
-    "model.path": "model=hf needs model.path=DIR, a local folder saved by a transformers causal LM",
+    "model.path": "model=local_lm needs model.path=DIR, a local folder saved by a transformers causal LM",
 }
 
 
