@@ -46,3 +46,31 @@ def test_compare_columns_are_the_summary_keys(tmp_path):
     assert header[1:] and set(header[1:]) <= set(summary)
     for r in result["rows"]:
         assert set(r) == set(COLUMNS)
+
+
+def test_the_flat_pair_objective_is_named_with_its_interval():
+    """A hinge written by hand (no closed form): at p = 1/2 the pair objective
+    (max(0, 1 - x) + max(0, 1 + x)) / 2 equals 1 for every x in [-1, 1] (by hand), so the check must say
+    the objective is flat there, with that interval, not print one number twice."""
+    from polopt.check import as_loss, check_pair_optimum
+
+    def hand_hinge(x):
+        return torch.clamp(1 - x, min=0)
+
+    result = check_pair_optimum(as_loss(hand_hinge))
+    assert result.status == "warn"
+    assert result.reason.startswith("the pair objective is flat at p = 0.5: every scaled margin from -1 to 1 "
+                                    "gives the same pair loss 1,")
+    assert result.facts["flat_at"] == {"p": 0.5, "margins": [-1.0, 1.0]}
+
+
+def test_check_rows_say_what_they_test():
+    from polopt.check import CHECK_TESTS, CheckResult, Report, format_report
+
+    report = Report("x", 0.5, [CheckResult(name, "pass", "ok") for name in CHECK_TESTS]
+                    + [CheckResult("population:nontransitive", "pass", "ok")])
+    rows = format_report(report, width=400).splitlines()[3:-2]
+    assert [row.split("PASS", 1)[1].strip() for row in rows] == [
+        *(f"{what}: ok" for what in CHECK_TESTS.values()),
+        "training reaches the exact optimum of task nontransitive: ok"]
+    assert report.to_dict()["checks"][2]["tests"] == "a larger margin lowers the loss (f'(0) < 0)"
