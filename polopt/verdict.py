@@ -33,13 +33,15 @@ def reached_optimum(tv_to_optimum: float | None, *, optimum_finite: bool | None,
 def likely_fix(losses: list[float]) -> str:
     """The most likely fix for a run that missed its optimum, from its logged loss curve.
 
-    Over the second half of the logged values: a loss that changes direction in at least a third of
-    its moves is oscillating (the step is too large: lower optim.lr); one still falling over the last
-    quarter by more than rounding (1e-9 relative) needed more steps (raise train.steps); one that
-    levelled off away from the optimum moved too little (raise optim.lr). Common practice for
+    Over the second half of the logged values (all of them when fewer than six): a loss that changes
+    direction in at least a third of its moves is oscillating (the step is too large: lower optim.lr);
+    one still falling over the last half of that stretch by more than rounding (1e-9 relative) needed
+    more steps (raise train.steps); one that levelled off away from the optimum moved too little
+    (raise optim.lr). Common practice for
     reading a loss curve; the thresholds are ours.
     """
-    tail = [float(v) for v in losses[len(losses) // 2:] if v == v]  # NaN-free second half
+    values = [float(v) for v in losses if v == v]  # NaN-free
+    tail = values[len(values) // 2:] if len(values) >= 6 else values  # the second half, or all of a short curve
     if len(tail) < 3:
         return "raise train.steps (too few logged steps to read the loss curve)"
     moves = [b - a for a, b in zip(tail[:-1], tail[1:], strict=True)]
