@@ -70,7 +70,9 @@ def test_experiments_agree_with_the_defaults_of_their_task(experiment, task):
     from_experiment = composed(f"+experiment={experiment}", "task.path=x.jsonl" if task == "pairs" else "beta=0.5")
     from_task = composed(f"task={task}", "task.path=x.jsonl" if task == "pairs" else "beta=0.5")
     assert from_experiment.model.kind == from_task.model.kind
-    assert from_experiment.optim == from_task.optim and from_experiment.train.steps == from_task.train.steps
+    assert from_experiment.optim == from_task.optim
+    if experiment == "sequence":  # the same run (the pairs experiment also sets a batch size and its steps)
+        assert from_experiment.train.steps == from_task.train.steps
 
 
 # ------------------------------------------------------------ convergence of the defaults
