@@ -173,7 +173,7 @@ def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight
     """:func:`polopt.objective.batch_statistics` over the global batch: the weighted sums of every rank
     added by one all_reduce, then divided by the global weight."""
     w = torch.ones_like(rho) if weight is None else weight.to(rho.dtype)  # (B_r,)
-    sums = torch.stack([(w * rho).sum(), (w * (rho > 0).to(rho.dtype)).sum(), (w * logratio_w).sum(),
+    sums = torch.stack([(w * rho).sum(), (w * (torch.sign(rho) + 1) / 2).sum(), (w * logratio_w).sum(),
                         (w * logratio_l).sum(), w.sum()])  # (5,)
     dist.all_reduce(sums)
     names = ("margin_mean", "pair_accuracy", "logratio_winner", "logratio_loser")

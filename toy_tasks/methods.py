@@ -33,6 +33,7 @@ from polopt.contracts import TrainResult
 from polopt.methods import METHODS
 from polopt.methods.environment import FiniteEnvironment
 from polopt.realign import equivalent_beta, realign
+from polopt.verdict import REACHED_TOLERANCE, verdict_fields
 from toy_tasks.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
 from toy_tasks.measures import per_prompt, total_variation
@@ -208,11 +209,12 @@ class MethodView:
                 f"the Nash equilibrium of the regularised preference game (tau = beta / 2 = {self.equilibrium.tau:g})"
                 f" is {self._format(self.equilibrium.policy)}; self-play ends at TV "
                 f"{summary['tv_to_equilibrium']:.2g} from it")
-            if self.target is not None and summary["tv_to_optimum"] > 1e-3:
+            if self.target is not None and summary["tv_to_optimum"] > 1e-3 and self.method.get("update") == "gradient":
                 summary["notes"].append(
-                    "self-play has not converged (TV > 1e-3): at small beta the game's cyclic part dominates "
-                    "its regularisation and gradient steps circle the equilibrium; lower optim.lr (roughly in "
-                    "proportion to beta) and raise train.steps")
+                    "gradient self-play has not converged (TV > 1e-3): at small beta the game's cyclic part "
+                    "dominates its regularisation and gradient steps circle the equilibrium; the default "
+                    "method.update=fixed_point does not (or lower optim.lr roughly in proportion to beta and raise "
+                    "train.steps)")
         elif name == "best_of_n":
             n = self.method.get("n", 4)
             kl_bon = scipy.special.rel_entr(self.target, pi).sum(1)
@@ -223,6 +225,8 @@ class MethodView:
             summary["notes"].append(
                 f"KL(best-of-{n} || reference) = {summary['best_of_n_kl_to_reference']:.4g} exactly; "
                 f"log n - (n-1)/n = {kl_formula(n):.4g} is an upper bound on a finite set (Beirami et al. 2024)")
+        summary.update(verdict_fields(summary, result.history,
+                                      tolerance=getattr(self.session, "tolerance", REACHED_TOLERANCE)))
         return summary
 
     def _format(self, p: np.ndarray) -> str:

@@ -19,6 +19,7 @@ from polopt.contracts import TrainResult
 from polopt.losses import Loss
 from polopt.pair_set import PairSet
 from polopt.policies import build_policy
+from polopt.verdict import REACHED_TOLERANCE, verdict_fields
 from toy_tasks.measures import displacement_warning, loss_gaps, margin_growth, per_prompt, total_variation
 from toy_tasks.methods import MethodView
 from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
@@ -41,6 +42,7 @@ class FiniteSession:
     optimum: Optimum  # of the trained objective
     population_optimum: Optimum  # of the population objective (the same object in exact mode)
     threads: int = 1  # the run's torch thread count unless the config sets `threads`
+    tolerance: float = REACHED_TOLERANCE  # TV within which reached_optimum is true (a sequence model's is wider)
 
     # ------------------------------------------------------------ model
 
@@ -111,6 +113,7 @@ class FiniteSession:
             "seconds": result.seconds,
             "notes": list(opt.notes),
         }
+        summary.update(verdict_fields(summary, result.history, tolerance=self.tolerance))
         if self.mode == "sampled":
             pop = self.population_optimum
             pop_value = population_loss(self.loss, self.population_weights, h, beta=self.beta)

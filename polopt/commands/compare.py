@@ -33,8 +33,9 @@ from pathlib import Path
 
 from polopt.methods import METHODS
 
-COLUMNS = ("run", "method", "loss", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
-           "tv_to_optimum", "tv_to_equilibrium", "steps", "seconds")
+# summary.json's own key names, so that the table, the CSV and the run folders say the same thing
+COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
+           "tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "steps", "seconds")
 SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not written out in the notes
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
@@ -80,6 +81,20 @@ def plan(overrides: list[str]) -> list[list[str]]:
     return runs
 
 
+def merge_notes(overrides: list[str]) -> list[str]:
+    """One note per method other than offline that a ``loss`` list was given to: it does not read the
+    ``loss`` group, so those combinations ran once (see :func:`plan`)."""
+    notes = []
+    combos = expand(overrides)
+    for method in dict.fromkeys(_value(c, "method") or "offline" for c in combos):
+        given = sorted({_value(c, "loss") for c in combos if (_value(c, "method") or "offline") == method} - {None})
+        if method != "offline" and len(given) > 1:
+            uses = "its own method.loss" if method == "selfplay" else "no preference loss"
+            notes.append(f"method={method} ignores the loss group (it trains with {uses}): its runs for "
+                         f"loss={','.join(given)} were merged into one")
+    return notes
+
+
 def label(summary: dict) -> str:
     method = summary.get("method", "offline")
     if method == "offline":
@@ -94,7 +109,7 @@ def label(summary: dict) -> str:
 def row(name: str, summary: dict) -> dict:
     method = summary.get("method", "offline")
     loss = summary.get("loss_name") if method == "offline" else summary.get("method_config", {}).get("loss")
-    return {"run": name, "method": method, "loss": loss, "beta": summary["beta"],
+    return {"run": name, "method": method, "loss_name": loss, "beta": summary["beta"],
             **{k: summary.get(k) for k in COLUMNS[4:]}}
 
 
@@ -114,7 +129,7 @@ def equilibrium_notes(rows: list[dict], summaries: list[dict]) -> list[str]:
                      f"(tau = beta / 2 = {beta / 2:g}) is {shown}; "
                      + (f"at it (TV <= {EQUILIBRIUM_TV:g}): {', '.join(at)}" if at else "no run ends at it"))
         for r, _ in members:
-            if r["method"] == "offline" and r["loss"] == "squared":
+            if r["method"] == "offline" and r["loss_name"] == "squared":
                 where = "also at the equilibrium" if r["tv_to_equilibrium"] <= EQUILIBRIUM_TV else "elsewhere"
                 notes.append(f"beta={beta:g}: {r['run']} ends {where}: TV {r['tv_to_equilibrium']:.3g} from the "
                              f"equilibrium, TV {_fmt(r['tv_to_optimum'])} from its own optimum "
@@ -127,16 +142,19 @@ def _fmt(value, spec: str = ".3g") -> str:
 
 
 def render(rows: list[dict], notes: list[str], task: str) -> str:
-    head = ["run", "beta", "kl_ref", "win_rate_ref", "reward", "tv_optimum", "tv_equilibrium", "steps", "seconds"]
+    head = ["run", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward", "tv_to_optimum",
+            "tv_to_equilibrium", "reached_optimum", "steps", "seconds"]
     body = [[r["run"], _fmt(r["beta"], "g"), _fmt(r["kl_to_reference"], ".4f"),
              _fmt(r["win_rate_over_reference"], ".4f"), _fmt(r["expected_reward"], ".4f"),
-             _fmt(r["tv_to_optimum"], ".2e"), _fmt(r["tv_to_equilibrium"], ".2e"), str(r["steps"]),
+             _fmt(r["tv_to_optimum"], ".2e"), _fmt(r["tv_to_equilibrium"], ".2e"),
+             "-" if r["reached_optimum"] is None else str(r["reached_optimum"]).lower(), str(r["steps"]),
              _fmt(r["seconds"], ".2f")] for r in rows]
     widths = [max(len(line[c]) for line in [head, *body]) for c in range(len(head))]
     lines = [f"task {task}"] + ["  ".join(cell.ljust(w) for cell, w in zip(line, widths, strict=True))
                                 for line in [head, *body]]
-    lines += ["", "kl_ref: KL(pi || pi_ref); win_rate_ref: P(pi > pi_ref); tv_optimum: TV to the run's own exact "
-                  "target; tv_equilibrium: TV to the Nash equilibrium at tau = beta / 2"]
+    lines += ["", "kl_to_reference: KL(pi || pi_ref); win_rate_over_reference: P(pi > pi_ref); tv_to_optimum: TV "
+                  "to the run's own exact target; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
+                  "reached_optimum: tv_to_optimum within the run's tolerance (summary.json)"]
     lines += [f"note: {n}" for n in notes]
     return "\n".join(lines)
 
@@ -201,7 +219,7 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     for r in rows:  # runs that differ in something else than method and loss get their folder number
         if names.count(r["run"]) > 1:
             r["run"] = f"{r['run']} #{rows.index(r):02d}"
-    notes = equilibrium_notes(rows, summaries)
+    notes = merge_notes(overrides) + equilibrium_notes(rows, summaries)
     table = render(rows, notes, task)
     result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
               "notes": notes}

@@ -21,7 +21,7 @@ COMMANDS = {
     "losses": ('losses', "list the registered losses with f'(0), f''(0) and their papers"),
     "export": ('export', "write a built-in task out as a finite-task JSON file"),
     "data": ('data', "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
-    "sft": ('sft', "train the tiny transformer on plain text and save it as a reference model (task.reference)"),
+    "sft": ('sft', "train the tiny transformer on plain text; save it as a reference (task.reference_checkpoint)"),
     "demo": ('demo', "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
     "compare": ('compare', "several losses / methods on one task: one table and one plot"),
     "realign": ('realign', "decoding-time realignment against retraining over a grid of lambda: table and plot"),

@@ -38,6 +38,7 @@ from polopt.objective import validate_hyperparameters
 from polopt.optim import OptimConfig
 from polopt.run_folder import RunFolder, run_summary
 from polopt.train import MethodObjective, PairObjective, TrainSettings, optimise
+from polopt.verdict import reached_line
 
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
@@ -87,7 +88,7 @@ _MISSING_HINTS = {
     "task.path": "task=file needs task.path=PATH to a JSON task file; task=pairs needs task.path=PATH to a pair "
                  "file (JSONL, CSV, Parquet or a saved dataset folder)",
     "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x))",
-    "model.path": "model=hf needs model.path=DIR, a local folder saved by a transformers causal LM",
+    "model.path": "model=local_lm needs model.path=DIR, a local folder saved by a transformers causal LM",
 }
 
 
@@ -226,10 +227,12 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     if not offline:
         folder.write_policy(policy, result.steps, config)
     summary = run_summary(session, view, policy, result, method=method["name"], context=context)
+    summary.setdefault("reached_optimum", None)  # no exact optimum known (e.g. task=pairs)
     if context.is_main:
         folder.write_summary(summary)
         print((session if offline else view).table(summary))
         print(f"run folder: {run_dir}")
+        print(reached_line(summary))  # the verdict last, where the eye lands
     return summary
 
 
