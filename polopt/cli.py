@@ -5,6 +5,7 @@
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
+    polopt reward [KEY=VALUE ...] [--out DIR]        fit a Bradley–Terry reward model to a task's pairs
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
     polopt check LOSS [--beta B] [--json] [--plot P]   unit-test a loss against the analytic optimum
@@ -108,6 +109,12 @@ def _compare(argv: list[str]) -> int:
     from polopt.compare import main as compare_main
 
     return compare_main(argv)
+
+
+def _reward(argv: list[str]) -> int:
+    from polopt.reward_command import main as reward_main
+
+    return reward_main(argv)
 
 
 def _realign(argv: list[str]) -> int:
@@ -275,6 +282,7 @@ COMMANDS = {
     "sft": (_sft, "train the tiny transformer on plain text and save it as a reference model (task.reference)"),
     "demo": (_demo, "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
     "compare": (_compare, "several losses / methods on one task: one table and one plot"),
+    "reward": (_reward, "fit a Bradley–Terry reward model to a task's pairs (method.reward=PATH optimises it)"),
     "realign": (_realign, "decoding-time realignment against retraining over a grid of lambda: table and plot"),
     "checkpoints": (_checkpoints, "verify a run folder's checkpoints and show the resume point"),
     "check": (_check, "unit-test a loss against the analytic optimum; exit code 1 on any failure"),

@@ -135,6 +135,13 @@ class FiniteTask:
 
         return prepare(self, loss, **kwargs)
 
+    def fit_reward(self, **kwargs):
+        """``polopt reward``: a Bradley–Terry reward table fitted to this task's pairs
+        (see :mod:`toy_tasks.reward_fit`)."""
+        from toy_tasks.reward_fit import fit_task_reward  # reward_fit builds on this module
+
+        return fit_task_reward(self, **{k: v for k, v in kwargs.items() if k not in ("model", "steps", "lr")})
+
     # ------------------------------------------------------------------ files
 
     def to_dict(self) -> dict:
