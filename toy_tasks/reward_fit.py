@@ -128,6 +128,40 @@ def learned_rewards(task: FiniteTask, path, *, key: str = "method.reward") -> np
     return data["state"]["rewards"].double().numpy()
 
 
+# ------------------------------------------------------------------ methods on a learned reward
+
+
+def _expected(policy: np.ndarray, rewards: np.ndarray, task: FiniteTask) -> float:
+    """Prompt-weighted ``E_pi r``."""
+    return float(task.prompt_weights @ (policy * rewards).sum(1))
+
+
+def true_rewards(task: FiniteTask) -> tuple[np.ndarray, str]:
+    """The task's true rewards in :data:`GAUGE`: its Bradley–Terry rewards, else the win rate P(y > mu)."""
+    if task.rewards is not None:
+        return to_gauge(task.rewards, task.reference), "the task's Bradley–Terry rewards"
+    return to_gauge(np.einsum("xij,xj->xi", task.preference, task.sampling), task.reference), \
+        "the win rate P(y > mu) (the task has no Bradley–Terry rewards)"
+
+
+def learned_reward_fields(policy: np.ndarray, target: np.ndarray | None, learned: np.ndarray, task: FiniteTask,
+                          path: str) -> dict:
+    """summary.json's fields of a method run against a learned reward: the learned and the true expected
+    reward (both in :data:`GAUGE`, so the reference scores 0 under either) of the trained policy, of the
+    method's exact target and of the reference."""
+    true, which = true_rewards(task)
+    out = {"reward_model": str(path), "learned_reward": _expected(policy, learned, task),
+           "true_reward": _expected(policy, true, task),
+           "reference_learned_reward": _expected(task.reference, learned, task),
+           "reference_true_reward": _expected(task.reference, true, task), "reward_gauge": GAUGE,
+           "true_reward_is": which}
+    if target is not None:
+        out.update({"target_learned_reward": _expected(target, learned, task),
+                    "target_true_reward": _expected(target, true, task),
+                    "target_kl_to_reference": task.kl_to_reference(target)})
+    return out
+
+
 # ------------------------------------------------------------------ the command's work
 
 
