@@ -205,3 +205,16 @@ def test_bad_reward_input_is_one_line_and_exit_2(tmp_path):
         assert len(out.stderr.strip().splitlines()) == 1, out.stderr
         assert "Traceback" not in out.stderr
         assert re.search(message, out.stderr), out.stderr
+
+
+def test_the_overoptimisation_bench_writes_its_table_and_plot(tmp_path, capsys):
+    from bench import overoptimisation
+
+    overoptimisation.main(["--out", str(tmp_path), "--seeds", "1"])
+    lines = (tmp_path / "overoptimisation.txt").read_text().splitlines()
+    rows = [line.split() for line in lines if line.split()[:1] and line.split()[0].isdigit() and "pairs" in line]
+    assert len(rows) == len(overoptimisation.SIZES) * (len(overoptimisation.NS) + len(overoptimisation.BETA_GRID))
+    for row in rows:  # best-of-1 is the reference: KL 0 and both rewards 0 in the reference-weighted gauge
+        if row[2] == "best_of_n" and row[3] == "1":
+            assert [abs(float(v)) < 1e-9 for v in row[4:7]] == [True] * 3
+    assert (tmp_path / "overoptimisation.png").stat().st_size > 0
