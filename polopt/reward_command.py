@@ -23,6 +23,7 @@ from pathlib import Path
 
 def fit(overrides: list[str], out: Path) -> dict:
     """Compose the config, fit the task's reward model, write the folder; return summary.json's content."""
+    import torch
     from hydra import compose, initialize_config_dir
     from omegaconf import OmegaConf
 
@@ -39,6 +40,7 @@ def fit(overrides: list[str], out: Path) -> dict:
         raise ValueError(f"task {cfg.task.get('_target_')!r} cannot fit a reward model; polopt reward takes a "
                          "finite task (bradley_terry, contextual, file, ...) or task=sequence")
     keys = OmegaConf.to_container(cfg.reward, resolve=True)
+    torch.set_num_threads(int(cfg.train.get("threads") or 1))  # tiny models: one thread (see train.threads)
     started = time.perf_counter()
     fitted = task.fit_reward(mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=int(cfg.train.seed),
                              l2=keys["l2"], heldout=keys["heldout"], bins=keys["bins"], steps=keys["steps"],

@@ -171,14 +171,15 @@ def fit_scalar_reward(model: ScalarRewardModel, prompt: Tensor, winner: Tensor, 
     history = []
     for _ in range(steps):
         index = torch.randperm(n, generator=generator)[: batch_size or n]  # (B,)
-        margin = model(prompt[index], winner[index]) - model(prompt[index], loser[index])  # (B,)
+        both = model(prompt[index].repeat(2, 1), torch.cat([winner[index], loser[index]]))  # (2B,) one pass
+        margin = both[: len(index)] - both[len(index):]  # (B,) r_w - r_l
         loss = bradley_terry_nll(margin)
         if l2 > 0:
             loss = loss + 0.5 * l2 * sum((p**2).sum() for p in model.parameters())
         optimiser.zero_grad()
         loss.backward()
         optimiser.step()
-        history.append(float(loss))
+        history.append(float(loss.detach()))
     return history
 
 

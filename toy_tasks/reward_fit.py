@@ -128,12 +128,14 @@ def task_identity(task: FiniteTask) -> dict:
 
 
 def learned_rewards(task: FiniteTask, path, *, key: str = "method.reward") -> np.ndarray:
-    """The (X, K) learned rewards of a table reward model file fitted for ``task``."""
+    """The (X, K) learned rewards of a reward model file fitted for ``task``: a table, or a scalar head on
+    the sequence task, whose file carries its scores of every enumerated response."""
     data = load_reward_model(path, task_identity(task), key=key)
-    if data["kind"] != "table":
-        raise ValueError(f"{key}: {path} holds a {data['kind']} reward model; this task needs a table one "
-                         "(polopt reward on this task)")
-    return data["state"]["rewards"].double().numpy()
+    rewards = data["state"].get("rewards")
+    if rewards is None or tuple(rewards.shape) != (task.n_prompts, task.n_responses):
+        raise ValueError(f"{key}: {path} holds no reward table of shape ({task.n_prompts}, {task.n_responses}); "
+                         "fit one for this task with polopt reward")
+    return rewards.double().numpy()
 
 
 # ------------------------------------------------------------------ methods on a learned reward

@@ -202,6 +202,12 @@ class SequenceTask:
         """Write the enumerated finite task as a task file (``polopt export sequence OUT.json``)."""
         return self.finite.save(path)
 
+    def fit_reward(self, **kwargs):
+        """``polopt reward``: a scalar head on the tiny transformer (see :mod:`toy_tasks.sequence_reward`)."""
+        from toy_tasks.sequence_reward import fit_sequence_reward  # builds on this module
+
+        return fit_sequence_reward(self, **kwargs)
+
     def prepare(self, loss, **kwargs):
         """The trainer's view of this task (see :mod:`toy_tasks.sequence_session`)."""
         from toy_tasks.sequence_session import prepare  # the session builds on this module
