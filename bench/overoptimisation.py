@@ -42,7 +42,7 @@ BETA_GRID = (*BETAS, 0.03125)
 
 def compare_check(task, folder: Path) -> list[str]:
     """Trained runs of ``polopt compare`` against the exact figures of the same reward model."""
-    from polopt.compare import compare
+    from polopt.commands.compare import compare
 
     fitted = fit_task_reward(task, mode="sampled", n_pairs=300, seed=0, l2=L2, heldout=0.0)
     f = fitted["file"]

@@ -7,7 +7,7 @@ import pytest
 import torch
 
 from polopt import checkpoint, losses
-from polopt.cli import main
+from polopt.commands.main import main
 from polopt.train import OptimConfig, PairSet, train
 from toy_tasks.families import bradley_terry
 from toy_tasks.session import prepare

@@ -39,7 +39,7 @@ from pathlib import Path
 import torch
 
 from polopt import losses
-from polopt.app import write_json
+from polopt.commands.train import write_json
 from polopt.demo_scenario import PositionBiasedJudge, Scenario
 from polopt.encoding import SequenceIds, encode_prompts
 from polopt.evaluate import ground_truth_win_rate, judged_win_rates

@@ -27,9 +27,9 @@ def fit(overrides: list[str], out: Path) -> dict:
     from hydra import compose, initialize_config_dir
     from omegaconf import OmegaConf
 
-    from polopt.app import CONFIG_DIR, build_task, check_complete, write_json
     from polopt.checkpoint import atomic_write
-    from polopt.cli import rewrite_overrides
+    from polopt.commands.config import CONFIG_DIR, rewrite_overrides
+    from polopt.commands.train import build_task, check_complete, write_json
     from polopt.reward_model import save_reward_model
 
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
@@ -75,7 +75,7 @@ def main(argv: list[str]) -> int:
     try:
         summary = fit(args.overrides, out)
     except Exception as err:  # config, override-grammar and task errors alike: one line
-        from polopt.compare import user_error
+        from polopt.commands.compare import user_error
 
         cause = user_error(err)
         if cause is None or os.environ.get("POLOPT_DEBUG"):

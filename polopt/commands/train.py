@@ -33,13 +33,10 @@ from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
 from polopt import checkpoint, devices, distributed, losses
+from polopt.commands.config import CONFIG_DIR, rewrite_overrides
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
-
-CONFIG_DIR = Path(__file__).resolve().parent / "conf"
-if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ beside the package
-    CONFIG_DIR = Path(__file__).resolve().parent.parent / "conf"
 
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
@@ -274,3 +271,15 @@ def train_main(cfg: DictConfig) -> None:
                   "is kept: rerun the same command to resume"
         print(f"polopt train: error: {err}", file=sys.stderr)
         sys.exit(2)
+
+
+def main(argv: list[str]) -> int:
+    """The ``polopt train`` subcommand: group options checked, then Hydra's entry point."""
+    try:
+        overrides = rewrite_overrides(argv)
+    except ValueError as err:
+        print(f"polopt train: error: {err}", file=sys.stderr)
+        return 2
+    sys.argv = ["polopt train", *overrides]
+    train_main()
+    return 0
