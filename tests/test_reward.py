@@ -247,3 +247,20 @@ def test_sequence_task_scalar_head_approaches_the_true_rewards_accuracy(tmp_path
         load_reward_model(path, model_identity(task, {**model, "width": 16}))
     with pytest.raises(ValueError, match=r"fits a scalar head on the tiny transformer; model=tabular"):
         task.fit_reward(mode="sampled", n_pairs=100, seed=0, model={"kind": "tabular"})
+
+
+def test_compare_over_n_with_a_learned_reward_tabulates_and_plots_it(tmp_path):
+    from polopt.commands.compare import compare
+
+    path, fitted = _saved(bradley_terry(), tmp_path, n_pairs=300, l2=0.1)
+    result = compare(["method=best_of_n", "method.n=1,8", f"method.reward={path}", "train.steps=200"],
+                     tmp_path / "cmp", progress=False)
+    assert (tmp_path / "cmp" / "overoptimisation.png").stat().st_size > 0
+    assert "true and learned reward against KL" in result["table"]
+    one, eight = result["rows"]
+    assert one["learned_reward"] == pytest.approx(0.0, abs=1e-3)  # best-of-1 is the reference
+    run = json.loads((tmp_path / "cmp" / "01" / "summary.json").read_text())
+    policy = np.asarray(run["policy"])[0]
+    assert eight["learned_reward"] == pytest.approx(policy @ np.asarray(fitted["summary"]["rewards"][0]), abs=1e-9)
+    assert eight["kl_to_reference"] > 0.5
+    assert eight["reward_model"] == str(path)
