@@ -264,3 +264,30 @@ def test_compare_over_n_with_a_learned_reward_tabulates_and_plots_it(tmp_path):
     assert eight["learned_reward"] == pytest.approx(policy @ np.asarray(fitted["summary"]["rewards"][0]), abs=1e-9)
     assert eight["kl_to_reference"] > 0.5
     assert eight["reward_model"] == str(path)
+
+
+def test_a_pair_file_gets_a_scalar_head_that_learns_a_rule_it_can_represent(tmp_path):
+    """An invented help-desk file in which the winner is always the courteous reply: the labels are a
+    deterministic function of the text, so the best held-out accuracy is 1 (derivation: the Bayes rule
+    of a noiseless label); after 40 Adam steps the scalar head must reach 0.9 of it."""
+    from polopt.pairs_task import pair_task
+
+    rng = np.random.default_rng(0)
+    topics = ["renewal", "late fee", "opening hours", "lost card", "room booking"]
+    with (tmp_path / "desk.jsonl").open("w") as f:
+        for i in range(100):
+            t = topics[rng.integers(len(topics))]
+            good = ["Happy to help", "Certainly", "Of course"][rng.integers(3)] + f" with the {t}!"
+            bad = ["No", "Ask elsewhere", "Not today"][rng.integers(3)] + f" ({t})."
+            f.write(json.dumps({"prompt": f"Question {i} about the {t}", "winner": good, "loser": bad}) + "\n")
+    task = pair_task(path=str(tmp_path / "desk.jsonl"))
+    model = {"kind": "transformer", "width": 16, "layers": 1, "heads": 2, "context": 16, "seed": 0}
+    fitted = task.fit_reward(mode="sampled", n_pairs=None, seed=0, model=model, steps=40, lr=1e-2)
+    summary = fitted["summary"]
+    assert summary["fitted_pairs"] == 80 and len(summary["heldout_rows"]) == 20
+    assert summary["heldout_accuracy"] >= 0.9
+    f = fitted["file"]
+    path = save_reward_model(tmp_path / "pairs.pt", f["kind"], f["identity"], f["state"])
+    assert load_reward_model(path, {"task": "pairs", "width": 16})["kind"] == "transformer"
+    with pytest.raises(ValueError, match=r"fitted for layers 1, but this run has 2"):
+        load_reward_model(path, {"task": "pairs", "layers": 2})

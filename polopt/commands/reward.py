@@ -83,5 +83,6 @@ def main(argv: list[str]) -> int:
         print(f"polopt reward: error: {cause}", file=sys.stderr)
         return 2
     print(summary["screen"])
-    print(f"reward model: {summary['reward_model']}  (give it to method.reward=PATH)")
+    hint = "  (give it to method.reward=PATH)" if summary.get("rewards") is not None else ""
+    print(f"reward model: {summary['reward_model']}{hint}")
     return 0
