@@ -47,7 +47,8 @@ import torch
 from polopt import losses
 from polopt.losses import Loss
 from polopt.objective import margins
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 
 Tensor = torch.Tensor
 
@@ -596,8 +597,9 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
     try:
         session = task.prepare(loss, beta=beta, mode="exact")
         policy = session.build_policy()
-        result = train(policy, session.pairs, loss, beta=beta, steps=steps, optim=optim or OptimConfig(),
-                       log_every=max(steps // 20, 1), progress=False)
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=beta, steps=steps, optim=optim or OptimConfig(),
+                                     log_every=max(steps // 20, 1), progress=False))
         summary = session.summarise(policy, result)
         mean_margin = _mean_margin(policy, session.pairs)
         balanced = bool(_net_win_weight(session.pairs).abs().max() <= 1e-9)

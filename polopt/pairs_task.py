@@ -31,16 +31,17 @@ from pathlib import Path
 
 import torch
 
+from polopt.contracts import TrainResult
 from polopt.data import PAIR_FILE_KEYS, PairData, load_pairs_from_config, write_rejects
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
 from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
 from polopt.losses import Loss
 from polopt.models import TinyTransformer
-from polopt.objective import margins, preference_loss
+from polopt.objective import batch_statistics, margins, preference_loss
+from polopt.pair_set import PairSet
 from polopt.reference_cache import FILE_NAME, reference_logprobs
 from polopt.sft import load_reference
 from polopt.tokenizer import load_tokenizer
-from polopt.train import PairSet, TrainResult, batch_statistics
 
 Tensor = torch.Tensor
 INITS = ("reference", "random")

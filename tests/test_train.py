@@ -12,7 +12,8 @@ import pytest
 import torch
 
 from polopt import losses
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 from toy_tasks import families
 from toy_tasks.finite import make_task
 
@@ -31,8 +32,9 @@ def run(task, name, beta=0.5, mode="exact", **kwargs):
     loss = losses.get(name)
     session = task.prepare(loss, beta=beta, mode=mode, **kwargs)
     policy = session.build_policy()
-    result = train(policy, session.pairs, loss, beta=beta, steps=STEPS, optim=OptimConfig(), progress=False,
-                   log_every=100, evaluate=session.evaluate)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=beta, steps=STEPS, optim=OptimConfig(), progress=False, log_every=100),
+                   evaluate=session.evaluate)
     return session.summarise(policy, result), result
 
 
@@ -82,7 +84,8 @@ def test_loglinear_policy_with_enough_features_reaches_the_optimum():
     loss = losses.get("squared")
     session = task.prepare(loss, beta=0.5, mode="exact")
     policy = session.build_policy(kind="loglinear", width=16)
-    result = train(policy, session.pairs, loss, beta=0.5, steps=STEPS, optim=OptimConfig(), progress=False)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=0.5, steps=STEPS, optim=OptimConfig(), progress=False))
     assert session.summarise(policy, result)["tv_to_optimum"] <= 1e-3
 
 
@@ -132,13 +135,13 @@ def test_train_rejects_bad_settings():
     session = task.prepare(loss, beta=0.5)
     policy = session.build_policy()
     with pytest.raises(ValueError, match=r"train.steps must be a positive integer, got 0"):
-        train(policy, session.pairs, loss, beta=0.5, steps=0, optim=OptimConfig())
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=0, optim=OptimConfig()))
     with pytest.raises(ValueError, match=r"optim.name must be one of adam, adamw, sgd, got 'lion'"):
-        train(policy, session.pairs, loss, beta=0.5, steps=5, optim=OptimConfig(name="lion"))
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(name="lion")))
     with pytest.raises(ValueError, match=r"task.mode must be one of exact, sampled, got 'online'"):
         task.prepare(loss, beta=0.5, mode="online")
     with pytest.raises(ValueError, match=r"precision must be fp32 or bf16, got 'fp8'"):
-        train(policy, session.pairs, loss, beta=0.5, steps=5, optim=OptimConfig(), precision="fp8")
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(), precision="fp8"))
 
 
 def test_reference_log_probs_are_cached_in_the_pairs():

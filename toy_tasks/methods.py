@@ -32,10 +32,10 @@ import numpy as np
 import scipy.special
 import torch
 
+from polopt.contracts import TrainResult
 from polopt.methods import METHODS
 from polopt.methods.environment import FiniteEnvironment
 from polopt.realign import equivalent_beta, realign
-from polopt.train import TrainResult
 from toy_tasks.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
 from toy_tasks.finite import FiniteTask, total_variation

@@ -30,8 +30,8 @@ import torch
 from polopt.logprobs import real_tokens
 from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
+from polopt.pair_set import PairSet
 from polopt.reference_cache import FILE_NAME, reference_logprobs
-from polopt.train import PairSet
 from toy_tasks.sequences import EnumeratedSequencePolicy, SequenceTask
 from toy_tasks.session import FiniteSession, policy_rows
 from toy_tasks.session import prepare as prepare_finite

@@ -2,7 +2,7 @@
 
 This is the finite tasks' side of the trainer's interface (see
 :mod:`polopt.train`): :func:`prepare` turns a task, a loss and beta into the
-:class:`polopt.train.PairSet` to train on (``exact``: every ordered pair with
+:class:`polopt.pair_set.PairSet` to train on (``exact``: every ordered pair with
 its win weight; ``sampled``: a seeded sample of labelled pairs), solves the
 exact optimum of that very objective once, and then measures a policy against
 it while training runs and at the end.
@@ -16,9 +16,10 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from polopt.contracts import TrainResult
 from polopt.losses import Loss
+from polopt.pair_set import PairSet
 from polopt.policies import build_policy
-from polopt.train import PairSet, TrainResult
 from toy_tasks.finite import FiniteTask, total_variation
 from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
 

@@ -55,7 +55,7 @@ def main(argv: list[str]) -> int:
 
     from polopt import check
     from polopt.commands.train import json_ready
-    from polopt.train import OptimConfig
+    from polopt.optim import OptimConfig
 
     parser = argparse.ArgumentParser(
         prog="polopt check",

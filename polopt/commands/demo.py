@@ -44,11 +44,12 @@ from polopt.demo_scenario import PositionBiasedJudge, Scenario
 from polopt.encoding import SequenceIds, encode_prompts
 from polopt.evaluate import ground_truth_win_rate, judged_win_rates
 from polopt.objective import validate_hyperparameters
+from polopt.optim import OptimConfig
 from polopt.pairs_task import pair_task
 from polopt.sampling import kl_estimate, sample_responses
 from polopt.sft import build_model, encode_examples, save_reference, train_sft
 from polopt.tokenizer import ByteTokenizer
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 
 
 @dataclass
@@ -186,9 +187,10 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
         folder.mkdir(exist_ok=True)
         metrics = folder / "metrics.jsonl"
         metrics.unlink(missing_ok=True)
-        result = train(policy, session.pairs, loss, beta=beta, steps=cfg.steps, optim=optim,
-                       batch_size=cfg.batch_size, seed=cfg.seed, log_every=5, metrics_path=metrics,
-                       progress=progress)
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=beta, steps=cfg.steps, optim=optim, batch_size=cfg.batch_size,
+                                     seed=cfg.seed, log_every=5, progress=progress),
+                       metrics_path=metrics)
         policy.eval()
         scores = evaluate_policy(policy.model, reference, scenario, judge, tokenizer, ids, cfg, seed=cfg.seed + 2)
         entry = {"beta": beta, **session.full_statistics(policy), **scores, "train_seconds": result.seconds,

@@ -36,7 +36,8 @@ from polopt import checkpoint, devices, distributed, losses
 from polopt.commands.config import CONFIG_DIR, rewrite_overrides
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
@@ -221,14 +222,16 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                             keep=cfg.train.keep_checkpoints)
 
         policy.to(device)  # the training loop only; the summary and the files below work on the CPU
-        result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=cfg.train.steps,
-                       optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
-                       smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
-                       seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
-                       metrics_path=metrics_path if main else None, progress=cfg.train.progress and main,
-                       precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
-                       save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
-                       bucketing=cfg.train.get("bucketing", True), context=context, device=device)
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=float(cfg.beta), steps=cfg.train.steps,
+                                     optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
+                                     smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
+                                     seed=cfg.train.seed, log_every=cfg.train.log_every,
+                                     progress=cfg.train.progress and main, precision=cfg.precision,
+                                     checkpoint_every=cfg.train.checkpoint_every, on_nonfinite=cfg.train.on_nonfinite,
+                                     bucketing=cfg.train.get("bucketing", True), device=device),
+                       evaluate=session.evaluate, metrics_path=metrics_path if main else None,
+                       save_checkpoint=save if main else None, resume=state, context=context)
         policy.to("cpu")
         summary = session.summarise(policy, result)
         summary["skipped_steps"] = result.skipped

@@ -34,7 +34,7 @@ Tensor = torch.Tensor
 def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Loss, *, beta: float,
                        estimator: str = "exact", batch_size: int = 64,
                        generator: torch.Generator | None = None) -> Callable[[int], tuple[Tensor, dict]]:
-    """The per-step objective of :func:`polopt.methods.loop.optimise` for self-play."""
+    """The per-step objective of :func:`polopt.train.optimise` for self-play."""
     check_estimator(estimator)
     if env.preference is None:
         env.prefer(*(torch.zeros(1, dtype=torch.long),) * 3)  # raises the named error
