@@ -80,7 +80,10 @@ def main(argv: list[str]) -> int:
         cause = user_error(err)
         if cause is None or os.environ.get("POLOPT_DEBUG"):
             raise
-        print(f"polopt reward: error: {cause}", file=sys.stderr)
+        lines = str(cause).splitlines() or [type(cause).__name__]  # OmegaConf's errors span several lines
+        key = next((line.split(":", 1)[1].strip() for line in lines if line.strip().startswith("full_key:")), None)
+        where = f" ({key}; 'polopt train --help' lists every key)" if key else ""
+        print(f"polopt reward: error: {lines[0]}{where}", file=sys.stderr)
         return 2
     print(summary["screen"])
     hint = "  (give it to method.reward=PATH)" if summary.get("rewards") is not None else ""
