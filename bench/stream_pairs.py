@@ -164,7 +164,7 @@ def in_ram(n: int):
 def toy_policy_and_pairs(mode: str, path: Path, n: int):
     from polopt.models import build_model, copy_weights
     from polopt.stream import MappedPairs
-    from toy_tasks.sequences import EnumeratedSequencePolicy
+    from toy_tasks.sequence_policy import EnumeratedSequencePolicy
 
     t = task()
     pairs = MappedPairs(path, pad_id=t.vocab.pad_id) if mode == "mapped" else in_ram(n)

@@ -3,11 +3,12 @@
 A task hands the training loop a :class:`PairSet`; batches are :meth:`PairSet.select`-ed
 from it and moved with :meth:`PairSet.to`. This module imports nothing but torch, so any
 module (a task, a model wrapper, the data streamer) can build pairs without importing the
-training loop.
+training loop. :func:`score_pairs` is the one way to score winners and losers.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import torch
@@ -50,3 +51,12 @@ class PairSet:
 
         return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
                                            self.reference_loser, self.weight, self.tokens)))
+
+
+def score_pairs(score: Callable[[Tensor, Tensor], Tensor], prompt: Tensor, winner: Tensor,
+                loser: Tensor) -> tuple[Tensor, Tensor]:
+    """Log-probs of winners and losers in one pass: ``score(prompt, response)`` over the prompts
+    twice and the winners then the losers, split in two. ``prompt`` (B, ...), ``winner`` and
+    ``loser`` (B, ...) of one width (index tensors (B,) or token tensors (B, T)); returns two (B,)."""
+    both = score(torch.cat([prompt, prompt]), torch.cat([winner, loser]))  # (2B,)
+    return both.chunk(2)

@@ -36,7 +36,7 @@ from polopt.contracts import TrainResult
 from polopt.losses import Loss
 from polopt.objective import batch_loss, batch_statistics
 from polopt.optim import OptimConfig, make_optimiser
-from polopt.pair_set import PairSet
+from polopt.pair_set import PairSet, score_pairs
 
 Tensor = torch.Tensor
 ON_NONFINITE = ("stop", "skip")
@@ -156,8 +156,9 @@ class PairObjective:
         if self._score is None:  # policy.logprobs, or its DDP view (built after any resume)
             self._score = distributed.scorer(self.policy, self.context, self.device)
         with torch.autocast(self.device.type, dtype=torch.bfloat16, enabled=self.settings.precision == "bf16"):
-            logp = self._score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
-            return logp.to(batch.reference_winner.dtype).chunk(2)
+            logp_w, logp_l = score_pairs(self._score, batch.prompt, batch.winner, batch.loser)
+            dtype = batch.reference_winner.dtype
+            return logp_w.to(dtype), logp_l.to(dtype)
 
     def __call__(self, step: int) -> StepLoss:
         index, batch, total_weight = self.batch()

@@ -35,6 +35,9 @@ from pathlib import Path
 import numpy as np
 import scipy.special
 
+from toy_tasks import reward_fit, session
+from toy_tasks.measures import kl_divergence
+
 PROBABILITY_TOLERANCE = 1e-6
 
 
@@ -125,22 +128,18 @@ class FiniteTask:
 
     def kl_to_reference(self, policy: np.ndarray) -> float:
         """Prompt-weighted KL(pi || pi_ref)."""
-        per_prompt = scipy.special.rel_entr(policy, self.reference).sum(axis=1)
-        return float(self.prompt_weights @ per_prompt)
+        return kl_divergence(policy, self.reference, self.prompt_weights)
 
     def prepare(self, loss, **kwargs):
         """``task.prepare(loss, beta=..., smoothing=..., mode=..., n_pairs=..., seed=...)``: the
         trainer's view of this task (see :mod:`toy_tasks.session`)."""
-        from toy_tasks.session import prepare  # session builds on this module
-
-        return prepare(self, loss, **kwargs)
+        return session.prepare(self, loss, **kwargs)
 
     def fit_reward(self, **kwargs):
         """``polopt reward``: a Bradley–Terry reward table fitted to this task's pairs
         (see :mod:`toy_tasks.reward_fit`)."""
-        from toy_tasks.reward_fit import fit_task_reward  # reward_fit builds on this module
-
-        return fit_task_reward(self, **{k: v for k, v in kwargs.items() if k not in ("model", "steps", "lr")})
+        table_keys = {k: v for k, v in kwargs.items() if k not in ("model", "steps", "lr")}  # no network to train
+        return reward_fit.fit_task_reward(self, **table_keys)
 
     # ------------------------------------------------------------------ files
 
@@ -380,10 +379,3 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
         sampling=sampling, prompt_weights=weights, responses=responses, prompts=prompts,
         name=name, description=description, where=where,
     )
-
-
-def total_variation(p: np.ndarray, q: np.ndarray, prompt_weights: np.ndarray) -> float:
-    """Prompt-weighted total variation distance ``sum_x w_x * 0.5 * sum_i |p_xi - q_xi|``."""
-    return float(prompt_weights @ (0.5 * np.abs(p - q).sum(axis=1)))
-
-

@@ -30,6 +30,7 @@ the last digits). The residual reached is reported.
 from __future__ import annotations
 
 import hashlib
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.optimize
@@ -37,8 +38,10 @@ import scipy.special
 import torch
 
 from polopt.reward_model import CALIBRATION, load_reward_model, pair_metrics, split_heldout
-from toy_tasks.finite import FiniteTask, LabelledPairs
 from toy_tasks.solve import _limit_support, _strong_components
+
+if TYPE_CHECKING:  # finite.py builds on this module (FiniteTask.fit_reward); no import at run time
+    from toy_tasks.finite import FiniteTask, LabelledPairs
 
 GAUGE = "per prompt, sum_y pi_ref(y|x) r(x, y) = 0 (reference-weighted mean zero)"
 GRADIENT_TOLERANCE = 1e-10
@@ -47,10 +50,11 @@ GRADIENT_TOLERANCE = 1e-10
 # ------------------------------------------------------------------ the fit
 
 
-def pair_counts(task: FiniteTask, pairs: LabelledPairs) -> np.ndarray:
-    """``C[x, i, j]``: how often i beat j for prompt x. (X, K, K)."""
+def pair_counts(task: FiniteTask, pairs: LabelledPairs, index: np.ndarray | None = None) -> np.ndarray:
+    """``C[x, i, j]``: how often i beat j for prompt x among ``pairs`` (those at ``index`` if given). (X, K, K)."""
+    pick = slice(None) if index is None else index
     counts = np.zeros((task.n_prompts, task.n_responses, task.n_responses))
-    np.add.at(counts, (pairs.prompt, pairs.winner, pairs.loser), 1.0)
+    np.add.at(counts, (pairs.prompt[pick], pairs.winner[pick], pairs.loser[pick]), 1.0)
     return counts
 
 
@@ -191,8 +195,7 @@ def fit_task_reward(task: FiniteTask, *, mode: str, n_pairs: int, seed: int, l2:
     elif mode == "sampled":
         pairs = task.sample_pairs(n_pairs, seed)
         fit, out = split_heldout(len(pairs), heldout, seed)
-        pick = [LabelledPairs(pairs.prompt[i], pairs.winner[i], pairs.loser[i]) for i in (fit, out)]
-        counts, held = pair_counts(task, pick[0]), pair_counts(task, pick[1])
+        counts, held = pair_counts(task, pairs, fit), pair_counts(task, pairs, out)
         notes = []
     else:
         raise ValueError(f"task.mode must be one of exact, sampled, got {mode!r}")

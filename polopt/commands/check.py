@@ -54,8 +54,8 @@ def main(argv: list[str]) -> int:
     import textwrap
 
     from polopt import check
-    from polopt.commands.train import json_ready
     from polopt.optim import OptimConfig
+    from polopt.run_folder import json_ready
 
     parser = argparse.ArgumentParser(
         prog="polopt check",

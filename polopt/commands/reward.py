@@ -29,8 +29,9 @@ def fit(overrides: list[str], out: Path) -> dict:
 
     from polopt.checkpoint import atomic_write
     from polopt.commands.config import CONFIG_DIR, rewrite_overrides
-    from polopt.commands.train import build_task, check_complete, write_json
+    from polopt.commands.train import build_task, check_complete
     from polopt.reward_model import save_reward_model
+    from polopt.run_folder import write_json
 
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose("config", overrides=rewrite_overrides(overrides))
