@@ -15,20 +15,20 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from polopt.data import load_pairs_from_config
+from polopt.data import PairFileSpec, read_pair_file
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
 from polopt.logprobs import real_tokens
 from polopt.reward_model import CALIBRATION, ScalarRewardModel, fit_scalar_reward, pair_metrics, score, split_heldout
 from polopt.tokenizer import load_tokenizer
 
 
-def pair_identity(file: dict, ids: SequenceIds, shape: dict) -> dict:
+def pair_identity(file: PairFileSpec, ids: SequenceIds, shape: dict) -> dict:
     """What a pair-file reward model must match: the file, its tokenizer's ids, the model's shape."""
-    return {"task": "pairs", "path": str(file["path"]), "tokenizer": str(file.get("tokenizer") or "byte"),
+    return {"task": "pairs", "path": str(file.path), "tokenizer": str(file.tokenizer or "byte"),
             "vocab_size": ids.vocab_size, "pad": ids.pad, **shape}
 
 
-def fit_pair_reward(file: dict, *, mode: str, n_pairs: int | None, seed: int, model: dict, l2: float = 0.0,
+def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed: int, model: dict, l2: float = 0.0,
                     heldout: float = 0.2, bins: int = 10, steps: int = 300, lr: float = 3e-3) -> dict:
     """Fit the scalar head to the file's accepted pairs; return ``summary``, ``screen`` and ``file``."""
     if mode != "sampled":
@@ -36,11 +36,11 @@ def fit_pair_reward(file: dict, *, mode: str, n_pairs: int | None, seed: int, mo
     if model.get("kind") != "transformer":
         raise ValueError(f"task=pairs fits a scalar head on the tiny transformer; model={model.get('kind')} "
                          "cannot: give +experiment=pairs (or model=transformer)")
-    tokenizer = load_tokenizer(file.get("tokenizer") or "byte")
-    data = load_pairs_from_config(file, tokenizer=tokenizer)
+    tokenizer = load_tokenizer(file.tokenizer or "byte")
+    data = read_pair_file(file, tokenizer=tokenizer)
     n = len(data) if n_pairs is None else min(int(n_pairs), len(data))
     if n < 2:
-        raise ValueError(f"task.path {file['path']!r}: {n} pair(s) accepted; a reward model needs at least 2")
+        raise ValueError(f"task.path {str(file.path)!r}: {n} pair(s) accepted; a reward model needs at least 2")
     ids = SequenceIds.for_tokenizer(tokenizer)
     prompt = encode_prompts(tokenizer, data.prompt[:n], ids)  # (N, T_p)
     both = encode_responses(tokenizer, data.winner[:n] + data.loser[:n], ids)  # (2N, T_r)
@@ -55,7 +55,7 @@ def fit_pair_reward(file: dict, *, mode: str, n_pairs: int | None, seed: int, mo
                                 l2=float(l2), seed=seed)
     margin = (score(net, prompt[out], winner[out]) - score(net, prompt[out], loser[out])).double().numpy()
     weight = np.asarray(data.weight[:n], dtype=np.float64)[out.numpy()] if data.accounting["weighted"] else None
-    summary = {"task": "pairs", "kind": "transformer", "path": str(file["path"]), "rows_in": data.accounting["rows_in"],
+    summary = {"task": "pairs", "kind": "transformer", "path": str(file.path), "rows_in": data.accounting["rows_in"],
                "rows_accepted": data.accounting["rows_accepted"], "rows_rejected": data.accounting["rows_rejected"],
                "fitted_pairs": int(len(fit)), "heldout_pairs": int(len(out)), "l2": float(l2), "rewards": None,
                "pair_counts": None, "heldout_rows": [int(data.location[i]) for i in out.tolist()],
@@ -64,7 +64,7 @@ def fit_pair_reward(file: dict, *, mode: str, n_pairs: int | None, seed: int, mo
                "fit_loss_last": history[-1], "solver": f"Adam, {steps} steps, lr {lr:g}, batch 256, float32",
                "notes": ["the pairs are the file's rows: refit from task.path; heldout_rows lists the held-out ones"]}
     acc, ece = summary["heldout_accuracy"], summary["calibration_error"]
-    screen = (f"pairs: {file['path']}: fitted on {len(fit)}, held out {len(out)}\nheldout_accuracy "
+    screen = (f"pairs: {file.path}: fitted on {len(fit)}, held out {len(out)}\nheldout_accuracy "
               f"{'-' if acc is None else f'{acc:.4f}'}  calibration_error {'-' if ece is None else f'{ece:.4f}'}")
     return {"summary": summary, "screen": screen,
             "file": {"kind": "transformer", "identity": pair_identity(file, ids, shape),
