@@ -86,6 +86,12 @@ class PairTask:
             session.attach_reference(model)
         return session
 
+    def fit_reward(self, **kwargs):
+        """``polopt reward task=pairs``: a scalar-head reward model (see :mod:`polopt.pair_reward`)."""
+        from polopt.pair_reward import fit_pair_reward  # builds on the data layer, as this module does
+
+        return fit_pair_reward(self.file, **kwargs)
+
 
 def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
               max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",

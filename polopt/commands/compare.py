@@ -31,11 +31,13 @@ import sys
 import time
 from pathlib import Path
 
+from polopt import overoptimisation
 from polopt.methods import METHODS
 
 # summary.json's own key names, so that the table, the CSV and the run folders say the same thing
 COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
-           "tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "steps", "seconds")
+           "tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "steps", "seconds", "learned_reward",
+           "true_reward", "reward_model")
 SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not written out in the notes
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
@@ -225,6 +227,11 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
               "notes": notes}
     write_tables(out / "comparison", table, rows, COLUMNS, result)
     plot(rows, out / "comparison.png", task)
+    learned = overoptimisation.rows_of_runs(rows, summaries)  # runs with method.reward=PATH
+    if learned:
+        table += "\n\n" + overoptimisation.render(learned, f"{task}: true and learned reward against KL")
+        (out / "comparison.txt").write_text(table + "\n", encoding="utf-8")
+        overoptimisation.plot(learned, out / "overoptimisation.png", task)
     return {**result, "table": table}
 
 

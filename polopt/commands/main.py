@@ -5,6 +5,7 @@
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
+    polopt reward [KEY=VALUE ...] [--out DIR]        fit a Bradley–Terry reward model to a task's pairs
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
     polopt check LOSS [--beta B] [--json] [--plot P]   unit-test a loss against the analytic optimum
@@ -24,6 +25,7 @@ COMMANDS = {
     "sft": ('sft', "train the tiny transformer on plain text; save it as a reference (task.reference_checkpoint)"),
     "demo": ('demo', "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
     "compare": ('compare', "several losses / methods on one task: one table and one plot"),
+    "reward": ('reward', "fit a Bradley–Terry reward model to a task's pairs (method.reward=PATH optimises it)"),
     "realign": ('realign', "decoding-time realignment against retraining over a grid of lambda: table and plot"),
     "checkpoints": ('checkpoints', "verify a run folder's checkpoints and show the resume point"),
     "check": ('check', "unit-test a loss against the analytic optimum; exit code 1 on any failure"),
