@@ -32,7 +32,7 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, devices, distributed, losses
+from polopt import checkpoint, devices, distributed, losses, sharded_checkpoint
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
@@ -44,7 +44,9 @@ if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ besi
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 # keys that change how a run is kept, not what it computes: a resume may change them
-_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device")
+# (steps: a finished run continues when train.steps is raised; strategy: a sharded checkpoint resumes on ddp)
+_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device", "steps",
+                     "strategy")
 
 
 def build_loss(cfg: DictConfig) -> losses.Loss:
@@ -220,6 +222,10 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                   f"(step {state['step']} of {cfg.train.steps})", file=sys.stderr)
 
         def save(train_state: dict) -> None:
+            if context.sharded:  # every rank writes its shards (polopt.sharded_checkpoint)
+                sharded_checkpoint.save(ckpt_dir, train_state, run_id=run_id, fingerprint=fingerprint, config=config,
+                                        keep=cfg.train.keep_checkpoints, is_main=main)
+                return
             checkpoint.save(ckpt_dir, train_state, run_id=run_id, fingerprint=fingerprint, config=config,
                             keep=cfg.train.keep_checkpoints)
 
@@ -230,7 +236,8 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                        seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
                        metrics_path=metrics_path if main else None, progress=cfg.train.progress and main,
                        precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
-                       save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
+                       save_checkpoint=save if main or context.sharded else None, resume=state,
+                       on_nonfinite=cfg.train.on_nonfinite,
                        bucketing=cfg.train.get("bucketing", True), context=context, device=device)
         policy.to("cpu")
         summary = session.summarise(policy, result)
@@ -256,7 +263,8 @@ def train_main(cfg: DictConfig) -> None:
         device = devices.resolve(cfg.train.get("device"), local_rank=context.local_rank, processes=context.world_size)
         if device.type == "cuda":
             torch.cuda.set_device(device)
-        context = distributed.setup(backend=devices.process_group_backend(device))
+        strategy = distributed.with_strategy(context, cfg.train.get("strategy")).strategy  # fsdp: under torchrun
+        context = distributed.with_strategy(distributed.setup(backend=devices.process_group_backend(device)), strategy)
         # every rank uses rank 0's folder (a ${now:...} in hydra.run.dir may differ between processes)
         run_dir = distributed.broadcast_path(run_dir, context)
         with checkpoint.exclusive(run_dir) if context.is_main else contextlib.nullcontext():

@@ -26,6 +26,7 @@ trainer runs exactly as before.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import os
 from dataclasses import dataclass
 from datetime import timedelta
@@ -50,6 +51,7 @@ class Context:
     rank: int = 0
     world_size: int = 1
     local_rank: int = 0
+    strategy: str = "ddp"  # train.strategy: ddp (whole replicas) | fsdp (sharded, polopt.fsdp)
 
     @property
     def is_main(self) -> bool:
@@ -60,8 +62,26 @@ class Context:
         """True when there is more than one process (collectives are needed)."""
         return self.world_size > 1
 
+    @property
+    def sharded(self) -> bool:
+        """True when parameters, gradients and optimiser state are sharded over the ranks (fsdp)."""
+        return self.active and self.strategy == "fsdp"
+
 
 SINGLE = Context()
+STRATEGIES = ("ddp", "fsdp")
+
+
+def with_strategy(context: Context, strategy: str | None, environ=os.environ) -> Context:
+    """``context`` with ``train.strategy``; fsdp needs the processes torchrun starts."""
+    strategy = strategy or "ddp"
+    if strategy not in STRATEGIES:
+        raise ValueError(f"train.strategy must be one of {', '.join(STRATEGIES)}, got {strategy!r}")
+    if strategy == "fsdp" and "WORLD_SIZE" not in environ:
+        raise ValueError("train.strategy=fsdp shards the policy over processes started by torchrun: run "
+                         "torchrun --nproc_per_node=N -m polopt train ... train.strategy=fsdp, or use "
+                         "train.strategy=ddp on one process")
+    return dataclasses.replace(context, strategy=strategy)
 
 
 def from_environment(environ=os.environ) -> Context:
@@ -211,3 +231,39 @@ def scorer(policy: nn.Module, context: Context, device: torch.device | None = No
     device_ids = [device.index] if device is not None and device.type == "cuda" else None
     # buffers (reference tables, enumerations) are the same on every rank by construction
     return nn.parallel.DistributedDataParallel(_Scorer(policy), device_ids=device_ids, forward_sync_buffers=False)
+
+
+def prepare(policy: nn.Module, context: Context, device: torch.device | None = None):
+    """(the scoring callable, the module the optimiser trains): :func:`scorer` and ``policy`` itself,
+    or with ``train.strategy=fsdp`` a sharded copy's ``logprobs`` and that copy (:mod:`polopt.fsdp`;
+    ``policy`` is then emptied until :func:`gathered` or :func:`give_back` fills it)."""
+    if not context.sharded:
+        return scorer(policy, context, device), policy
+    from polopt import fsdp
+
+    trained = fsdp.shard_policy(policy, context.world_size, device or torch.device("cpu"))
+    return trained.logprobs, trained
+
+
+def gathered(trained: nn.Module, policy: nn.Module):
+    """A context in which ``policy`` holds the trained weights (a no-op unless ``trained`` is its sharded copy)."""
+    if trained is policy:
+        return contextlib.nullcontext(policy)
+    from polopt import fsdp
+
+    return fsdp.filled(trained, policy)
+
+
+def give_back(trained: nn.Module, policy: nn.Module) -> None:
+    """After the last step: ``policy`` holds the trained weights for good."""
+    if trained is not policy:
+        from polopt import fsdp
+
+        fsdp.fill(trained, policy)
+
+
+def clip_grad_norm(module: nn.Module, max_norm: float) -> float:
+    """torch's ``clip_grad_norm_`` over ``module``'s gradients (sharded ones too); the total norm as a float."""
+    from polopt.fsdp import total_norm
+
+    return total_norm(nn.utils.clip_grad_norm_(module.parameters(), max_norm))

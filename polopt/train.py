@@ -194,7 +194,10 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                          f"got {checkpoint_every!r}")
     torch.manual_seed(seed)
     generator = torch.Generator().manual_seed(seed)
-    optimiser, scheduler = make_optimiser(policy.parameters(), optim, steps)
+    device = torch.device(device)
+    # policy.logprobs or its DDP view, and the policy; or (train.strategy=fsdp) a sharded copy's
+    score, trained = distributed.prepare(policy, context, device)
+    optimiser, scheduler = make_optimiser(trained.parameters(), optim, steps)
     full_batch = batch_size is None or batch_size >= len(pairs)
     if full_batch and getattr(pairs, "streamed", False):
         raise ValueError(f"these {len(pairs)} pairs stream from disk and are read one batch at a time: set "
@@ -206,14 +209,12 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     skipped: list[int] = []
     done, seconds_before = 0, 0.0
     if resume is not None:  # every piece of state the next step reads comes back exactly
-        restored = restore_training_state(resume, policy=policy, optimiser=optimiser, scheduler=scheduler,
+        restored = restore_training_state(resume, policy=trained, optimiser=optimiser, scheduler=scheduler,
                                           generator=generator)
         done, order, cursor = restored["step"], restored["order"], restored["cursor"]
         history, skipped, seconds_before = restored["history"], restored["skipped"], restored["seconds"]
         if done > steps:
             raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
-    device = torch.device(device)
-    score = distributed.scorer(policy, context, device)  # policy.logprobs, or its DDP view
     whole = pairs.to(device) if full_batch else None  # the full batch moves once
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     start = time.perf_counter() - seconds_before
@@ -259,7 +260,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             else:
                 objective.backward()
                 clip = optim.grad_clip if optim.grad_clip else math.inf
-                grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
+                grad_norm = distributed.clip_grad_norm(trained, clip)
                 if not math.isfinite(grad_norm):
                     problem = f"the gradient norm is {grad_norm}"
             if problem is None:
@@ -285,7 +286,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                                                   batch.weight, context if context.active else None)
                     record = {"step": step, "loss": float(value), "lr": lr, "grad_norm": grad_norm, **statistics}
                     if evaluate is not None:
-                        record.update(evaluate(policy))
+                        with distributed.gathered(trained, policy):
+                            record.update(evaluate(policy))
                 record["seconds"] = time.perf_counter() - start
                 if pairs.tokens is not None:
                     record["tokens_per_s"] = tokens_seen / (time.perf_counter() - loop_start)
@@ -296,11 +298,13 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 bar.set_postfix(loss=f"{record['loss']:.4g}", margin=f"{record['margin_mean']:.3g}", refresh=False)
             # 7. checkpoint
             if save_checkpoint is not None and (step == steps or checkpoint_every and step % checkpoint_every == 0):
-                save_checkpoint(training_state(step=step, policy=policy, optimiser=optimiser, scheduler=scheduler,
+                save_checkpoint(training_state(step=step, policy=trained, optimiser=optimiser, scheduler=scheduler,
                                                generator=generator, order=order, cursor=cursor, history=history,
-                                               skipped=skipped, seconds=time.perf_counter() - start))
+                                               skipped=skipped, seconds=time.perf_counter() - start,
+                                               sharded=context.sharded))
     finally:
         bar.close()
         if sink is not None:
             sink.close()
+    distributed.give_back(trained, policy)
     return TrainResult(steps, time.perf_counter() - start, history[-1] if history else {}, history, skipped)
