@@ -194,8 +194,9 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
     p = session.pairs
-    fingerprint = checkpoint.fingerprint(config, p.prompt, p.winner, p.loser, p.reference_winner,
-                                         p.reference_loser, p.weight)
+    data = p.identity() if hasattr(p, "identity") else (p.prompt, p.winner, p.loser, p.reference_winner,
+                                                         p.reference_loser, p.weight)  # identity: streamed pairs
+    fingerprint = checkpoint.fingerprint(config, *data)
     ckpt_dir = run_dir / "checkpoints"
     checkpoint.validate_keep(cfg.train.keep_checkpoints)
     state = resume_state(cfg, ckpt_dir, fingerprint)

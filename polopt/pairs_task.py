@@ -54,6 +54,7 @@ class PairTask:
     file: dict  # the keys of polopt.data.PAIR_FILE_KEYS
     reference: str | None = None
     cache_reference: bool = True
+    stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairs_stream)
 
     def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
                 n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
@@ -61,6 +62,10 @@ class PairTask:
         if mode != "sampled":
             raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs, there is no "
                              f"population to weigh exactly), got {mode!r}")
+        if self.stream:
+            from polopt.pairs_stream import prepare_streamed
+
+            return prepare_streamed(self, loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs, run_dir=run_dir)
         tokenizer = load_tokenizer(self.file.get("tokenizer") or "byte")
         data = load_pairs_from_config(self.file, tokenizer=tokenizer)
         rejects = None
@@ -89,15 +94,17 @@ class PairTask:
 def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
               max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",
               tokenizer: str = "byte", hub: bool = False, split: str = "train", reference: str | None = None,
-              cache_reference: bool = True) -> PairTask:
+              cache_reference: bool = True, stream: bool = False) -> PairTask:
     """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
     if path is None:
         raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
     file = {"path": path, "format": format, "columns": columns, "max_length": max_length,
             "truncation": truncation, "duplicates": duplicates, "tokenizer": tokenizer, "hub": hub, "split": split}
     assert set(file) == set(PAIR_FILE_KEYS)  # the data layer's keys, all passed on
+    if not isinstance(stream, bool):
+        raise ValueError(f"task.stream must be true or false, got {stream!r}")
     return PairTask(file, reference=None if reference in (None, "") else str(reference),
-                    cache_reference=bool(cache_reference))
+                    cache_reference=bool(cache_reference), stream=stream)
 
 
 @dataclass
