@@ -109,10 +109,11 @@ class StreamSession(PairSession):
 
 @torch.no_grad()
 def streamed_statistics(policy, pairs: StreamedPairs, loss: Loss, *, beta: float, smoothing: float,
-                        chunk: int = STATISTICS_CHUNK) -> dict:
+                        chunk: int | None = None) -> dict:
     """Loss, margin, pair accuracy and log-ratios over every pair, ``chunk`` pairs at a time, eval mode:
     the weighted sums of each chunk added up, then divided by the total weight (the same weighted means
     as :func:`polopt.objective.preference_loss` and :func:`polopt.train.batch_statistics` over all pairs)."""
+    chunk = chunk or STATISTICS_CHUNK
     training = policy.training
     policy.eval()
     sums = torch.zeros(6, dtype=torch.float64)  # w l, w rho, w [rho > 0], w lr_w, w lr_l, w

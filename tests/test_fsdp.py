@@ -126,9 +126,9 @@ def _end_state(run_dir: Path):
     rest = {k: state[k] for k in ("scheduler", "generator", "torch_rng", "order", "cursor", "history", "skipped",
                                   "step")}
     out = [summary(run_dir), *[json.loads(x) for x in (run_dir / "metrics.jsonl").read_text().splitlines()]]
-    for record in [*out, *rest["history"]]:  # wall-clock fields
-        record.pop("seconds", None)
-        record.pop("tokens_per_s", None)
+    for record in [*out, *rest["history"]]:  # wall-clock fields, and the run folder's own path
+        for key in ("seconds", "tokens_per_s", "reference_cache"):
+            record.pop(key, None)
     return tensors, rest, out
 
 
