@@ -28,7 +28,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 WORDS = ["amber", "birch", "cobalt", "dune", "ember", "fjord", "glade", "harbor", "iris", "juniper", "kelp", "lumen",
          "moss", "nectar", "opal", "pine", "quartz", "reed", "slate", "thistle"]
-RUN = ["task=pairs", "task.stream=true", "model=transformer", "model.width=32", "model.layers=2", "model.context=96",
+RUN = ["task=pairs", "task.stream=true", "model=transformer", "model.width=32", "model.layers=2", "model.context=128",
        "train.batch_size=64", "train.progress=false", "train.log_every=10", "optim.schedule=constant"]
 
 

@@ -38,7 +38,7 @@ from polopt.tokenizer import load_tokenizer
 
 Tensor = torch.Tensor
 ARROW_FILE = "pairs.arrow"
-STATISTICS_CHUNK = 256
+STATISTICS_CHUNK = 64  # pairs a forward pass: a training batch's order of memory
 
 
 @dataclass
@@ -117,8 +117,7 @@ def streamed_statistics(policy, pairs: StreamedPairs, loss: Loss, *, beta: float
     training = policy.training
     policy.eval()
     sums = torch.zeros(6, dtype=torch.float64)  # w l, w rho, w [rho > 0], w lr_w, w lr_l, w
-    for start in range(0, len(pairs), chunk):
-        b = pairs.select(torch.arange(start, min(start + chunk, len(pairs))))
+    for b in pairs.in_order(chunk):
         logp = batched_logprobs(policy.model, torch.cat([b.prompt, b.prompt]), torch.cat([b.winner, b.loser]),
                                 pad_id=pairs.pad_id, batch_size=2 * len(b))  # (2B,)
         logp_w, logp_l = logp.chunk(2)

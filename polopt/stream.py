@@ -152,6 +152,16 @@ class StreamedPairs(MappedPairs):
         weights = tuple(self.reference.state_dict().values()) if self.reference is not None else ()
         return (torch.frombuffer(bytearray(self.digest), dtype=torch.uint8), *weights)
 
+    def in_order(self, size: int) -> Iterable[PairSet]:
+        """Every pair, in file order, ``size`` at a time; read with plain reads, not through the memory map,
+        so a full pass leaves no file pages resident in this process."""
+        import pyarrow as pa
+
+        with pa.OSFile(str(self.path)) as source:
+            for batch in pa.ipc.open_stream(source):
+                for start in range(0, batch.num_rows, size):
+                    yield self.from_rows(batch.slice(start, size).to_pydict())
+
     @torch.no_grad()
     def reference_of(self, rows: dict, prompt: Tensor, winner: Tensor, loser: Tensor) -> tuple[Tensor, Tensor]:
         from polopt.logprobs import batched_logprobs
