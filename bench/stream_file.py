@@ -49,6 +49,15 @@ def write_file(path: Path, n: int, seed: int = 0) -> Path:
     return path
 
 
+def free_port() -> int:
+    """A TCP port nobody listens on now (bound to port 0, the system picks one)."""
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
 def measured_child(cmd: list[str]) -> None:
     """Run ``cmd`` as the only child; print its exit status and peak RSS (MiB) as JSON."""
     done = subprocess.run(cmd, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)}, capture_output=True,
