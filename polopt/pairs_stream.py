@@ -62,12 +62,13 @@ def prepare_streamed(task, loss: Loss, *, beta: float, smoothing: float, n_pairs
         raise ValueError(f"task.n_pairs must be a positive integer or null (every accepted pair), got {n_pairs!r}")
     run_dir = Path(run_dir)
     run_dir.mkdir(parents=True, exist_ok=True)
-    tokenizer = load_tokenizer(task.file.get("tokenizer") or "byte")
+    file = task.file.as_dict() if hasattr(task.file, "as_dict") else dict(task.file)  # a PairFileSpec
+    tokenizer = load_tokenizer(file.get("tokenizer") or "byte")
     ids = SequenceIds.for_tokenizer(tokenizer)
     rejects, arrow = run_dir / REJECTS_FILE, run_dir / ARROW_FILE
     tmp = f".{os.getpid()}.tmp"
     rejects_tmp, arrow_tmp = rejects.with_name(rejects.name + tmp), arrow.with_name(arrow.name + tmp)
-    stream = StreamPass(task.file, tokenizer, ids, rejects_path=rejects_tmp, work_dir=run_dir, limit=n_pairs)
+    stream = StreamPass(file, tokenizer, ids, rejects_path=rejects_tmp, work_dir=run_dir, limit=n_pairs)
     try:
         write_arrow(arrow_tmp, stream.chunks())
     except ValueError as err:
@@ -77,11 +78,11 @@ def prepare_streamed(task, loss: Loss, *, beta: float, smoothing: float, n_pairs
     data = StreamedData(stream.accounting())
     if len(data) == 0:
         arrow_tmp.unlink(missing_ok=True)
-        raise ValueError(f"task.path {task.file['path']!r}: no pair was accepted "
+        raise ValueError(f"task.path {file['path']!r}: no pair was accepted "
                          f"({data.accounting['rows_rejected']} rejected; see {rejects})")
     os.replace(arrow_tmp, arrow)
     model, meta = (None, None) if task.reference is None else load_reference(task.reference)
-    session = StreamSession(data=data, tokenizer=tokenizer, file_tokenizer=str(task.file.get("tokenizer")), ids=ids,
+    session = StreamSession(data=data, tokenizer=tokenizer, file_tokenizer=str(file.get("tokenizer")), ids=ids,
                             loss=loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs,
                             reference_path=task.reference, reference_model=model, reference_meta=meta, cache=None,
                             rejects_path=rejects)

@@ -143,6 +143,14 @@ def save(directory: str | Path, state: dict, *, run_id: str, fingerprint: str, c
     return final
 
 
+def saver(directory: Path, *, run_id: str, fingerprint: str, config: dict, keep: int, is_main: bool):
+    """``save(training_state)`` into ``directory`` as sharded checkpoints (every rank calls it)."""
+    def write(state: dict) -> None:
+        save(directory, state, run_id=run_id, fingerprint=fingerprint, config=config, keep=keep, is_main=is_main)
+
+    return write
+
+
 def _barrier() -> None:
     import torch.distributed as dist
 

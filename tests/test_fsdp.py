@@ -32,7 +32,7 @@ from helpers_resume import assert_same_state
 from hydra import compose, initialize_config_dir
 
 from polopt import checkpoint, distributed, sharded_checkpoint
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.models import TinyTransformer
 
 ROOT = Path(__file__).resolve().parent.parent

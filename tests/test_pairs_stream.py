@@ -21,7 +21,7 @@ import torch
 from hydra import compose, initialize_config_dir
 
 from polopt import logprobs, reference_cache
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.data import load_pairs
 from polopt.data import stream_pass as stream_pass_module
 from polopt.data.stream_pass import StreamPass
