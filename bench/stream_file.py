@@ -4,7 +4,8 @@
 
 For each size, writes a JSON Lines file of invented word pairs (each row distinct, plus one bad
 row per 1,000: invalid JSON, so the reject path runs too), then runs ``polopt train task=pairs
-task.stream=true`` on it in a fresh process (a tiny transformer, ``--steps`` minibatch steps) and
+task.stream=true`` on it in a fresh process (a tiny transformer, ``--steps`` minibatch steps, the
+summary's statistics over the first 2,000 pairs: ``task.summary_pairs``) and
 reads that process's peak resident set size (``resource.getrusage(RUSAGE_CHILDREN).ru_maxrss`` in a
 wrapper process that runs only this one child). The rows/s of the validation pass come from the
 run's own summary (``data.rows_per_s``: rows read, checked, deduplicated, tokenised and written to
@@ -29,7 +30,8 @@ ROOT = Path(__file__).resolve().parent.parent
 WORDS = ["amber", "birch", "cobalt", "dune", "ember", "fjord", "glade", "harbor", "iris", "juniper", "kelp", "lumen",
          "moss", "nectar", "opal", "pine", "quartz", "reed", "slate", "thistle"]
 RUN = ["task=pairs", "task.stream=true", "model=transformer", "model.width=32", "model.layers=2", "model.context=128",
-       "train.batch_size=64", "train.progress=false", "train.log_every=10", "optim.schedule=constant"]
+       "train.batch_size=64", "train.progress=false", "train.log_every=10", "optim.schedule=constant",
+       "task.summary_pairs=2000"]
 
 
 def write_file(path: Path, n: int, seed: int = 0) -> Path:

@@ -88,6 +88,7 @@ def prepare_streamed(task, loss: Loss, *, beta: float, smoothing: float, n_pairs
                             rejects_path=rejects)
     session.context_needed = stream.longest - 1  # the last token is only scored, never read
     session.pairs = StreamedPairs(arrow, pad_id=ids.pad, digest=stream.digest)
+    session.summary_pairs = task.summary_pairs
     if model is not None:
         session.check_reference()
         session.attach_reference(model)
@@ -104,13 +105,20 @@ class StreamSession(PairSession):
         self.reference_model = model
         self.pairs.attach_reference(model)
 
+    summary_pairs = None  # task.summary_pairs: the final statistics over the first N pairs only (None: all)
+
     def full_statistics(self, policy) -> dict:
-        return streamed_statistics(policy, self.pairs, self.loss, beta=self.beta, smoothing=self.smoothing)
+        stats = streamed_statistics(policy, self.pairs, self.loss, beta=self.beta, smoothing=self.smoothing,
+                                    limit=self.summary_pairs)
+        if self.summary_pairs is not None and self.summary_pairs < len(self.pairs):
+            self.notes.append(f"task.summary_pairs={self.summary_pairs}: the statistics 'over all pairs' are over the "
+                              f"first {self.summary_pairs} of {len(self.pairs)} pairs")
+        return stats
 
 
 @torch.no_grad()
 def streamed_statistics(policy, pairs: StreamedPairs, loss: Loss, *, beta: float, smoothing: float,
-                        chunk: int | None = None) -> dict:
+                        chunk: int | None = None, limit: int | None = None) -> dict:
     """Loss, margin, pair accuracy and log-ratios over every pair, ``chunk`` pairs at a time, eval mode:
     the weighted sums of each chunk added up, then divided by the total weight (the same weighted means
     as :func:`polopt.objective.preference_loss` and :func:`polopt.train.batch_statistics` over all pairs)."""
@@ -118,7 +126,13 @@ def streamed_statistics(policy, pairs: StreamedPairs, loss: Loss, *, beta: float
     training = policy.training
     policy.eval()
     sums = torch.zeros(6, dtype=torch.float64)  # w l, w rho, w [rho > 0], w lr_w, w lr_l, w
+    seen = 0
     for b in pairs.in_order(chunk):
+        if limit is not None and seen >= limit:
+            break
+        if limit is not None and seen + len(b) > limit:
+            b = b.select(torch.arange(limit - seen))
+        seen += len(b)
         logp = batched_logprobs(policy.model, torch.cat([b.prompt, b.prompt]), torch.cat([b.winner, b.loser]),
                                 pad_id=pairs.pad_id, batch_size=2 * len(b))  # (2B,)
         logp_w, logp_l = logp.chunk(2)

@@ -56,6 +56,7 @@ class PairTask:
     reference: str | None = None
     cache_reference: bool = True
     stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairs_stream)
+    summary_pairs: int | None = None  # task.summary_pairs (streamed): the summary's statistics over the first N
 
     def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
                 n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
@@ -95,7 +96,7 @@ class PairTask:
 def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
               max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",
               tokenizer: str = "byte", hub: bool = False, split: str = "train", reference: str | None = None,
-              cache_reference: bool = True, stream: bool = False) -> PairTask:
+              cache_reference: bool = True, stream: bool = False, summary_pairs: int | None = None) -> PairTask:
     """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
     if path is None:
         raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
@@ -103,8 +104,12 @@ def pair_task(path: str | None = None, format: str = "auto", columns: dict | str
                         duplicates=duplicates, tokenizer=tokenizer, hub=hub, split=split)
     if not isinstance(stream, bool):
         raise ValueError(f"task.stream must be true or false, got {stream!r}")
+    if summary_pairs is not None and (not isinstance(summary_pairs, int) or isinstance(summary_pairs, bool)
+                                      or summary_pairs < 1 or not stream):
+        raise ValueError(f"task.summary_pairs must be null (every pair) or a positive integer, with task.stream=true, "
+                         f"got {summary_pairs!r} (task.stream={stream})")
     return PairTask(file, reference=None if reference in (None, "") else str(reference),
-                    cache_reference=bool(cache_reference), stream=stream)
+                    cache_reference=bool(cache_reference), stream=stream, summary_pairs=summary_pairs)
 
 
 @dataclass
