@@ -55,6 +55,8 @@ class PairTask:
     file: PairFileSpec
     reference: str | None = None
     cache_reference: bool = True
+    stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairs_stream)
+    summary_pairs: int | None = None  # task.summary_pairs (streamed): the summary's statistics over the first N
 
     def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
                 n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
@@ -62,6 +64,10 @@ class PairTask:
         if mode != "sampled":
             raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs, there is no "
                              f"population to weigh exactly), got {mode!r}")
+        if self.stream:
+            from polopt.pairs_stream import prepare_streamed
+
+            return prepare_streamed(self, loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs, run_dir=run_dir)
         tokenizer = load_tokenizer(self.file.tokenizer or "byte")
         data = read_pair_file(self.file, tokenizer=tokenizer)
         rejects = None
@@ -96,14 +102,20 @@ class PairTask:
 def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
               max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",
               tokenizer: str = "byte", hub: bool = False, split: str = "train", reference_checkpoint: str | None = None,
-              cache_reference: bool = True) -> PairTask:
+              cache_reference: bool = True, stream: bool = False, summary_pairs: int | None = None) -> PairTask:
     """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
     if path is None:
         raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
     file = PairFileSpec(path, format=format, columns=columns, max_length=max_length, truncation=truncation,
                         duplicates=duplicates, tokenizer=tokenizer, hub=hub, split=split)
+    if not isinstance(stream, bool):
+        raise ValueError(f"task.stream must be true or false, got {stream!r}")
+    if summary_pairs is not None and (not isinstance(summary_pairs, int) or isinstance(summary_pairs, bool)
+                                      or summary_pairs < 1 or not stream):
+        raise ValueError(f"task.summary_pairs must be null (every pair) or a positive integer, with task.stream=true, "
+                         f"got {summary_pairs!r} (task.stream={stream})")
     return PairTask(file, reference=None if reference_checkpoint in (None, "") else str(reference_checkpoint),
-                    cache_reference=bool(cache_reference))
+                    cache_reference=bool(cache_reference), stream=stream, summary_pairs=summary_pairs)
 
 
 @dataclass
