@@ -34,12 +34,14 @@ import sys
 import time
 from pathlib import Path
 
+from polopt import overoptimisation
 from polopt.methods import METHODS
 
-COLUMNS = ("run", "method", "loss", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
+# summary.json's own key names, so that the table, the CSV and the run folders say the same thing
+COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
            "tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "optimum_logratio_winner", "optimum_mean_length",
-           "reference_mean_length", "steps", "seconds")
-# the table's columns as printed: summary.json's key names, with the number format of each
+           "reference_mean_length", "steps", "seconds", "learned_reward", "true_reward", "reward_model")
+# the table's columns as printed, with the number format of each
 SHOWN = (("beta", "g"), ("kl_to_reference", ".4f"), ("win_rate_over_reference", ".4f"), ("expected_reward", ".4f"),
          ("tv_to_optimum", ".2e"), ("tv_to_equilibrium", ".2e"), ("reached_optimum", ""),
          ("optimum_logratio_winner", ".4f"), ("optimum_mean_length", ".3f"), ("reference_mean_length", ".3f"),
@@ -89,6 +91,20 @@ def plan(overrides: list[str]) -> list[list[str]]:
     return runs
 
 
+def merge_notes(overrides: list[str]) -> list[str]:
+    """One note per method other than offline that a ``loss`` list was given to: it does not read the
+    ``loss`` group, so those combinations ran once (see :func:`plan`)."""
+    notes = []
+    combos = expand(overrides)
+    for method in dict.fromkeys(_value(c, "method") or "offline" for c in combos):
+        given = sorted({_value(c, "loss") for c in combos if (_value(c, "method") or "offline") == method} - {None})
+        if method != "offline" and len(given) > 1:
+            uses = "its own method.loss" if method == "selfplay" else "no preference loss"
+            notes.append(f"method={method} ignores the loss group (it trains with {uses}): its runs for "
+                         f"loss={','.join(given)} were merged into one")
+    return notes
+
+
 def label(summary: dict) -> str:
     method = summary.get("method", "offline")
     if method == "offline":
@@ -103,7 +119,7 @@ def label(summary: dict) -> str:
 def row(name: str, summary: dict) -> dict:
     method = summary.get("method", "offline")
     loss = summary.get("loss_name") if method == "offline" else summary.get("method_config", {}).get("loss")
-    return {"run": name, "method": method, "loss": loss, "beta": summary["beta"],
+    return {"run": name, "method": method, "loss_name": loss, "beta": summary["beta"],
             **{k: summary.get(k) for k in COLUMNS[4:]}}
 
 
@@ -123,7 +139,7 @@ def equilibrium_notes(rows: list[dict], summaries: list[dict]) -> list[str]:
                      f"(tau = beta / 2 = {beta / 2:g}) is {shown}; "
                      + (f"at it (TV <= {EQUILIBRIUM_TV:g}): {', '.join(at)}" if at else "no run ends at it"))
         for r, _ in members:
-            if r["method"] == "offline" and r["loss"] == "squared":
+            if r["method"] == "offline" and r["loss_name"] == "squared":
                 where = "also at the equilibrium" if r["tv_to_equilibrium"] <= EQUILIBRIUM_TV else "elsewhere"
                 notes.append(f"beta={beta:g}: {r['run']} ends {where}: TV {r['tv_to_equilibrium']:.3g} from the "
                              f"equilibrium, TV {_fmt(r['tv_to_optimum'])} from its own optimum "
@@ -145,7 +161,8 @@ def render(rows: list[dict], notes: list[str], task: str) -> str:
                   "the run's own exact target; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
                   "optimum_logratio_winner: the optimum's mean log-ratio of preferred responses (below 0: they "
                   "lose probability, likelihood displacement); optimum_mean_length, reference_mean_length: mean "
-                  "response length in tokens under the optimum and under the reference"]
+                  "response length in tokens under the optimum and under the reference; reached_optimum: tv_to_optimum "
+                  "within the run's tolerance (summary.json)"]
     lines += [f"note: {n}" for n in notes]
     return "\n".join(lines)
 
@@ -233,12 +250,17 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     for r in rows:  # runs that differ in something else than method and loss get their folder number
         if names.count(r["run"]) > 1:
             r["run"] = f"{r['run']} #{rows.index(r):02d}"
-    notes = equilibrium_notes(rows, summaries)
+    notes = merge_notes(overrides) + equilibrium_notes(rows, summaries)
     table = render(rows, notes, task)
     result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
               "notes": notes}
     write_tables(out / "comparison", table, rows, COLUMNS, result)
     plot(rows, out / "comparison.png", task)
+    learned = overoptimisation.rows_of_runs(rows, summaries)  # runs with method.reward=PATH
+    if learned:
+        table += "\n\n" + overoptimisation.render(learned, f"{task}: true and learned reward against KL")
+        (out / "comparison.txt").write_text(table + "\n", encoding="utf-8")
+        overoptimisation.plot(learned, out / "overoptimisation.png", task)
     return {**result, "table": table}
 
 
