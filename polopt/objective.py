@@ -140,7 +140,7 @@ def batch_loss(loss: Loss | PairObjective, policy_winner: Tensor, policy_loser: 
 
 def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None,
                      context: distributed.Context | None = None) -> dict:
-    """Weighted means of the margin, the share of pairs with a positive margin, and
+    """Weighted means of the margin, the share of pairs with a positive margin (ties count half), and
     the two log-ratios (both falling together is likelihood displacement); over the global
     batch of all ranks when ``context`` is given and active. Shapes: all (B,)."""
     if context is not None and context.active:
@@ -149,7 +149,7 @@ def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight
     w = w / w.sum()
     return {
         "margin_mean": float((w * rho).sum()),
-        "pair_accuracy": float((w * (rho > 0).to(rho.dtype)).sum()),
+        "pair_accuracy": float((w * (torch.sign(rho) + 1) / 2).sum()),  # a tie (rho = 0) counts half
         "logratio_winner": float((w * logratio_w).sum()),
         "logratio_loser": float((w * logratio_l).sum()),
     }

@@ -19,7 +19,7 @@ import scipy.special
 import torch
 import user_objectives as user
 
-from polopt import losses
+from polopt import losses, objectives
 from polopt.pair_scores import PairScores
 from toy_tasks.families import deterministic
 from toy_tasks.finite import make_task
@@ -38,6 +38,7 @@ OBJECTIVES = {
     "exponential margin": margin_objective(losses.get("exponential")),
 }
 DIVERGENCES = ["reverse_kl", "forward_kl", "jensen_shannon", "alpha_divergence"]
+SMOOTH_BUILTINS = [n for n in objectives.names() if n != "winner_anchored"]  # its max(0, .) kink: tested apart
 
 
 def random_task(seed: int, *, bradley_terry: bool = True):
@@ -82,10 +83,10 @@ def reported_policy(optimum, task) -> np.ndarray:
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2, 3])
-@pytest.mark.parametrize("name", list(OBJECTIVES))
+@pytest.mark.parametrize("name", list(OBJECTIVES) + SMOOTH_BUILTINS)
 def test_reported_optimum_matches_an_independent_solve(name, seed):
     task = random_task(seed, bradley_terry=seed % 2 == 0)
-    objective = OBJECTIVES[name]
+    objective = OBJECTIVES[name] if name in OBJECTIVES else objectives.resolve(name)
     optimum = solve_pairs(objective, task.win_weights(), task.reference, task.lengths, beta=0.7,
                           rewards=task.rewards, population=True)
     assert optimum.finite and optimum.unique
@@ -109,7 +110,7 @@ def test_the_certificate_is_the_projected_gradient_on_the_simplex():
                                                n[x, i], n[x, j]), 0.7)).sum()
     (g,) = torch.autograd.grad(value, pi)
     projected = pi * (g - (pi * g).sum(dim=1, keepdim=True))
-    assert float(projected.abs().max()) <= 1e-8
+    assert float(projected.detach().abs().max()) <= 1e-8
     assert optimum.value == pytest.approx(float(value), rel=1e-12)
 
 
@@ -210,3 +211,88 @@ def test_an_objective_of_the_wrong_shape_gets_one_line():
     with pytest.raises(ValueError, match=r"pair objective wrong_shape must return one loss per pair, a tensor of "
                                          r"shape \(\d+,\) for \d+ pairs; got \(\)"):
         solve_pairs(user.wrong_shape, task.win_weights(), task.reference, task.lengths, beta=0.5)
+
+
+def bradley_terry_exponential(task, scores: np.ndarray, beta: float) -> np.ndarray:
+    p = np.exp(scores / beta - (scores / beta).max(axis=1, keepdims=True))
+    return p / p.sum(axis=1, keepdims=True)
+
+
+def test_length_regularised_dpo_closed_form():
+    # Park et al., Disentangling Length from Quality in DPO, 2024; derivation: every pair's term is
+    # -log sigma(beta h_w + alpha n_w - (beta h_l + alpha n_l)), minimised on Bradley–Terry pairs at
+    # beta h_i + alpha n_i = r_i + c (the logit of P), so pi* ∝ pi_ref e^{(r - alpha n) / beta}
+    task, beta = random_task(6), 0.6
+    optimum = solve_pairs(objectives.resolve("length_regularised", alpha=0.2), task.win_weights(), task.reference,
+                          task.lengths, beta=beta)
+    expected = bradley_terry_exponential(task, np.log(task.reference) * beta + task.rewards - 0.2 * task.lengths,
+                                         beta)
+    np.testing.assert_allclose(reported_policy(optimum, task), expected, atol=1e-8)
+
+
+def test_reference_free_logistic_closed_form():
+    # derivation: the terms -log sigma(beta (log pi_w - log pi_l)) are minimised on Bradley–Terry pairs at
+    # beta log pi_i = r_i + c, so pi* ∝ e^{r / beta}: the reference plays no part (CPO's preference term,
+    # Xu et al. 2024)
+    task, beta = random_task(8), 0.9
+    optimum = solve_pairs(objectives.resolve("reference_free_logistic"), task.win_weights(), task.reference,
+                          task.lengths, beta=beta)
+    np.testing.assert_allclose(reported_policy(optimum, task), bradley_terry_exponential(task, task.rewards, beta),
+                               atol=1e-8)
+
+
+@pytest.mark.parametrize("name", ["divergence_forward_kl", "divergence_jensen_shannon", "divergence_alpha",
+                                  "chi_squared_link"])
+def test_registered_divergences_use_their_closed_form(name):
+    # Wang et al. 2023 (f-DPO) and Huang et al. 2024 (chi-PO, link u + log u): f'(pi / pi_ref) - r / beta
+    # is the same for every response; the link is written here from each paper's f, not taken from the solver
+    links = {"divergence_forward_kl": lambda u: -1.0 / u,
+             "divergence_jensen_shannon": lambda u: np.log(2 * u / (1 + u)),
+             "divergence_alpha": lambda u: (1.0 - u**-0.5) / 0.5, "chi_squared_link": lambda u: u + np.log(u)}
+    task, beta = random_task(4), 0.8
+    optimum = solve_pairs(objectives.resolve(name), task.win_weights(), task.reference, task.lengths, beta=beta,
+                          rewards=task.rewards, population=True)
+    assert optimum.method.startswith("closed form") and optimum.residual <= 1e-9
+    offset = links[name](reported_policy(optimum, task) / task.reference) - task.rewards / beta
+    np.testing.assert_allclose(offset - offset[:, :1], 0.0, atol=1e-8)
+
+
+def dpop_by_slsqp(task, beta: float, penalty: float) -> np.ndarray:
+    """DPO-Positive's optimum by an independent route: the kink max(0, -h_w) becomes a variable s >= 0,
+    s >= -h (an epigraph; the loss grows with s, so s = max(0, -h) at the optimum), and the simplex is
+    the constraint sum_i pi_ref,i e^{h_i} = 1; scipy's SLSQP on this smooth problem, prompt by prompt."""
+    return np.stack([_dpop_prompt(task.win_weights()[x], task.reference[x], beta, penalty)
+                     for x in range(task.n_prompts)])
+
+
+def _dpop_prompt(weights: np.ndarray, ref: np.ndarray, beta: float, penalty: float) -> np.ndarray:
+    w, k = torch.as_tensor(weights), len(ref)
+
+    def loss(v):
+        v = torch.as_tensor(v, dtype=torch.float64).requires_grad_(True)
+        h, s = v[:k], v[k:]
+        margin = h[:, None] - h[None, :] - penalty * s[:, None]  # (K, K): winner i, loser j
+        value = (w * torch.nn.functional.softplus(-beta * margin)).sum()
+        (g,) = torch.autograd.grad(value, v)
+        return float(value.detach()), g.numpy()
+
+    constraints = [{"type": "eq", "fun": lambda v: ref @ np.exp(v[:k]) - 1.0,
+                    "jac": lambda v: np.concatenate([ref * np.exp(v[:k]), np.zeros(k)])},
+                   {"type": "ineq", "fun": lambda v: v[k:] + v[:k],
+                    "jac": lambda v: np.hstack([np.eye(k), np.eye(k)])}]
+    result = scipy.optimize.minimize(loss, np.zeros(2 * k), jac=True, method="SLSQP", constraints=constraints,
+                                     bounds=[(None, None)] * k + [(0.0, None)] * k,
+                                     options={"ftol": 1e-16, "maxiter": 2000})
+    return ref * np.exp(result.x[:k]) / (ref @ np.exp(result.x[:k]))
+
+
+@pytest.mark.parametrize(("penalty", "seed"), [(50.0, 0), (2.0, 1), (2.0, 2), (0.5, 3)])
+def test_winner_anchored_optimum_at_its_kink(penalty, seed):
+    # Pal et al. 2024 (DPO-Positive): the anchor max(0, -h_w) has a kink at the reference, where the
+    # optimum often sits; no gradient vanishes there, so the certificate is the steepest descent over
+    # every transfer of mass between two responses (one-sided slopes), checked against SLSQP here
+    task, beta = random_task(seed, bradley_terry=seed % 2 == 0), 0.7
+    objective = objectives.resolve("winner_anchored", penalty=penalty)
+    optimum = solve_pairs(objective, task.win_weights(), task.reference, task.lengths, beta=beta)
+    assert optimum.finite and optimum.residual <= 1e-7
+    np.testing.assert_allclose(reported_policy(optimum, task), dpop_by_slsqp(task, beta, penalty), atol=1e-6)

@@ -36,7 +36,7 @@ from pathlib import Path
 import numpy as np
 import scipy.special
 
-from toy_tasks import session
+from toy_tasks import reward_fit, session
 from toy_tasks.measures import kl_divergence
 
 PROBABILITY_TOLERANCE = 1e-6
@@ -142,6 +142,12 @@ class FiniteTask:
         """``task.prepare(loss, beta=..., smoothing=..., mode=..., n_pairs=..., seed=...)``: the
         trainer's view of this task (see :mod:`toy_tasks.session`)."""
         return session.prepare(self, loss, **kwargs)
+
+    def fit_reward(self, **kwargs):
+        """``polopt reward``: a Bradley–Terry reward table fitted to this task's pairs
+        (see :mod:`toy_tasks.reward_fit`)."""
+        table_keys = {k: v for k, v in kwargs.items() if k not in ("model", "steps", "lr")}  # no network to train
+        return reward_fit.fit_task_reward(self, **table_keys)
 
     # ------------------------------------------------------------------ files
 

@@ -50,6 +50,10 @@ Tensor = torch.Tensor
 PairObjective = Callable[[PairScores, float], Tensor]
 
 GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
+CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
+CERTIFIED = 1e-7  # an answer whose gradient is larger is reported as not certified
+KINK_BAND = 1e-4  # log-ratios this close to 0 are taken to sit at an anchor term's kink
+MAX_ITERATIONS = 300  # trust-region iterations per solve: smooth problems need tens; a kink would take them all
 DENSE_LIMIT = 128  # above this many responses per prompt, Hessian-vector products instead of the Hessian
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
@@ -58,9 +62,18 @@ BOUNDARY_ROUNDS = 4  # continuations along the ray before the infimum is reporte
 VANISHED_DROP = 2.0  # a response whose log-probability fell by more than this while continuing has no mass in the limit
 
 
+def margin_of(objective) -> Loss | None:
+    """The margin loss f behind ``objective`` (a :class:`polopt.losses.Loss`, or a pair objective
+    made from one by :func:`polopt.objectives.from_margin`), else None."""
+    if isinstance(objective, Loss):
+        return objective
+    margin = getattr(objective, "margin", None)
+    return margin if isinstance(margin, Loss) else None
+
+
 def is_margin_loss(objective) -> bool:
-    """Whether ``objective`` is a margin loss f of :mod:`polopt.losses` (solved by :mod:`toy_tasks.solve`)."""
-    return isinstance(objective, Loss)
+    """Whether ``objective`` is a margin loss f (solved by :mod:`toy_tasks.solve`)."""
+    return margin_of(objective) is not None
 
 
 def margin_objective(loss: Loss | Callable[[Tensor], Tensor]) -> PairObjective:
@@ -105,8 +118,9 @@ def pair_population_loss(objective: PairObjective, weights: np.ndarray, policy: 
 def objective_value(objective, weights: np.ndarray, h: np.ndarray, reference: np.ndarray, lengths: np.ndarray,
                     *, beta: float) -> float:
     """The population loss at log-ratios h (X, K) for a margin loss or a pair objective alike."""
-    if is_margin_loss(objective):
-        return population_loss(objective, weights, h, beta=beta)
+    margin = margin_of(objective)
+    if margin is not None:
+        return population_loss(margin, weights, h, beta=beta)
     policy = scipy.special.softmax(np.log(reference) + h, axis=1)
     return pair_population_loss(objective, weights, policy, reference, lengths, beta=beta)
 
@@ -130,6 +144,12 @@ class _Prompt:
     def value(self, z: np.ndarray) -> float:
         with torch.no_grad():
             return float(self.loss(torch.as_tensor(z, dtype=torch.float64)))
+
+    def value_at(self, log_pi: np.ndarray) -> float:
+        """L at the policy of log-probabilities ``log_pi`` (K,) itself."""
+        with torch.no_grad():
+            return float(_pair_terms(self.objective, self.w, torch.as_tensor(log_pi, dtype=torch.float64),
+                                     self.log_ref, self.lengths, self.beta))
 
     def grad(self, z: np.ndarray) -> np.ndarray:
         zt = torch.as_tensor(z, dtype=torch.float64).requires_grad_(True)
@@ -161,7 +181,7 @@ def _minimise(problem: _Prompt, z0: np.ndarray) -> np.ndarray:
     else:
         kwargs = dict(hessp=problem.hessp, method="trust-krylov")
     result = scipy.optimize.minimize(problem.fun, z0 - z0.mean(), jac=True,
-                                     options={"gtol": GRADIENT_TOLERANCE, "maxiter": 1000}, **kwargs)
+                                     options={"gtol": GRADIENT_TOLERANCE, "maxiter": MAX_ITERATIONS}, **kwargs)
     z = result.x
     for _ in range(5):  # polish with plain Newton steps: trust-region methods may stop a little above gtol
         gradient = np.abs(problem.fun(z)[1]).max()
@@ -228,10 +248,91 @@ def _solve_prompt(problem: _Prompt, z0: np.ndarray) -> dict:
     log_pi = torch.log_softmax(torch.as_tensor(z), 0).numpy()
     out = {"z": z, "value": problem.value(z), "residual": float(np.abs(problem.grad(z)).max()),
            "finite": not on_boundary, "support": None}
+    if not on_boundary and out["residual"] > CERTIFIED and len(z) <= DENSE_LIMIT:  # a kink: no gradient vanishes
+        kinked = _kinked(problem, z)
+        if kinked is not None and kinked["value"] <= out["value"] + 1e-12 * (1.0 + abs(out["value"])):
+            return kinked
     if on_boundary:
         kept = (log_pi > first - VANISHED_DROP) & (log_pi > np.log(1e-12))
         out["support"] = [int(i) for i in np.flatnonzero(kept)] or [int(np.argmax(log_pi))]
     return out
+
+
+# ------------------------------------------------------------------ kinks at the reference
+
+
+class _Pinned(_Prompt):
+    """The prompt's L with the responses of ``pinned`` held at their reference probability (log-ratio
+    0, where anchor terms such as max(0, -h_w) have their kink); the others share the remaining mass
+    as a softmax of their own logits y."""
+
+    def __init__(self, base: _Prompt, pinned: np.ndarray):
+        self.__dict__.update(base.__dict__)
+        self.pinned = torch.as_tensor(pinned)
+        self.rest = float(torch.log1p(-self.log_ref[self.pinned].exp().sum()))  # log of the unpinned mass
+
+    def log_policy(self, y: Tensor) -> Tensor:
+        log_pi = self.log_ref.clone()
+        log_pi[~self.pinned] = self.rest + torch.log_softmax(y, dim=0)
+        return log_pi  # (K,)
+
+    def loss(self, y: Tensor) -> Tensor:
+        return _pair_terms(self.objective, self.w, self.log_policy(y), self.log_ref, self.lengths, self.beta)
+
+
+def _transfer_slopes(problem: _Prompt, log_pi: np.ndarray, step: float = 1e-6) -> np.ndarray:
+    """One-sided derivatives (K, K) of L when mass ``t pi_j`` moves from response j to response i,
+    by Richardson-extrapolated forward differences (error O(step^2)); the diagonal is 0."""
+    pi = np.exp(log_pi)
+    base = problem.value_at(log_pi)
+
+    def slope(i, j, t):
+        moved = pi.copy()
+        moved[i], moved[j] = pi[i] + t * pi[j], pi[j] * (1.0 - t)
+        return (problem.value_at(np.log(moved)) - base) / t
+
+    k = len(pi)
+    out = np.zeros((k, k))
+    for i in range(k):
+        for j in range(k):
+            if i != j:
+                out[i, j] = 2.0 * slope(i, j, step / 2) - slope(i, j, step)
+    return out
+
+
+def _kinked(problem: _Prompt, z: np.ndarray) -> dict | None:
+    """Where Newton stopped with a large gradient next to log-ratios of 0: an active-set solve with
+    those responses pinned at the reference, releasing any pinned response that a transfer of mass
+    can still improve. Returns the answer with its certificate (the largest of the free gradient and
+    the steepest descent over all transfers of mass), or None when it does not certify."""
+    h = torch.log_softmax(torch.as_tensor(z), 0).numpy() - problem.log_ref.numpy()
+    pinned = np.abs(h) < KINK_BAND
+    for _ in range(3 * len(z)):
+        if pinned.all():
+            log_pi, free_gradient = problem.log_ref.numpy(), 0.0
+        else:
+            reduced = _Pinned(problem, pinned)
+            y = _minimise(reduced, h[~pinned] + problem.log_ref.numpy()[~pinned])
+            with torch.no_grad():
+                log_pi = reduced.log_policy(torch.as_tensor(y)).numpy()
+            free_gradient = float(np.abs(reduced.grad(y)).max())
+        h = log_pi - problem.log_ref.numpy()
+        landed = ~pinned & (np.abs(h) < KINK_BAND)  # free responses that stopped at a kink of their own
+        if free_gradient > CERTIFIED and landed.any():
+            pinned |= landed
+            continue
+        slopes = _transfer_slopes(problem, log_pi)
+        descent = -min(0.0, slopes.min())
+        if descent <= CERTIFIED and free_gradient <= CERTIFIED:
+            z_out = log_pi - log_pi.mean()
+            return {"z": z_out, "value": problem.value(z_out), "residual": max(free_gradient, descent),
+                    "finite": True, "support": None}
+        i, j = np.unravel_index(int(slopes.argmin()), slopes.shape)  # the steepest transfer: j -> i
+        if not (pinned[i] or pinned[j]):
+            return None
+        pinned[i] = pinned[j] = False
+        h[i], h[j] = h[i] + 10 * KINK_BAND, h[j] - 10 * KINK_BAND  # start off the kink, on the descent side
+    return None
 
 
 def _starts(log_ref: np.ndarray, n: int, seed: int) -> list[np.ndarray]:
@@ -262,20 +363,55 @@ def divergence_optimum(ratio_link: Callable[[Tensor], Tensor], reference: np.nda
         return scipy.optimize.brentq(lambda t: link(t) - target, low_t, high_t, xtol=1e-14, rtol=1e-15)
 
     s = np.asarray(rewards, dtype=np.float64) / beta
-    mass = lambda c: float(np.sum(reference * np.exp([log_ratio(v + c) for v in s])))  # noqa: E731
-    c_lo, c_hi = low - s.min(), high - s.max()  # every target inside the range of f'
-    if not c_lo < c_hi or not mass(c_lo) < 1.0 < mass(c_hi):
-        return None
-    c = scipy.optimize.brentq(lambda c: mass(c) - 1.0, c_lo, c_hi, xtol=1e-15, rtol=4 * np.finfo(float).eps)
-    t = np.array([log_ratio(v + c) for v in s])
+    # c found through the top response's log-ratio t_top in [-60, 60] (c = f'(e^t_top) - max s): the mass
+    # grows with t_top from below 1 (every ratio at e^-60) to above 1 (the top one at e^60)
+    ratios = lambda t_top: np.array([log_ratio(v + link(t_top) - s.max()) for v in s])  # noqa: E731
+    t_top = scipy.optimize.brentq(lambda t: float(np.sum(reference * np.exp(ratios(t)))) - 1.0, low_t, high_t,
+                                  xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=500)
+    t = ratios(t_top)
     if np.any(t <= low_t) or np.any(t >= high_t):
         return None
     pi = reference * np.exp(t)
     return pi / pi.sum()
 
 
+def _alpha_link(u: Tensor, alpha: float = 0.5) -> Tensor:
+    return (1.0 - u ** (-alpha)) / alpha
+
+
+def _chi_link(u: Tensor, clip: float | None = None) -> Tensor | None:
+    return None if clip is not None else u + torch.log(u)
+
+
+# f' of the registered divergence-family members (polopt.pair_objectives), by function name; each
+# takes the member's keyword parameters. chi-PO's link u + log u (Huang et al. 2024) is the same
+# family; its clipped form is not (the closed form holds only without clipping).
+RATIO_LINKS: dict[str, Callable[..., Tensor | None]] = {
+    "divergence_reverse_kl": lambda u: torch.log(u) + 1.0,  # f(u) = u log u
+    "divergence_forward_kl": lambda u: -1.0 / u,  # f(u) = -log u
+    "divergence_jensen_shannon": lambda u: torch.log(2.0 * u / (1.0 + u)),  # f(u) = u log u - (1+u) log((1+u)/2)
+    "divergence_alpha": _alpha_link,
+    "chi_squared_link": _chi_link,
+}
+
+
+def ratio_link(objective) -> Callable[[Tensor], Tensor] | None:
+    """The objective's f' as a function of u = pi / pi_ref, where it belongs to the divergence family:
+    its own ``ratio_link`` attribute, or the link of a registered member; else None."""
+    own = getattr(objective, "ratio_link", None)
+    if own is not None:
+        return own
+    fn, params = getattr(objective, "fn", None), getattr(objective, "params", {})
+    link = RATIO_LINKS.get(getattr(fn, "__name__", ""))
+    if link is None or getattr(fn, "__module__", "") != "polopt.pair_objectives":
+        return None
+    if link(torch.ones(1, dtype=torch.float64), **params) is None:
+        return None
+    return lambda u: link(u, **params)
+
+
 def _closed_form(objective, weights, reference, rewards, beta, population) -> np.ndarray | None:
-    link = getattr(objective, "ratio_link", None)
+    link = ratio_link(objective)
     if link is None or rewards is None or not population:
         return None
     if not np.all(weights + np.swapaxes(weights, 1, 2) + np.eye(weights.shape[1]) > 0):
@@ -307,13 +443,24 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     weights, reference, lengths = (np.asarray(a, dtype=np.float64) for a in (weights, reference, lengths))
     n_prompts, k = reference.shape
     log_ref = np.log(reference)
+    problems = [_Prompt(objective, weights[x], log_ref[x], lengths[x], beta) for x in range(n_prompts)]
+    components = [np.zeros(k, dtype=int)] * n_prompts
     closed = _closed_form(objective, weights, reference, rewards, beta, population)
+    if closed is not None:  # used where its certificate holds
+        residual = max(float(np.abs(p.grad(np.log(closed[x]))).max()) for x, p in enumerate(problems))
+        if residual <= CLOSED_FORM_TOLERANCE:
+            h = np.log(closed) - log_ref
+            value = sum(p.value(np.log(closed[x])) for x, p in enumerate(problems))
+            return Optimum(True, h - h.mean(axis=1, keepdims=True), value,
+                           "closed form f'(pi / pi_ref) = r / beta + c (Wang et al. 2023), certified by its residual",
+                           residual, True, None, components)
     z = np.zeros((n_prompts, k))
     value, residual, finite, unique, support, notes = 0.0, 0.0, True, True, [], []
-    for x in range(n_prompts):
-        problem = _Prompt(objective, weights[x], log_ref[x], lengths[x], beta)
-        runs = [_solve_prompt(problem, z0) for z0 in _starts(log_ref[x], starts if k <= DENSE_LIMIT else 2,
-                                                             seed + x)]
+    n_starts = starts if k <= DENSE_LIMIT else min(starts, 2)
+    for x, problem in enumerate(problems):
+        runs = [_solve_prompt(problem, z0) for z0 in _starts(log_ref[x], n_starts, seed + x)]
+        certified = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
+        runs = certified
         best = min(runs, key=lambda r: r["value"])
         value += best["value"]
         z[x], residual = best["z"], max(residual, best["residual"])
@@ -323,23 +470,17 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     if not finite:
         return Optimum(False, None, value, "no finite optimum: the infimum lies on the simplex's boundary "
                        "(trust-region Newton in the softmax logits, continued along the descent ray)",
-                       residual, False, support, [np.zeros(k, dtype=int)] * n_prompts,
+                       residual, False, support, components,
                        notes + [f"{_name(objective)}: some responses' probabilities fall to 0 in the limit; "
                                 f"'limit_support' lists, per prompt, the responses that keep mass"])
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
     scheme = "trust-exact" if k <= DENSE_LIMIT else "trust-krylov"
     method = (f"trust-region Newton in the softmax logits (scipy {scheme}, torch autograd float64), "
-              f"{starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
-    if closed is not None:
-        h_closed = np.log(closed) - log_ref
-        problem_residual = max(float(np.abs(_Prompt(objective, weights[x], log_ref[x], lengths[x], beta).grad(
-            np.log(closed[x]))).max()) for x in range(n_prompts))
-        h, residual = h_closed, problem_residual
-        value = sum(_Prompt(objective, weights[x], log_ref[x], lengths[x], beta).value(np.log(closed[x]))
-                    for x in range(n_prompts))
-        method = "closed form f'(pi / pi_ref) = r / beta + c (Wang et al. 2023), certified by its residual"
-    h = h - h.mean(axis=1, keepdims=True)
-    return Optimum(True, h, value, method, residual, unique, None, [np.zeros(k, dtype=int)] * n_prompts, notes)
+              f"{n_starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
+    if residual > CERTIFIED:
+        notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
+                     "may not be differentiable there (a max(0, .) term), or the solve stopped early")
+    return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes)
 
 
 def _agree(runs: list[dict], best: dict, notes: list[str], x: int) -> bool:
@@ -362,8 +503,9 @@ def exact_optimum(objective, weights: np.ndarray, *, task, beta: float, populati
     """The optimum of ``objective`` (a margin loss or a pair objective) on ``task``'s win weights
     ``weights``: margin losses through :func:`toy_tasks.solve.solve`, unchanged; pair objectives
     through :func:`solve_pairs`."""
-    if is_margin_loss(objective):
-        return solve(objective, weights, beta=beta, rewards=task.rewards, sampling=task.sampling,
+    margin = margin_of(objective)
+    if margin is not None:
+        return solve(margin, weights, beta=beta, rewards=task.rewards, sampling=task.sampling,
                      preference=task.preference, population=population)
     return solve_pairs(objective, weights, task.reference, task.lengths, beta=beta, rewards=task.rewards,
                        population=population)

@@ -32,7 +32,7 @@ from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
 from polopt.pair_set import PairSet, score_pairs
 from polopt.reference_cache import FILE_NAME, reference_logprobs
-from polopt.verdict import reached_line
+from polopt.verdict import SEQUENCE_MODEL_TOLERANCE
 from toy_tasks.sequence_methods import SequenceMethodView
 from toy_tasks.sequence_policy import EnumeratedSequencePolicy
 from toy_tasks.session import FiniteSession
@@ -59,13 +59,15 @@ class SequenceSession:
                      context: int = 16, seed: int = 0, init: str = "reference",
                      path: str | None = None) -> torch.nn.Module:
         """A sequence model over the task's vocabulary, wrapped to score enumerated responses
-        (``kind="hf"``: the transformers causal LM saved in ``path``, at its own weights)."""
-        if kind == "hf":
+        (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights)."""
+        if kind == "local_lm":
             from polopt.hf import causal_lm_policy  # the optional extra: imported only when asked for
 
             lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
                                   vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
             return EnumeratedSequencePolicy(lm.model, self.task)
+        if kind not in ("tabular", "loglinear"):  # a sequence model fits the enumerated distribution approximately
+            self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE
         if kind in ("tabular", "loglinear"):
             if self.finite.mode != "exact":
                 raise ValueError(f"model={kind} scores enumerated responses, not tokens: on task=sequence it "
@@ -122,7 +124,6 @@ class SequenceSession:
         if summary.get("tv_to_population_optimum") is not None:
             lines.append(f"tv_to_population_optimum {summary['tv_to_population_optimum']:.3g} "
                          f"(n_pairs = {summary['n_pairs']})")
-        lines.append(reached_line(summary))
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
 

@@ -40,7 +40,7 @@ import torch
 
 from polopt.logprobs import batched_logprobs
 from polopt.models import TinyTransformer
-from toy_tasks import sequence_session
+from toy_tasks import sequence_reward, sequence_session
 from toy_tasks.finite import FiniteTask, make_task
 
 PREFERENCES = ("bradley_terry", "nontransitive")
@@ -209,6 +209,10 @@ class SequenceTask:
     def save(self, path: str | Path) -> Path:
         """Write the enumerated finite task as a task file (``polopt export sequence OUT.json``)."""
         return self.finite.save(path)
+
+    def fit_reward(self, **kwargs):
+        """``polopt reward``: a scalar head on the tiny transformer (see :mod:`toy_tasks.sequence_reward`)."""
+        return sequence_reward.fit_sequence_reward(self, **kwargs)
 
     def prepare(self, loss, **kwargs):
         """The trainer's view of this task (see :mod:`toy_tasks.sequence_session`)."""

@@ -19,9 +19,10 @@ from polopt.contracts import TrainResult
 from polopt.losses import Loss
 from polopt.pair_set import PairSet
 from polopt.policies import build_policy
-from polopt.verdict import REACHED_TOLERANCE, reached_line, reached_optimum
+from polopt.verdict import REACHED_TOLERANCE, verdict_fields
 from toy_tasks.measures import displacement_warning, loss_gaps, margin_growth, per_prompt, total_variation
 from toy_tasks.methods import MethodView
+from toy_tasks.optimum_traits import traits
 from toy_tasks.pair_solve import exact_optimum, objective_value
 from toy_tasks.solve import Optimum, smoothed_weights
 from toy_tasks.tables import policy_rows
@@ -43,6 +44,7 @@ class FiniteSession:
     optimum: Optimum  # of the trained objective
     population_optimum: Optimum  # of the population objective (the same object in exact mode)
     threads: int = 1  # the run's torch thread count unless the config sets `threads`
+    tolerance: float = REACHED_TOLERANCE  # TV within which reached_optimum is true (a sequence model's is wider)
 
     # ------------------------------------------------------------ model
 
@@ -109,14 +111,12 @@ class FiniteSession:
             "loss_gap": gap,
             "relative_loss_gap": relative,
             "kl_to_reference": self.task.kl_to_reference(pi),
-            "reached_optimum_tolerance": REACHED_TOLERANCE,
             "steps": result.steps,
             "seconds": result.seconds,
             "notes": list(opt.notes),
         }
-        summary["reached_optimum"] = reached_optimum(summary["tv_to_optimum"], optimum_finite=opt.finite,
-                                                     unique=opt.unique,
-                                                     relative_loss_gap=summary["relative_loss_gap"])
+        summary.update(traits(self.task, self.weights, opt.logratios if opt.finite else None))
+        summary.update(verdict_fields(summary, result.history, tolerance=self.tolerance))
         if self.mode == "sampled":
             pop = self.population_optimum
             pop_value = self.objective_value(self.population_weights, h)
@@ -168,7 +168,6 @@ class FiniteSession:
         if "tv_to_population_optimum" in summary and summary["tv_to_population_optimum"] is not None:
             lines.append(f"tv_to_population_optimum {summary['tv_to_population_optimum']:.3g} "
                          f"(n_pairs = {summary['n_pairs']})")
-        lines.append(reached_line(summary))
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
 
