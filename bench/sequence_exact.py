@@ -21,7 +21,7 @@ from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from polopt import losses
-from polopt.app import _TASK_RUN_KEYS, CONFIG_DIR
+from polopt.commands.train import _TASK_RUN_KEYS, CONFIG_DIR
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.optim import OptimConfig

@@ -19,7 +19,7 @@ import torch
 import torch.nn.functional as F
 
 from polopt import check, losses
-from polopt.cli import main
+from polopt.commands.main import main
 from polopt.losses import Loss
 from toy_tasks import families
 
@@ -310,8 +310,8 @@ def test_cli_population_and_plot(tmp_path, capsys):
 def test_cli_builds_tasks_from_the_task_configs():
     from omegaconf import OmegaConf
 
-    from polopt.app import CONFIG_DIR
-    from polopt.cli import _check_tasks
+    from polopt.commands.check import check_tasks as _check_tasks
+    from polopt.commands.train import CONFIG_DIR
 
     (name, task), = _check_tasks(["bradley_terry"])[0]
     expected = OmegaConf.load(CONFIG_DIR / "task" / "bradley_terry.yaml")

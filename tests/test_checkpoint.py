@@ -124,7 +124,7 @@ class TestFullDisk:
 
     @pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="needs Linux's /proc/self/fd")
     def test_cli_says_disk_full_in_one_line_and_a_rerun_resumes(self, tmp_path, monkeypatch, capsys):
-        from polopt.cli import main
+        from polopt.commands.main import main
 
         run_dir = tmp_path / "run"
         args = ["train", "train.steps=6", "train.checkpoint_every=2", "train.progress=false",
@@ -248,7 +248,7 @@ def test_a_checkpoint_of_another_shape_is_one_line():
 
 
 def test_one_run_folder_one_process(tmp_path, capsys):
-    from polopt.cli import main
+    from polopt.commands.main import main
 
     with checkpoint.exclusive(tmp_path):  # as if another polopt train were running there
         with pytest.raises(SystemExit) as stop:
@@ -331,7 +331,7 @@ def _copy(state):
 
 
 def test_cli_checkpoints_verifies_and_names_the_resume_point(tmp_path, capsys):
-    from polopt.cli import main
+    from polopt.commands.main import main
 
     folder = tmp_path / "checkpoints"
     _save(folder, 2)

@@ -22,7 +22,7 @@ tokenizers = pytest.importorskip("tokenizers")
 from hydra import compose, initialize_config_dir  # noqa: E402
 
 from polopt import hf, losses  # noqa: E402
-from polopt.app import CONFIG_DIR, run  # noqa: E402
+from polopt.commands.train import CONFIG_DIR, run  # noqa: E402
 from polopt.data import load_pairs  # noqa: E402
 from polopt.optim import OptimConfig  # noqa: E402
 from polopt.train import TrainSettings, train  # noqa: E402

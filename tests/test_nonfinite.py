@@ -7,7 +7,7 @@ import pytest
 import torch
 
 from polopt import checkpoint, losses
-from polopt.cli import main
+from polopt.commands.main import main
 from polopt.optim import OptimConfig
 from polopt.pair_set import PairSet
 from polopt.train import TrainSettings, train

@@ -13,8 +13,8 @@ from pathlib import Path
 import pytest
 from hydra import compose, initialize_config_dir
 
-from polopt.app import CONFIG_DIR, build_task
-from polopt.cli import main
+from polopt.commands.main import main
+from polopt.commands.train import CONFIG_DIR, build_task
 from toy_tasks.finite import load_task
 
 ROOT = Path(__file__).resolve().parent.parent

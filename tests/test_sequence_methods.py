@@ -21,8 +21,8 @@ import torch
 from hydra import compose, initialize_config_dir
 
 from polopt import losses
-from polopt.app import CONFIG_DIR, run
-from polopt.cli import main
+from polopt.commands.main import main
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.realign import equivalent_beta, realign, realigned_sequence_logprobs

@@ -17,8 +17,8 @@ import torch
 from hydra import compose, initialize_config_dir
 
 from polopt import losses
-from polopt.app import CONFIG_DIR, run
-from polopt.cli import main
+from polopt.commands.main import main
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.optim import OptimConfig
 from polopt.reference_cache import FILE_NAME
 from polopt.train import TrainSettings, train

@@ -5,7 +5,7 @@
 - :mod:`polopt.data.read`: JSONL / CSV / Parquet / saved folders (and the hub, opt-in) to raw rows.
 - :mod:`polopt.data.validate`: the row checks, truncation, duplicates, the accounting.
 - :mod:`polopt.data.report`: the summary text, the length histogram and plot, the rejects file.
-- :mod:`polopt.data.command`: ``polopt data FILE``.
+- :mod:`polopt.commands.data`: ``polopt data FILE``.
 
 The one call the trainer needs (``load_pairs(path, **keys)`` builds the spec from keywords)::
 

@@ -31,16 +31,13 @@ from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
 from polopt import checkpoint, devices, distributed, losses
+from polopt.commands.config import CONFIG_DIR, rewrite_overrides
 from polopt.contracts import MethodView, Session, method_view, session_threads, trains_on_gpu
 from polopt.methods import method_objective
 from polopt.objective import validate_hyperparameters
 from polopt.optim import OptimConfig
 from polopt.run_folder import RunFolder, run_summary
 from polopt.train import MethodObjective, PairObjective, TrainSettings, optimise
-
-CONFIG_DIR = Path(__file__).resolve().parent / "conf"
-if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ beside the package
-    CONFIG_DIR = Path(__file__).resolve().parent.parent / "conf"
 
 _TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
@@ -263,3 +260,15 @@ def train_main(cfg: DictConfig) -> None:
                   "is kept: rerun the same command to resume"
         print(f"polopt train: error: {err}", file=sys.stderr)
         sys.exit(2)
+
+
+def main(argv: list[str]) -> int:
+    """The ``polopt train`` subcommand: group options checked, then Hydra's entry point."""
+    try:
+        overrides = rewrite_overrides(argv)
+    except ValueError as err:
+        print(f"polopt train: error: {err}", file=sys.stderr)
+        return 2
+    sys.argv = ["polopt train", *overrides]
+    train_main()
+    return 0
