@@ -63,6 +63,14 @@ def test_imports_by_name_only_for_the_dotted_loss_path():
     assert argument.values[0].value == "polopt.commands."
 
 
+def test_the_dispatcher_imports_only_its_own_command_modules():
+    from polopt.commands import main
+
+    commands = ROOT / "polopt" / "commands"
+    for name, (module, _) in main.COMMANDS.items():
+        assert (commands / f"{module}.py").is_file(), name
+
+
 def _cfg(*overrides):
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         return compose("config", overrides=list(overrides))
