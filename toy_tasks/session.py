@@ -1,7 +1,7 @@
 """A finite task prepared for one training run: pairs, optimum, metrics, summary.
 
 This is the finite tasks' side of the trainer's interface (see
-:mod:`polopt.train`): :func:`prepare` turns a task, a loss and beta into the
+:class:`polopt.contracts.Session`): :func:`prepare` turns a task, a loss and beta into the
 :class:`polopt.pair_set.PairSet` to train on (``exact``: every ordered pair with
 its win weight; ``sampled``: a seeded sample of labelled pairs), solves the
 exact optimum of that very objective once, and then measures a policy against
