@@ -231,7 +231,8 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                        metrics_path=metrics_path if main else None, progress=cfg.train.progress and main,
                        precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
                        save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
-                       bucketing=cfg.train.get("bucketing", True), context=context, device=device)
+                       bucketing=cfg.train.get("bucketing", True), context=context, device=device,
+                       share_prompt=cfg.train.get("share_prompt", True))
         policy.to("cpu")
         summary = session.summarise(policy, result)
         summary["skipped_steps"] = result.skipped

@@ -33,11 +33,11 @@ import torch
 
 from polopt.data import PAIR_FILE_KEYS, PairData, load_pairs_from_config, write_rejects
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
-from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
+from polopt.logprobs import SequencePolicy, batched_pair_logprobs, real_tokens
 from polopt.losses import Loss
 from polopt.models import TinyTransformer
 from polopt.objective import margins, preference_loss
-from polopt.reference_cache import FILE_NAME, reference_logprobs
+from polopt.reference_cache import FILE_NAME, reference_pair_logprobs
 from polopt.sft import load_reference
 from polopt.tokenizer import load_tokenizer
 from polopt.train import PairSet, TrainResult, batch_statistics
@@ -159,9 +159,9 @@ class PairSession:
     def attach_reference(self, model: torch.nn.Module) -> None:
         """The reference's log-probs of every winner and loser, computed once (one pass) and cached."""
         self.reference_model = model
-        both, self.reference_cache_reused = reference_logprobs(
-            model, torch.cat([self.prompt, self.prompt]), self.pair_responses(), pad_id=self.ids.pad,
-            path=self.cache, batch_size=256)  # (2N,)
+        both, self.reference_cache_reused = reference_pair_logprobs(
+            model, self.prompt, self.winner, self.loser, pad_id=self.ids.pad, path=self.cache,
+            batch_size=256)  # (2N,): each pair in one pass over its prompt
         ref_w, ref_l = both.chunk(2)
         self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens)
 
@@ -221,8 +221,8 @@ class PairSession:
         training = policy.training
         policy.eval()
         p = self.pairs
-        logp = batched_logprobs(policy.model, torch.cat([p.prompt, p.prompt]), self.pair_responses(),
-                                pad_id=self.ids.pad, batch_size=256)  # (2N,)
+        logp = batched_pair_logprobs(policy.model, p.prompt, p.winner, p.loser, pad_id=self.ids.pad,
+                                     batch_size=256)  # (2N,): each pair in one pass over its prompt
         policy.train(training)
         logp_w, logp_l = logp.chunk(2)
         rho = margins(logp_w, logp_l, p.reference_winner, p.reference_loser)  # (N,)

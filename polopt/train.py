@@ -159,7 +159,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
           precision: str = "fp32", checkpoint_every: int = 0,
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
           on_nonfinite: str = "stop", bucketing: bool = True,
-          context: distributed.Context = distributed.SINGLE, device: torch.device | str = "cpu") -> TrainResult:
+          context: distributed.Context = distributed.SINGLE, device: torch.device | str = "cpu",
+          share_prompt: bool = True) -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters.
 
     ``batch_size`` None (or >= N) uses every pair each step (full batch);
@@ -180,6 +181,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     the caller passes ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
     ``device``: where the policy already is (the caller moves it, :mod:`polopt.devices`); each batch
     goes there, the batch order and the data stay on the CPU.
+    ``share_prompt``: a policy whose model allows it (``policy.shares_prompt``) scores each pair's
+    winner and loser in one pass over their prompt (:func:`polopt.logprobs.shared_pair_logprobs`).
     """
     if not isinstance(steps, int) or steps < 1:
         raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
@@ -214,6 +217,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
     device = torch.device(device)
     score = distributed.scorer(policy, context, device)  # policy.logprobs, or its DDP view
+    shared = share_prompt and getattr(policy, "shares_prompt", False)
     whole = pairs.to(device) if full_batch else None  # the full batch moves once
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     start = time.perf_counter() - seconds_before
@@ -241,7 +245,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
             # 3. policy log-probs of winners and losers
             with torch.autocast(device.type, dtype=torch.bfloat16, enabled=precision == "bf16"):
                 # winners and losers in one forward pass: (2B,) -> two halves of (B,)
-                logp = score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
+                logp = score(batch.prompt, batch.winner, batch.loser) if shared else \
+                    score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
                 logp_w, logp_l = logp.to(batch.reference_winner.dtype).chunk(2)
             # 4. margins and loss
             rho = margins(logp_w, logp_l, batch.reference_winner, batch.reference_loser)  # (B,)

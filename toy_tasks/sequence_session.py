@@ -30,7 +30,7 @@ import torch
 from polopt.logprobs import real_tokens
 from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
-from polopt.reference_cache import FILE_NAME, reference_logprobs
+from polopt.reference_cache import FILE_NAME, reference_pair_logprobs
 from polopt.train import PairSet
 from toy_tasks.sequences import EnumeratedSequencePolicy, SequenceTask
 from toy_tasks.session import FiniteSession, policy_rows
@@ -131,8 +131,8 @@ def token_pairs(task: SequenceTask, index_pairs: PairSet, *, cache: Path | None)
     and whether the cache file was reused."""
     prompt, winner = task.rows(index_pairs.prompt, index_pairs.winner)  # (N, T_p), (N, L)
     _, loser = task.rows(index_pairs.prompt, index_pairs.loser)  # (N, L)
-    both, reused = reference_logprobs(task.reference_model, torch.cat([prompt, prompt]), torch.cat([winner, loser]),
-                              pad_id=task.vocab.pad_id, path=cache)  # (2N,)
+    both, reused = reference_pair_logprobs(task.reference_model, prompt, winner, loser, pad_id=task.vocab.pad_id,
+                                           path=cache)  # (2N,): each pair in one pass over its prompt
     ref_w, ref_l = both.chunk(2)
     pad = task.vocab.pad_id
     tokens = real_tokens(prompt, winner, pad_id=pad) + real_tokens(prompt, loser, pad_id=pad)  # (N,)
