@@ -32,7 +32,8 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, devices, distributed, losses
+from polopt import checkpoint, devices, distributed, losses, stopping
+from polopt.compiling import compile_policy
 from polopt.methods import train_method
 from polopt.objective import validate_hyperparameters
 from polopt.train import OptimConfig, train
@@ -189,6 +190,10 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                          "and method are small enough for the CPU: use train.device=cpu")
     model = OmegaConf.to_container(cfg.model, resolve=True)
     policy = session.build_policy(**model)
+    if cfg.train.get("compile", False):
+        compile_policy(policy)
+    tol = cfg.train.get("tol")  # null: the task's choice (finite tasks stop once converged, others run every step)
+    tol = stopping.validate_tol(getattr(session, "tol", None) if tol is None else tol)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
     p = session.pairs
@@ -206,7 +211,7 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                               beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
                               optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
                               seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=view.evaluate,
-                              metrics_path=metrics_path, progress=cfg.train.progress)
+                              metrics_path=metrics_path, progress=cfg.train.progress, tol=tol)
         summary, session = view.summarise(policy, result), view
         buffer = io.BytesIO()
         torch.save({"policy": policy.state_dict(), "step": result.steps, "config": config}, buffer)
@@ -232,7 +237,7 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
                        precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
                        save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
                        bucketing=cfg.train.get("bucketing", True), context=context, device=device,
-                       share_prompt=cfg.train.get("share_prompt", True))
+                       share_prompt=cfg.train.get("share_prompt", True), tol=tol)
         policy.to("cpu")
         summary = session.summarise(policy, result)
         summary["skipped_steps"] = result.skipped
@@ -240,6 +245,7 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
             summary = view.extend_offline(summary, policy)
         if context.active:
             summary["processes"] = context.world_size
+    summary["stopped"] = result.stopped  # "steps" or "tol"; summary["steps"]: the steps that ran
     if not main:
         return summary
     write_json(run_dir / "summary.json", summary)

@@ -34,6 +34,7 @@ from polopt.batching import Batcher
 from polopt.checkpoint import restore_training_state, training_state
 from polopt.losses import Loss
 from polopt.objective import margins, pair_losses, preference_loss
+from polopt.stopping import Convergence
 
 Tensor = torch.Tensor
 
@@ -95,6 +96,7 @@ class TrainResult:
     final: dict
     history: list[dict] = field(default_factory=list)
     skipped: list[int] = field(default_factory=list)  # steps skipped for a non-finite loss or gradient
+    stopped: str = "steps"  # why it ended: "steps" (ran train.steps) or "tol" (converged; polopt.stopping)
 
 
 _OPTIMISERS = {"adam": torch.optim.Adam, "adamw": torch.optim.AdamW, "sgd": torch.optim.SGD}
@@ -160,7 +162,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
           on_nonfinite: str = "stop", bucketing: bool = True,
           context: distributed.Context = distributed.SINGLE, device: torch.device | str = "cpu",
-          share_prompt: bool = True) -> TrainResult:
+          share_prompt: bool = True, tol: float | None = None) -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters.
 
     ``batch_size`` None (or >= N) uses every pair each step (full batch);
@@ -183,6 +185,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     goes there, the batch order and the data stay on the CPU.
     ``share_prompt``: a policy whose model allows it (``policy.shares_prompt``) scores each pair's
     winner and loser in one pass over their prompt (:func:`polopt.logprobs.shared_pair_logprobs`).
+    ``tol``: stop once the loss change and the gradient norm stay below it (:mod:`polopt.stopping`);
+    ``TrainResult.steps`` is then the last step run and ``stopped`` is ``"tol"``.
     """
     if not isinstance(steps, int) or steps < 1:
         raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
@@ -208,11 +212,14 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     history: list[dict] = []
     skipped: list[int] = []
     done, seconds_before = 0, 0.0
+    convergence, stop = Convergence(tol), False
     if resume is not None:  # every piece of state the next step reads comes back exactly
         restored = restore_training_state(resume, policy=policy, optimiser=optimiser, scheduler=scheduler,
                                           generator=generator)
         done, order, cursor = restored["step"], restored["order"], restored["cursor"]
         history, skipped, seconds_before = restored["history"], restored["skipped"], restored["seconds"]
+        convergence.restore(restored["convergence"])
+        stop = restored["convergence"].get("stopped") == "tol"  # it had converged: nothing left to run
         if done > steps:
             raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
     device = torch.device(device)
@@ -222,7 +229,8 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     start = time.perf_counter() - seconds_before
     loop_start, tokens_seen = time.perf_counter(), 0  # token throughput of this process, resumed or not
-    bar = tqdm(range(done + 1, steps + 1), desc=f"train {loss.name}", disable=not progress, leave=False,
+    last = done if stop else steps  # a run that had converged before its checkpoint runs no further step
+    bar = tqdm(range(done + 1, last + 1), desc=f"train {loss.name}", disable=not progress, leave=False,
                initial=done, total=steps)
     try:
         for step in bar:
@@ -269,7 +277,9 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                     problem = f"the gradient norm is {grad_norm}"
             if problem is None:
                 optimiser.step()
+                stop = convergence.update(float(value.detach()), grad_norm)
             else:
+                convergence.skip()
                 with torch.no_grad():
                     report = nonfinite_report(step, problem, index, batch,
                                               pair_losses(loss, rho, beta=beta, smoothing=smoothing))
@@ -284,7 +294,7 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                 warnings.filterwarnings("ignore", message=r"Detected call of `lr_scheduler.step\(\)`")
                 scheduler.step()
             # 6. log (a skipped step has no metrics)
-            if problem is None and (step % log_every == 0 or step == steps or step == 1):
+            if problem is None and (step % log_every == 0 or step == steps or step == 1 or stop):
                 with torch.no_grad():
                     statistics = batch_statistics(rho, logp_w - batch.reference_winner, logp_l - batch.reference_loser,
                                                   batch.weight, context if context.active else None)
@@ -300,12 +310,19 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, s
                     sink.flush()
                 bar.set_postfix(loss=f"{record['loss']:.4g}", margin=f"{record['margin_mean']:.3g}", refresh=False)
             # 7. checkpoint
-            if save_checkpoint is not None and (step == steps or checkpoint_every and step % checkpoint_every == 0):
+            end = step == steps or stop
+            if save_checkpoint is not None and (end or checkpoint_every and step % checkpoint_every == 0):
+                window = {**convergence.state(), **({"stopped": "tol"} if stop else {})}
                 save_checkpoint(training_state(step=step, policy=policy, optimiser=optimiser, scheduler=scheduler,
                                                generator=generator, order=order, cursor=cursor, history=history,
-                                               skipped=skipped, seconds=time.perf_counter() - start))
+                                               skipped=skipped, seconds=time.perf_counter() - start,
+                                               convergence=window))
+            done = step
+            if stop:
+                break
     finally:
         bar.close()
         if sink is not None:
             sink.close()
-    return TrainResult(steps, time.perf_counter() - start, history[-1] if history else {}, history, skipped)
+    return TrainResult(done, time.perf_counter() - start, history[-1] if history else {}, history, skipped,
+                       stopped="tol" if stop else "steps")

@@ -11,8 +11,7 @@ import pytest
 import torch
 
 from polopt import losses
-from polopt.logprobs import (SequencePolicy, batched_logprobs, batched_pair_logprobs, pack_pairs,
-                             shared_pair_logprobs)
+from polopt.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, pack_pairs, shared_pair_logprobs
 from polopt.models import BigramTable, TinyTransformer
 from polopt.reference_cache import reference_pair_logprobs
 from polopt.train import OptimConfig, PairSet, train
@@ -35,7 +34,8 @@ def right_pad(rows, width=None):
 
 
 def random_rows(g, n, low, high):
-    return [torch.randint(1, V, (int(k),), generator=g).tolist() for k in torch.randint(low, high + 1, (n,), generator=g)]
+    sizes = torch.randint(low, high + 1, (n,), generator=g)
+    return [torch.randint(1, V, (int(k),), generator=g).tolist() for k in sizes]
 
 
 def random_model(seed, kind="transformer"):

@@ -18,6 +18,7 @@ import torch
 
 from polopt.losses import Loss
 from polopt.policies import build_policy
+from polopt.stopping import FINITE_TASK_TOL
 from polopt.train import PairSet, TrainResult
 from toy_tasks.finite import FiniteTask, total_variation
 from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
@@ -39,6 +40,7 @@ class FiniteSession:
     optimum: Optimum  # of the trained objective
     population_optimum: Optimum  # of the population objective (the same object in exact mode)
     threads: int = 1  # the run's torch thread count unless the config sets `threads`
+    tol: float = FINITE_TASK_TOL  # train.tol unless the config sets it: stop once converged (polopt.stopping)
 
     # ------------------------------------------------------------ model
 

@@ -56,8 +56,8 @@ def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironme
 def train_method(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, *, loss: Loss, beta: float,
                  steps: int, optim: OptimConfig, target: torch.Tensor | None = None, seed: int = 0,
                  log_every: int = 10, evaluate: Callable | None = None, metrics_path: Path | None = None,
-                 progress: bool = True) -> TrainResult:
+                 progress: bool = True, tol: float | None = None) -> TrainResult:
     """Train ``policy`` with the method ``method['name']`` (not offline)."""
     objective = method_objective(method, policy, env, loss=loss, beta=beta, target=target, seed=seed)
     return optimise(policy, objective, steps=steps, optim=optim, seed=seed, log_every=log_every,
-                    evaluate=evaluate, metrics_path=metrics_path, progress=progress, desc=method["name"])
+                    evaluate=evaluate, metrics_path=metrics_path, progress=progress, desc=method["name"], tol=tol)
