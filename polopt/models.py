@@ -39,6 +39,8 @@ def check_positions(tokens: Tensor, positions: Tensor | None, context: int) -> T
             raise ValueError(f"model.context is {context} but a sequence has {t} input tokens; "
                              f"set model.context={t} or more")
         return torch.arange(t, device=tokens.device)  # (T,)
+    if torch.compiler.is_compiling():  # a data-dependent check would break the compiled graph; eager runs check
+        return positions
     longest = int(positions.max()) + 1 if positions.numel() else 0
     if longest > context:
         raise ValueError(f"model.context is {context} but a sequence has {longest} input tokens; "
