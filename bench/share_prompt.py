@@ -188,6 +188,8 @@ def main(argv: list[str] | None = None) -> None:
         for i, cfg in enumerate(configs):
             row = run(cfg, prepared[cfg["width"]][1], prepared[cfg["width"]][0], steps=args.steps, batch=args.batch,
                       seed=r)
+            print(f"    width {cfg['width']}, {name(cfg)}: {row['tokens_per_s']:,.0f} tokens/s, load {row['load']:.2f}",
+                  file=sys.stderr, flush=True)
             if best[i] is None or row["tokens_per_s"] > best[i]["tokens_per_s"]:
                 best[i] = {**{k: v for k, v in cfg.items() if k != "warm"}, **row, "round": r}
         print(f"  round {r + 1} of {args.rounds} done, load {os.getloadavg()[0]:.2f}", file=sys.stderr, flush=True)
