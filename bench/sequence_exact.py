@@ -21,10 +21,11 @@ from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from polopt import losses
-from polopt.app import _TASK_RUN_KEYS, CONFIG_DIR
+from polopt.commands.train import _TASK_RUN_KEYS, CONFIG_DIR
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 
 TARGET = 0.05
 
@@ -39,9 +40,11 @@ def exact_run(loss_name: str, steps: int, precision: str) -> dict:
     session = task.prepare(loss, beta=float(cfg.beta), mode="exact")
     prepare_s = time.perf_counter() - start
     policy = session.build_policy(**OmegaConf.to_container(cfg.model))
-    result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=steps,
-                   optim=OptimConfig(**OmegaConf.to_container(cfg.optim)), evaluate=session.evaluate,
-                   log_every=10, progress=False, precision=precision)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=float(cfg.beta), steps=steps,
+                                 optim=OptimConfig(**OmegaConf.to_container(cfg.optim)), log_every=10, progress=False,
+                                 precision=precision),
+                   evaluate=session.evaluate)
     hit = next((h for h in result.history if h["tv_to_optimum"] <= TARGET), None)
     return {"responses": task.n_responses, "pairs": len(session.pairs), "prepare_s": prepare_s,
             "hit_step": None if hit is None else hit["step"], "hit_s": None if hit is None else hit["seconds"],

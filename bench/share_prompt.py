@@ -43,8 +43,9 @@ from bench.throughput import cpu_features  # noqa: E402
 from polopt import losses  # noqa: E402
 from polopt.compiling import compile_policy  # noqa: E402
 from polopt.logprobs import batched_logprobs, batched_pair_logprobs  # noqa: E402
+from polopt.optim import OptimConfig  # noqa: E402
 from polopt.pairs_task import pair_task  # noqa: E402
-from polopt.train import OptimConfig, train  # noqa: E402
+from polopt.train import TrainSettings, train  # noqa: E402
 
 LAYERS, HEADS, BETA = 2, 4, 0.5
 SYLLABLES = ("ka", "lo", "mir", "tu", "sen", "va", "dro", "pel", "ish", "ro", "na", "quo", "bel", "tam")
@@ -115,9 +116,9 @@ def run(cfg: dict, start_policy, session, *, steps: int, batch: int, seed: int) 
                   progress=False, log_every=1, precision=cfg["precision"], share_prompt=cfg["share"])
     if "warm" not in cfg:  # kernels, allocator, compilation: once per configuration, untimed
         train(copy.deepcopy(policy) if not cfg["compile"] else policy, session.pairs, losses.get("logistic"),
-              steps=2, seed=10**6, **kwargs)
+              TrainSettings(steps=2, seed=10**6, **kwargs))
         cfg["warm"] = True
-    result = train(policy, session.pairs, losses.get("logistic"), steps=steps, seed=seed, **kwargs)
+    result = train(policy, session.pairs, losses.get("logistic"), TrainSettings(steps=steps, seed=seed, **kwargs))
     return {"tokens_per_s": result.final["tokens_per_s"], "step_s": result.seconds / steps,
             "losses": [r["loss"] for r in result.history], "load": os.getloadavg()[0]}
 

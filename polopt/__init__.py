@@ -7,7 +7,7 @@
 - :mod:`polopt.logprobs`: sequence log-probabilities with prompt masking and padding.
 - :mod:`polopt.reference_cache`: the reference's log-probs over a dataset, computed once and cached.
 - :mod:`polopt.train`: the training loop.
-- :mod:`polopt.app`, :mod:`polopt.cli`: the command line (``polopt train ...``).
+- :mod:`polopt.commands.train`, :mod:`polopt.commands.main`: the command line (``polopt train ...``).
 """
 
 __version__ = "0.1.0"

@@ -2,6 +2,6 @@
 
 import sys
 
-from polopt.cli import main
+from polopt.commands.main import main
 
 sys.exit(main())

@@ -10,7 +10,7 @@ from helpers_resume import assert_same_state
 from hydra import compose, initialize_config_dir
 
 from polopt import checkpoint
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
 
 BASE = ["task.mode=sampled", "task.n_pairs=30", "train.steps=12", "train.batch_size=7", "train.log_every=2",
         "train.checkpoint_every=3", "train.progress=false"]

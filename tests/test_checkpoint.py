@@ -20,7 +20,7 @@ import torch
 from helpers_resume import SETUPS, assert_same_state, build, run_steps, without_seconds
 
 from polopt import checkpoint
-from polopt.train import train
+from polopt.train import TrainSettings, train
 
 
 def _state(step: int, value: float = 1.0) -> dict:
@@ -124,7 +124,7 @@ class TestFullDisk:
 
     @pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="needs Linux's /proc/self/fd")
     def test_cli_says_disk_full_in_one_line_and_a_rerun_resumes(self, tmp_path, monkeypatch, capsys):
-        from polopt.cli import main
+        from polopt.commands.main import main
 
         run_dir = tmp_path / "run"
         args = ["train", "train.steps=6", "train.checkpoint_every=2", "train.progress=false",
@@ -248,7 +248,7 @@ def test_a_checkpoint_of_another_shape_is_one_line():
 
 
 def test_one_run_folder_one_process(tmp_path, capsys):
-    from polopt.cli import main
+    from polopt.commands.main import main
 
     with checkpoint.exclusive(tmp_path):  # as if another polopt train were running there
         with pytest.raises(SystemExit) as stop:
@@ -319,8 +319,10 @@ class TestBitIdenticalResume:
         run_steps("adam-minibatch", 6, save_checkpoint=lambda s: checkpoint.save(
             tmp_path, s, run_id="r", fingerprint="f", config={}))
         state = checkpoint.load_latest(tmp_path, warn=_no_warning)
-        result = train(policy, session.pairs, loss, beta=0.5, steps=6, optim=SETUPS["adam-minibatch"]["optim"],
-                       batch_size=6, seed=7, log_every=3, progress=False, resume=state)
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=0.5, steps=6, optim=SETUPS["adam-minibatch"]["optim"], batch_size=6, seed=7,
+                                     log_every=3, progress=False),
+                       resume=state)
         assert torch.equal(policy.scores, state["policy"]["scores"]) and result.history == state["history"]
 
 
@@ -329,7 +331,7 @@ def _copy(state):
 
 
 def test_cli_checkpoints_verifies_and_names_the_resume_point(tmp_path, capsys):
-    from polopt.cli import main
+    from polopt.commands.main import main
 
     folder = tmp_path / "checkpoints"
     _save(folder, 2)

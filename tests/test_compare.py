@@ -1,4 +1,4 @@
-"""``polopt compare`` (polopt.compare).
+"""``polopt compare`` (polopt.commands.compare).
 
 Checks against: Hydra's own basic sweeper for the expansion of sweep overrides
 (hydra._internal.core_plugins.basic_sweeper.BasicSweeper.split_arguments);
@@ -15,8 +15,8 @@ import pytest
 from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
 from hydra.core.override_parser.overrides_parser import OverridesParser
 
-from polopt.cli import main
-from polopt.compare import expand, plan
+from polopt.commands.compare import expand, plan
+from polopt.commands.main import main
 from toy_tasks.equilibrium import nash_equilibrium
 from toy_tasks.families import nontransitive
 

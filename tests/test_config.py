@@ -6,7 +6,7 @@ import pytest
 from hydra import compose, initialize_config_dir
 
 from polopt import losses
-from polopt.app import CONFIG_DIR, build_loss, build_task
+from polopt.commands.train import CONFIG_DIR, build_loss, build_task
 
 ROOT = Path(__file__).resolve().parent.parent
 

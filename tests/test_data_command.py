@@ -10,7 +10,7 @@ import re
 import pytest
 
 from examples.library_desk import MAX_LENGTH, write_all
-from polopt.cli import main
+from polopt.commands.main import main
 
 
 @pytest.fixture(scope="module")

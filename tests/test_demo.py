@@ -8,8 +8,8 @@ import json
 
 import pytest
 
-from polopt.cli import main
-from polopt.demo import QUICK, DemoConfig, run_demo
+from polopt.commands.demo import QUICK, DemoConfig, run_demo
+from polopt.commands.main import main
 
 PNG = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
 

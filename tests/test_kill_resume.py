@@ -22,8 +22,8 @@ from helpers_resume import assert_same_state
 from hydra import compose, initialize_config_dir
 
 from polopt import checkpoint
-from polopt.app import CONFIG_DIR, run
-from polopt.cli import rewrite_overrides
+from polopt.commands.config import rewrite_overrides
+from polopt.commands.train import CONFIG_DIR, run
 
 ROOT = Path(__file__).resolve().parent.parent
 STEPS = 60

@@ -10,7 +10,7 @@ import pytest
 import torch
 from hydra import compose, initialize_config_dir
 
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.encoding import SequenceIds
 from polopt.sft import build_model, encode_examples, save_reference, train_sft
 from polopt.tokenizer import ByteTokenizer

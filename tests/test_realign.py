@@ -13,7 +13,7 @@ import torch
 from hydra import compose, initialize_config_dir
 
 from polopt import losses
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.realign import equivalent_beta, realign
 from toy_tasks.families import bradley_terry, contextual, noisy_labels, nontransitive
 from toy_tasks.solve import solve

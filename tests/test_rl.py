@@ -98,7 +98,7 @@ def test_unknown_estimator_is_refused(run_method):
 
 
 def test_the_train_command_refuses_in_one_line(tmp_path, capsys):
-    from polopt.cli import main
+    from polopt.commands.main import main
 
     with pytest.raises(SystemExit) as stop:
         main(["train", "method=rl", "task=nontransitive", f"hydra.run.dir={tmp_path}"])
@@ -110,7 +110,7 @@ def test_the_train_command_refuses_in_one_line(tmp_path, capsys):
 def test_the_run_summary_carries_the_common_fields(tmp_path):
     from hydra import compose, initialize_config_dir
 
-    from polopt.app import CONFIG_DIR, run
+    from polopt.commands.train import CONFIG_DIR, run
 
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         summary = run(compose("config", overrides=["method=rl", "train.steps=600", "train.progress=false"]), tmp_path)
@@ -139,8 +139,8 @@ def task_without_methods(**keys):
 def test_a_task_that_does_not_offer_the_method_is_refused(tmp_path, monkeypatch):
     from hydra import compose, initialize_config_dir
 
-    from polopt import app
-    from polopt.app import CONFIG_DIR, run
+    from polopt.commands import train as app
+    from polopt.commands.train import CONFIG_DIR, run
 
     monkeypatch.setattr(app, "TASK_PACKAGES", (*app.TASK_PACKAGES, f"{__name__}."))  # admit this test's builder
 

@@ -14,7 +14,7 @@ import pytest
 import torch
 from hydra import compose, initialize_config_dir
 
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
 from toy_tasks.equilibrium import nash_equilibrium, tau_of_beta
 from toy_tasks.families import bradley_terry, nontransitive
 from toy_tasks.finite import make_task

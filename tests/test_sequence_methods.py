@@ -21,12 +21,12 @@ import torch
 from hydra import compose, initialize_config_dir
 
 from polopt import losses
-from polopt.app import CONFIG_DIR, run
-from polopt.cli import main
+from polopt.commands.main import main
+from polopt.commands.train import CONFIG_DIR, run
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.realign import equivalent_beta, realign, realigned_sequence_logprobs
-from toy_tasks.finite import total_variation
+from toy_tasks.measures import total_variation
 from toy_tasks.sequence_methods import per_token_mixture, tree_conditionals
 from toy_tasks.sequences import enumerate_responses, sequence_task
 from toy_tasks.solve import solve

@@ -8,7 +8,7 @@ import json
 import pytest
 import torch
 
-from polopt.cli import main
+from polopt.commands.main import main
 from polopt.encoding import SequenceIds
 from polopt.logprobs import pack, sequence_logprobs, token_logprobs
 from polopt.sft import (

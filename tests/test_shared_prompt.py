@@ -13,8 +13,10 @@ import torch
 from polopt import losses
 from polopt.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, pack_pairs, shared_pair_logprobs
 from polopt.models import BigramTable, TinyTransformer
+from polopt.optim import OptimConfig
+from polopt.pair_set import PairSet
 from polopt.reference_cache import reference_pair_logprobs
-from polopt.train import OptimConfig, PairSet, train
+from polopt.train import TrainSettings, train
 
 PAD = 0
 V = 17  # token ids 1..16, padding 0
@@ -123,8 +125,9 @@ def test_training_with_and_without_sharing_ends_at_the_same_loss():
     finals = []
     for shared in (True, False):
         policy = SequencePolicy(TinyTransformer(V, context=16, width=16, layers=2, heads=2, seed=1), pad_id=PAD)
-        result = train(policy, pairs, losses.get("logistic"), beta=0.5, steps=20, batch_size=16, progress=False,
-                       optim=OptimConfig(lr=1e-2), log_every=1, share_prompt=shared)
+        result = train(policy, pairs, losses.get("logistic"),
+                       TrainSettings(beta=0.5, steps=20, batch_size=16, progress=False, optim=OptimConfig(lr=1e-2),
+                                     log_every=1, share_prompt=shared))
         finals.append([r["loss"] for r in result.history])
     assert finals[0][-1] < finals[0][0]  # it trained
     torch.testing.assert_close(torch.tensor(finals[0]), torch.tensor(finals[1]), atol=1e-4, rtol=0)

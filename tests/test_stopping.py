@@ -18,9 +18,10 @@ from helpers_resume import assert_same_state, without_seconds
 from hydra import compose, initialize_config_dir
 
 from polopt import checkpoint, losses
-from polopt.app import CONFIG_DIR, run
+from polopt.commands.train import CONFIG_DIR, run
+from polopt.optim import OptimConfig
 from polopt.stopping import FINITE_TASK_TOL, WINDOW, Convergence, validate_tol
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 from toy_tasks.families import bradley_terry, nontransitive
 
 
@@ -62,8 +63,8 @@ def test_early_stopping_ends_within_the_tolerance_of_the_optimum(task, loss_name
     loss = losses.get(loss_name)
     session = task.prepare(loss, beta=beta, mode="exact")
     policy = session.build_policy()
-    result = train(policy, session.pairs, loss, beta=beta, steps=2000, optim=OptimConfig(), progress=False,
-                   log_every=2000, tol=FINITE_TASK_TOL)
+    result = train(policy, session.pairs, loss, TrainSettings(beta=beta, steps=2000, optim=OptimConfig(),
+                                                              progress=False, log_every=2000, tol=FINITE_TASK_TOL))
     summary = session.summarise(policy, result)
     assert result.stopped == "tol" and result.steps < 2000 and summary["steps"] == result.steps
     # the gradient norm is below 1e-12 at the stop; the closed-form optimum is then within rounding
@@ -76,8 +77,8 @@ def test_early_stopping_ends_within_the_tolerance_of_the_optimum(task, loss_name
 def test_a_run_that_does_not_converge_in_time_runs_every_step():
     loss = losses.get("logistic")
     session = bradley_terry().prepare(loss, beta=0.5, mode="exact")
-    result = train(session.build_policy(), session.pairs, loss, beta=0.5, steps=30, optim=OptimConfig(),
-                   progress=False, tol=FINITE_TASK_TOL)
+    result = train(session.build_policy(), session.pairs, loss,
+                   TrainSettings(beta=0.5, steps=30, optim=OptimConfig(), progress=False, tol=FINITE_TASK_TOL))
     assert result.stopped == "steps" and result.steps == 30
 
 
@@ -85,8 +86,9 @@ def _exact_run(steps, **kwargs):
     loss = losses.get("logistic")
     session = bradley_terry(n_responses=4, seed=3).prepare(loss, beta=0.5, mode="exact")
     policy = session.build_policy()
-    result = train(policy, session.pairs, loss, beta=0.5, steps=steps, optim=OptimConfig(), progress=False,
-                   log_every=3, seed=7, tol=1e-7, checkpoint_every=1, **kwargs)
+    result = train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=steps, optim=OptimConfig(),
+                                                              progress=False, log_every=3, seed=7, tol=1e-7,
+                                                              checkpoint_every=1), **kwargs)
     return policy, result
 
 

@@ -4,7 +4,7 @@
 
 Comma lists (and Hydra's other sweep forms, e.g. ``range()``) expand to their
 Cartesian product, as with ``polopt train -m``. Each combination is one ordinary
-training run (:func:`polopt.app.run`) in a sub-folder of the comparison folder;
+training run (:func:`polopt.commands.train.run`) in a sub-folder of the comparison folder;
 then one table (comparison.txt, .csv, .json) and one plot (comparison.png) hold
 for every run: KL to the reference, the win rate over the reference
 P(pi > pi_ref), the expected reward where the task has rewards, the TV distance
@@ -182,8 +182,8 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     from hydra import compose, initialize_config_dir
     from tqdm.auto import tqdm
 
-    from polopt.app import CONFIG_DIR, run
-    from polopt.cli import rewrite_overrides
+    from polopt.commands.config import rewrite_overrides
+    from polopt.commands.train import CONFIG_DIR, run
 
     runs = plan(overrides)
     out.mkdir(parents=True, exist_ok=True)
@@ -232,7 +232,7 @@ def write_tables(stem: Path, text: str, rows: list[dict], columns: list[str] | t
 
 def main(argv: list[str]) -> int:
     """The ``polopt compare`` subcommand."""
-    from polopt.cli import rewrite_overrides
+    from polopt.commands.config import rewrite_overrides
 
     parser = argparse.ArgumentParser(
         prog="polopt compare",

@@ -16,7 +16,7 @@ to the exact optimum at beta / lambda of:
 - ``retrained``: the policy trained at beta / lambda;
 
 and the TV between the mixtures and the retrained policy. Every run is an
-ordinary training run (:func:`polopt.app.run`) in a sub-folder.
+ordinary training run (:func:`polopt.commands.train.run`) in a sub-folder.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ from pathlib import Path
 
 import numpy as np
 
-from polopt.compare import user_error, write_tables
+from polopt.commands.compare import user_error, write_tables
 
 COLUMNS = ("lambda", "beta_equivalent", "tv_geometric", "tv_per_token", "tv_per_token_exact", "tv_retrained",
            "tv_per_token_to_retrained", "tv_geometric_to_retrained", "kl_per_token", "kl_retrained")
@@ -138,8 +138,8 @@ def realign_sweep(overrides: list[str], lambdas: list[float], out: Path, *, retr
     from hydra import compose, initialize_config_dir
     from tqdm.auto import tqdm
 
-    from polopt.app import CONFIG_DIR, run
-    from polopt.cli import rewrite_overrides
+    from polopt.commands.config import rewrite_overrides
+    from polopt.commands.train import CONFIG_DIR, run
 
     out.mkdir(parents=True, exist_ok=True)
     listed = ",".join(repr(v) for v in lambdas)

@@ -1,0 +1,15 @@
+"""``polopt losses``: list the registered losses with f'(0), f''(0), convexity and their papers."""
+
+from __future__ import annotations
+
+
+def main(argv: list[str]) -> int:
+    """The ``polopt losses`` subcommand."""
+    from polopt import losses  # imported here: torch loads in seconds, and `polopt data` needs none of it
+
+    for name in losses.names():
+        loss = losses.get(name)
+        f0, d1, d2 = loss.derivatives_at(0.0)
+        convex = {True: "convex", False: "not convex", None: "convexity unknown"}[loss.convex]
+        print(f"{name:<20} f'(0)={d1:+.3f} f''(0)={d2:.3f}  {convex:<12} {loss.source}")
+    return 0

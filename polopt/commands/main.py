@@ -1,0 +1,53 @@
+"""``polopt``: the command line. ``python -m polopt`` does the same.
+
+    polopt train [GROUP=OPTION ...] [KEY=VALUE ...]   train one loss on one task (Hydra overrides)
+    polopt losses                                      list the registered losses
+    polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
+    polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
+    polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
+    polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
+    polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
+    polopt check LOSS [--beta B] [--json] [--plot P]   unit-test a loss against the analytic optimum
+
+``polopt train --help`` lists the config groups and every key.
+"""
+
+from __future__ import annotations
+
+import sys
+
+COMMANDS = {
+    "train": ('train', "train one loss on one task; Hydra overrides, see 'polopt train --help'"),
+    "losses": ('losses', "list the registered losses with f'(0), f''(0) and their papers"),
+    "export": ('export', "write a built-in task out as a finite-task JSON file"),
+    "data": ('data', "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
+    "sft": ('sft', "train the tiny transformer on plain text and save it as a reference model (task.reference)"),
+    "demo": ('demo', "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
+    "compare": ('compare', "several losses / methods on one task: one table and one plot"),
+    "realign": ('realign', "decoding-time realignment against retraining over a grid of lambda: table and plot"),
+    "checkpoints": ('checkpoints', "verify a run folder's checkpoints and show the resume point"),
+    "check": ('check', "unit-test a loss against the analytic optimum; exit code 1 on any failure"),
+}
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    if not argv or argv[0] in ("-h", "--help") or argv[0] not in COMMANDS:
+        lines = ["usage: polopt COMMAND [ARGS ...]", "",
+                 "Offline preference optimisation on small models, checked against exact optima.", "",
+                 "commands:"]
+        lines += [f"  {name:<11} {text}" for name, (_, text) in COMMANDS.items()]
+        lines += ["", "'polopt COMMAND --help' explains each command."]
+        known = not argv or argv[0] in ("-h", "--help")
+        print("\n".join(lines), file=sys.stdout if known else sys.stderr)
+        if not known:
+            print(f"polopt: error: unknown command {argv[0]!r}", file=sys.stderr)
+        return 0 if known else 2
+    import importlib
+
+    module, _ = COMMANDS[argv[0]]  # imported only when its command runs: torch loads in seconds
+    return importlib.import_module(f"polopt.commands.{module}").main(argv[1:])
+
+
+if __name__ == "__main__":
+    sys.exit(main())
