@@ -21,7 +21,7 @@ from __future__ import annotations
 import math
 
 WINDOW = 10  # consecutive quiet steps before a run stops
-FINITE_TASK_TOL = 1e-12  # finite tasks (float64): TV to the optimum stays near 1e-12 (bench/exact_accuracy.py)
+FINITE_TASK_TOL = 1e-14  # finite tasks (float64): TV to the optimum stays near 1e-12 (bench/exact_accuracy.py)
 STOPPED = ("steps", "tol")  # why a run ended: it ran train.steps, or it converged (summary.json `stopped`)
 
 
