@@ -331,7 +331,9 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
              save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
              context: distributed.Context = distributed.SINGLE) -> TrainResult:
     """Minimise ``objective`` (a :class:`PairObjective` or :class:`MethodObjective`) over the
-    policy's parameters for ``settings.steps`` steps.
+    policy's parameters for ``settings.steps`` steps, or until the loss change and the gradient
+    norm have stayed below ``settings.tol`` (:mod:`polopt.stopping`; the stopping step is logged
+    and checkpointed like the last).
 
     Logged records go to ``metrics_path`` as JSON lines (appended: on resume the caller leaves
     the lines up to the checkpoint there). ``save_checkpoint(state)`` receives

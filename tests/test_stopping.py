@@ -67,7 +67,7 @@ def test_early_stopping_ends_within_the_tolerance_of_the_optimum(task, loss_name
                                                               progress=False, log_every=2000, tol=FINITE_TASK_TOL))
     summary = session.summarise(policy, result)
     assert result.stopped == "tol" and result.steps < 2000 and summary["steps"] == result.steps
-    # the gradient norm is below 1e-12 at the stop; the closed-form optimum is then within rounding
+    # the gradient norm is below FINITE_TASK_TOL at the stop; the closed-form optimum is then within rounding
     # of float64 (the full 2000 steps reach about 1e-16; the README quotes the worst over all tasks)
     assert summary["tv_to_optimum"] < 1e-10, summary["tv_to_optimum"]
     assert abs(summary["loss_gap"]) < 1e-12
