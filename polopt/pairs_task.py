@@ -11,7 +11,7 @@ data:
 2. prompts become ``bos + tokens`` and responses ``tokens + eos``
    (:mod:`polopt.encoding`) with the byte tokenizer or a local one
    (``task.tokenizer``);
-3. the reference is the model of ``task.reference`` (a checkpoint written by
+3. the reference is the model of ``task.reference_checkpoint`` (a checkpoint written by
    ``polopt sft``), or, without one, a copy of the policy's own seeded
    initialisation; its log-probabilities of every winner and loser are computed
    once and cached in the run folder (:mod:`polopt.reference_cache`);
@@ -34,10 +34,10 @@ import torch
 from polopt.contracts import TrainResult
 from polopt.data import PairData, PairFileSpec, read_pair_file, write_rejects
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
-from polopt.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, real_tokens
+from polopt.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, lengths, real_tokens
 from polopt.losses import Loss
 from polopt.models import TinyTransformer
-from polopt.objective import batch_statistics, margins, preference_loss
+from polopt.objective import batch_losses, batch_statistics, margins, reduce
 from polopt.pair_set import PairSet, score_pairs
 from polopt.reference_cache import FILE_NAME, reference_pair_logprobs
 from polopt.sft import load_reference
@@ -55,6 +55,8 @@ class PairTask:
     file: PairFileSpec
     reference: str | None = None
     cache_reference: bool = True
+    stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairs_stream)
+    summary_pairs: int | None = None  # task.summary_pairs (streamed): the summary's statistics over the first N
 
     def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
                 n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
@@ -62,6 +64,10 @@ class PairTask:
         if mode != "sampled":
             raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs, there is no "
                              f"population to weigh exactly), got {mode!r}")
+        if self.stream:
+            from polopt.pairs_stream import prepare_streamed
+
+            return prepare_streamed(self, loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs, run_dir=run_dir)
         tokenizer = load_tokenizer(self.file.tokenizer or "byte")
         data = read_pair_file(self.file, tokenizer=tokenizer)
         rejects = None
@@ -86,18 +92,30 @@ class PairTask:
             session.attach_reference(model)
         return session
 
+    def fit_reward(self, **kwargs):
+        """``polopt reward task=pairs``: a scalar-head reward model (see :mod:`polopt.pair_reward`)."""
+        from polopt.pair_reward import fit_pair_reward  # builds on the data layer, as this module does
+
+        return fit_pair_reward(self.file, **kwargs)
+
 
 def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
               max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",
-              tokenizer: str = "byte", hub: bool = False, split: str = "train", reference: str | None = None,
-              cache_reference: bool = True) -> PairTask:
+              tokenizer: str = "byte", hub: bool = False, split: str = "train", reference_checkpoint: str | None = None,
+              cache_reference: bool = True, stream: bool = False, summary_pairs: int | None = None) -> PairTask:
     """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
     if path is None:
         raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
     file = PairFileSpec(path, format=format, columns=columns, max_length=max_length, truncation=truncation,
                         duplicates=duplicates, tokenizer=tokenizer, hub=hub, split=split)
-    return PairTask(file, reference=None if reference in (None, "") else str(reference),
-                    cache_reference=bool(cache_reference))
+    if not isinstance(stream, bool):
+        raise ValueError(f"task.stream must be true or false, got {stream!r}")
+    if summary_pairs is not None and (not isinstance(summary_pairs, int) or isinstance(summary_pairs, bool)
+                                      or summary_pairs < 1 or not stream):
+        raise ValueError(f"task.summary_pairs must be null (every pair) or a positive integer, with task.stream=true, "
+                         f"got {summary_pairs!r} (task.stream={stream})")
+    return PairTask(file, reference=None if reference_checkpoint in (None, "") else str(reference_checkpoint),
+                    cache_reference=bool(cache_reference), stream=stream, summary_pairs=summary_pairs)
 
 
 @dataclass
@@ -146,12 +164,13 @@ class PairSession:
         ids, arch = meta["ids"], meta["architecture"]
         mine = {"pad": self.ids.pad, "bos": self.ids.bos, "eos": self.ids.eos}
         if ids != mine or arch["vocab_size"] != self.ids.vocab_size:
-            raise ValueError(f"task.reference was trained with tokenizer {meta['tokenizer']!r} (special ids {ids}, "
+            raise ValueError(f"task.reference_checkpoint was trained with tokenizer {meta['tokenizer']!r} "
+                             f"(special ids {ids}, "
                              f"vocabulary {arch['vocab_size']}) but task.tokenizer={self.file_tokenizer!r} gives "
                              f"{mine}, vocabulary {self.ids.vocab_size}; give task.tokenizer={meta['tokenizer']}")
         context = meta["architecture"]["context"]
         if context < self.context_needed:
-            raise ValueError(f"task.reference has context {context} but the longest pair needs "
+            raise ValueError(f"task.reference_checkpoint has context {context} but the longest pair needs "
                              f"{self.context_needed} input tokens; set task.max_length={context + 1} "
                              f"(with task.truncation=truncate_response) or train the reference with a longer "
                              "--context")
@@ -167,7 +186,9 @@ class PairSession:
             return both  # (2N,): each pair in one pass over its prompt where the model allows it
 
         ref_w, ref_l = score_pairs(reference_pass, self.prompt, self.winner, self.loser, shared=True)
-        self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens)
+        self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens,
+                             len_winner=lengths(self.winner, pad_id=self.ids.pad),
+                             len_loser=lengths(self.loser, pad_id=self.ids.pad))  # (N,) response tokens
 
     # ------------------------------------------------------------ model
 
@@ -175,7 +196,7 @@ class PairSession:
                      context: int = 16, seed: int = 0, init: str = "reference") -> SequencePolicy:
         """The tiny transformer as a policy, started at the reference (``model.init=reference``).
 
-        With ``task.reference`` its architecture is the reference's (model.width, layers, heads and
+        With ``task.reference_checkpoint`` its architecture is the reference's (model.width, layers, heads and
         context are then read from the checkpoint); without one the reference is a frozen copy of
         this policy's seeded initialisation.
         """
@@ -201,8 +222,8 @@ class PairSession:
                                 seed=seed)
         if self.reference_model is None:
             reference = copy.deepcopy(model).requires_grad_(False).eval()
-            self.notes.append("no task.reference: the reference is the policy's own seeded random initialisation "
-                              "(train one with polopt sft and give task.reference=PATH)")
+            self.notes.append("no task.reference_checkpoint: the reference is the policy's own seeded random "
+                              "initialisation (train one with polopt sft and give task.reference_checkpoint=PATH)")
             self.attach_reference(reference)
         elif init == "reference":
             from polopt.models import copy_weights
@@ -230,7 +251,8 @@ class PairSession:
                 policy.model, prompt, response, pad_id=self.ids.pad, batch_size=256), p.prompt, p.winner, p.loser)
         policy.train(training)
         rho = margins(logp_w, logp_l, p.reference_winner, p.reference_loser)  # (N,)
-        value = preference_loss(self.loss, rho, beta=self.beta, smoothing=self.smoothing, weights=p.weight)
+        per_pair = batch_losses(self.loss, p, logp_w, logp_l, beta=self.beta, smoothing=self.smoothing)  # (N,)
+        value = reduce(per_pair, p.weight)
         return {"loss": float(value), **batch_statistics(rho, logp_w - p.reference_winner,
                                                          logp_l - p.reference_loser, p.weight)}
 
@@ -257,7 +279,7 @@ class PairSession:
             "data": a,
             "rejects_file": None if self.rejects_path is None else str(self.rejects_path),
             "tokenizer": a["tokenizer"],
-            "reference": self.reference_path,
+            "reference_checkpoint": self.reference_path,
             "reference_cache": None if self.cache is None else str(self.cache),
             "reference_cache_reused": self.reference_cache_reused,
             "notes": notes,

@@ -96,6 +96,8 @@ def main(argv: list[str]) -> int:
         loss = check.as_loss(args.loss, **params)
         names = [] if args.quick else [t for t in args.tasks.split(",") if t and t != "none"]
         tasks, defaults = check_tasks(names)
+        pair = getattr(loss, "margin", True) is None  # a pair objective (not a margin loss)
+        noisy = check_tasks(["noisy_labels"])[0][0][1] if pair else None  # its optimum's finiteness
         beta = defaults["beta"] if args.beta is None else args.beta
         steps = defaults["steps"] if args.steps is None else args.steps
         if not beta > 0:
@@ -108,9 +110,9 @@ def main(argv: list[str]) -> int:
         print(f"polopt check: error: {err}", file=sys.stderr)
         return 2
     report = check.run_checks(loss, beta=beta, tasks=tasks, steps=steps, optim=OptimConfig(**defaults["optim"]),
-                              tol=args.tol, progress=None)
+                              tol=args.tol, progress=None, noisy_task=noisy)
     plot = None
-    if not args.no_plot:
+    if not args.no_plot and not pair:  # the plot draws f(x) and x*(p): margin losses only
         from polopt.report import plot_report
 
         plot = args.plot or "check-" + re.sub(r"[^A-Za-z0-9_-]+", "_", loss.name) + ".png"

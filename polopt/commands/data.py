@@ -42,7 +42,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--duplicates", default="reject", choices=list(DUPLICATES),
                         help="exact repeats of an accepted row: reject the later ones (default) or keep and count them")
     parser.add_argument("--tokenizer", default="byte",
-                        help="'byte' (built-in, lengths in bytes) or a local tokenizer directory (needs polopt[hf])")
+                        help="'byte' (built-in, lengths in bytes) or a local tokenizer directory "
+                             "(needs polopt[local-lm])")
     parser.add_argument("--rejects", default=None, type=Path,
                         help="where to write the rejects (JSON Lines); default NAME.rejects.jsonl here")
     parser.add_argument("--plot", default=None, type=Path, help="also write the length histogram as a PNG")

@@ -5,6 +5,7 @@
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
+    polopt reward [KEY=VALUE ...] [--out DIR]        fit a Bradley–Terry reward model to a task's pairs
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
     polopt check LOSS [--beta B] [--json] [--plot P]   unit-test a loss against the analytic optimum
@@ -21,9 +22,10 @@ COMMANDS = {
     "losses": ('losses', "list the registered losses with f'(0), f''(0) and their papers"),
     "export": ('export', "write a built-in task out as a finite-task JSON file"),
     "data": ('data', "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
-    "sft": ('sft', "train the tiny transformer on plain text and save it as a reference model (task.reference)"),
+    "sft": ('sft', "train the tiny transformer on plain text; save it as a reference (task.reference_checkpoint)"),
     "demo": ('demo', "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
     "compare": ('compare', "several losses / methods on one task: one table and one plot"),
+    "reward": ('reward', "fit a Bradley–Terry reward model to a task's pairs (method.reward=PATH optimises it)"),
     "realign": ('realign', "decoding-time realignment against retraining over a grid of lambda: table and plot"),
     "checkpoints": ('checkpoints', "verify a run folder's checkpoints and show the resume point"),
     "check": ('check', "unit-test a loss against the analytic optimum; exit code 1 on any failure"),
