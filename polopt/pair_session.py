@@ -15,12 +15,12 @@ import torch
 from polopt.contracts import TrainResult
 from polopt.data import PairData
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
-from polopt.logprobs import SequencePolicy, batched_logprobs, lengths, real_tokens
+from polopt.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, lengths, real_tokens
 from polopt.losses import Loss
 from polopt.models import TinyTransformer
 from polopt.objective import batch_losses, batch_statistics, margins, reduce
 from polopt.pair_set import PairSet, score_pairs
-from polopt.reference_cache import reference_logprobs
+from polopt.reference_cache import reference_pair_logprobs
 
 Tensor = torch.Tensor
 INITS = ("reference", "random")
@@ -88,12 +88,13 @@ class PairSession:
         """The reference's log-probs of every winner and loser, computed once (one pass) and cached."""
         self.reference_model = model
 
-        def reference_pass(prompt: Tensor, response: Tensor) -> Tensor:
-            both, self.reference_cache_reused = reference_logprobs(model, prompt, response, pad_id=self.ids.pad,
-                                                                   path=self.cache, batch_size=256)
-            return both  # (2N,)
+        def reference_pass(prompt: Tensor, winner: Tensor, loser: Tensor) -> Tensor:
+            both, self.reference_cache_reused = reference_pair_logprobs(model, prompt, winner, loser,
+                                                                        pad_id=self.ids.pad, path=self.cache,
+                                                                        batch_size=256)
+            return both  # (2N,): each pair in one pass over its prompt where the model allows it
 
-        ref_w, ref_l = score_pairs(reference_pass, self.prompt, self.winner, self.loser)
+        ref_w, ref_l = score_pairs(reference_pass, self.prompt, self.winner, self.loser, shared=True)
         self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens,
                              len_winner=lengths(self.winner, pad_id=self.ids.pad),
                              len_loser=lengths(self.loser, pad_id=self.ids.pad))  # (N,) response tokens
@@ -150,8 +151,13 @@ class PairSession:
         training = policy.training
         policy.eval()
         p = self.pairs
-        logp_w, logp_l = score_pairs(lambda prompt, response: batched_logprobs(
-            policy.model, prompt, response, pad_id=self.ids.pad, batch_size=256), p.prompt, p.winner, p.loser)
+        if policy.shares_prompt:  # each pair in one pass over its prompt
+            logp_w, logp_l = score_pairs(lambda prompt, winner, loser: batched_pair_logprobs(
+                policy.model, prompt, winner, loser, pad_id=self.ids.pad, batch_size=256), p.prompt, p.winner,
+                p.loser, shared=True)
+        else:
+            logp_w, logp_l = score_pairs(lambda prompt, response: batched_logprobs(
+                policy.model, prompt, response, pad_id=self.ids.pad, batch_size=256), p.prompt, p.winner, p.loser)
         policy.train(training)
         rho = margins(logp_w, logp_l, p.reference_winner, p.reference_loser)  # (N,)
         per_pair = batch_losses(self.loss, p, logp_w, logp_l, beta=self.beta, smoothing=self.smoothing)  # (N,)
