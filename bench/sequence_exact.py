@@ -21,7 +21,7 @@ from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from polopt import losses
-from polopt.commands.train import _TASK_RUN_KEYS, CONFIG_DIR
+from polopt.commands.config import CONFIG_DIR, TASK_RUN_KEYS
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.train import OptimConfig, train
@@ -32,7 +32,7 @@ TARGET = 0.05
 def exact_run(loss_name: str, steps: int, precision: str) -> dict:
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose("config", overrides=["+experiment=sequence", f"loss={loss_name}", f"train.steps={steps}"])
-    builder = {k: v for k, v in OmegaConf.to_container(cfg.task).items() if k not in _TASK_RUN_KEYS}
+    builder = {k: v for k, v in OmegaConf.to_container(cfg.task).items() if k not in TASK_RUN_KEYS}
     task = instantiate(builder, _convert_="all")
     loss = losses.get(loss_name)
     start = time.perf_counter()

@@ -3,11 +3,15 @@
     polopt train [GROUP=OPTION ...] [KEY=VALUE ...]   train one loss on one task (Hydra overrides)
     polopt losses                                      list the registered losses
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
-    polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
+    polopt data FILE [task.KEY=VALUE ...]              check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
-    polopt check LOSS [--beta B] [--json] [--plot P]   unit-test a loss against the analytic optimum
+    polopt check LOSS [KEY=VALUE ...] [--json]         unit-test a loss against the analytic optimum
+    polopt demo [KEY=VALUE ...] [--quick]              the end-to-end walk-through
+    polopt sft FILE --out REF.pt [KEY=VALUE ...]       supervised fine-tuning of a reference model
+
+Every command takes polopt train's config keys as KEY=VALUE; flags only for what is not a config key.
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -45,8 +49,20 @@ def main(argv: list[str] | None = None) -> int:
         return 0 if known else 2
     import importlib
 
-    module, _ = COMMANDS[argv[0]]  # imported only when its command runs: torch loads in seconds
-    return importlib.import_module(f"polopt.commands.{module}").main(argv[1:])
+    from polopt.commands.errors import run_command
+
+    name = argv[0]
+    module, _ = COMMANDS[name]
+    if name == "train" and any(a in ("-h", "--help", "--hydra-help") for a in argv[1:]):
+        from polopt.commands import runs  # Hydra's help without loading torch
+
+        return runs.help_main(argv[1:])
+
+    def command(args: list[str]) -> int:  # imported only when it runs: torch loads in seconds
+        return importlib.import_module(f"polopt.commands.{module}").main(args)
+
+    hint = "the newest good checkpoint is kept: rerun the same command to resume" if name == "train" else ""
+    return run_command(name, command, argv[1:], os_hint=hint)
 
 
 if __name__ == "__main__":
