@@ -14,7 +14,8 @@ import time
 import uuid
 
 from polopt import checkpoint, losses
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 from toy_tasks.families import contextual
 from toy_tasks.session import prepare
 
@@ -29,8 +30,10 @@ def one_run(steps: int, every: int, folder: str) -> tuple[float, int]:
         saves.append(checkpoint.save(folder, state, run_id=run_id, fingerprint="bench", config={}))
 
     start = time.perf_counter()
-    train(policy, session.pairs, loss, beta=0.5, steps=steps, optim=OptimConfig(), batch_size=64,
-          progress=False, checkpoint_every=every, save_checkpoint=save)
+    train(policy, session.pairs, loss,
+          TrainSettings(beta=0.5, steps=steps, optim=OptimConfig(), batch_size=64, progress=False,
+                        checkpoint_every=every),
+          save_checkpoint=save)
     return time.perf_counter() - start, (saves[-1].stat().st_size if saves else 0)
 
 

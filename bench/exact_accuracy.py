@@ -14,7 +14,8 @@ import numpy as np
 import torch
 
 from polopt import losses
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 from toy_tasks import families
 from toy_tasks.finite import make_task
 
@@ -46,8 +47,9 @@ def main() -> None:
                 loss = losses.get(name)
                 session = task.prepare(loss, beta=beta, mode="exact")
                 policy = session.build_policy()
-                result = train(policy, session.pairs, loss, beta=beta, steps=args.steps, optim=OptimConfig(),
-                               progress=False, log_every=args.steps)
+                result = train(policy, session.pairs, loss,
+                               TrainSettings(beta=beta, steps=args.steps, optim=OptimConfig(), progress=False,
+                                             log_every=args.steps))
                 s = session.summarise(policy, result)
                 row = {"task": task.name, "loss": name, "beta": beta, "tv_to_optimum": s["tv_to_optimum"],
                        "relative_loss_gap": s["relative_loss_gap"], "residual": s["optimum_residual"],

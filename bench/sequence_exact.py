@@ -17,14 +17,14 @@ import time
 
 import torch
 from hydra import compose, initialize_config_dir
-from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from polopt import losses
-from polopt.commands.config import CONFIG_DIR, TASK_RUN_KEYS
+from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 
 TARGET = 0.05
 
@@ -32,16 +32,17 @@ TARGET = 0.05
 def exact_run(loss_name: str, steps: int, precision: str) -> dict:
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose("config", overrides=["+experiment=sequence", f"loss={loss_name}", f"train.steps={steps}"])
-    builder = {k: v for k, v in OmegaConf.to_container(cfg.task).items() if k not in TASK_RUN_KEYS}
-    task = instantiate(builder, _convert_="all")
+    task = build_task(cfg.task)
     loss = losses.get(loss_name)
     start = time.perf_counter()
     session = task.prepare(loss, beta=float(cfg.beta), mode="exact")
     prepare_s = time.perf_counter() - start
     policy = session.build_policy(**OmegaConf.to_container(cfg.model))
-    result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=steps,
-                   optim=OptimConfig(**OmegaConf.to_container(cfg.optim)), evaluate=session.evaluate,
-                   log_every=10, progress=False, precision=precision)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=float(cfg.beta), steps=steps,
+                                 optim=OptimConfig(**OmegaConf.to_container(cfg.optim)), log_every=10, progress=False,
+                                 precision=precision),
+                   evaluate=session.evaluate)
     hit = next((h for h in result.history if h["tv_to_optimum"] <= TARGET), None)
     return {"responses": task.n_responses, "pairs": len(session.pairs), "prepare_s": prepare_s,
             "hit_step": None if hit is None else hit["step"], "hit_s": None if hit is None else hit["seconds"],

@@ -113,7 +113,7 @@ def write_skewed(path: Path, n: int, max_length: int) -> None:
 def skewed_in_ram(n: int, max_length: int):
     """The same pairs as one PairSet of padded int64 tensors (``polopt train``'s way)."""
     from bench.skewed_data import real_token_count
-    from polopt.train import PairSet
+    from polopt.pair_set import PairSet
 
     data = {}
     for k in range((n + CHUNK - 1) // CHUNK):  # filled in place: no second copy while concatenating
@@ -148,7 +148,7 @@ def write(path: Path, n: int) -> None:
 
 def in_ram(n: int):
     """The same pairs as one PairSet of int64 tensors (``polopt train``'s way)."""
-    from polopt.train import PairSet
+    from polopt.pair_set import PairSet
 
     t = task()
     parts = [draw(t, n, k) for k in range((n + CHUNK - 1) // CHUNK)]
@@ -164,7 +164,7 @@ def in_ram(n: int):
 def toy_policy_and_pairs(mode: str, path: Path, n: int):
     from polopt.models import build_model, copy_weights
     from polopt.stream import MappedPairs
-    from toy_tasks.sequences import EnumeratedSequencePolicy
+    from toy_tasks.sequence_policy import EnumeratedSequencePolicy
 
     t = task()
     pairs = MappedPairs(path, pad_id=t.vocab.pad_id) if mode == "mapped" else in_ram(n)
@@ -187,7 +187,8 @@ def skewed_policy_and_pairs(mode: str, path: Path, n: int, max_length: int):
 
 def train_once(mode: str, path: Path, n: int, steps: int, batch_size: int, data: str, max_length: int) -> dict:
     from polopt import losses
-    from polopt.train import OptimConfig, train
+    from polopt.optim import OptimConfig
+    from polopt.train import TrainSettings, train
 
     torch.set_num_threads(1)
     before = peak_rss_mib()
@@ -197,8 +198,9 @@ def train_once(mode: str, path: Path, n: int, steps: int, batch_size: int, data:
         policy, pairs = skewed_policy_and_pairs(mode, path, n, max_length)
     loaded = peak_rss_mib()
     start = time.perf_counter()
-    result = train(policy, pairs, losses.get("logistic"), beta=0.5, steps=steps,
-                   optim=OptimConfig("adam", 0.003), batch_size=batch_size, log_every=steps, progress=False)
+    result = train(policy, pairs, losses.get("logistic"),
+                   TrainSettings(beta=0.5, steps=steps, optim=OptimConfig("adam", 0.003), batch_size=batch_size,
+                                 log_every=steps, progress=False))
     return {"mode": mode, "rows": len(pairs), "peak_rss_mb": peak_rss_mib(), "rss_end_mb": rss_now_mib(),
             "rss_after_setup_mb": loaded, "rss_at_start_mb": before,
             "seconds": time.perf_counter() - start, "loss": result.final["loss"],

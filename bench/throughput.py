@@ -62,7 +62,9 @@ from polopt.batching import Batcher  # noqa: E402
 from polopt.logprobs import SequencePolicy, batched_logprobs, length_split  # noqa: E402
 from polopt.models import TinyTransformer  # noqa: E402
 from polopt.objective import margins, preference_loss  # noqa: E402
-from polopt.train import OptimConfig, PairSet, train  # noqa: E402
+from polopt.optim import OptimConfig  # noqa: E402
+from polopt.pair_set import PairSet  # noqa: E402
+from polopt.train import TrainSettings, train  # noqa: E402
 
 LAYERS, HEADS, BETA = 2, 4, 0.5
 
@@ -166,7 +168,7 @@ def prepare(cfg: dict) -> dict:
                   progress=False, log_every=10**9, precision=cfg["precision"], bucketing=cfg["bucketing"])
     state = {"cfg": cfg, "policy": policy, "pairs": pairs, "loss": losses.get("logistic"), "kwargs": kwargs,
              "reference_s": reference_s, "weights": weights}
-    train(policy, pairs, state["loss"], steps=3, seed=10**6, **kwargs)  # warm-up: kernels, allocator
+    train(policy, pairs, state["loss"], TrainSettings(steps=3, seed=10**6, **kwargs))  # warm-up: kernels, allocator
     return state
 
 
@@ -200,7 +202,8 @@ def time_round(state: dict, seed: int) -> dict:
     real, padded, batches = drawn_batches(state, seed)
     dtype = torch.bfloat16 if cfg["precision"] == "bf16" else torch.float32
     mm = matmul_flops_per_s(max(int(real.sum()) // cfg["steps"], 1), cfg["width"], 4 * cfg["width"], dtype)
-    result = train(state["policy"], state["pairs"], state["loss"], steps=cfg["steps"], seed=seed, **state["kwargs"])
+    result = train(state["policy"], state["pairs"], state["loss"],
+                   TrainSettings(steps=cfg["steps"], seed=seed, **state["kwargs"]))
     step_s = result.seconds / cfg["steps"]
     flops = model_flops(real, weights=state["weights"], layers=LAYERS, width=cfg["width"])
     ref_s = state["reference_s"] if cfg["cache"] else 0.0

@@ -2,7 +2,7 @@
 
 This module owns how the trainer turns its seeded ``torch.Generator`` into the
 order in which the pairs of an epoch are visited, and how a slice of that order
-becomes a :class:`polopt.train.PairSet` batch.
+becomes a :class:`polopt.pair_set.PairSet` batch.
 
 Token pairs arrive right-padded to the dataset's longest row. A batch drawn at
 random from a length-skewed dataset (most responses short, a few at the maximum,

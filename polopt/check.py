@@ -47,7 +47,9 @@ import torch
 from polopt import losses
 from polopt.losses import Loss
 from polopt.objective import margins
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.pair_set import score_pairs
+from polopt.train import TrainSettings, train
 
 Tensor = torch.Tensor
 
@@ -127,9 +129,7 @@ def is_builtin(loss: Loss) -> bool:
     return base is not None and base.fn is loss.fn and not loss.params and base.source != "user-supplied"
 
 
-def builtin_names() -> list[str]:
-    """The registry's own members (defined in :mod:`polopt.losses`), not users' additions."""
-    return [name for name in losses.names() if losses._REGISTRY[name].fn.__module__ == losses.__name__]
+builtin_names = losses.builtin_names  # the registry's own members
 
 
 def _builtins() -> list[Loss]:
@@ -335,30 +335,9 @@ def check_taylor(loss: Loss, *, beta: float) -> CheckResult:
 # ----------------------------------------------------------------------------
 
 
-def pair_optimum(loss: Loss, p: float) -> float:
-    """x*(p) by :meth:`Loss.pair_optimum`, except that a numerical optimum where the pair
-    objective has become flat to rounding (a bounded f such as a sigmoid, whose infimum
-    is approached only at infinity) is reported as infinite. Flat to rounding: no better
-    at the search bound 60 than at x*, and less than 1e-9 lower at x* than one unit
-    before it (a hinge's flat minimum, reached with slope -1, stays finite)."""
-    if loss.closed_form_optimum is None:
-        values = loss.pair_objective(np.linspace(-60.0, 60.0, 241), p)
-        if np.ptp(values) <= 1e-12 * max(1.0, float(np.abs(values).max())):
-            return math.nan  # flat in x: every margin is optimal
-    x = loss.pair_optimum(p)
-    if loss.closed_form_optimum is None and math.isfinite(x) and abs(x) > 1.0:
-        step = math.copysign(1.0, x)
-        value = float(loss.pair_objective(x, p))
-        at_edge, before = float(loss.pair_objective(60.0 * step, p)), float(loss.pair_objective(x - step, p))
-        scale = max(1.0, abs(value))
-        if at_edge <= value + 1e-12 * scale and before - value < 1e-9 * scale:
-            return math.copysign(math.inf, x)
-    return x
-
-
 def pair_optimum_curve(loss: Loss, ps: Sequence[float] = CURVE_P) -> np.ndarray:
-    """x*(p) for each p (the member's closed form where it has one)."""
-    return np.array([pair_optimum(loss, float(p)) for p in ps])
+    """x*(p) for each p (:meth:`polopt.losses.Loss.pair_optimum`: the member's closed form where it has one)."""
+    return np.array([loss.pair_optimum(float(p)) for p in ps])
 
 
 def check_pair_optimum(loss: Loss) -> CheckResult:
@@ -442,7 +421,7 @@ def check_certainty(loss: Loss) -> CheckResult:
     """Whether a pair preferred with probability 1 has a finite optimal margin."""
     name = "certainty"
     try:
-        x1 = pair_optimum(loss, 1.0)
+        x1 = loss.pair_optimum(1.0)
     except Exception as err:
         return _error(name, err)
     facts = {"optimum_at_1": x1, "finite": math.isfinite(x1)}
@@ -567,9 +546,8 @@ def _net_win_weight(pairs) -> Tensor:
 def _mean_margin(policy, pairs) -> float:
     """Weighted mean of the trained margins rho over the pairs: E_W[rho]."""
     with torch.no_grad():
-        logp = policy.logprobs(torch.cat([pairs.prompt, pairs.prompt]), torch.cat([pairs.winner, pairs.loser]))
-        logp_w, logp_l = logp.double().chunk(2)  # (N,) each
-        rho = margins(logp_w, logp_l, pairs.reference_winner, pairs.reference_loser)  # (N,)
+        logp_w, logp_l = score_pairs(policy.logprobs, pairs.prompt, pairs.winner, pairs.loser)  # (N,) each
+        rho = margins(logp_w.double(), logp_l.double(), pairs.reference_winner, pairs.reference_loser)  # (N,)
         weight = torch.ones_like(rho) if pairs.weight is None else pairs.weight.double()
         return float((weight * rho).sum() / weight.sum())
 
@@ -596,8 +574,9 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
     try:
         session = task.prepare(loss, beta=beta, mode="exact")
         policy = session.build_policy()
-        result = train(policy, session.pairs, loss, beta=beta, steps=steps, optim=optim or OptimConfig(),
-                       log_every=max(steps // 20, 1), progress=False)
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=beta, steps=steps, optim=optim or OptimConfig(),
+                                     log_every=max(steps // 20, 1), progress=False))
         summary = session.summarise(policy, result)
         mean_margin = _mean_margin(policy, session.pairs)
         balanced = bool(_net_win_weight(session.pairs).abs().max() <= 1e-9)

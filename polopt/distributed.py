@@ -8,7 +8,7 @@ batch order, and takes its own contiguous slice of each global batch (with full
 batches, a slice of all pairs). The policy's gradients are averaged by
 torch.nn.parallel.DistributedDataParallel (DDP), and each rank scales its local
 loss so that the averaged gradient is the one-process gradient of the global
-batch (:func:`sharded_loss`). So the N-process run follows the one-process run
+batch (:func:`sharded_mean`). So the N-process run follows the one-process run
 of the same global batch up to floating-point summation order.
 
 Only rank 0 (:attr:`Context.is_main`) writes: config.yaml, metrics.jsonl,
@@ -34,9 +34,6 @@ from pathlib import Path
 import torch
 import torch.distributed as dist
 from torch import nn
-
-from polopt.losses import Loss
-from polopt.objective import pair_losses
 
 Tensor = torch.Tensor
 
@@ -137,7 +134,7 @@ def local_slice(n: int, context: Context) -> slice:
 def shard(batch, index: Tensor, context: Context):
     """(this rank's pairs, their global indices, the total weight W of the global batch).
 
-    ``batch`` is the global batch (a :class:`polopt.train.PairSet`); W is the sum of its
+    ``batch`` is the global batch (a :class:`polopt.pair_set.PairSet`); W is the sum of its
     weights (the number of pairs when unweighted), the denominator of the global loss.
     """
     n = len(batch)
@@ -149,9 +146,8 @@ def shard(batch, index: Tensor, context: Context):
     return batch.select(part), index[part], total
 
 
-def sharded_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float, weight: Tensor | None,
-                 total_weight, context: Context) -> tuple[Tensor, Tensor]:
-    """(the loss this rank backpropagates, the global loss of the batch).
+def sharded_mean(values: Tensor, *, weight: Tensor | None, total_weight, context: Context) -> tuple[Tensor, Tensor]:
+    """(the loss this rank backpropagates, the global loss of the batch) from this rank's per-pair losses.
 
     The global loss is the weighted mean over the global batch, ``L = sum_i w_i l_i / W``
     with ``W = sum_i w_i``. Split the batch over ranks r = 1..N, with ``S_r = sum_{i in r} w_i l_i``:
@@ -163,9 +159,8 @@ def sharded_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float, weig
     weight sums differ. The global loss for metrics and the non-finite check is
     ``L = (1/N) sum_r L_r`` (one all_reduce), so every rank takes the same decision.
 
-    Shape: rho (B_r,), weight (B_r,) or None; both outputs are scalars.
+    Shape: values (B_r,), weight (B_r,) or None; both outputs are scalars.
     """
-    values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)  # (B_r,)
     local_sum = values.sum() if weight is None else (weight.to(values.dtype) * values).sum()
     objective = local_sum * (context.world_size / torch.as_tensor(total_weight, dtype=values.dtype))
     global_loss = objective.detach().clone()
@@ -175,7 +170,7 @@ def sharded_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float, weig
 
 def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None,
                      context: Context) -> dict:
-    """:func:`polopt.train.batch_statistics` over the global batch: the weighted sums of every rank
+    """:func:`polopt.objective.batch_statistics` over the global batch: the weighted sums of every rank
     added by one all_reduce, then divided by the global weight."""
     w = torch.ones_like(rho) if weight is None else weight.to(rho.dtype)  # (B_r,)
     sums = torch.stack([(w * rho).sum(), (w * (rho > 0).to(rho.dtype)).sum(), (w * logratio_w).sum(),

@@ -37,7 +37,7 @@ import torch
 from torch import nn
 
 from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
-from polopt.train import PairSet
+from polopt.pair_set import PairSet
 
 Tensor = torch.Tensor
 
@@ -143,7 +143,7 @@ def encode(tokenizer, texts: list[str], *, response: bool) -> Tensor:
 
 def text_pairs(reference: SequencePolicy, tokenizer, prompt: list[str], winner: list[str], loser: list[str],
                weight: list[float] | None = None, *, batch_size: int = 64, progress: bool = False) -> PairSet:
-    """Text pairs as a :class:`polopt.train.PairSet` for the trainer, with the reference's
+    """Text pairs as a :class:`polopt.pair_set.PairSet` for the trainer, with the reference's
     log-probabilities computed once over the dataset (winners and losers in one pass, no gradients)."""
     p = encode(tokenizer, prompt, response=False)  # (N, T_p)
     w = encode(tokenizer, winner, response=True)  # (N, T_w)

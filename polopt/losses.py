@@ -217,12 +217,14 @@ class Loss:
         return (p * self(t) + (1.0 - p) * self(-t)).numpy()
 
     def pair_optimum(self, p: float) -> float:
-        """The scaled margin ``x* = beta * d*`` minimising ``p f(x) + (1 - p) f(-x)``.
+        """The scaled margin ``x* = beta * d*`` minimising ``p f(x) + (1 - p) f(-x)``: the one
+        definition of the per-pair optimum x*(p) (``polopt check``, the solver's existence test
+        and the tests all read it here).
 
         Returns ``+inf`` (``-inf``) where the objective keeps decreasing as the
-        margin grows (shrinks), e.g. the logistic loss at p = 1. Uses the closed
-        form where the member has one, else a bounded scalar solve on
-        ``[-60, 60]`` whose boundary hits are reported as infinite.
+        margin grows (shrinks), e.g. the logistic loss at p = 1, and nan where it is flat
+        in x (every margin optimal). Uses the closed form where the member has one, else
+        :func:`numerical_pair_optimum`.
         """
         if not 0.0 <= p <= 1.0:
             raise ValueError(f"pair_optimum: p must lie in [0, 1], got {p}")
@@ -236,10 +238,14 @@ def numerical_pair_optimum(loss: Loss, p: float, *, bound: float = _PAIR_SEARCH_
 
     A grid first brackets the global minimum (the objective may be non-convex),
     then ``minimize_scalar`` refines it. A minimiser at the boundary means the
-    objective still decreases there: reported as ``+-inf``.
+    objective still decreases there: reported as ``+-inf``; so is a minimiser where
+    the objective has become flat to rounding (:func:`_flat_to_rounding`); an objective
+    flat over the whole grid gives nan (every margin is optimal).
     """
     grid = np.linspace(-bound, bound, 2401)
     values = loss.pair_objective(grid, p)
+    if np.ptp(values) <= 1e-12 * max(1.0, float(np.abs(values).max())):
+        return math.nan
     k = int(np.nanargmin(values))
     if k == len(grid) - 1 and values[k] < values[k - 1]:
         return math.inf
@@ -251,7 +257,22 @@ def numerical_pair_optimum(loss: Loss, p: float, *, bound: float = _PAIR_SEARCH_
         options={"xatol": 1e-10},
     )
     # a flat minimum (hinge at p = 1/2, any x >= 1 at p = 1) is reported at its left edge
-    return float(result.x)
+    x = float(result.x)
+    return math.copysign(math.inf, x) if _flat_to_rounding(loss, p, x, bound) else x
+
+
+def _flat_to_rounding(loss: Loss, p: float, x: float, bound: float) -> bool:
+    """Whether a numerical minimiser ``x`` (|x| > 1) only marks where a bounded f (a sigmoid,
+    1 - tanh) became flat in floating point, its infimum being approached only at infinity:
+    no better at the search bound than at x, and less than 1e-9 lower at x than one unit
+    before it. A hinge's flat minimum, reached with slope -1, stays finite."""
+    if abs(x) <= 1.0:
+        return False
+    step = math.copysign(1.0, x)
+    value = float(loss.pair_objective(x, p))
+    at_edge, before = float(loss.pair_objective(bound * step, p)), float(loss.pair_objective(x - step, p))
+    scale = max(1.0, abs(value))
+    return at_edge <= value + 1e-12 * scale and before - value < 1e-9 * scale
 
 
 _REGISTRY: dict[str, Loss] = {}
@@ -281,6 +302,11 @@ def register(name: str | None = None, *, convex: bool | None = None, source: str
 def names() -> list[str]:
     """The registered loss names, in registration order."""
     return list(_REGISTRY)
+
+
+def builtin_names() -> list[str]:
+    """The registry's own members (defined in this module), not users' additions."""
+    return [name for name in names() if _REGISTRY[name].fn.__module__ == __name__]
 
 
 def _import_dotted(path: str) -> Callable[..., Tensor]:

@@ -9,13 +9,20 @@ place where per-pair losses are reduced:
 
 with optional per-pair weights ``w`` (exact mode passes the population win
 weights) and label smoothing ``eps`` (the label is flipped with probability eps).
+
+:func:`batch_loss` is the one call the training loop makes for a batch's loss (one process
+or a rank's share under torchrun); :func:`batch_statistics` the margins' logged summary.
 """
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import torch
 
+from polopt import distributed
 from polopt.losses import Loss
+from polopt.pair_set import PairSet
 
 Tensor = torch.Tensor
 
@@ -47,11 +54,61 @@ def preference_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float = 
 
     ``weights`` (B,) need not be normalised; None means equal weights.
     """
-    values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)
+    return _weighted_mean(pair_losses(loss, rho, beta=beta, smoothing=smoothing), weights)
+
+
+def _weighted_mean(values: Tensor, weights: Tensor | None) -> Tensor:
+    """``sum_k w_k v_k / sum_k w_k``, or the plain mean when ``weights`` is None. (B,) -> scalar."""
     if weights is None:
         return values.mean()
     weights = weights.to(values.dtype)
     return (weights * values).sum() / weights.sum()
+
+
+class BatchLoss(NamedTuple):
+    """The loss of one batch: what to backpropagate, the loss to report and guard, the margins
+    and the per-pair losses (for the non-finite report)."""
+
+    objective: Tensor  # scalar: this rank's share under torchrun, else the loss itself
+    value: Tensor  # scalar: the loss of the (global) batch
+    rho: Tensor  # (B,) margins
+    per_pair: Tensor  # (B,) unreduced losses
+
+
+def batch_loss(loss: Loss, policy_winner: Tensor, policy_loser: Tensor, batch: PairSet, *, beta: float,
+               smoothing: float = 0.0, total_weight=None,
+               context: distributed.Context = distributed.SINGLE) -> BatchLoss:
+    """The loss of ``batch`` from the policy's log-probs of its winners and losers, shape (B,) each.
+
+    One process: :func:`preference_loss`. Several (``context.active``): this rank's share
+    ``N S_r / W`` of the global weighted mean (derivation in :func:`polopt.distributed.sharded_mean`),
+    ``total_weight`` being W, the global batch's weight sum.
+    """
+    rho = margins(policy_winner, policy_loser, batch.reference_winner, batch.reference_loser)  # (B,)
+    values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)  # (B,)
+    if context.active:
+        objective, value = distributed.sharded_mean(values, weight=batch.weight, total_weight=total_weight,
+                                                    context=context)
+        return BatchLoss(objective, value, rho, values)
+    value = _weighted_mean(values, batch.weight)
+    return BatchLoss(value, value, rho, values)
+
+
+def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None,
+                     context: distributed.Context | None = None) -> dict:
+    """Weighted means of the margin, the share of pairs with a positive margin, and
+    the two log-ratios (both falling together is likelihood displacement); over the global
+    batch of all ranks when ``context`` is given and active. Shapes: all (B,)."""
+    if context is not None and context.active:
+        return distributed.batch_statistics(rho, logratio_w, logratio_l, weight, context)
+    w = torch.ones_like(rho) if weight is None else weight.to(rho.dtype)
+    w = w / w.sum()
+    return {
+        "margin_mean": float((w * rho).sum()),
+        "pair_accuracy": float((w * (rho > 0).to(rho.dtype)).sum()),
+        "logratio_winner": float((w * logratio_w).sum()),
+        "logratio_loser": float((w * logratio_l).sum()),
+    }
 
 
 def validate_hyperparameters(beta: float, smoothing: float = 0.0) -> None:

@@ -31,16 +31,17 @@ from pathlib import Path
 
 import torch
 
-from polopt.data import PAIR_FILE_KEYS, PairData, load_pairs_from_config, write_rejects
+from polopt.contracts import TrainResult
+from polopt.data import PairData, PairFileSpec, read_pair_file, write_rejects
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
 from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
 from polopt.losses import Loss
 from polopt.models import TinyTransformer
-from polopt.objective import margins, preference_loss
+from polopt.objective import batch_statistics, margins, preference_loss
+from polopt.pair_set import PairSet, score_pairs
 from polopt.reference_cache import FILE_NAME, reference_logprobs
 from polopt.sft import load_reference
 from polopt.tokenizer import load_tokenizer
-from polopt.train import PairSet, TrainResult, batch_statistics
 
 Tensor = torch.Tensor
 INITS = ("reference", "random")
@@ -51,7 +52,7 @@ REJECTS_FILE = "rejects.jsonl"
 class PairTask:
     """The ``task=pairs`` config, checked; :meth:`prepare` reads the file."""
 
-    file: dict  # the keys of polopt.data.PAIR_FILE_KEYS
+    file: PairFileSpec
     reference: str | None = None
     cache_reference: bool = True
 
@@ -61,8 +62,8 @@ class PairTask:
         if mode != "sampled":
             raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs, there is no "
                              f"population to weigh exactly), got {mode!r}")
-        tokenizer = load_tokenizer(self.file.get("tokenizer") or "byte")
-        data = load_pairs_from_config(self.file, tokenizer=tokenizer)
+        tokenizer = load_tokenizer(self.file.tokenizer or "byte")
+        data = read_pair_file(self.file, tokenizer=tokenizer)
         rejects = None
         if run_dir is not None:
             rejects = write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
@@ -71,11 +72,11 @@ class PairTask:
                 raise ValueError(f"task.n_pairs must be a positive integer or null (every accepted pair), "
                                  f"got {n_pairs!r}")
         if len(data) == 0:
-            raise ValueError(f"task.path {self.file['path']!r}: no pair was accepted "
+            raise ValueError(f"task.path {self.file.path!r}: no pair was accepted "
                              f"({data.accounting['rows_rejected']} rejected; see {rejects or 'polopt data FILE'})")
         model, meta = (None, None) if self.reference is None else load_reference(self.reference)
         cache = Path(run_dir) / FILE_NAME if run_dir is not None and self.cache_reference else None
-        session = PairSession(data=data, tokenizer=tokenizer, file_tokenizer=str(self.file.get("tokenizer")),
+        session = PairSession(data=data, tokenizer=tokenizer, file_tokenizer=str(self.file.tokenizer),
                               ids=SequenceIds.for_tokenizer(tokenizer), loss=loss,
                               beta=beta, smoothing=smoothing, n_pairs=n_pairs, reference_path=self.reference,
                               reference_model=model, reference_meta=meta, cache=cache, rejects_path=rejects)
@@ -93,9 +94,8 @@ def pair_task(path: str | None = None, format: str = "auto", columns: dict | str
     """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
     if path is None:
         raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
-    file = {"path": path, "format": format, "columns": columns, "max_length": max_length,
-            "truncation": truncation, "duplicates": duplicates, "tokenizer": tokenizer, "hub": hub, "split": split}
-    assert set(file) == set(PAIR_FILE_KEYS)  # the data layer's keys, all passed on
+    file = PairFileSpec(path, format=format, columns=columns, max_length=max_length, truncation=truncation,
+                        duplicates=duplicates, tokenizer=tokenizer, hub=hub, split=split)
     return PairTask(file, reference=None if reference in (None, "") else str(reference),
                     cache_reference=bool(cache_reference))
 
@@ -159,15 +159,14 @@ class PairSession:
     def attach_reference(self, model: torch.nn.Module) -> None:
         """The reference's log-probs of every winner and loser, computed once (one pass) and cached."""
         self.reference_model = model
-        both, self.reference_cache_reused = reference_logprobs(
-            model, torch.cat([self.prompt, self.prompt]), self.pair_responses(), pad_id=self.ids.pad,
-            path=self.cache, batch_size=256)  # (2N,)
-        ref_w, ref_l = both.chunk(2)
-        self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens)
 
-    def pair_responses(self) -> Tensor:
-        """Winners then losers: (2N, T_r)."""
-        return torch.cat([self.winner, self.loser])
+        def reference_pass(prompt: Tensor, response: Tensor) -> Tensor:
+            both, self.reference_cache_reused = reference_logprobs(model, prompt, response, pad_id=self.ids.pad,
+                                                                   path=self.cache, batch_size=256)
+            return both  # (2N,)
+
+        ref_w, ref_l = score_pairs(reference_pass, self.prompt, self.winner, self.loser)
+        self.pairs = PairSet(self.prompt, self.winner, self.loser, ref_w, ref_l, self.weight, tokens=self.tokens)
 
     # ------------------------------------------------------------ model
 
@@ -221,10 +220,9 @@ class PairSession:
         training = policy.training
         policy.eval()
         p = self.pairs
-        logp = batched_logprobs(policy.model, torch.cat([p.prompt, p.prompt]), self.pair_responses(),
-                                pad_id=self.ids.pad, batch_size=256)  # (2N,)
+        logp_w, logp_l = score_pairs(lambda prompt, response: batched_logprobs(
+            policy.model, prompt, response, pad_id=self.ids.pad, batch_size=256), p.prompt, p.winner, p.loser)
         policy.train(training)
-        logp_w, logp_l = logp.chunk(2)
         rho = margins(logp_w, logp_l, p.reference_winner, p.reference_loser)  # (N,)
         value = preference_loss(self.loss, rho, beta=self.beta, smoothing=self.smoothing, weights=p.weight)
         return {"loss": float(value), **batch_statistics(rho, logp_w - p.reference_winner,

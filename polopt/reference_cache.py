@@ -2,7 +2,7 @@
 
 The reference does not change during training, so its log-probabilities of
 every (prompt, response) row are computed once, kept in memory (the trainer's
-:class:`polopt.train.PairSet` holds them) and written to the run folder, by
+:class:`polopt.pair_set.PairSet` holds them) and written to the run folder, by
 default ``reference_logprobs.pt``. A later run in the same folder on the same
 dataset with the same reference loads them instead of recomputing; a
 fingerprint (SHA-256 of the tokens and of the reference's weights) tells when the

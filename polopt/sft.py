@@ -33,7 +33,7 @@ from polopt.checkpoint import atomic_write
 from polopt.encoding import SequenceIds, encode_prompts, encode_responses
 from polopt.logprobs import pack
 from polopt.models import TinyTransformer
-from polopt.train import OptimConfig, make_optimiser
+from polopt.optim import OptimConfig, make_optimiser
 
 Tensor = torch.Tensor
 

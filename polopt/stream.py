@@ -1,6 +1,6 @@
 """Pairs that stay on disk: an Arrow file, memory-mapped, read one batch at a time.
 
-A :class:`polopt.train.PairSet` holds every pair in RAM as tensors. For a large
+A :class:`polopt.pair_set.PairSet` holds every pair in RAM as tensors. For a large
 dataset, :class:`MappedPairs` offers the part of its interface the trainer's
 minibatch path reads (``len``, ``select(index) -> PairSet``, ``weight``,
 ``tokens``): the rows live in an Arrow file that ``datasets.Dataset.from_file``
@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from polopt.train import PairSet
+from polopt.pair_set import PairSet
 
 Tensor = torch.Tensor
 

@@ -21,7 +21,7 @@ import torch
 
 from polopt.check import as_loss, check_population, run_checks
 from polopt.losses import Loss
-from polopt.train import OptimConfig
+from polopt.optim import OptimConfig
 
 
 def assert_reaches_optimum(loss: Loss | str | Callable[[torch.Tensor], torch.Tensor], task, beta: float = 0.5,

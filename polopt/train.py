@@ -1,18 +1,18 @@
-"""The training loop: any loss of the family on any task that hands over pairs.
+"""The training loop: one loop for every path (offline losses on pairs, and the methods).
 
-A task gives the trainer a :class:`PairSet` (prompt, winner, loser, optional
-weight, and the reference log-probabilities of winner and loser, computed once
-and cached) and, optionally, an ``evaluate(policy) -> dict`` callback for
-metrics that need the task (KL to the reference, distance to the optimum).
-The policy is any ``nn.Module`` with ``logprobs(prompt, response) -> (B,)``.
+The loop minimises a *batch objective* over a policy's parameters. An objective hands the
+loop, for each step, a :class:`StepLoss` (the scalar to backpropagate, the loss to report,
+the batch's metrics); :class:`PairObjective` is the offline one (a loss of the family on
+a task's :class:`polopt.pair_set.PairSet`), :class:`MethodObjective` wraps a method's
+``step(step) -> (scalar, metrics)`` (:mod:`polopt.methods`).
 
-One step reads top to bottom:
-    1. learning rate (the scheduler), 2. batch, 3. policy log-probs of winners
-    and losers, 4. margins and loss, 5. backward, clip, step (or, on a
-    non-finite loss or gradient, stop or skip: ``on_nonfinite``), 6. log,
-    7. checkpoint (every ``checkpoint_every`` steps and at the end; see
-    :mod:`polopt.checkpoint`). ``resume`` continues from a checkpoint's state so
-    that the run ends bit-identical to an uninterrupted one.
+One step reads top to bottom (:func:`optimise`):
+    1. learning rate (the scheduler), 2. batch, 3. policy log-probs of winners and
+    losers, 4. loss (2-4: the objective), 5. backward, clip, step (or, on a non-finite
+    loss or gradient, stop or skip: ``on_nonfinite``), 6. log, 7. checkpoint (every
+    ``checkpoint_every`` steps and at the end; see :mod:`polopt.checkpoint`). ``resume``
+    continues from a checkpoint's state so that the run ends bit-identical to an
+    uninterrupted one.
 """
 
 from __future__ import annotations
@@ -32,111 +32,172 @@ from tqdm.auto import tqdm
 from polopt import distributed
 from polopt.batching import Batcher
 from polopt.checkpoint import restore_training_state, training_state
+from polopt.contracts import TrainResult
 from polopt.losses import Loss
-from polopt.objective import margins, pair_losses, preference_loss
+from polopt.objective import batch_loss, batch_statistics
+from polopt.optim import OptimConfig, make_optimiser
+from polopt.pair_set import PairSet, score_pairs
 
 Tensor = torch.Tensor
+ON_NONFINITE = ("stop", "skip")
+PRECISIONS = ("fp32", "bf16")
 
 
 @dataclass
-class PairSet:
-    """Labelled pairs as tensors with a leading dimension N.
+class TrainSettings:
+    """The settings of one run of the loop (the ``train`` group, ``beta``, ``loss.smoothing``,
+    ``precision``, ``optim``).
 
-    ``winner``/``loser`` are whatever the policy's ``logprobs`` takes (response
-    indices for finite tasks). ``reference_winner``/``reference_loser`` (N,) are
-    the cached reference log-probabilities; ``weight`` (N,) or None; ``tokens`` (N,)
-    the real tokens of each pair (prompt with winner plus prompt with loser, no
-    padding) for the ``tokens_per_s`` metric, or None.
+    ``batch_size`` None (or >= N) uses every pair each step (full batch); otherwise each epoch
+    visits the pairs in a fresh order drawn from ``seed``. Metrics of every ``log_every``-th step
+    (and the first and last) are logged. ``checkpoint_every``: steps between checkpoints (0: only
+    at the end). ``on_nonfinite``: ``stop`` raises FloatingPointError naming the step and the batch;
+    ``skip`` leaves the parameters and the optimiser's moments untouched for that step, which still
+    consumes its batch and its learning rate. Token pairs come in batches trimmed to their longest
+    row, grouped by length when ``bucketing`` (:mod:`polopt.batching`). ``device``: where the policy
+    already is; each batch goes there, the batch order and the data stay on the CPU.
     """
 
-    prompt: Tensor
-    winner: Tensor
-    loser: Tensor
-    reference_winner: Tensor
-    reference_loser: Tensor
-    weight: Tensor | None = None
-    tokens: Tensor | None = None
-
-    def __len__(self) -> int:
-        return len(self.prompt)
-
-    def select(self, index: Tensor) -> PairSet:
-        return PairSet(self.prompt[index], self.winner[index], self.loser[index],
-                       self.reference_winner[index], self.reference_loser[index],
-                       None if self.weight is None else self.weight[index],
-                       None if self.tokens is None else self.tokens[index])
-
-    def to(self, device: torch.device) -> PairSet:
-        """The same pairs with every tensor on ``device`` (no copy when they are there already)."""
-        def move(t: Tensor | None) -> Tensor | None:
-            return None if t is None else t.to(device, non_blocking=True)
-
-        return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
-                                           self.reference_loser, self.weight, self.tokens)))
-
-
-@dataclass
-class OptimConfig:
-    """``optim`` group: optimiser name (any of torch.optim's Adam, AdamW, SGD), learning
-    rate, cosine decay to 0 after a linear warm-up, and gradient clipping."""
-
-    name: str = "adam"
-    lr: float = 0.05
-    weight_decay: float = 0.0
-    warmup_steps: int = 0
-    schedule: str = "cosine"  # cosine | constant
-    grad_clip: float | None = None
-
-
-@dataclass
-class TrainResult:
     steps: int
-    seconds: float
-    final: dict
-    history: list[dict] = field(default_factory=list)
-    skipped: list[int] = field(default_factory=list)  # steps skipped for a non-finite loss or gradient
+    beta: float
+    optim: OptimConfig = field(default_factory=OptimConfig)
+    smoothing: float = 0.0
+    batch_size: int | None = None
+    seed: int = 0
+    log_every: int = 10
+    precision: str = "fp32"
+    checkpoint_every: int = 0
+    on_nonfinite: str = "stop"
+    bucketing: bool = True
+    progress: bool = True
+    device: torch.device | str = "cpu"
+
+    def check(self) -> None:
+        """Raise one ValueError naming the first setting out of range."""
+        if not isinstance(self.steps, int) or self.steps < 1:
+            raise ValueError(f"train.steps must be a positive integer, got {self.steps!r}")
+        size = self.batch_size
+        if size is not None and (not isinstance(size, int) or size < 1):
+            raise ValueError(f"train.batch_size must be a positive integer or null (all pairs), got {size!r}")
+        if self.precision not in PRECISIONS:
+            raise ValueError(f"precision must be fp32 or bf16, got {self.precision!r}")
+        if self.on_nonfinite not in ON_NONFINITE:
+            raise ValueError(f"train.on_nonfinite must be stop or skip, got {self.on_nonfinite!r}")
+        every = self.checkpoint_every
+        if not isinstance(every, int) or isinstance(every, bool) or every < 0:
+            raise ValueError(f"train.checkpoint_every must be an integer >= 0 (0: only at the end), got {every!r}")
 
 
-_OPTIMISERS = {"adam": torch.optim.Adam, "adamw": torch.optim.AdamW, "sgd": torch.optim.SGD}
+@dataclass
+class StepLoss:
+    """What an objective hands the loop for one step."""
+
+    objective: Tensor  # scalar to backpropagate (a rank's share under torchrun)
+    value: Tensor  # scalar loss to report and to guard against NaN/inf
+    statistics: Callable[[], dict]  # the batch's metrics, called on logged steps under no_grad
+    report: Callable[[int, str], str]  # (step, problem) -> one line naming the batch, for the guard
 
 
-def make_optimiser(params, cfg: OptimConfig, steps: int):
-    """torch.optim optimiser and scheduler for ``cfg``."""
-    if cfg.name not in _OPTIMISERS:
-        raise ValueError(f"optim.name must be one of {', '.join(_OPTIMISERS)}, got {cfg.name!r}")
-    if not cfg.lr > 0:
-        raise ValueError(f"optim.lr must be > 0, got {cfg.lr!r}")
-    optimiser = _OPTIMISERS[cfg.name](params, lr=cfg.lr, weight_decay=cfg.weight_decay)
-    if cfg.schedule == "constant":
-        main = torch.optim.lr_scheduler.ConstantLR(optimiser, factor=1.0, total_iters=0)
-    elif cfg.schedule == "cosine":
-        main = torch.optim.lr_scheduler.CosineAnnealingLR(optimiser, T_max=max(steps - cfg.warmup_steps, 1))
-    else:
-        raise ValueError(f"optim.schedule must be cosine or constant, got {cfg.schedule!r}")
-    if cfg.warmup_steps <= 0:
-        return optimiser, main
-    warmup = torch.optim.lr_scheduler.LinearLR(optimiser, start_factor=1e-3, total_iters=cfg.warmup_steps)
-    return optimiser, torch.optim.lr_scheduler.SequentialLR(optimiser, [warmup, main], milestones=[cfg.warmup_steps])
+# ----------------------------------------------------------------------------
+# Objectives: steps 2-4 (batch, score, loss)
+# ----------------------------------------------------------------------------
 
 
-def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None,
-                     context: distributed.Context | None = None) -> dict:
-    """Weighted means of the margin, the share of pairs with a positive margin, and
-    the two log-ratios (both falling together is likelihood displacement); over the global
-    batch of all ranks when ``context`` is given."""
-    if context is not None:
-        return distributed.batch_statistics(rho, logratio_w, logratio_l, weight, context)
-    w = torch.ones_like(rho) if weight is None else weight.to(rho.dtype)
-    w = w / w.sum()
-    return {
-        "margin_mean": float((w * rho).sum()),
-        "pair_accuracy": float((w * (rho > 0).to(rho.dtype)).sum()),
-        "logratio_winner": float((w * logratio_w).sum()),
-        "logratio_loser": float((w * logratio_l).sum()),
-    }
+class PairObjective:
+    """The offline objective: a loss of the family on batches of ``pairs`` (full or drawn)."""
+
+    def __init__(self, policy: torch.nn.Module, pairs: PairSet, loss: Loss, settings: TrainSettings,
+                 context: distributed.Context = distributed.SINGLE):
+        full = settings.batch_size is None or settings.batch_size >= len(pairs)
+        if full and getattr(pairs, "streamed", False):
+            raise ValueError(f"these {len(pairs)} pairs stream from disk and are read one batch at a time: set "
+                             f"train.batch_size below {len(pairs)} (full-batch training would read the whole "
+                             "file every step)")
+        self.name, self.counts_tokens = f"train {loss.name}", pairs.tokens is not None
+        self.policy, self.pairs, self.loss, self.settings, self.context = policy, pairs, loss, settings, context
+        self.full_batch, self.device = full, torch.device(settings.device)
+        self.batcher = Batcher(pairs, batch_size=settings.batch_size, pad_id=getattr(policy, "pad_id", None),
+                               bucketing=settings.bucketing)
+        self.order, self.cursor, self.tokens_seen = None, 0, 0
+        self._score, self._whole = None, None
+
+    def start(self, generator: torch.Generator) -> None:
+        """Draw the first epoch's order (before any resume restores the generator)."""
+        self.generator, self.order, self.cursor = generator, self.batcher.epoch_order(generator), 0
+
+    def position(self) -> tuple[Tensor, int]:
+        return self.order, self.cursor
+
+    def restore(self, order: Tensor, cursor: int) -> None:
+        self.order, self.cursor = order, cursor
+
+    def batch(self) -> tuple[Tensor, PairSet, object]:
+        """(global indices, this process's batch on the device, the global batch's weight sum)."""
+        if self.full_batch:
+            if self._whole is None:
+                self._whole = self.pairs.to(self.device)  # the full batch moves once
+            index, batch = torch.arange(len(self.pairs)), self._whole
+        else:
+            size = self.settings.batch_size
+            if self.cursor + size > len(self.pairs):
+                self.order, self.cursor = self.batcher.epoch_order(self.generator), 0
+            index = self.order[self.cursor:self.cursor + size]
+            batch = self.batcher.take(index)  # trimmed to its longest row
+            self.cursor += size
+        if batch.tokens is not None:
+            self.tokens_seen += int(batch.tokens.sum())
+        total_weight = None
+        if self.context.active:  # this rank's slice of the global batch, and the global batch's weight
+            batch, index, total_weight = distributed.shard(batch, index, self.context)
+        return index, batch.to(self.device), total_weight
+
+    def score(self, batch: PairSet) -> tuple[Tensor, Tensor]:
+        """Policy log-probs of winners and losers in one forward pass: (2B,) -> two halves of (B,)."""
+        if self._score is None:  # policy.logprobs, or its DDP view (built after any resume)
+            self._score = distributed.scorer(self.policy, self.context, self.device)
+        with torch.autocast(self.device.type, dtype=torch.bfloat16, enabled=self.settings.precision == "bf16"):
+            logp_w, logp_l = score_pairs(self._score, batch.prompt, batch.winner, batch.loser)
+            dtype = batch.reference_winner.dtype
+            return logp_w.to(dtype), logp_l.to(dtype)
+
+    def __call__(self, step: int) -> StepLoss:
+        index, batch, total_weight = self.batch()
+        logp_w, logp_l = self.score(batch)
+        s = self.settings
+        parts = batch_loss(self.loss, logp_w, logp_l, batch, beta=s.beta, smoothing=s.smoothing,
+                           total_weight=total_weight, context=self.context)
+
+        def statistics() -> dict:
+            return batch_statistics(parts.rho, logp_w - batch.reference_winner, logp_l - batch.reference_loser,
+                                    batch.weight, self.context)
+
+        def report(step: int, problem: str) -> str:
+            return nonfinite_report(step, problem, index, batch, parts.per_pair.detach())
+
+        return StepLoss(parts.objective, parts.value, statistics, report)
 
 
-ON_NONFINITE = ("stop", "skip")
+class MethodObjective:
+    """A method's ``step(step) -> (scalar, metrics)`` as a batch objective (the method draws
+    its own batches; a method run does not resume)."""
+
+    counts_tokens = False
+
+    def __init__(self, step_objective: Callable[[int], tuple[Tensor, dict]], name: str):
+        self.step_objective, self.name = step_objective, name
+
+    def start(self, generator: torch.Generator) -> None:
+        pass
+
+    def position(self) -> tuple[Tensor, int]:
+        return torch.zeros(0, dtype=torch.long), 0
+
+    def restore(self, order: Tensor, cursor: int) -> None:
+        raise ValueError(f"method={self.name} runs start over; they do not resume from a checkpoint")
+
+    def __call__(self, step: int) -> StepLoss:
+        value, stats = self.step_objective(step)
+        return StepLoss(value, value, lambda: stats, lambda s, problem: f"step {s}: {problem} (method {self.name})")
 
 
 def nonfinite_report(step: int, what: str, index: Tensor, batch: PairSet, per_pair: Tensor) -> str:
@@ -152,155 +213,160 @@ def nonfinite_report(step: int, what: str, index: Tensor, batch: PairSet, per_pa
             f"(prompts {show(batch.prompt)}){where}")
 
 
-def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, *, beta: float, steps: int,
-          optim: OptimConfig, smoothing: float = 0.0, batch_size: int | None = None, seed: int = 0,
-          log_every: int = 10, evaluate: Callable[[torch.nn.Module], dict] | None = None,
-          metrics_path: Path | None = None, progress: bool = True,
-          precision: str = "fp32", checkpoint_every: int = 0,
-          save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
-          on_nonfinite: str = "stop", bucketing: bool = True,
-          context: distributed.Context = distributed.SINGLE, device: torch.device | str = "cpu") -> TrainResult:
-    """Minimise the preference loss of ``pairs`` over the policy's parameters.
+# ----------------------------------------------------------------------------
+# The loop: steps 1, 5, 6, 7
+# ----------------------------------------------------------------------------
 
-    ``batch_size`` None (or >= N) uses every pair each step (full batch);
-    otherwise each epoch visits the pairs in a fresh order drawn from ``seed``.
-    Metrics of every ``log_every``-th step (and the last) go to ``metrics_path``
-    as JSON lines (appended: on resume the caller leaves the lines up to the
-    checkpoint there). ``save_checkpoint(state)`` receives
-    :func:`polopt.checkpoint.training_state` every ``checkpoint_every`` steps
-    (0: only at the end) and after the last; ``resume`` is such a state to
-    continue from. A non-finite loss or gradient norm raises FloatingPointError
-    naming the step and the batch (``on_nonfinite="stop"``), or leaves the
-    parameters and the optimiser's moments untouched for that step, which still
-    consumes its batch and its learning rate (``"skip"``; counted in ``skipped``).
-    Token pairs (a policy with a ``pad_id``) come in batches trimmed to their longest
-    row, grouped by length when ``bucketing`` (see :mod:`polopt.batching`).
-    ``context`` (from :func:`polopt.distributed.setup`) with several processes: each rank takes
-    its slice of every global batch and the gradients are averaged (:mod:`polopt.distributed`);
-    the caller passes ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
-    ``device``: where the policy already is (the caller moves it, :mod:`polopt.devices`); each batch
-    goes there, the batch order and the data stay on the CPU.
-    """
-    if not isinstance(steps, int) or steps < 1:
-        raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
-    if batch_size is not None and (not isinstance(batch_size, int) or batch_size < 1):
-        raise ValueError(f"train.batch_size must be a positive integer or null (all pairs), got {batch_size!r}")
-    if precision not in ("fp32", "bf16"):
-        raise ValueError(f"precision must be fp32 or bf16, got {precision!r}")
-    if on_nonfinite not in ON_NONFINITE:
-        raise ValueError(f"train.on_nonfinite must be stop or skip, got {on_nonfinite!r}")
-    if not isinstance(checkpoint_every, int) or isinstance(checkpoint_every, bool) or checkpoint_every < 0:
-        raise ValueError(f"train.checkpoint_every must be an integer >= 0 (0: only at the end), "
-                         f"got {checkpoint_every!r}")
-    torch.manual_seed(seed)
-    generator = torch.Generator().manual_seed(seed)
-    optimiser, scheduler = make_optimiser(policy.parameters(), optim, steps)
-    full_batch = batch_size is None or batch_size >= len(pairs)
-    if full_batch and getattr(pairs, "streamed", False):
-        raise ValueError(f"these {len(pairs)} pairs stream from disk and are read one batch at a time: set "
-                         f"train.batch_size below {len(pairs)} (full-batch training would read the whole file "
-                         "every step)")
-    batcher = Batcher(pairs, batch_size=batch_size, pad_id=getattr(policy, "pad_id", None), bucketing=bucketing)
-    order, cursor = batcher.epoch_order(generator), 0
-    history: list[dict] = []
-    skipped: list[int] = []
-    done, seconds_before = 0, 0.0
+
+@dataclass
+class _Loop:
+    """The loop's mutable state: what a checkpoint holds besides the objective's position."""
+
+    optimiser: torch.optim.Optimizer
+    scheduler: object
+    generator: torch.Generator
+    done: int = 0
+    history: list[dict] = field(default_factory=list)
+    skipped: list[int] = field(default_factory=list)
+    start: float = 0.0  # perf_counter at step 0 (earlier on resume, by the checkpoint's seconds)
+    loop_start: float = 0.0  # perf_counter when this process started (token throughput)
+
+
+def _begin(policy, objective, settings: TrainSettings, resume: dict | None) -> _Loop:
+    """Seed, build the optimiser, draw the first order; restore every piece of state on resume."""
+    torch.manual_seed(settings.seed)
+    generator = torch.Generator().manual_seed(settings.seed)
+    optimiser, scheduler = make_optimiser(policy.parameters(), settings.optim, settings.steps)
+    objective.start(generator)
+    loop, seconds = _Loop(optimiser, scheduler, generator), 0.0
     if resume is not None:  # every piece of state the next step reads comes back exactly
         restored = restore_training_state(resume, policy=policy, optimiser=optimiser, scheduler=scheduler,
                                           generator=generator)
-        done, order, cursor = restored["step"], restored["order"], restored["cursor"]
-        history, skipped, seconds_before = restored["history"], restored["skipped"], restored["seconds"]
-        if done > steps:
-            raise ValueError(f"the checkpoint is at step {done}, beyond train.steps={steps}")
-    device = torch.device(device)
-    score = distributed.scorer(policy, context, device)  # policy.logprobs, or its DDP view
-    whole = pairs.to(device) if full_batch else None  # the full batch moves once
+        objective.restore(restored["order"], restored["cursor"])
+        loop.done, loop.history, loop.skipped = restored["step"], restored["history"], restored["skipped"]
+        seconds = restored["seconds"]
+        if loop.done > settings.steps:
+            raise ValueError(f"the checkpoint is at step {loop.done}, beyond train.steps={settings.steps}")
+    loop.start, loop.loop_start = time.perf_counter() - seconds, time.perf_counter()
+    return loop
+
+
+def _learning_rate(loop: _Loop) -> float:
+    return loop.optimiser.param_groups[0]["lr"]
+
+
+def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings) -> tuple[str | None, float]:
+    """Backward, clip, step; a non-finite loss or gradient never reaches the parameters.
+    Returns (the problem or None, the gradient norm)."""
+    loop.optimiser.zero_grad(set_to_none=True)
+    problem, grad_norm = None, math.nan
+    if not torch.isfinite(out.value):
+        problem = f"the loss is {float(out.value.detach())}"
+    else:
+        out.objective.backward()
+        clip = settings.optim.grad_clip if settings.optim.grad_clip else math.inf
+        grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
+        if not math.isfinite(grad_norm):
+            problem = f"the gradient norm is {grad_norm}"
+    if problem is None:
+        loop.optimiser.step()
+    with warnings.catch_warnings():  # a skipped first step makes torch warn about the order
+        warnings.filterwarnings("ignore", message=r"Detected call of `lr_scheduler.step\(\)`")
+        loop.scheduler.step()
+    return problem, grad_norm
+
+
+def _guard(step: int, problem: str, out: StepLoss, loop: _Loop, settings: TrainSettings,
+           context: distributed.Context) -> None:
+    """Stop (FloatingPointError naming the batch) or skip the step, as ``on_nonfinite`` says."""
+    with torch.no_grad():
+        report = out.report(step, problem)
+    if settings.on_nonfinite == "stop":
+        raise FloatingPointError(f"{report}; lower optim.lr or beta, check the loss function "
+                                 "and the data, or set train.on_nonfinite=skip")
+    loop.optimiser.zero_grad(set_to_none=True)
+    loop.skipped.append(step)
+    if context.is_main:
+        tqdm.write(f"polopt: warning: skipped {report}", file=sys.stderr)
+
+
+def _record(step: int, lr: float, grad_norm: float, out: StepLoss, loop: _Loop, policy, objective,
+            evaluate: Callable | None) -> dict:
+    """The logged metrics of a step: loss, learning rate, gradient norm, the batch's statistics,
+    the task's evaluation, seconds and token throughput."""
+    with torch.no_grad():
+        record = {"step": step, "loss": float(out.value.detach()), "lr": lr, "grad_norm": grad_norm,
+                  **out.statistics()}
+        if evaluate is not None:
+            record.update(evaluate(policy))
+    record["seconds"] = time.perf_counter() - loop.start
+    if objective.counts_tokens:
+        record["tokens_per_s"] = objective.tokens_seen / (time.perf_counter() - loop.loop_start)
+    return record
+
+
+def _checkpoint(step: int, policy, objective, loop: _Loop, save: Callable[[dict], object]) -> None:
+    order, cursor = objective.position()
+    save(training_state(step=step, policy=policy, optimiser=loop.optimiser, scheduler=loop.scheduler,
+                        generator=loop.generator, order=order, cursor=cursor, history=loop.history,
+                        skipped=loop.skipped, seconds=time.perf_counter() - loop.start))
+
+
+def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
+             evaluate: Callable[[torch.nn.Module], dict] | None = None, metrics_path: Path | None = None,
+             save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
+             context: distributed.Context = distributed.SINGLE) -> TrainResult:
+    """Minimise ``objective`` (a :class:`PairObjective` or :class:`MethodObjective`) over the
+    policy's parameters for ``settings.steps`` steps.
+
+    Logged records go to ``metrics_path`` as JSON lines (appended: on resume the caller leaves
+    the lines up to the checkpoint there). ``save_checkpoint(state)`` receives
+    :func:`polopt.checkpoint.training_state` every ``checkpoint_every`` steps and after the
+    last; ``resume`` is such a state to continue from. With several processes the caller passes
+    ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
+    """
+    settings.check()
+    loop = _begin(policy, objective, settings, resume)
+    steps = settings.steps
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
-    start = time.perf_counter() - seconds_before
-    loop_start, tokens_seen = time.perf_counter(), 0  # token throughput of this process, resumed or not
-    bar = tqdm(range(done + 1, steps + 1), desc=f"train {loss.name}", disable=not progress, leave=False,
-               initial=done, total=steps)
+    bar = tqdm(range(loop.done + 1, steps + 1), desc=objective.name, disable=not settings.progress, leave=False,
+               initial=loop.done, total=steps)
     try:
         for step in bar:
-            # 1. learning rate of this step
-            lr = optimiser.param_groups[0]["lr"]
-            # 2. batch
-            if full_batch:
-                index, batch = torch.arange(len(pairs)), whole
-            else:
-                if cursor + batch_size > len(pairs):
-                    order, cursor = batcher.epoch_order(generator), 0
-                index = order[cursor:cursor + batch_size]
-                batch = batcher.take(index)  # trimmed to its longest row
-                cursor += batch_size
-            if batch.tokens is not None:
-                tokens_seen += int(batch.tokens.sum())
-            if context.active:  # this rank's slice of the global batch, and the global batch's weight
-                batch, index, total_weight = distributed.shard(batch, index, context)
-            batch = batch.to(device)
-            # 3. policy log-probs of winners and losers
-            with torch.autocast(device.type, dtype=torch.bfloat16, enabled=precision == "bf16"):
-                # winners and losers in one forward pass: (2B,) -> two halves of (B,)
-                logp = score(torch.cat([batch.prompt, batch.prompt]), torch.cat([batch.winner, batch.loser]))
-                logp_w, logp_l = logp.to(batch.reference_winner.dtype).chunk(2)
-            # 4. margins and loss
-            rho = margins(logp_w, logp_l, batch.reference_winner, batch.reference_loser)  # (B,)
-            if not context.active:
-                value = objective = preference_loss(loss, rho, beta=beta, smoothing=smoothing, weights=batch.weight)
-            else:  # objective: this rank's share (see sharded_loss); value: the global loss
-                objective, value = distributed.sharded_loss(loss, rho, beta=beta, smoothing=smoothing,
-                                                            weight=batch.weight, total_weight=total_weight,
-                                                            context=context)
-            # 5. backward, clip, step; a non-finite loss or gradient never reaches the parameters
-            optimiser.zero_grad(set_to_none=True)
-            problem, grad_norm = None, math.nan
-            if not torch.isfinite(value):
-                problem = f"the loss is {float(value.detach())}"
-            else:
-                objective.backward()
-                clip = optim.grad_clip if optim.grad_clip else math.inf
-                grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
-                if not math.isfinite(grad_norm):
-                    problem = f"the gradient norm is {grad_norm}"
-            if problem is None:
-                optimiser.step()
-            else:
-                with torch.no_grad():
-                    report = nonfinite_report(step, problem, index, batch,
-                                              pair_losses(loss, rho, beta=beta, smoothing=smoothing))
-                if on_nonfinite == "stop":
-                    raise FloatingPointError(f"{report}; lower optim.lr or beta, check the loss function "
-                                             "and the data, or set train.on_nonfinite=skip")
-                optimiser.zero_grad(set_to_none=True)
-                skipped.append(step)
-                if context.is_main:
-                    tqdm.write(f"polopt: warning: skipped {report}", file=sys.stderr)
-            with warnings.catch_warnings():  # a skipped first step makes torch warn about the order
-                warnings.filterwarnings("ignore", message=r"Detected call of `lr_scheduler.step\(\)`")
-                scheduler.step()
-            # 6. log (a skipped step has no metrics)
-            if problem is None and (step % log_every == 0 or step == steps or step == 1):
-                with torch.no_grad():
-                    statistics = batch_statistics(rho, logp_w - batch.reference_winner, logp_l - batch.reference_loser,
-                                                  batch.weight, context if context.active else None)
-                    record = {"step": step, "loss": float(value), "lr": lr, "grad_norm": grad_norm, **statistics}
-                    if evaluate is not None:
-                        record.update(evaluate(policy))
-                record["seconds"] = time.perf_counter() - start
-                if pairs.tokens is not None:
-                    record["tokens_per_s"] = tokens_seen / (time.perf_counter() - loop_start)
-                history.append(record)
+            lr = _learning_rate(loop)  # 1
+            out = objective(step)  # 2-4
+            problem, grad_norm = _update(policy, out, loop, settings)  # 5
+            if problem is not None:
+                _guard(step, problem, out, loop, settings, context)
+            elif step % settings.log_every == 0 or step == steps or step == 1:  # 6 (a skipped step has no metrics)
+                record = _record(step, lr, grad_norm, out, loop, policy, objective, evaluate)
+                loop.history.append(record)
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")
                     sink.flush()
-                bar.set_postfix(loss=f"{record['loss']:.4g}", margin=f"{record['margin_mean']:.3g}", refresh=False)
-            # 7. checkpoint
-            if save_checkpoint is not None and (step == steps or checkpoint_every and step % checkpoint_every == 0):
-                save_checkpoint(training_state(step=step, policy=policy, optimiser=optimiser, scheduler=scheduler,
-                                               generator=generator, order=order, cursor=cursor, history=history,
-                                               skipped=skipped, seconds=time.perf_counter() - start))
+                postfix = {"loss": f"{record['loss']:.4g}"}
+                if "margin_mean" in record:
+                    postfix["margin"] = f"{record['margin_mean']:.3g}"
+                bar.set_postfix(postfix, refresh=False)
+            if save_checkpoint is not None and (step == steps or settings.checkpoint_every
+                                                and step % settings.checkpoint_every == 0):  # 7
+                _checkpoint(step, policy, objective, loop, save_checkpoint)
     finally:
         bar.close()
         if sink is not None:
             sink.close()
-    return TrainResult(steps, time.perf_counter() - start, history[-1] if history else {}, history, skipped)
+    final = loop.history[-1] if loop.history else {}
+    return TrainResult(steps, time.perf_counter() - loop.start, final, loop.history, loop.skipped)
+
+
+def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, settings: TrainSettings, *,
+          evaluate: Callable[[torch.nn.Module], dict] | None = None, metrics_path: Path | None = None,
+          save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
+          context: distributed.Context = distributed.SINGLE) -> TrainResult:
+    """Minimise the preference loss of ``pairs`` over the policy's parameters (:func:`optimise` of
+    a :class:`PairObjective`). ``context`` (from :func:`polopt.distributed.setup`) with several
+    processes: each rank takes its slice of every global batch and the gradients are averaged."""
+    settings.check()
+    objective = PairObjective(policy, pairs, loss, settings, context)
+    return optimise(policy, objective, settings, evaluate=evaluate, metrics_path=metrics_path,
+                    save_checkpoint=save_checkpoint, resume=resume, context=context)

@@ -7,7 +7,7 @@ import torch
 
 from polopt import losses
 from polopt.methods import train_method
-from polopt.train import OptimConfig
+from polopt.optim import OptimConfig
 
 torch.set_num_threads(1)  # the finite tasks' tensors are tiny: a thread pool only adds overhead on a shared CPU
 

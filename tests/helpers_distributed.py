@@ -12,7 +12,8 @@ import socket
 import torch
 
 from polopt import distributed, losses
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import TrainSettings, train
 from toy_tasks.families import bradley_terry
 from toy_tasks.session import prepare
 
@@ -50,9 +51,10 @@ def run(setup: str, context: distributed.Context = distributed.SINGLE, *, steps:
     session, policy, loss = session_and_policy(setup)
     if "nan_pair" in s:
         session.pairs.reference_winner[s["nan_pair"]] = float("nan")
-    result = train(policy, session.pairs, loss, beta=0.5, steps=steps, optim=s["optim"], batch_size=s["batch_size"],
-                   seed=7, log_every=5, evaluate=session.evaluate, progress=False, context=context,
-                   on_nonfinite=s.get("on_nonfinite", "stop"), **kwargs)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=0.5, steps=steps, optim=s["optim"], batch_size=s["batch_size"], seed=7,
+                                 log_every=5, progress=False, on_nonfinite=s.get("on_nonfinite", "stop")),
+                   evaluate=session.evaluate, context=context, **kwargs)
     return policy, result
 
 

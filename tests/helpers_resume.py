@@ -5,8 +5,9 @@ from __future__ import annotations
 import torch
 
 from polopt import losses
+from polopt.optim import OptimConfig
 from polopt.policies import TabularPolicy
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 from toy_tasks.families import bradley_terry
 from toy_tasks.session import prepare
 
@@ -45,12 +46,14 @@ def build(setup: str, loss_name: str = "logistic"):
     return session, policy, loss
 
 
-def run_steps(setup: str, steps: int, **kwargs):
+def run_steps(setup: str, steps: int, checkpoint_every: int = 0, **kwargs):
     s = SETUPS[setup]
     session, policy, loss = build(setup)
-    result = train(policy, session.pairs, loss, beta=0.5, steps=steps, optim=s["optim"],
-                   batch_size=s["batch_size"], seed=7, log_every=3, evaluate=session.evaluate, progress=False,
-                   precision=s["precision"], **kwargs)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=0.5, steps=steps, optim=s["optim"], batch_size=s["batch_size"], seed=7,
+                                 log_every=3, progress=False, precision=s["precision"],
+                                 checkpoint_every=checkpoint_every),
+                   evaluate=session.evaluate, **kwargs)
     return policy, result
 
 

@@ -20,7 +20,9 @@ from polopt.batching import SPAN_BATCHES, Batcher, bucketed_order
 from polopt.logprobs import SequencePolicy, length_split, sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.objective import margins, preference_loss
-from polopt.train import OptimConfig, PairSet, train
+from polopt.optim import OptimConfig
+from polopt.pair_set import PairSet
+from polopt.train import TrainSettings, train
 
 PAD, VOCAB = 9, 10
 
@@ -131,10 +133,12 @@ class TestEpochOrder:
         assert positions(True) < 0.7 * positions(False)
 
 
-def _run(pairs: PairSet, steps: int, **kwargs):
+def _run(pairs: PairSet, steps: int, checkpoint_every: int = 0, **kwargs):
     pol = policy(dtype=torch.float32)
-    result = train(pol, pairs, losses.get("logistic"), beta=0.5, steps=steps, optim=OptimConfig("adam", 1e-3),
-                   batch_size=8, seed=3, log_every=2, progress=False, **kwargs)
+    result = train(pol, pairs, losses.get("logistic"),
+                   TrainSettings(beta=0.5, steps=steps, optim=OptimConfig("adam", 1e-3), batch_size=8, seed=3,
+                                 log_every=2, progress=False, checkpoint_every=checkpoint_every),
+                   **kwargs)
     return pol, result
 
 

@@ -235,7 +235,7 @@ def test_closed_form_pair_optima_match_the_numerical_minimiser(name, formula):
         numeric = scipy.optimize.minimize_scalar(lambda x, p=p: float(loss.pair_objective(x, p)),
                                                  bounds=(-20, 20), method="bounded", options={"xatol": 1e-10}).x
         assert numeric == pytest.approx(formula(p), abs=1e-5)
-        assert check.pair_optimum(loss, p) == pytest.approx(formula(p), abs=1e-5)
+        assert loss.pair_optimum(p) == pytest.approx(formula(p), abs=1e-5)
 
 
 def test_taylor_coefficients_and_gpo_ratio():
@@ -256,7 +256,7 @@ def test_fit_rescaled_recovers_a_known_rescaling():
 
 
 def test_report_is_strict_json_after_json_ready():
-    from polopt.commands.train import json_ready
+    from polopt.run_folder import json_ready
 
     data = json.loads(json.dumps(json_ready(_static("logistic").to_dict()), allow_nan=False))
     assert data["status"] == "pass"

@@ -20,7 +20,7 @@ import torch
 from helpers_resume import SETUPS, assert_same_state, build, run_steps, without_seconds
 
 from polopt import checkpoint
-from polopt.train import train
+from polopt.train import TrainSettings, train
 
 
 def _state(step: int, value: float = 1.0) -> dict:
@@ -317,8 +317,10 @@ class TestBitIdenticalResume:
         run_steps("adam-minibatch", 6, save_checkpoint=lambda s: checkpoint.save(
             tmp_path, s, run_id="r", fingerprint="f", config={}))
         state = checkpoint.load_latest(tmp_path, warn=_no_warning)
-        result = train(policy, session.pairs, loss, beta=0.5, steps=6, optim=SETUPS["adam-minibatch"]["optim"],
-                       batch_size=6, seed=7, log_every=3, progress=False, resume=state)
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=0.5, steps=6, optim=SETUPS["adam-minibatch"]["optim"], batch_size=6, seed=7,
+                                     log_every=3, progress=False),
+                       resume=state)
         assert torch.equal(policy.scores, state["policy"]["scores"]) and result.history == state["history"]
 
 

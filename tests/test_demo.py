@@ -8,8 +8,9 @@ import json
 
 import pytest
 
+from polopt.commands.demo_settings import QUICK, DemoConfig
 from polopt.commands.main import main
-from polopt.commands.walkthrough import QUICK, DemoConfig, run_demo
+from polopt.commands.walkthrough import run_demo
 
 PNG = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
 

@@ -18,7 +18,7 @@ from hydra import compose, initialize_config_dir
 
 from polopt import devices
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.train import PairSet
+from polopt.pair_set import PairSet
 
 GPU = torch.cuda.is_available()
 

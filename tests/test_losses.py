@@ -1,6 +1,7 @@
 """The loss family: values, derivatives, convexity, extremes, per-pair optima, registry.
 
-Every test that iterates ``BUILTINS`` covers a new member automatically. Expected
+``BUILTINS`` is read from the registry, so every test that iterates it covers a new member
+automatically, and a member without an independent formula below fails. Expected
 values come from independent float64 formulas in numpy/scipy (named beside each),
 from torch's own reference functions, or from derivations written beside them.
 """
@@ -15,7 +16,7 @@ import torch.nn.functional as F
 
 from polopt import losses
 
-BUILTINS = ["logistic", "squared", "hinge", "huber", "exponential", "truncated_quadratic", "savage"]
+BUILTINS = losses.builtin_names()
 
 # Independent float64 evaluations of each member's formula (DESIGN.md's table).
 REFERENCE = {
@@ -31,8 +32,12 @@ REFERENCE = {
 GRID = np.linspace(-30.0, 30.0, 1201)
 
 
-def test_registry_holds_every_member_of_the_table():
-    assert set(BUILTINS) <= set(losses.names())
+def test_every_builtin_has_an_independent_formula_and_the_table_is_complete():
+    # the seven members of DESIGN.md's table, and nothing registered without a reference formula
+    assert {"logistic", "squared", "hinge", "huber", "exponential", "truncated_quadratic", "savage"} <= set(BUILTINS)
+    assert set(REFERENCE) == set(BUILTINS)
+    with_closed_form = {n for n in BUILTINS if losses.get(n).closed_form_optimum is not None}
+    assert set(PAIR_OPTIMA) | {"hinge"} == with_closed_form  # hinge: test_hinge_pair_optimum_is_the_margin_one
 
 
 @pytest.mark.parametrize("name", BUILTINS)
@@ -178,6 +183,23 @@ def test_finite_pair_optimum_at_certainty(name, finite):
     assert math.isfinite(loss.pair_optimum(1.0)) is finite
     if not finite:
         assert loss.pair_optimum(1.0) == math.inf and loss.pair_optimum(0.0) == -math.inf
+
+
+def test_a_bounded_loss_has_one_per_pair_optimum_everywhere():
+    """f(x) = 1 - tanh(x) is bounded below by 0 and approaches it only as x -> inf (derived:
+    f'(x) = -(1 - tanh^2 x) < 0), so at p = 1 the pair objective f(x) has no finite minimiser; in
+    float64 tanh(x) == 1 from x ~ 19 on, which a grid search would take for a finite minimum. The
+    one definition (Loss.pair_optimum) reports inf, and the check's curve and the solver's
+    existence test read the same answer."""
+    from polopt import check
+
+    loss = losses.Loss("one_minus_tanh", lambda x: 1 - torch.tanh(x), convex=False)
+    assert loss.pair_optimum(1.0) == math.inf and loss.pair_optimum(0.0) == -math.inf
+    assert losses.numerical_pair_optimum(loss, 1.0) == math.inf
+    assert losses.has_finite_pair_optimum_at_certainty(loss) is False
+    assert check.pair_optimum_curve(loss, [1.0])[0] == math.inf
+    # and an objective flat in x has every margin optimal: nan, not a number picked by the grid
+    assert math.isnan(losses.Loss("constant", lambda x: 0 * x + 1).pair_optimum(0.7))
 
 
 def test_unknown_loss_lists_the_known_ones():

@@ -8,7 +8,9 @@ import torch
 
 from polopt import checkpoint, losses
 from polopt.commands.main import main
-from polopt.train import OptimConfig, PairSet, train
+from polopt.optim import OptimConfig
+from polopt.pair_set import PairSet
+from polopt.train import TrainSettings, train
 from toy_tasks.families import bradley_terry
 from toy_tasks.session import prepare
 
@@ -47,8 +49,8 @@ def test_stop_names_the_step_the_batch_and_the_pair():
     with pytest.raises(FloatingPointError, match=rf"^step {first}: the loss is nan on a batch of 4 pairs \[.*\] "
                                                  rf"\(prompts \[0, 0, 0, 0\]\); non-finite at pairs \[{BAD}\]; "
                                                  r"lower optim.lr or beta, .* or set train.on_nonfinite=skip$"):
-        train(policy, pairs, losses.get("logistic"), beta=0.5, steps=30, optim=OptimConfig(), batch_size=4,
-              seed=3, progress=False)
+        train(policy, pairs, losses.get("logistic"),
+              TrainSettings(beta=0.5, steps=30, optim=OptimConfig(), batch_size=4, seed=3, progress=False))
 
 
 def test_skip_skips_exactly_the_batches_with_the_bad_pair(capsys):
@@ -57,8 +59,9 @@ def test_skip_skips_exactly_the_batches_with_the_bad_pair(capsys):
     assert 0 < len(want) < 30
     saved = []
     policy = session.build_policy()
-    result = train(policy, pairs, losses.get("logistic"), beta=0.5, steps=30, optim=OptimConfig(), batch_size=4,
-                   seed=3, progress=False, on_nonfinite="skip", checkpoint_every=5,
+    result = train(policy, pairs, losses.get("logistic"),
+                   TrainSettings(beta=0.5, steps=30, optim=OptimConfig(), batch_size=4, seed=3, progress=False,
+                                 on_nonfinite="skip", checkpoint_every=5),
                    save_checkpoint=lambda s: saved.append(checkpoint.nonfinite_entries(s)))
     assert result.skipped == want
     assert torch.isfinite(policy.scores).all() and saved == [[]] * 6
@@ -72,8 +75,8 @@ def test_skipped_steps_leave_the_parameters_alone():
     session, pairs = _setup()
     policy = session.build_policy()
     before = policy.scores.detach().clone()
-    result = train(policy, pairs, losses.get("logistic"), beta=0.5, steps=3, optim=OptimConfig("sgd", 1.0),
-                   progress=False, on_nonfinite="skip")
+    result = train(policy, pairs, losses.get("logistic"),
+                   TrainSettings(beta=0.5, steps=3, optim=OptimConfig("sgd", 1.0), progress=False, on_nonfinite="skip"))
     assert result.skipped == [1, 2, 3] and result.history == [] and result.final == {}
     assert torch.equal(policy.scores, before)
 
@@ -82,14 +85,15 @@ def test_a_non_finite_gradient_with_a_finite_loss_is_caught():
     session, pairs = _setup(bad=None)
     loss = losses.get("user_losses:sqrt_abs")
     with pytest.raises(FloatingPointError, match=r"^step 1: the gradient norm is nan on a batch of 12 pairs "):
-        train(session.build_policy(), pairs, loss, beta=0.5, steps=3, optim=OptimConfig(), progress=False)
+        train(session.build_policy(), pairs, loss,
+              TrainSettings(beta=0.5, steps=3, optim=OptimConfig(), progress=False))
 
 
 def test_on_nonfinite_is_checked():
     session, pairs = _setup(bad=None)
     with pytest.raises(ValueError, match=r"train.on_nonfinite must be stop or skip, got 'ignore'"):
-        train(session.build_policy(), pairs, losses.get("logistic"), beta=0.5, steps=1, optim=OptimConfig(),
-              progress=False, on_nonfinite="ignore")
+        train(session.build_policy(), pairs, losses.get("logistic"),
+              TrainSettings(beta=0.5, steps=1, optim=OptimConfig(), progress=False, on_nonfinite="ignore"))
 
 
 def test_cli_stop_is_one_line_and_exit_2(tmp_path, capsys):

@@ -22,10 +22,13 @@ def test_logistic_objective_is_minus_log_sigmoid_of_the_scaled_margin():
 
 
 def test_label_smoothing_mixes_the_flipped_label():
+    # (1 - eps) f(beta rho) + eps f(-beta rho): the label flipped with probability eps (conservative
+    # DPO, common practice); beta = 0.7 so that a version dropping beta (or applying it once) fails
     rho = torch.linspace(-2, 2, 5, dtype=torch.float64)
     f = losses.get("logistic")
-    torch.testing.assert_close(pair_losses(f, rho, beta=1.0, smoothing=0.1),
-                               0.9 * f(rho) + 0.1 * f(-rho))
+    expected = 0.9 * -torch.nn.functional.logsigmoid(0.7 * rho) + 0.1 * -torch.nn.functional.logsigmoid(-0.7 * rho)
+    torch.testing.assert_close(pair_losses(f, rho, beta=0.7, smoothing=0.1), expected)
+    assert not torch.allclose(pair_losses(f, rho, beta=1.0, smoothing=0.1), expected)
 
 
 def test_weights_give_a_weighted_mean():

@@ -13,12 +13,20 @@ from pathlib import Path
 import pytest
 from hydra import compose, initialize_config_dir
 
+from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.commands.main import main
-from polopt.commands.train import CONFIG_DIR, build_task
 from toy_tasks.finite import load_task
 
 ROOT = Path(__file__).resolve().parent.parent
-SOURCES = sorted([*ROOT.glob("polopt/*.py"), *ROOT.glob("toy_tasks/*.py")])
+SOURCES = sorted([*ROOT.glob("polopt/**/*.py"), *ROOT.glob("toy_tasks/**/*.py")])  # subpackages too
+
+
+def test_the_scan_reaches_every_module_of_the_subpackages():
+    names = {p.relative_to(ROOT).as_posix() for p in SOURCES}
+    assert {"polopt/data/read.py", "polopt/methods/rl.py", "polopt/checkpoint.py"} <= names
+    for package in ("polopt", "toy_tasks"):  # as many files as the file system holds, at any depth
+        assert len([p for p in SOURCES if p.parts[len(ROOT.parts)] == package]) == \
+            sum(1 for _ in (ROOT / package).rglob("*.py"))
 
 
 def _calls(path: Path):

@@ -26,7 +26,7 @@ from polopt.commands.train import CONFIG_DIR, run
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.realign import equivalent_beta, realign, realigned_sequence_logprobs
-from toy_tasks.finite import total_variation
+from toy_tasks.measures import total_variation
 from toy_tasks.sequence_methods import per_token_mixture, tree_conditionals
 from toy_tasks.sequences import enumerate_responses, sequence_task
 from toy_tasks.solve import solve

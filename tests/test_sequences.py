@@ -19,8 +19,9 @@ from hydra import compose, initialize_config_dir
 from polopt import losses
 from polopt.commands.main import main
 from polopt.commands.train import CONFIG_DIR, run
+from polopt.optim import OptimConfig
 from polopt.reference_cache import FILE_NAME
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 from toy_tasks.finite import load_task
 from toy_tasks.sequences import count_responses, enumerate_responses, sequence_task
 
@@ -141,8 +142,9 @@ def test_short_exact_training_approaches_optimum(task, loss):
     session = task.prepare(losses.get(loss), beta=0.5)
     policy = session.build_policy(**MODEL, init="reference")
     start = session.evaluate(policy)["tv_to_optimum"]
-    result = train(policy, session.pairs, losses.get(loss), beta=0.5, steps=150, optim=OptimConfig(lr=0.01),
-                   evaluate=session.evaluate, log_every=50, progress=False)
+    result = train(policy, session.pairs, losses.get(loss),
+                   TrainSettings(beta=0.5, steps=150, optim=OptimConfig(lr=0.01), log_every=50, progress=False),
+                   evaluate=session.evaluate)
     assert start > 0.1  # it starts well away from the optimum
     assert result.final["tv_to_optimum"] < 0.05
 
@@ -176,8 +178,10 @@ def test_sampled_mode_reference_cache(tmp_path):
     torch.testing.assert_close(stored["logprobs"], torch.cat([pairs.reference_winner, pairs.reference_loser]))
 
     policy = session.build_policy(**MODEL)
-    result = train(policy, pairs, loss, beta=0.5, steps=12, batch_size=100, optim=OptimConfig(lr=0.003),
-                   evaluate=session.evaluate, log_every=4, progress=False)  # 4 epochs
+    result = train(policy, pairs, loss,
+                   TrainSettings(beta=0.5, steps=12, batch_size=100, optim=OptimConfig(lr=0.003), log_every=4,
+                                 progress=False),
+                   evaluate=session.evaluate)  # 4 epochs
     assert counter.calls == 1  # never recomputed per epoch
     assert result.final["tokens_per_s"] > 0
     summary = session.summarise(policy, result)
@@ -195,8 +199,10 @@ def test_sampled_mode_reference_cache(tmp_path):
 def test_bf16_training_runs(task):
     session = task.prepare(losses.get("squared"), beta=0.5)
     policy = session.build_policy(**MODEL)
-    result = train(policy, session.pairs, losses.get("squared"), beta=0.5, steps=20, optim=OptimConfig(lr=0.01),
-                   evaluate=session.evaluate, log_every=10, progress=False, precision="bf16")
+    result = train(policy, session.pairs, losses.get("squared"),
+                   TrainSettings(beta=0.5, steps=20, optim=OptimConfig(lr=0.01), log_every=10, progress=False,
+                                 precision="bf16"),
+                   evaluate=session.evaluate)
     assert np.isfinite(result.final["loss"]) and result.final["tv_to_optimum"] < result.history[0]["tv_to_optimum"]
 
 

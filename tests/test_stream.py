@@ -8,8 +8,10 @@ import pytest
 import torch
 
 from polopt import losses
+from polopt.optim import OptimConfig
+from polopt.pair_set import PairSet
 from polopt.stream import MappedPairs, write_arrow
-from polopt.train import OptimConfig, PairSet, train
+from polopt.train import TrainSettings, train
 from toy_tasks.families import bradley_terry
 from toy_tasks.sequences import sequence_task
 from toy_tasks.session import prepare
@@ -46,9 +48,10 @@ def test_mapped_token_pairs_train_exactly_like_pairs_in_ram(tmp_path):
     results = []
     for data in (pairs, mapped):
         policy = session.build_policy("transformer", width=16, layers=1, heads=2, context=task.context_needed)
-        results.append((policy, train(policy, data, losses.get("logistic"), beta=0.5, steps=8,
-                                      optim=OptimConfig("adam", 0.003), batch_size=16, seed=3, log_every=4,
-                                      progress=False, bucketing=False)))  # a mapped file is not bucketed
+        results.append((policy, train(policy, data, losses.get("logistic"),
+                                      TrainSettings(beta=0.5, steps=8, optim=OptimConfig("adam", 0.003),
+                                                    batch_size=16, seed=3, log_every=4, progress=False,
+                                                    bucketing=False))))  # a mapped file is not bucketed
     (p_ram, r_ram), (p_map, r_map) = results
     for name, value in p_ram.state_dict().items():
         assert torch.equal(value, p_map.state_dict()[name]), name
@@ -79,7 +82,8 @@ def test_full_batch_and_bad_files_are_one_line(tmp_path):
     mapped = MappedPairs(path, pad_id=task.vocab.pad_id)
     policy = session.build_policy("bigram", context=task.context_needed, init="random")
     with pytest.raises(ValueError, match=r"read one batch at a time: set train.batch_size"):
-        train(policy, mapped, losses.get("logistic"), beta=0.5, steps=1, optim=OptimConfig(), progress=False)
+        train(policy, mapped, losses.get("logistic"),
+              TrainSettings(beta=0.5, steps=1, optim=OptimConfig(), progress=False))
     with pytest.raises(ValueError, match=r"pairs file '.*nothing.arrow' does not exist"):
         MappedPairs(tmp_path / "nothing.arrow")
     bad = write_arrow(tmp_path / "bad.arrow", [{"prompt": [[1]], "winner": [[2]]}])

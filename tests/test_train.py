@@ -12,7 +12,8 @@ import pytest
 import torch
 
 from polopt import losses
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.train import PairObjective, TrainSettings, train
 from toy_tasks import families
 from toy_tasks.finite import make_task
 
@@ -27,12 +28,14 @@ def random_task(seed, k):
     return make_task(rng.dirichlet(np.ones(k)), pref, name=f"random{k}")
 
 
-def run(task, name, beta=0.5, mode="exact", **kwargs):
+def run(task, name, beta=0.5, mode="exact", batch_size=None, **kwargs):
     loss = losses.get(name)
     session = task.prepare(loss, beta=beta, mode=mode, **kwargs)
     policy = session.build_policy()
-    result = train(policy, session.pairs, loss, beta=beta, steps=STEPS, optim=OptimConfig(), progress=False,
-                   log_every=100, evaluate=session.evaluate)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=beta, steps=STEPS, optim=OptimConfig(), progress=False, log_every=100,
+                                 batch_size=batch_size),
+                   evaluate=session.evaluate)
     return session.summarise(policy, result), result
 
 
@@ -82,7 +85,8 @@ def test_loglinear_policy_with_enough_features_reaches_the_optimum():
     loss = losses.get("squared")
     session = task.prepare(loss, beta=0.5, mode="exact")
     policy = session.build_policy(kind="loglinear", width=16)
-    result = train(policy, session.pairs, loss, beta=0.5, steps=STEPS, optim=OptimConfig(), progress=False)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=0.5, steps=STEPS, optim=OptimConfig(), progress=False))
     assert session.summarise(policy, result)["tv_to_optimum"] <= 1e-3
 
 
@@ -96,8 +100,26 @@ def test_sampled_mode_reaches_the_empirical_optimum(name):
 
 
 def test_sampled_mode_with_minibatches_uses_every_pair():
-    summary, result = run(families.bradley_terry(), "squared", mode="sampled", n_pairs=500, seed=2)
+    """Minibatches of 64 from 500 sampled pairs: each epoch (7 batches) visits 448 distinct pairs in a
+    fresh order, so over the run every pair is drawn, and training still reaches the empirical optimum
+    (the trainer's own batch step, PairObjective.batch, replayed with the run's seed)."""
+    summary, result = run(families.bradley_terry(), "squared", mode="sampled", n_pairs=500, seed=2, batch_size=64)
     assert summary["n_pairs"] == 500 and result.steps == STEPS
+    assert summary["tv_to_optimum"] <= 0.05  # minibatch noise: looser than the full-batch 1e-3
+    session = families.bradley_terry().prepare(losses.get("squared"), beta=0.5, mode="sampled", n_pairs=500, seed=2)
+    settings = TrainSettings(beta=0.5, steps=STEPS, batch_size=64)
+    objective = PairObjective(session.build_policy(), session.pairs, losses.get("squared"), settings)
+    objective.start(torch.Generator().manual_seed(settings.seed))
+    seen, epoch = [], []
+    for _ in range(3 * 7):
+        index = objective.batch()[0]
+        assert len(index) == 64
+        if objective.cursor == 64:  # a new epoch began with this batch
+            assert len(set(epoch)) == len(epoch) == (448 if epoch else 0)
+            epoch = []
+        epoch += index.tolist()
+        seen += index.tolist()
+    assert set(seen) == set(range(500))
 
 
 def test_logistic_on_deterministic_preferences_reports_divergence_without_nan():
@@ -132,13 +154,13 @@ def test_train_rejects_bad_settings():
     session = task.prepare(loss, beta=0.5)
     policy = session.build_policy()
     with pytest.raises(ValueError, match=r"train.steps must be a positive integer, got 0"):
-        train(policy, session.pairs, loss, beta=0.5, steps=0, optim=OptimConfig())
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=0, optim=OptimConfig()))
     with pytest.raises(ValueError, match=r"optim.name must be one of adam, adamw, sgd, got 'lion'"):
-        train(policy, session.pairs, loss, beta=0.5, steps=5, optim=OptimConfig(name="lion"))
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(name="lion")))
     with pytest.raises(ValueError, match=r"task.mode must be one of exact, sampled, got 'online'"):
         task.prepare(loss, beta=0.5, mode="online")
     with pytest.raises(ValueError, match=r"precision must be fp32 or bf16, got 'fp8'"):
-        train(policy, session.pairs, loss, beta=0.5, steps=5, optim=OptimConfig(), precision="fp8")
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(), precision="fp8"))
 
 
 def test_reference_log_probs_are_cached_in_the_pairs():

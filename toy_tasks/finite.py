@@ -35,6 +35,9 @@ from pathlib import Path
 import numpy as np
 import scipy.special
 
+from toy_tasks import session
+from toy_tasks.measures import kl_divergence
+
 PROBABILITY_TOLERANCE = 1e-6
 
 
@@ -125,15 +128,12 @@ class FiniteTask:
 
     def kl_to_reference(self, policy: np.ndarray) -> float:
         """Prompt-weighted KL(pi || pi_ref)."""
-        per_prompt = scipy.special.rel_entr(policy, self.reference).sum(axis=1)
-        return float(self.prompt_weights @ per_prompt)
+        return kl_divergence(policy, self.reference, self.prompt_weights)
 
     def prepare(self, loss, **kwargs):
         """``task.prepare(loss, beta=..., smoothing=..., mode=..., n_pairs=..., seed=...)``: the
         trainer's view of this task (see :mod:`toy_tasks.session`)."""
-        from toy_tasks.session import prepare  # session builds on this module
-
-        return prepare(self, loss, **kwargs)
+        return session.prepare(self, loss, **kwargs)
 
     # ------------------------------------------------------------------ files
 
@@ -373,10 +373,3 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
         sampling=sampling, prompt_weights=weights, responses=responses, prompts=prompts,
         name=name, description=description, where=where,
     )
-
-
-def total_variation(p: np.ndarray, q: np.ndarray, prompt_weights: np.ndarray) -> float:
-    """Prompt-weighted total variation distance ``sum_x w_x * 0.5 * sum_i |p_xi - q_xi|``."""
-    return float(prompt_weights @ (0.5 * np.abs(p - q).sum(axis=1)))
-
-

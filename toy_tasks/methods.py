@@ -29,20 +29,20 @@ import numpy as np
 import scipy.special
 import torch
 
+from polopt.contracts import TrainResult
 from polopt.methods import METHODS
 from polopt.methods.environment import FiniteEnvironment
 from polopt.realign import equivalent_beta, realign
-from polopt.train import TrainResult
 from toy_tasks.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
-from toy_tasks.finite import FiniteTask, total_variation
-from toy_tasks.session import policy_rows
+from toy_tasks.measures import per_prompt, total_variation
 from toy_tasks.solve import solve
+from toy_tasks.tables import method_footer, policy_rows
 
 REWARDS = ("task", "win_rate")
 
 
-def task_rewards(task: FiniteTask, kind: str = "task") -> np.ndarray | None:
+def task_rewards(task, kind: str = "task") -> np.ndarray | None:
     """(X, K) rewards by ``method.reward``; None for ``task`` when the task has none."""
     if kind == "task":
         return task.rewards
@@ -56,24 +56,9 @@ def kl_optimum(reference: np.ndarray, rewards: np.ndarray, beta: float) -> np.nd
     return scipy.special.softmax(np.log(reference) + rewards / beta, axis=1)
 
 
-def win_rate(policy: np.ndarray, opponent: np.ndarray, task: FiniteTask) -> float:
+def win_rate(policy: np.ndarray, opponent: np.ndarray, task) -> float:
     """Prompt-weighted P(pi > opponent) = sum_x w_x pi_x^T P_x opponent_x."""
     return float(task.prompt_weights @ np.einsum("xi,xij,xj->x", policy, task.preference, opponent))
-
-
-def _rows(p: np.ndarray) -> list[list[float]]:
-    return [[float(v) for v in row] for row in p]
-
-
-def method_footer(summary: dict) -> list[str]:
-    """The figures under a method's policy table: TV to its target, KL, win-rate, TV to the
-    equilibrium, then the notes."""
-    tv = summary["tv_to_optimum"]
-    return [f"method {summary['method']}  tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  "
-            f"kl_to_reference {summary['kl_to_reference']:.4g}  "
-            f"win_rate_over_reference {summary['win_rate_over_reference']:.4f}  "
-            f"tv_to_equilibrium {summary['tv_to_equilibrium']:.3g}  (target: {summary['optimum_method']})",
-            *(f"note: {n}" for n in summary["notes"])]
 
 
 @dataclass
@@ -91,7 +76,7 @@ class MethodView:
     def build(cls, session, name: str = "offline", **params) -> MethodView:
         if name not in METHODS:
             raise ValueError(f"method must be one of {', '.join(METHODS)}, got {name!r}")
-        task: FiniteTask = session.task
+        task = session.task  # a toy_tasks.finite.FiniteTask
         method = {"name": name, **params}
         rewards = task_rewards(task, params.get("reward", "task"))
         beta = session.beta
@@ -118,7 +103,7 @@ class MethodView:
     # ------------------------------------------------------------ what the method sees
 
     @property
-    def task(self) -> FiniteTask:
+    def task(self):  # the toy_tasks.finite.FiniteTask
         return self.session.task
 
     def environment(self) -> FiniteEnvironment:
@@ -155,7 +140,7 @@ class MethodView:
             "win_rate_over_reference": win_rate(pi, task.reference, task),
             "expected_reward": None if task.rewards is None else float(
                 task.prompt_weights @ (pi * task.rewards).sum(1)),
-            "equilibrium": _rows(eq.policy),
+            "equilibrium": per_prompt(eq.policy),
             "equilibrium_tau": eq.tau,
             "equilibrium_gap": eq.gap,
             "tv_to_equilibrium": total_variation(pi, eq.policy, task.prompt_weights),
@@ -190,8 +175,8 @@ class MethodView:
                 target = task.policy_from_logratios(optimum.aligned_to(h)) if optimum.finite else None
             else:
                 target = task.reference  # beta -> inf: the reference itself
-            out.append({"lambda": float(lam), "beta_equivalent": beta_eq, "policy": _rows(pi),
-                        "optimum": None if target is None else _rows(target),
+            out.append({"lambda": float(lam), "beta_equivalent": beta_eq, "policy": per_prompt(pi),
+                        "optimum": None if target is None else per_prompt(target),
                         "tv_to_optimum": None if target is None else total_variation(pi, target,
                                                                                      task.prompt_weights),
                         "kl_to_reference": task.kl_to_reference(pi)})
@@ -202,9 +187,9 @@ class MethodView:
         task, name, beta = self.task, self.method["name"], self.session.beta
         pi = self.policy_of(policy)
         summary = {"task": task.name, "method": name, "method_config": dict(self.method), "beta": beta,
-                   "loss": result.final.get("loss"), "policy": _rows(pi), "reference": _rows(task.reference),
+                   "loss": result.final.get("loss"), "policy": per_prompt(pi), "reference": per_prompt(task.reference),
                    "responses": task.responses or None, "prompts": task.prompts or None,
-                   "optimum": None if self.target is None else _rows(self.target),
+                   "optimum": None if self.target is None else per_prompt(self.target),
                    "optimum_finite": self.target is not None, "optimum_method": self.target_method,
                    "tv_to_optimum": None if self.target is None else total_variation(pi, self.target,
                                                                                      task.prompt_weights),

@@ -33,10 +33,9 @@ import scipy.special
 import torch
 
 from polopt.realign import realign, realigned_sequence_logprobs
-from toy_tasks.finite import total_variation
-from toy_tasks.methods import MethodView, method_footer
-from toy_tasks.sequences import SequenceTask
-from toy_tasks.session import policy_rows
+from toy_tasks.measures import total_variation
+from toy_tasks.methods import MethodView
+from toy_tasks.tables import method_footer, policy_rows
 
 TABLE_ROWS = 8  # responses shown per prompt by ``table``
 
@@ -104,7 +103,7 @@ def per_token_mixture(reference: np.ndarray, policy: np.ndarray, responses: list
 class SequenceMethodView(MethodView):
     """One sequence session as one method sees it. Build with :meth:`build_for`."""
 
-    sequence: SequenceTask | None = None
+    sequence: object = None  # the toy_tasks.sequences.SequenceTask
 
     @classmethod
     def build_for(cls, session, name: str = "offline", **params) -> SequenceMethodView:

@@ -30,11 +30,13 @@ import torch
 from polopt.logprobs import real_tokens
 from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
+from polopt.pair_set import PairSet, score_pairs
 from polopt.reference_cache import FILE_NAME, reference_logprobs
-from polopt.train import PairSet
-from toy_tasks.sequences import EnumeratedSequencePolicy, SequenceTask
-from toy_tasks.session import FiniteSession, policy_rows
+from toy_tasks.sequence_methods import SequenceMethodView
+from toy_tasks.sequence_policy import EnumeratedSequencePolicy
+from toy_tasks.session import FiniteSession
 from toy_tasks.session import prepare as prepare_finite
+from toy_tasks.tables import policy_rows
 
 INITS = ("reference", "random")
 TABLE_ROWS = 8  # responses shown per prompt by ``table``
@@ -44,7 +46,7 @@ TABLE_ROWS = 8  # responses shown per prompt by ``table``
 class SequenceSession:
     """The trainer's interface (pairs, build_policy, evaluate, summarise, table) for a sequence task."""
 
-    task: SequenceTask
+    task: object  # toy_tasks.sequences.SequenceTask (imports this module to prepare itself)
     finite: FiniteSession
     pairs: PairSet
     reference_cache: Path | None
@@ -86,8 +88,6 @@ class SequenceSession:
 
     def for_method(self, name: str = "offline", **params):
         """This session as the ``method`` group's option ``name`` sees it (see :mod:`toy_tasks.sequence_methods`)."""
-        from toy_tasks.sequence_methods import SequenceMethodView  # builds on this module's session
-
         return SequenceMethodView.build_for(self, name, **params)
 
     def summarise(self, policy, result) -> dict:
@@ -125,21 +125,27 @@ class SequenceSession:
         return "\n".join(lines)
 
 
-def token_pairs(task: SequenceTask, index_pairs: PairSet, *, cache: Path | None) -> tuple[PairSet, bool]:
+def token_pairs(task, index_pairs: PairSet, *, cache: Path | None) -> tuple[PairSet, bool]:
     """The sampled pairs as token tensors, with the reference's log-probabilities computed
     once over the dataset (winners and losers in one pass) and cached at ``cache``;
     and whether the cache file was reused."""
     prompt, winner = task.rows(index_pairs.prompt, index_pairs.winner)  # (N, T_p), (N, L)
     _, loser = task.rows(index_pairs.prompt, index_pairs.loser)  # (N, L)
-    both, reused = reference_logprobs(task.reference_model, torch.cat([prompt, prompt]), torch.cat([winner, loser]),
-                              pad_id=task.vocab.pad_id, path=cache)  # (2N,)
-    ref_w, ref_l = both.chunk(2)
+    reused = []
+
+    def reference_pass(prompts: torch.Tensor, responses: torch.Tensor) -> torch.Tensor:
+        both, was_reused = reference_logprobs(task.reference_model, prompts, responses, pad_id=task.vocab.pad_id,
+                                              path=cache)  # (2N,)
+        reused.append(was_reused)
+        return both
+
+    ref_w, ref_l = score_pairs(reference_pass, prompt, winner, loser)
     pad = task.vocab.pad_id
     tokens = real_tokens(prompt, winner, pad_id=pad) + real_tokens(prompt, loser, pad_id=pad)  # (N,)
-    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens), reused
+    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens), reused[0]
 
 
-def prepare(task: SequenceTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
+def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
             n_pairs: int = 2000, seed: int = 0, run_dir: str | Path | None = None) -> SequenceSession:
     """Pairs and the exact optimum of the sequence task for ``loss`` at ``beta``."""
     finite = prepare_finite(task.finite_task(), loss, beta=beta, smoothing=smoothing, mode=mode, n_pairs=n_pairs,

@@ -38,8 +38,9 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from polopt.logprobs import SequencePolicy, batched_logprobs
+from polopt.logprobs import batched_logprobs
 from polopt.models import TinyTransformer
+from toy_tasks import sequence_session
 from toy_tasks.finite import FiniteTask, make_task
 
 PREFERENCES = ("bradley_terry", "nontransitive")
@@ -204,39 +205,7 @@ class SequenceTask:
 
     def prepare(self, loss, **kwargs):
         """The trainer's view of this task (see :mod:`toy_tasks.sequence_session`)."""
-        from toy_tasks.sequence_session import prepare  # the session builds on this module
-
-        return prepare(self, loss, **kwargs)
-
-
-class EnumeratedSequencePolicy(SequencePolicy):
-    """A sequence model over a task's enumerated responses.
-
-    ``logprobs(prompt, response)`` takes token tensors (B, T_p), (B, T_r) as any
-    sequence policy does, or index tensors (B,) of (prompt, response) into the
-    enumeration, as the finite policies do; then the model scores all X K
-    enumerated sequences in one forward pass and the pairs are gathered from that
-    table, which is how exact mode weighs every one of the K^2 pairs per prompt
-    without running K^2 sequences. ``log_distribution()`` (X, K) is the
-    sequence-level policy that the finite-task measurements read.
-    """
-
-    def __init__(self, model: torch.nn.Module, task: SequenceTask):
-        super().__init__(model, pad_id=task.vocab.pad_id)
-        prompt, response = task.all_rows()
-        self.register_buffer("all_prompts", prompt, persistent=False)  # (X K, T_p)
-        self.register_buffer("all_responses", response, persistent=False)  # (X K, L)
-        self.register_buffer("reference_logprobs", torch.as_tensor(task.reference_logprobs), persistent=False)
-        self.shape = (task.n_prompts, task.n_responses)
-
-    def log_distribution(self) -> torch.Tensor:
-        """log pi(y | x) of every enumerated response: (X, K)."""
-        return super().logprobs(self.all_prompts, self.all_responses).reshape(self.shape)
-
-    def logprobs(self, prompt: torch.Tensor, response: torch.Tensor) -> torch.Tensor:
-        if response.dim() == 1:  # indices into the enumeration
-            return self.log_distribution()[prompt, response]  # (B,)
-        return super().logprobs(prompt, response)  # (B,)
+        return sequence_session.prepare(self, loss, **kwargs)
 
 
 def sequence_task(n_symbols: int = 3, max_length: int = 5, n_prompts: int = 2, preference: str = "bradley_terry",

@@ -2,7 +2,7 @@
 
 This is the finite tasks' side of the trainer's interface (see
 :mod:`polopt.train`): :func:`prepare` turns a task, a loss and beta into the
-:class:`polopt.train.PairSet` to train on (``exact``: every ordered pair with
+:class:`polopt.pair_set.PairSet` to train on (``exact``: every ordered pair with
 its win weight; ``sampled``: a seeded sample of labelled pairs), solves the
 exact optimum of that very objective once, and then measures a policy against
 it while training runs and at the end.
@@ -10,17 +10,19 @@ it while training runs and at the end.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 import torch
 
+from polopt.contracts import TrainResult
 from polopt.losses import Loss
+from polopt.pair_set import PairSet
 from polopt.policies import build_policy
-from polopt.train import PairSet, TrainResult
-from toy_tasks.finite import FiniteTask, total_variation
+from toy_tasks.measures import displacement_warning, loss_gaps, margin_growth, per_prompt, total_variation
+from toy_tasks.methods import MethodView
 from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
+from toy_tasks.tables import policy_rows
 
 MODES = ("exact", "sampled")
 DTYPE = torch.float64  # finite tasks are small: train them in double precision
@@ -28,7 +30,7 @@ DTYPE = torch.float64  # finite tasks are small: train them in double precision
 
 @dataclass
 class FiniteSession:
-    task: FiniteTask
+    task: object  # toy_tasks.finite.FiniteTask (imports this module to prepare itself)
     loss: Loss
     beta: float
     smoothing: float
@@ -51,8 +53,6 @@ class FiniteSession:
 
     def for_method(self, name: str = "offline", **params):
         """This session as the ``method`` group's option ``name`` sees it (see :mod:`toy_tasks.methods`)."""
-        from toy_tasks.methods import MethodView  # methods build on this module
-
         return MethodView.build(self, name, **params)
 
     @staticmethod
@@ -84,6 +84,7 @@ class FiniteSession:
         pi = self.task.policy_from_logratios(h)
         value = population_loss(self.loss, self.weights, h, beta=self.beta)
         opt = self.optimum
+        gap, relative = loss_gaps(value, opt.value)
         summary = {
             "task": self.task.name,
             "mode": self.mode,
@@ -92,19 +93,19 @@ class FiniteSession:
             "smoothing": self.smoothing,
             "n_pairs": len(self.pairs) if self.mode == "sampled" else None,
             "loss": value,
-            "policy": _per_prompt(pi),
-            "reference": _per_prompt(self.task.reference),
+            "policy": per_prompt(pi),
+            "reference": per_prompt(self.task.reference),
             "responses": self.task.responses or None,
             "prompts": self.task.prompts or None,
-            "optimum": _per_prompt(self.task.policy_from_logratios(opt.aligned_to(h))) if opt.finite else None,
+            "optimum": per_prompt(self.task.policy_from_logratios(opt.aligned_to(h))) if opt.finite else None,
             "optimum_finite": opt.finite,
             "optimum_value": opt.value,
             "optimum_method": opt.method,
             "optimum_residual": opt.residual,
             "optimum_unique": opt.unique,
             "tv_to_optimum": self.distance(h, opt),
-            "loss_gap": value - opt.value,
-            "relative_loss_gap": (value - opt.value) / abs(opt.value) if opt.value else None,
+            "loss_gap": gap,
+            "relative_loss_gap": relative,
             "kl_to_reference": self.task.kl_to_reference(pi),
             "steps": result.steps,
             "seconds": result.seconds,
@@ -115,7 +116,7 @@ class FiniteSession:
             pop_value = population_loss(self.loss, self.population_weights, h, beta=self.beta)
             summary.update({
                 "population_loss": pop_value,
-                "population_optimum": _per_prompt(self.task.policy_from_logratios(pop.aligned_to(h)))
+                "population_optimum": per_prompt(self.task.policy_from_logratios(pop.aligned_to(h)))
                 if pop.finite else None,
                 "population_optimum_finite": pop.finite,
                 "tv_to_population_optimum": self.distance(h, pop),
@@ -161,44 +162,7 @@ class FiniteSession:
         return "\n".join(lines)
 
 
-def policy_rows(summary: dict, x: int, indices, labels: list[str], width: int, target: str = "optimum") -> list[str]:
-    """Prompt ``x``'s table: a header, then per response index its reference, trained and target
-    probabilities (summary.json's ``reference``, ``policy`` and ``optimum``; '-' where none is finite)."""
-    optimum = summary["optimum"]
-    lines = [f"  {'response':<{width}}  reference   trained   {target:>7}"]
-    for i in indices:
-        opt = f"{optimum[x][i]:9.4f}" if optimum is not None else "        -"
-        lines.append(f"  {labels[i]:<{width}}  {summary['reference'][x][i]:9.4f} {summary['policy'][x][i]:9.4f} {opt}")
-    return lines
-
-
-def _per_prompt(p: np.ndarray) -> list[list[float]]:
-    return [[float(v) for v in row] for row in p]
-
-
-def margin_growth(history: list[dict]) -> dict:
-    """margin_mean at the middle and at the end of training, and whether it was still rising."""
-    if not history:
-        return {"from": math.nan, "to": math.nan, "growing": False}
-    first, last = history[len(history) // 2]["margin_mean"], history[-1]["margin_mean"]
-    return {"from": first, "to": last, "growing": bool(last > first + 1e-3 * max(1.0, abs(first)))}
-
-
-def displacement_warning(history: list[dict]) -> str | None:
-    """A note when the winners' and the losers' log-ratios both ended below zero and
-    fell over training: probability leaves both responses of the pairs."""
-    if len(history) < 2:
-        return None
-    start, end = history[0], history[-1]
-    if (end["logratio_winner"] < 0 and end["logratio_loser"] < 0
-            and end["logratio_winner"] < start["logratio_winner"]):
-        return (f"likelihood displacement: the mean log-ratio of winners fell to {end['logratio_winner']:.4g} "
-                f"(losers: {end['logratio_loser']:.4g}); training lowered the probability of preferred "
-                "responses too, on average")
-    return None
-
-
-def prepare(task: FiniteTask, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
+def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
             n_pairs: int = 2000, seed: int = 0, run_dir=None) -> FiniteSession:
     """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``. ``run_dir`` is
     unused: a finite task's reference log-probabilities are its table."""

@@ -79,9 +79,9 @@ def main(argv: list[str]) -> int:
     from omegaconf import OmegaConf
 
     from polopt import check
-    from polopt.commands.train import json_ready
     from polopt.objective import validate_hyperparameters
-    from polopt.train import OptimConfig
+    from polopt.optim import OptimConfig
+    from polopt.run_folder import json_ready
 
     loss_arg = args.loss.removeprefix("loss=")
     cfg = config.compose([f"loss={loss_arg}", *args.overrides], command="polopt check")

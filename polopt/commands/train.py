@@ -2,11 +2,11 @@
 
 This is the one place where configuration meets code: the task is built by
 Hydra's ``_target_`` instantiation (so ``polopt`` never imports ``toy_tasks``
-itself), the loss comes from the registry, and the plain functions of
-:mod:`polopt.train` do the work. A task object only has to offer
-``prepare(loss, beta=, smoothing=, mode=, n_pairs=, seed=, run_dir=)`` returning a session
-with ``pairs``, ``build_policy(...)``, ``evaluate(policy)``,
-``summarise(policy, result)`` and ``table(summary)``.
+itself), the loss comes from the registry, the one training loop
+(:func:`polopt.train.optimise`) does the work and :class:`polopt.run_folder.RunFolder`
+writes what it leaves. A task satisfies :class:`polopt.contracts.Task`: ``prepare(loss,
+beta=, smoothing=, mode=, n_pairs=, seed=, run_dir=)`` returns a
+:class:`polopt.contracts.Session`.
 
 Rerunning the same command with the same ``hydra.run.dir`` resumes from the
 newest good checkpoint in its ``checkpoints/`` folder (``train.resume=false``
@@ -19,9 +19,6 @@ or call anything else (a user loss comes only from ``loss.name=pkg.module:name``
 from __future__ import annotations
 
 import contextlib
-import io
-import json
-import os
 import sys
 import uuid
 from pathlib import Path
@@ -35,9 +32,12 @@ from polopt import checkpoint, devices, distributed, losses
 from polopt.commands import runs
 from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.commands.errors import Escape
-from polopt.methods import train_method
+from polopt.contracts import MethodView, Session, method_view, session_threads, trains_on_gpu
+from polopt.methods import method_objective
 from polopt.objective import validate_hyperparameters
-from polopt.train import OptimConfig, train
+from polopt.optim import OptimConfig
+from polopt.run_folder import RunFolder, run_summary
+from polopt.train import MethodObjective, PairObjective, TrainSettings, optimise
 
 # keys that change how a run is kept, not what it computes: a resume may change them
 _RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device")
@@ -47,30 +47,6 @@ def build_loss(cfg: DictConfig) -> losses.Loss:
     """The loss named by ``loss.name`` with its parameters (every key but name and smoothing)."""
     params = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in ("name", "smoothing")}
     return losses.get(cfg.name, **params)
-
-
-def json_ready(value):
-    """Numbers that JSON cannot hold (NaN, inf) become null; numpy scalars become floats."""
-    if isinstance(value, dict):
-        return {k: json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [json_ready(v) for v in value]
-    if hasattr(value, "item") and not isinstance(value, (str, bytes)):
-        value = value.item()
-    if isinstance(value, float) and value != value or value in (float("inf"), float("-inf")):
-        return None
-    return value
-
-
-def write_json(path: Path, data: dict) -> None:
-    """Write JSON atomically: a temporary file, fsync, then rename over the target."""
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    with tmp.open("w", encoding="utf-8") as f:
-        json.dump(json_ready(data), f, indent=1)
-        f.write("\n")
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
 
 
 _MISSING_HINTS = {
@@ -118,96 +94,108 @@ def resume_state(cfg: DictConfig, directory: Path, fingerprint: str) -> dict | N
                      "give a new hydra.run.dir, or train.resume=false to start over there")
 
 
-def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE,
-        device: torch.device | None = None) -> dict:
-    """Train as ``cfg`` says, write the run folder, return summary.json's content.
+def train_settings(cfg: DictConfig, device: torch.device | str = "cpu", main: bool = True) -> TrainSettings:
+    """The training loop's settings from the config (the progress bar on rank 0 only)."""
+    return TrainSettings(steps=cfg.train.steps, beta=float(cfg.beta),
+                         optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
+                         smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size, seed=cfg.train.seed,
+                         log_every=cfg.train.log_every, precision=cfg.precision,
+                         checkpoint_every=cfg.train.checkpoint_every, on_nonfinite=cfg.train.on_nonfinite,
+                         bucketing=cfg.train.get("bucketing", True), progress=cfg.train.progress and main,
+                         device=device)
 
-    With several processes (``context``, from torchrun) every rank trains and only rank 0 writes.
-    ``device``: where the training loop runs (``train.device`` resolved; None: resolve it here)."""
-    check_complete(cfg)
-    if device is None:
-        device = devices.resolve(cfg.train.get("device"), local_rank=context.local_rank,
-                                 processes=context.world_size)
-    main = context.is_main
-    run_dir.mkdir(parents=True, exist_ok=True)
-    if main:
-        checkpoint.atomic_write(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
+
+def prepare_session(cfg: DictConfig, run_dir: Path, context: distributed.Context) -> tuple[losses.Loss, Session]:
+    """The loss and the task's session for this run (rank 0 first: it may write caches in the run folder)."""
     loss = build_loss(cfg.loss)
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
     task = build_task(cfg.task)
     with distributed.main_first(context):  # rank 0 writes any cache in the run folder before the others read it
         session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
                                mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
-    threads = cfg.train.get("threads") or getattr(session, "threads", None)
+    threads = cfg.train.get("threads") or session_threads(session)
     if threads:  # tiny finite-task tensors run fastest on one thread; a pool only adds overhead
         torch.set_num_threads(int(threads))
+    return loss, session
+
+
+def method_of(cfg: DictConfig, session: Session, context: distributed.Context,
+              device: torch.device) -> tuple[dict, MethodView | None]:
+    """The ``method`` group and the session's view for it (None where the task offers none), checked
+    against the task, the number of processes and the device."""
     method = OmegaConf.to_container(cfg.method, resolve=True) if "method" in cfg else {"name": "offline"}
-    view = session.for_method(**method) if hasattr(session, "for_method") else None  # environment, exact target
-    if method["name"] != "offline" and view is None:
-        raise ValueError(f"method={method['name']} needs a task that offers it (the finite tasks do); "
+    view = method_view(session, method)  # environment, exact target
+    name = method["name"]
+    if name != "offline" and view is None:
+        raise ValueError(f"method={name} needs a task that offers it (the finite tasks do); "
                          "this task trains with method=offline only")
-    if method["name"] != "offline" and context.active:
-        raise ValueError(f"method={method['name']} runs on one process; torchrun trains method=offline only")
-    if device.type != "cpu" and (method["name"] != "offline" or not getattr(session, "trains_on_gpu", False)):
+    if name != "offline" and context.active:
+        raise ValueError(f"method={name} runs on one process; torchrun trains method=offline only")
+    if device.type != "cpu" and (name != "offline" or not trains_on_gpu(session)):
         raise ValueError(f"train.device={cfg.train.device} trains task=pairs with method=offline; this task "
                          "and method are small enough for the CPU: use train.device=cpu")
-    model = OmegaConf.to_container(cfg.model, resolve=True)
-    policy = session.build_policy(**model)
+    return method, view
+
+
+def objective_of(method: dict, view: MethodView | None, session: Session, policy: torch.nn.Module,
+                 loss: losses.Loss, settings: TrainSettings, context: distributed.Context):
+    """(the batch objective of this run, the per-step evaluation): the loss on the session's pairs,
+    or the method's objective on the view's environment."""
+    settings.check()
+    if method["name"] == "offline":
+        return PairObjective(policy, session.pairs, loss, settings, context), session.evaluate
+    step = method_objective(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
+                            beta=settings.beta, target=view.target_tensor(), seed=settings.seed)
+    return MethodObjective(step, method["name"]), view.evaluate
+
+
+def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE,
+        device: torch.device | None = None) -> dict:
+    """Train as ``cfg`` says, write the run folder, return summary.json's content.
+
+    Offline losses and methods take the same path through the one training loop and the one run-folder
+    writer; offline runs checkpoint and resume, method runs start over and leave ``policy.pt``.
+    With several processes (``context``, from torchrun) every rank trains and only rank 0 writes.
+    ``device``: where the training loop runs (``train.device`` resolved; None: resolve it here)."""
+    check_complete(cfg)
+    if device is None:
+        device = devices.resolve(cfg.train.get("device"), local_rank=context.local_rank,
+                                 processes=context.world_size)
+    folder = RunFolder(run_dir, main=context.is_main)
+    folder.write_config(OmegaConf.to_yaml(cfg, resolve=True))
+    loss, session = prepare_session(cfg, run_dir, context)
+    method, view = method_of(cfg, session, context, device)
+    offline = method["name"] == "offline"
+    policy = session.build_policy(**OmegaConf.to_container(cfg.model, resolve=True))
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
     p = session.pairs
     fingerprint = checkpoint.fingerprint(config, p.prompt, p.winner, p.loser, p.reference_winner,
                                          p.reference_loser, p.weight)
-    ckpt_dir = run_dir / "checkpoints"
     checkpoint.validate_keep(cfg.train.keep_checkpoints)
-    state = resume_state(cfg, ckpt_dir, fingerprint)
+    state = resume_state(cfg, folder.checkpoints, fingerprint)
     distributed.barrier(context)  # every rank has read the same checkpoint before rank 0 writes a new one
-    run_id = state["run_id"] if state is not None else uuid.uuid4().hex
-    metrics_path = run_dir / "metrics.jsonl"
-    if method["name"] != "offline":
-        metrics_path.unlink(missing_ok=True)  # method runs are short and start over; they do not resume
-        result = train_method(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
-                              beta=float(cfg.beta), steps=cfg.train.steps, target=view.target_tensor(),
-                              optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
-                              seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=view.evaluate,
-                              metrics_path=metrics_path, progress=cfg.train.progress)
-        summary, session = view.summarise(policy, result), view
-        buffer = io.BytesIO()
-        torch.save({"policy": policy.state_dict(), "step": result.steps, "config": config}, buffer)
-        checkpoint.atomic_write(run_dir / "policy.pt", buffer.getvalue())
-    else:
-        if main and state is None:
-            metrics_path.unlink(missing_ok=True)
-        elif main:  # exactly the lines up to the checkpoint, as the uninterrupted run wrote them
-            checkpoint.atomic_write(metrics_path, "".join(json.dumps(r) + "\n" for r in state["history"]).encode())
-            print(f"polopt train: resuming from {ckpt_dir / checkpoint.checkpoint_name(state['step'])} "
-                  f"(step {state['step']} of {cfg.train.steps})", file=sys.stderr)
-
-        def save(train_state: dict) -> None:
-            checkpoint.save(ckpt_dir, train_state, run_id=run_id, fingerprint=fingerprint, config=config,
-                            keep=cfg.train.keep_checkpoints)
-
-        policy.to(device)  # the training loop only; the summary and the files below work on the CPU
-        result = train(policy, session.pairs, loss, beta=float(cfg.beta), steps=cfg.train.steps,
-                       optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
-                       smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size,
-                       seed=cfg.train.seed, log_every=cfg.train.log_every, evaluate=session.evaluate,
-                       metrics_path=metrics_path if main else None, progress=cfg.train.progress and main,
-                       precision=cfg.precision, checkpoint_every=cfg.train.checkpoint_every,
-                       save_checkpoint=save if main else None, resume=state, on_nonfinite=cfg.train.on_nonfinite,
-                       bucketing=cfg.train.get("bucketing", True), context=context, device=device)
-        policy.to("cpu")
-        summary = session.summarise(policy, result)
-        summary["skipped_steps"] = result.skipped
-        if view is not None:
-            summary = view.extend_offline(summary, policy)
-        if context.active:
-            summary["processes"] = context.world_size
-    if not main:
-        return summary
-    write_json(run_dir / "summary.json", summary)
-    print(session.table(summary))
-    print(f"run folder: {run_dir}")
+    state = state if offline else None  # method runs are short and start over; they do not resume
+    if state is not None and context.is_main:
+        print(f"polopt train: resuming from {folder.checkpoints / checkpoint.checkpoint_name(state['step'])} "
+              f"(step {state['step']} of {cfg.train.steps})", file=sys.stderr)
+    save = None if not offline else folder.checkpoint_saver(
+        run_id=state["run_id"] if state is not None else uuid.uuid4().hex, fingerprint=fingerprint, config=config,
+        keep=cfg.train.keep_checkpoints)
+    settings = train_settings(cfg, device, context.is_main)
+    objective, evaluate = objective_of(method, view, session, policy, loss, settings, context)
+    metrics_path = folder.start_metrics(None if state is None else state["history"])
+    policy.to(device)  # the training loop only; the summary and the files below work on the CPU
+    result = optimise(policy, objective, settings, evaluate=evaluate, metrics_path=metrics_path,
+                      save_checkpoint=save, resume=state, context=context)
+    policy.to("cpu")
+    if not offline:
+        folder.write_policy(policy, result.steps, config)
+    summary = run_summary(session, view, policy, result, method=method["name"], context=context)
+    if context.is_main:
+        folder.write_summary(summary)
+        print((session if offline else view).table(summary))
+        print(f"run folder: {run_dir}")
     return summary
 
 
@@ -251,7 +239,7 @@ def main(argv: list[str]) -> int:
     """The ``polopt train`` subcommand: the overrides checked and the run folder fixed (:mod:`polopt.commands.runs`),
     then Hydra's entry point; a sweep (``-m``) ends with one table of its runs."""
     plan = runs.plan(argv)
-    for cfg in plan.configs:
+    for cfg in plan.configs if plan.folder is not None else ():  # (not for --cfg / --info: nothing runs)
         precheck(cfg)
     sys.argv = ["polopt train", *plan.argv]
     train_main()

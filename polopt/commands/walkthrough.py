@@ -37,16 +37,17 @@ import torch
 
 from polopt import losses
 from polopt.commands.demo_settings import DemoConfig
-from polopt.commands.train import write_json
 from polopt.demo_scenario import PositionBiasedJudge, Scenario
 from polopt.encoding import SequenceIds, encode_prompts
 from polopt.evaluate import ground_truth_win_rate, judged_win_rates
 from polopt.objective import validate_hyperparameters
+from polopt.optim import OptimConfig
 from polopt.pairs_task import pair_task
+from polopt.run_folder import RunFolder
 from polopt.sampling import kl_estimate, sample_responses
 from polopt.sft import build_model, encode_examples, save_reference, train_sft
 from polopt.tokenizer import ByteTokenizer
-from polopt.train import OptimConfig, train
+from polopt.train import TrainSettings, train
 
 
 def check_config(cfg: DemoConfig) -> None:
@@ -148,18 +149,16 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
         session.beta, session.notes = beta, []
         policy = session.build_policy("transformer", width=cfg.width, layers=cfg.layers, heads=cfg.heads,
                                       context=context, seed=cfg.seed, init="reference")
-        folder = out / f"beta-{beta:g}"
-        folder.mkdir(exist_ok=True)
-        metrics = folder / "metrics.jsonl"
-        metrics.unlink(missing_ok=True)
-        result = train(policy, session.pairs, loss, beta=beta, steps=cfg.steps, optim=optim,
-                       batch_size=cfg.batch_size, seed=cfg.seed, log_every=5, metrics_path=metrics,
-                       progress=progress)
+        folder = RunFolder(out / f"beta-{beta:g}")
+        result = train(policy, session.pairs, loss,
+                       TrainSettings(beta=beta, steps=cfg.steps, optim=optim, batch_size=cfg.batch_size,
+                                     seed=cfg.seed, log_every=5, progress=progress),
+                       metrics_path=folder.start_metrics())
         policy.eval()
         scores = evaluate_policy(policy.model, reference, scenario, judge, tokenizer, ids, cfg, seed=cfg.seed + 2)
         entry = {"beta": beta, **session.full_statistics(policy), **scores, "train_seconds": result.seconds,
                  "history": result.history}
-        write_json(folder / "summary.json", {k: v for k, v in entry.items() if k != "history"})
+        folder.write_summary({k: v for k, v in entry.items() if k != "history"})
         frontier.append(entry)
         lo, hi = scores["win_rate_ci"]
         log(f"4-5. {cfg.loss} beta {beta:g}: win_rate {scores['win_rate']:.3f} [{lo:.3f}, {hi:.3f}]  judge raw "
@@ -190,7 +189,7 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
                   "both orders and averages, which cancels the position bias",
                   "kl_to_reference is the Monte-Carlo mean of log pi - log pi_ref over the policy's samples"],
     }
-    write_json(out / "summary.json", summary)
+    RunFolder(out).write_summary(summary)
     return summary
 
 

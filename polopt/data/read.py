@@ -268,18 +268,7 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
             yield physical[position - 1]
 
     reader = csv.reader(lines_from(0), delimiter=delimiter)
-    try:
-        header = next(reader)
-    except StopIteration:
-        header = []
-    except csv.Error as err:
-        raise ValueError(f"{path}: the CSV header cannot be read: {err}") from None
-    if any(_undecodable(h) for h in header):
-        where = describe_bad_bytes(data.splitlines()[0])
-        raise ValueError(f"{path}: the CSV header (line 1) is not valid UTF-8: {where}")
-    dupes = sorted({h for h in header if header.count(h) > 1})
-    if dupes:
-        raise ValueError(f"{path}: the CSV header names column(s) {', '.join(map(repr, dupes))} more than once")
+    header = _csv_header(reader, path, data)
     rows: list[tuple[int, dict]] = []
     early: list[Reject] = []
     blank = 0
@@ -329,6 +318,24 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
     plain = {f: [r[c] for _, r in rows] for f, c in wanted}
     table.values, table.reader = _through_datasets_csv(plain, len(rows))
     return table
+
+
+def _csv_header(reader, path: Path, data: bytes) -> list[str]:
+    """The CSV header (the reader's first record; [] for an empty file), refused when it cannot be
+    read, is not UTF-8 or names a column twice."""
+    try:
+        header = next(reader)
+    except StopIteration:
+        header = []
+    except csv.Error as err:
+        raise ValueError(f"{path}: the CSV header cannot be read: {err}") from None
+    if any(_undecodable(h) for h in header):
+        where = describe_bad_bytes(data.splitlines()[0])
+        raise ValueError(f"{path}: the CSV header (line 1) is not valid UTF-8: {where}")
+    dupes = sorted({h for h in header if header.count(h) > 1})
+    if dupes:
+        raise ValueError(f"{path}: the CSV header names column(s) {', '.join(map(repr, dupes))} more than once")
+    return header
 
 
 def _through_datasets_csv(plain: dict[str, list], n: int) -> tuple[dict[str, list], str]:

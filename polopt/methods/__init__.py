@@ -1,6 +1,6 @@
 """Methods beyond the offline losses, chosen by the ``method`` config group.
 
-- ``offline``: the offline losses of :mod:`polopt.train` (the default path).
+- ``offline``: the offline losses on a task's pairs (the default path, :class:`polopt.train.PairObjective`).
 - ``rl``: KL-regularised REINFORCE (:mod:`polopt.methods.rl`); target pi_ref e^{r / beta}.
 - ``selfplay``: pairs from the current policy (:mod:`polopt.methods.selfplay`); target the
   Nash equilibrium of the regularised preference game at tau = beta / 2.
@@ -8,7 +8,9 @@
 
 Each method talks to a policy through log-probabilities and to a task through a
 :class:`polopt.methods.environment.FiniteEnvironment`; the task computes each
-method's exact target itself, independently of this code.
+method's exact target itself, independently of this code. A method is a per-step objective
+``step(step) -> (scalar to minimise, metrics)``; it trains in the one training loop
+(:func:`polopt.train.optimise`, through :class:`polopt.train.MethodObjective`).
 """
 
 from __future__ import annotations
@@ -18,13 +20,14 @@ from pathlib import Path
 
 import torch
 
+from polopt.contracts import TrainResult
 from polopt.losses import Loss
 from polopt.methods.distill import distill_objective
 from polopt.methods.environment import FiniteEnvironment
-from polopt.methods.loop import optimise
 from polopt.methods.rl import rl_objective
 from polopt.methods.selfplay import selfplay_objective
-from polopt.train import OptimConfig, TrainResult
+from polopt.optim import OptimConfig
+from polopt.train import MethodObjective, TrainSettings, optimise
 
 METHODS = ("offline", "rl", "selfplay", "best_of_n")
 
@@ -50,7 +53,7 @@ def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironme
     if name == "best_of_n":
         return distill_objective(policy, env, target=target, estimator=estimator, n=method.get("n", 4),
                                  n_samples=method.get("n_samples", 4096), generator=generator)
-    raise ValueError("method=offline trains with polopt.train.train, not through polopt.methods")
+    raise ValueError("method=offline trains with polopt.train.PairObjective, not through polopt.methods")
 
 
 def train_method(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, *, loss: Loss, beta: float,
@@ -59,5 +62,6 @@ def train_method(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, 
                  progress: bool = True) -> TrainResult:
     """Train ``policy`` with the method ``method['name']`` (not offline)."""
     objective = method_objective(method, policy, env, loss=loss, beta=beta, target=target, seed=seed)
-    return optimise(policy, objective, steps=steps, optim=optim, seed=seed, log_every=log_every,
-                    evaluate=evaluate, metrics_path=metrics_path, progress=progress, desc=method["name"])
+    settings = TrainSettings(steps=steps, optim=optim, beta=beta, seed=seed, log_every=log_every, progress=progress)
+    return optimise(policy, MethodObjective(objective, method["name"]), settings, evaluate=evaluate,
+                    metrics_path=metrics_path)

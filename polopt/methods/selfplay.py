@@ -27,6 +27,7 @@ from polopt.losses import Loss
 from polopt.methods.environment import FiniteEnvironment
 from polopt.methods.rl import check_estimator
 from polopt.objective import margins, preference_loss
+from polopt.pair_set import score_pairs
 
 Tensor = torch.Tensor
 
@@ -34,7 +35,7 @@ Tensor = torch.Tensor
 def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Loss, *, beta: float,
                        estimator: str = "exact", batch_size: int = 64,
                        generator: torch.Generator | None = None) -> Callable[[int], tuple[Tensor, dict]]:
-    """The per-step objective of :func:`polopt.methods.loop.optimise` for self-play."""
+    """The per-step objective of :func:`polopt.train.optimise` for self-play."""
     check_estimator(estimator)
     if env.preference is None:
         env.prefer(*(torch.zeros(1, dtype=torch.long),) * 3)  # raises the named error
@@ -60,8 +61,7 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
             first_wins = torch.rand(len(prompt), generator=generator, dtype=env.reference.dtype) < env.prefer(
                 prompt, first, second)
         winner, loser = torch.where(first_wins, first, second), torch.where(first_wins, second, first)
-        logp = policy.logprobs(torch.cat([prompt, prompt]), torch.cat([winner, loser]))  # (2 X B,)
-        logp_w, logp_l = logp.chunk(2)
+        logp_w, logp_l = score_pairs(policy.logprobs, prompt, winner, loser)  # (X B,) each
         rho = margins(logp_w, logp_l, env.reference_logprobs(prompt, winner), env.reference_logprobs(prompt, loser))
         weight = env.prompt_weights[prompt]
         return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float(rho.detach().mean())}

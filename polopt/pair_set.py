@@ -1,0 +1,62 @@
+"""The pair batch type: labelled preference pairs as tensors, the trainer's input.
+
+A task hands the training loop a :class:`PairSet`; batches are :meth:`PairSet.select`-ed
+from it and moved with :meth:`PairSet.to`. This module imports nothing but torch, so any
+module (a task, a model wrapper, the data streamer) can build pairs without importing the
+training loop. :func:`score_pairs` is the one way to score winners and losers.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import torch
+
+Tensor = torch.Tensor
+
+
+@dataclass
+class PairSet:
+    """Labelled pairs as tensors with a leading dimension N.
+
+    ``winner``/``loser`` are whatever the policy's ``logprobs`` takes (response
+    indices for finite tasks). ``reference_winner``/``reference_loser`` (N,) are
+    the cached reference log-probabilities; ``weight`` (N,) or None; ``tokens`` (N,)
+    the real tokens of each pair (prompt with winner plus prompt with loser, no
+    padding) for the ``tokens_per_s`` metric, or None.
+    """
+
+    prompt: Tensor
+    winner: Tensor
+    loser: Tensor
+    reference_winner: Tensor
+    reference_loser: Tensor
+    weight: Tensor | None = None
+    tokens: Tensor | None = None
+
+    def __len__(self) -> int:
+        return len(self.prompt)
+
+    def select(self, index: Tensor) -> PairSet:
+        return PairSet(self.prompt[index], self.winner[index], self.loser[index],
+                       self.reference_winner[index], self.reference_loser[index],
+                       None if self.weight is None else self.weight[index],
+                       None if self.tokens is None else self.tokens[index])
+
+    def to(self, device: torch.device) -> PairSet:
+        """The same pairs with every tensor on ``device`` (no copy when they are there already)."""
+        def move(t: Tensor | None) -> Tensor | None:
+            return None if t is None else t.to(device, non_blocking=True)
+
+        return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
+                                           self.reference_loser, self.weight, self.tokens)))
+
+
+def score_pairs(score: Callable[[Tensor, Tensor], Tensor], prompt: Tensor, winner: Tensor,
+                loser: Tensor) -> tuple[Tensor, Tensor]:
+    """Log-probs of winners and losers in one pass: ``score(prompt, response)`` over the prompts
+    twice and the winners then the losers, split in two. ``prompt`` (B, ...), ``winner`` and
+    ``loser`` (B, ...) of one width (index tensors (B,) or token tensors (B, T)); returns two (B,)."""
+    both = score(torch.cat([prompt, prompt]), torch.cat([winner, loser]))  # (2B,)
+    return both.chunk(2)
