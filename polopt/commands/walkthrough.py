@@ -99,6 +99,40 @@ def evaluate_policy(policy_model, reference_model, scenario: Scenario, judge: Po
     return out
 
 
+def train_reference(cfg: DemoConfig, scenario: Scenario, tokenizer, ids: SequenceIds, out: Path, *,
+                    progress: bool) -> tuple:
+    """Step 1: the reference by SFT on the scenario's corpus, saved as ``out/reference.pt``; returns the model,
+    its path, the context it was built for and the SFT result."""
+    examples = scenario.sft_corpus(cfg.sft_examples, cfg.seed)
+    prompt, response = encode_examples(tokenizer, examples, ids)
+    context = max(len(tokenizer.encode(p.text)) for p in scenario.prompts) + 1 + cfg.max_new_tokens
+    arch = {"vocab_size": ids.vocab_size, "context": context, "width": cfg.width, "layers": cfg.layers,
+            "heads": cfg.heads}
+    reference = build_model(ids, context=context, width=cfg.width, layers=cfg.layers, heads=cfg.heads, seed=cfg.seed)
+    sft = train_sft(reference, prompt, response, pad_id=ids.pad, steps=cfg.sft_steps, lr=cfg.sft_lr,
+                    batch_size=cfg.sft_batch_size, seed=cfg.seed, progress=progress)
+    path = save_reference(out / "reference.pt", reference, ids=ids, tokenizer="byte", architecture=arch,
+                          history=sft.history, source="polopt.demo_scenario")
+    return reference, path, context, sft
+
+
+def train_at_beta(cfg: DemoConfig, beta: float, base, loss, context: int, out: Path, *, progress: bool) -> dict:
+    """Step 4 at one beta: the policy trained from the reference on ``base``'s pairs (the same pairs and
+    reference log-probs, another beta); its statistics, history and trained model (``model``)."""
+    session = copy.copy(base)
+    session.beta, session.notes = beta, []
+    policy = session.build_policy("transformer", width=cfg.width, layers=cfg.layers, heads=cfg.heads,
+                                  context=context, seed=cfg.seed, init="reference")
+    optim = OptimConfig(name="adam", lr=cfg.lr, warmup_steps=cfg.warmup_steps)
+    result = train(policy, session.pairs, loss,
+                   TrainSettings(beta=beta, steps=cfg.steps, optim=optim, batch_size=cfg.batch_size,
+                                 seed=cfg.seed, log_every=5, progress=progress),
+                   metrics_path=RunFolder(out / f"beta-{beta:g}").start_metrics())
+    policy.eval()
+    return {"beta": beta, **session.full_statistics(policy), "train_seconds": result.seconds,
+            "history": result.history, "model": policy.model}
+
+
 def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) -> dict:
     """The whole walk-through into ``out``; returns summary.json's content."""
     check_config(cfg)
@@ -112,16 +146,7 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
     ids = SequenceIds.for_tokenizer(tokenizer)
 
     # 1. supervised reference
-    examples = scenario.sft_corpus(cfg.sft_examples, cfg.seed)
-    prompt, response = encode_examples(tokenizer, examples, ids)
-    context = max(len(tokenizer.encode(p.text)) for p in scenario.prompts) + 1 + cfg.max_new_tokens
-    arch = {"vocab_size": ids.vocab_size, "context": context, "width": cfg.width, "layers": cfg.layers,
-            "heads": cfg.heads}
-    reference = build_model(ids, context=context, width=cfg.width, layers=cfg.layers, heads=cfg.heads, seed=cfg.seed)
-    sft = train_sft(reference, prompt, response, pad_id=ids.pad, steps=cfg.sft_steps, lr=cfg.sft_lr,
-                    batch_size=cfg.sft_batch_size, seed=cfg.seed, progress=progress)
-    reference_path = save_reference(out / "reference.pt", reference, ids=ids, tokenizer="byte", architecture=arch,
-                                    history=sft.history, source="polopt.demo_scenario")
+    reference, reference_path, context, sft = train_reference(cfg, scenario, tokenizer, ids, out, progress=progress)
     log(f"1. reference: {cfg.sft_steps} SFT steps, next-token loss {sft.history[0]['loss']:.3f} -> "
         f"{sft.final_loss:.3f} nats ({sft.seconds:.0f} s)")
 
@@ -143,27 +168,17 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
 
     # 4. optimise, once per beta; 5. evaluate each
     frontier = []
-    optim = OptimConfig(name="adam", lr=cfg.lr, warmup_steps=cfg.warmup_steps)
     for beta in betas:
-        session = copy.copy(base)  # the same pairs and reference log-probs, another beta
-        session.beta, session.notes = beta, []
-        policy = session.build_policy("transformer", width=cfg.width, layers=cfg.layers, heads=cfg.heads,
-                                      context=context, seed=cfg.seed, init="reference")
-        folder = RunFolder(out / f"beta-{beta:g}")
-        result = train(policy, session.pairs, loss,
-                       TrainSettings(beta=beta, steps=cfg.steps, optim=optim, batch_size=cfg.batch_size,
-                                     seed=cfg.seed, log_every=5, progress=progress),
-                       metrics_path=folder.start_metrics())
-        policy.eval()
-        scores = evaluate_policy(policy.model, reference, scenario, judge, tokenizer, ids, cfg, seed=cfg.seed + 2)
-        entry = {"beta": beta, **session.full_statistics(policy), **scores, "train_seconds": result.seconds,
-                 "history": result.history}
-        folder.write_summary({k: v for k, v in entry.items() if k != "history"})
+        entry = train_at_beta(cfg, beta, base, loss, context, out, progress=progress)
+        scores = evaluate_policy(entry.pop("model"), reference, scenario, judge, tokenizer, ids, cfg,
+                                 seed=cfg.seed + 2)
+        entry.update(scores)
+        RunFolder(out / f"beta-{beta:g}").write_summary({k: v for k, v in entry.items() if k != "history"})
         frontier.append(entry)
         lo, hi = scores["win_rate_ci"]
         log(f"4-5. {cfg.loss} beta {beta:g}: win_rate {scores['win_rate']:.3f} [{lo:.3f}, {hi:.3f}]  judge raw "
             f"{scores['judge_win_rate_raw']:.3f} swapped {scores['judge_win_rate_swapped']:.3f}  "
-            f"kl_to_reference {scores['kl_to_reference']:.3f}  ({result.seconds:.0f} s)")
+            f"kl_to_reference {scores['kl_to_reference']:.3f}  ({entry['train_seconds']:.0f} s)")
 
     main_entry = next(e for e in frontier if e["beta"] == cfg.beta)
     plots = plot_results(frontier, out, loss_name=cfg.loss)
