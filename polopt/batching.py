@@ -102,5 +102,4 @@ class Batcher:
         t_r = max(int(self.response_len[index].max()), 1)  # keep one column so empty responses stay 2-D
         return type(p)(p.prompt[index, :t_p], p.winner[index, :t_r], p.loser[index, :t_r],  # (B, T_p), (B, T_r)
                        p.reference_winner[index], p.reference_loser[index],
-                       None if p.weight is None else p.weight[index],
-                       None if p.tokens is None else p.tokens[index])
+                       *(None if t is None else t[index] for t in p._optional()))

@@ -44,9 +44,10 @@ import numpy as np
 import scipy.optimize
 import torch
 
-from polopt import losses
+from polopt import losses, objectives
 from polopt.losses import Loss
 from polopt.objective import margins
+from polopt.objectives import PairObjective
 from polopt.optim import OptimConfig
 from polopt.pair_set import score_pairs
 from polopt.train import TrainSettings, train
@@ -61,6 +62,26 @@ STILL_MARGIN = 1e-3  # |beta * weighted mean margin| below this: the policy did 
 NO_SIGNAL_SLOPE = 1e-8  # |f'(0)| below this (relative to max(1, |f''(0)|)) is no signal
 
 
+# what each check tests, in the words of its report row (the population rows: see :func:`what_it_tests`)
+CHECK_TESTS = {
+    "elementwise": "f acts on each margin alone",
+    "finite": "f and f' finite at extreme margins in float64, float32, bfloat16",
+    "signal": "a larger margin lowers the loss (f'(0) < 0)",
+    "convexity": "f is convex on a grid of margins",
+    "taylor": "f'(0), f''(0) and the beta that regularises like each built-in",
+    "pair_optimum": "the per-pair optimum x*(p) learns the preference",
+    "certainty": "x*(1): a finite margin for a certain preference",
+    "scale": "whether f is a built-in rescaled (a wrong scale)",
+}
+
+
+def what_it_tests(name: str) -> str:
+    """The phrase a report row opens with: what check ``name`` tests."""
+    if name.startswith("population:"):
+        return f"training reaches the exact optimum of task {name.partition(':')[2]}"
+    return CHECK_TESTS.get(name, name)
+
+
 @dataclass
 class CheckResult:
     """The outcome of one check: ``status`` is one of pass, warn, fail, skip."""
@@ -71,7 +92,7 @@ class CheckResult:
     facts: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        return {**asdict(self), "tests": what_it_tests(self.name)}
 
 
 @dataclass
@@ -110,14 +131,21 @@ class Report:
 # ----------------------------------------------------------------------------
 
 
-def as_loss(loss: Loss | str | Callable[..., Tensor], **params) -> Loss:
-    """A :class:`Loss` from a Loss, a registered name / dotted path, or a bare callable."""
+def as_loss(loss: Loss | PairObjective | str | Callable[..., Tensor], **params) -> Loss | PairObjective:
+    """A :class:`Loss` (margin) or :class:`polopt.objectives.PairObjective` from either, a registered
+    name / dotted path, or a bare callable (told apart by its signature: f(x) or f(pair, beta))."""
     if isinstance(loss, Loss):
         return losses.get(loss.name, **params) if params else loss
+    if isinstance(loss, PairObjective):
+        return objectives.resolve(loss.name, **params) if params else loss
     if isinstance(loss, str):
-        return losses.get(loss, **params)
+        return objectives.resolve(loss, **params)
     if callable(loss):
         name = getattr(loss, "__name__", type(loss).__name__)
+        if objectives.kind_of(loss, name) == "pair":
+            objective = PairObjective(name, loss, dict(params), "user-supplied")
+            objectives.validate(objective)
+            return objective
         return Loss(name, loss, dict(params), None, "user-supplied", None)
     raise TypeError(f"loss must be a polopt Loss, a registered name, a dotted path or a callable f(x), "
                     f"got {type(loss).__name__}")
@@ -335,6 +363,23 @@ def check_taylor(loss: Loss, *, beta: float) -> CheckResult:
 # ----------------------------------------------------------------------------
 
 
+def flat_interval(loss: Loss, p: float, x: float, *, bound: float = 60.0) -> tuple[float, float]:
+    """The interval of scaled margins around ``x`` where ``p f(m) + (1 - p) f(-m)`` stays within
+    rounding (1e-9 relative) of its value at ``x``, on a grid of step 1e-3; (x, x) when ``x`` is not finite."""
+    if not math.isfinite(x):
+        return (x, x)
+    grid = np.linspace(-bound, bound, 120_001)  # step 1e-3
+    values = loss.pair_objective(grid, p)
+    level = float(loss.pair_objective(x, p))
+    flat = values <= level + 1e-9 * max(1.0, abs(level))
+    k = int(np.argmin(np.abs(grid - x)))
+    if not flat[k]:
+        return (x, x)
+    lo = k - int(np.argmin(flat[k::-1])) + 1 if not flat[: k + 1].all() else 0
+    hi = k + int(np.argmin(flat[k:])) - 1 if not flat[k:].all() else len(grid) - 1
+    return (float(grid[lo]), float(grid[hi]))
+
+
 def pair_optimum_curve(loss: Loss, ps: Sequence[float] = CURVE_P) -> np.ndarray:
     """x*(p) for each p (:meth:`polopt.losses.Loss.pair_optimum`: the member's closed form where it has one)."""
     return np.array([loss.pair_optimum(float(p)) for p in ps])
@@ -405,15 +450,28 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
     asym = both & (np.abs(np.where(both, xs + mirror, 0.0)) > 1e-4 * (1 + np.abs(np.where(both, xs, 0.0))))
     if asym.any():
         k = int(np.flatnonzero(asym)[0])
-        warnings.append(f"x*(1 - p) != -x*(p) at p = {CURVE_P[k]:g} ({xs[k]:.4g} vs {mirror[k]:.4g}); by the "
-                        "symmetry of the pair objective this means the minimiser is not unique there")
+        lo, hi = flat_interval(loss, float(CURVE_P[k]), xs[k])
+        facts["flat_at"] = {"p": float(CURVE_P[k]), "margins": [lo, hi]}
+        if hi - lo > 1e-3:
+            level = float(loss.pair_objective(xs[k], CURVE_P[k]))
+            warnings.append(f"the pair objective is flat at p = {CURVE_P[k]:g}: every scaled margin from {lo:.4g} "
+                            f"to {hi:.4g} gives the same pair loss {level:.6g}, "
+                            "so the optimum is not unique there and such pairs keep whatever margin training gives "
+                            "them")
+        else:
+            warnings.append(f"x*(1 - p) != -x*(p) at p = {CURVE_P[k]:g}: x*({CURVE_P[k]:g}) = {xs[k]:.4g} but "
+                            f"-x*({1 - CURVE_P[k]:g}) = {-mirror[k]:.4g}; by the symmetry of the pair objective "
+                            "the minimiser is not unique there")
     facts["x_half"] = x_half
     samples = ", ".join(f"x*({p:g}) = {_fmt(xs[np.argmin(np.abs(CURVE_P - p))])}" for p in (0.6, 0.75, 0.9))
     if problems:
         return CheckResult(name, "fail", "; ".join(problems + warnings), facts)
     if warnings:
         return CheckResult(name, "warn", "; ".join(warnings) + f"; {samples}", facts)
-    return CheckResult(name, "pass", f"x*(p) is 0 at p = 1/2, positive above, non-decreasing and antisymmetric; "
+    lo, hi = flat_interval(loss, 0.5, x_half)
+    at_half = (f"x*(1/2) is any margin from {lo:.4g} to {hi:.4g} (the pair objective is flat there)" if hi - lo > 1e-3
+               else "x*(p) is 0 at p = 1/2")
+    return CheckResult(name, "pass", f"{at_half}, positive above, non-decreasing and antisymmetric; "
                        f"{samples} (scaled margins beta * rho)", facts)
 
 
@@ -645,13 +703,15 @@ def _guarded(name: str, fn: Callable[[], CheckResult]) -> CheckResult:
         return CheckResult(name, "fail", f"could not run: {type(err).__name__}: {err}", {"error": str(err)})
 
 
-def run_checks(loss: Loss | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
+def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
                steps: int = 2000, optim: OptimConfig | None = None, tol: float = 1e-3,
-               progress: bool | None = False, params: dict | None = None,
+               progress: bool | None = False, params: dict | None = None, noisy_task=None,
                on_check: Callable[[CheckResult, float], None] | None = None) -> Report:
     """Every check of the module docstring; the population checks on ``tasks``
     (objects with ``prepare``, or ``(name, task)`` pairs). When f is not elementwise
     the other checks are skipped: f of a single margin is then not defined.
+    A pair objective gets the checks of :mod:`polopt.pair_check` (``noisy_task``: the finite task
+    whose exact optimum's finiteness it reports).
     ``progress``: a tqdm bar over the checks (None: only on a terminal);
     ``on_check(result, seconds)``: called as each check ends (``polopt check``'s progress lines)."""
     import time
@@ -659,6 +719,12 @@ def run_checks(loss: Loss | str | Callable[..., Tensor], *, beta: float = 0.5, t
     from tqdm.auto import tqdm
 
     loss = as_loss(loss, **(params or {}))
+    if isinstance(loss, PairObjective) and loss.margin is None:
+        from polopt.pair_check import run_pair_checks  # builds on this module
+
+        return run_pair_checks(loss, beta=beta, tasks=tasks, noisy_task=noisy_task, steps=steps, optim=optim,
+                               tol=tol)
+    loss = loss.margin if isinstance(loss, PairObjective) else loss
     checks: list[tuple[str, Callable[[], CheckResult]]] = [
         ("finite", lambda: check_finite(loss)), ("signal", lambda: check_signal(loss)),
         ("convexity", lambda: check_convexity(loss)), ("taylor", lambda: check_taylor(loss, beta=beta)),
@@ -702,9 +768,9 @@ def format_report(report: Report, *, width: int = 100) -> str:
     lines = [f"polopt check: {report.loss} at beta = {report.beta:g}", ""]
     name_w = max(len(r.name) for r in report.results) + 2
     indent = " " * (name_w + 8)
-    lines.append(f"{'check':<{name_w}} status reason")
+    lines.append(f"{'check':<{name_w}} status what it tests: finding")
     for r in report.results:
-        wrapped = textwrap.wrap(r.reason, width=max(width - len(indent), 40)) or [""]
+        wrapped = textwrap.wrap(f"{what_it_tests(r.name)}: {r.reason}", width=max(width - len(indent), 40)) or [""]
         lines.append(f"{r.name:<{name_w}} {r.status.upper():<6} {wrapped[0]}")
         lines += [indent + w for w in wrapped[1:]]
     n_warn = sum(r.status == "warn" for r in report.results)

@@ -43,6 +43,7 @@ import json
 import math
 import os
 import re
+import shutil
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -51,7 +52,7 @@ import torch
 
 FORMAT = 1
 MANIFEST = "manifest.json"
-_NAME = re.compile(r"^ckpt-(\d+)\.pt$")
+_NAME = re.compile(r"^ckpt-(\d+)\.(?:pt|dcp)$")  # .dcp: a sharded checkpoint folder
 _CHUNK = 1 << 20
 _PAYLOAD_KEYS = ("format", "step", "policy", "optimiser", "scheduler", "generator", "torch_rng", "order",
                  "cursor", "history", "skipped", "seconds", "run_id", "fingerprint", "config")
@@ -67,6 +68,15 @@ def checkpoint_name(step: int) -> str:
 
 def sha256_hex(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
+
+
+def file_sha256(path: Path) -> str:
+    """SHA-256 of a file, read in chunks (a shard may be larger than memory should hold twice)."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(_CHUNK), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 
 def fingerprint(config: dict, *tensors: torch.Tensor) -> str:
@@ -87,9 +97,17 @@ def fingerprint(config: dict, *tensors: torch.Tensor) -> str:
 
 def training_state(*, step: int, policy: torch.nn.Module, optimiser, scheduler, generator: torch.Generator,
                    order: torch.Tensor, cursor: int, history: list[dict], skipped: list[int],
-                   seconds: float) -> dict:
-    """The trainer's whole state after ``step`` as a plain dict of tensors and containers."""
-    return {"format": FORMAT, "step": step, "policy": policy.state_dict(), "optimiser": optimiser.state_dict(),
+                   seconds: float, sharded: bool = False) -> dict:
+    """The trainer's whole state after ``step`` as a plain dict of tensors and containers; ``sharded``
+    (train.strategy=fsdp): the policy and optimiser entries are this rank's shards, keyed by parameter
+    name (:mod:`polopt.sharded_checkpoint` writes them)."""
+    if sharded:
+        from polopt.sharded_checkpoint import state_dicts
+
+        model_state, optimiser_state = state_dicts(policy, optimiser)
+    else:
+        model_state, optimiser_state = policy.state_dict(), optimiser.state_dict()
+    return {"format": FORMAT, "step": step, "policy": model_state, "optimiser": optimiser_state,
             "scheduler": scheduler.state_dict(), "generator": generator.get_state(),
             "torch_rng": torch.get_rng_state(), "order": order.clone(), "cursor": cursor,
             "history": [dict(r) for r in history], "skipped": list(skipped), "seconds": seconds}
@@ -100,8 +118,13 @@ def restore_training_state(state: dict, *, policy: torch.nn.Module, optimiser, s
     """Load ``state`` into the given objects; return the loop variables
     (step, order, cursor, history, skipped, seconds)."""
     try:
-        policy.load_state_dict(state["policy"])
-        optimiser.load_state_dict(state["optimiser"])
+        if state.get("sharded"):  # a sharded checkpoint's folder: DCP reads it into any layout
+            from polopt.sharded_checkpoint import load_into
+
+            load_into(state["sharded"], policy, optimiser)
+        else:
+            policy.load_state_dict(state["policy"])
+            optimiser.load_state_dict(state["optimiser"])
         scheduler.load_state_dict(state["scheduler"])
         generator.set_state(state["generator"])
         torch.set_rng_state(state["torch_rng"])
@@ -137,7 +160,7 @@ def nonfinite_entries(state: dict) -> list[str]:
 # ----------------------------------------------------------------------------
 
 
-def _fsync_dir(directory: Path) -> None:
+def fsync_dir(directory: Path) -> None:
     fd = os.open(directory, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -163,10 +186,10 @@ def atomic_write(path: Path, data: bytes) -> None:
         raise
     os.close(fd)
     os.replace(tmp, path)
-    _fsync_dir(path.parent)
+    fsync_dir(path.parent)
 
 
-def _write_error(err: OSError, path: Path, previous: str | None) -> CheckpointError:
+def write_error(err: OSError, path: Path, previous: str | None) -> CheckpointError:
     kept = f"the previous checkpoint {previous} is intact" if previous else "no earlier checkpoint exists"
     if err.errno in (errno.ENOSPC, errno.EDQUOT):
         what = "the disk is full" if err.errno == errno.ENOSPC else "the disk quota is exceeded"
@@ -204,39 +227,42 @@ def save(directory: str | Path, state: dict, *, run_id: str, fingerprint: str, c
     name = checkpoint_name(step)
     path = directory / name
 
-    listed = _read_manifest(directory)
+    listed = read_manifest(directory)
     entries = listed["checkpoints"] if listed and listed.get("run_id") == run_id else []
     previous = entries[-1]["file"] if entries else None
     try:
         if any(e["file"] == name for e in entries):  # about to be replaced: unlist it first
             entries = [e for e in entries if e["file"] != name]
-            _write_manifest(directory, run_id, entries)
+            write_manifest(directory, run_id, entries)
         atomic_write(path, data)
         atomic_write(directory / f"{name}.sha256", f"{digest}  {name}\n".encode())
         if sha256_hex(path.read_bytes()) != digest:
             raise CheckpointError(f"checkpoint {path} reads back with a different SHA-256 than was written; "
                                   f"the storage under {directory} is unreliable")
         entries = [*entries, {"file": name, "step": step, "sha256": digest, "bytes": len(data)}][-keep:]
-        _write_manifest(directory, run_id, entries)
+        write_manifest(directory, run_id, entries)
     except OSError as err:
-        raise _write_error(err, path, previous) from err
-    _prune(directory, {e["file"] for e in entries})
+        raise write_error(err, path, previous) from err
+    prune(directory, {e["file"] for e in entries})
     return path
 
 
-def _write_manifest(directory: Path, run_id: str, entries: list[dict]) -> None:
+def write_manifest(directory: Path, run_id: str, entries: list[dict]) -> None:
     text = json.dumps({"format": FORMAT, "run_id": run_id, "checkpoints": entries}, indent=1) + "\n"
     atomic_write(directory / MANIFEST, text.encode())
 
 
-def _prune(directory: Path, keep: set[str]) -> None:
+def prune(directory: Path, keep: set[str]) -> None:
     """Delete checkpoints (and their checksum files) not in ``keep``, and stale temporary files."""
     for p in directory.iterdir():
         base = p.name.removesuffix(".sha256")
         stale_tmp = p.name.endswith(".tmp") and (p.name.startswith("ckpt-") or p.name.startswith(MANIFEST))
         if stale_tmp or (_NAME.match(base) and base not in keep):
             try:
-                p.unlink()
+                if p.is_dir():
+                    shutil.rmtree(p)
+                else:
+                    p.unlink()
             except OSError:  # pruning is housekeeping; a leftover file costs only space
                 pass
 
@@ -246,7 +272,7 @@ def _prune(directory: Path, keep: set[str]) -> None:
 # ----------------------------------------------------------------------------
 
 
-def _read_manifest(directory: Path) -> dict | None:
+def read_manifest(directory: Path) -> dict | None:
     """The manifest, or None when it is missing or not a valid one (the reason is not needed here)."""
     try:
         return _parse_manifest(directory)
@@ -288,6 +314,10 @@ def _from_checksum_files(directory: Path) -> list[dict]:
 
 def _problem(path: Path, entry: dict) -> tuple[str | None, dict | None]:
     """(why ``path`` is unusable, None) or (None, its payload)."""
+    if entry.get("sharded") or path.name.endswith(".dcp"):
+        from polopt.sharded_checkpoint import problem
+
+        return problem(path, entry)
     try:
         data = path.read_bytes()
     except FileNotFoundError:
@@ -375,7 +405,7 @@ def exclusive(run_dir: str | Path):
 def list_checkpoints(directory: str | Path) -> list[dict]:
     """The manifest's entries (oldest first), each with ``ok`` and ``problem`` from a full verification."""
     directory = Path(directory)
-    manifest = _read_manifest(directory)
+    manifest = read_manifest(directory)
     out = []
     for entry in manifest["checkpoints"] if manifest else _from_checksum_files(directory)[::-1]:
         why, _ = _problem(directory / entry["file"], entry)

@@ -26,6 +26,7 @@ trainer runs exactly as before.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import os
 from dataclasses import dataclass
 from datetime import timedelta
@@ -47,6 +48,7 @@ class Context:
     rank: int = 0
     world_size: int = 1
     local_rank: int = 0
+    strategy: str = "ddp"  # train.strategy: ddp (whole replicas) | fsdp (sharded, polopt.fsdp)
 
     @property
     def is_main(self) -> bool:
@@ -57,8 +59,26 @@ class Context:
         """True when there is more than one process (collectives are needed)."""
         return self.world_size > 1
 
+    @property
+    def sharded(self) -> bool:
+        """True when parameters, gradients and optimiser state are sharded over the ranks (fsdp)."""
+        return self.active and self.strategy == "fsdp"
+
 
 SINGLE = Context()
+STRATEGIES = ("ddp", "fsdp")
+
+
+def with_strategy(context: Context, strategy: str | None, environ=os.environ) -> Context:
+    """``context`` with ``train.strategy``; fsdp needs the processes torchrun starts."""
+    strategy = strategy or "ddp"
+    if strategy not in STRATEGIES:
+        raise ValueError(f"train.strategy must be one of {', '.join(STRATEGIES)}, got {strategy!r}")
+    if strategy == "fsdp" and "WORLD_SIZE" not in environ:
+        raise ValueError("train.strategy=fsdp shards the policy over processes started by torchrun: run "
+                         "torchrun --nproc_per_node=N -m polopt train ... train.strategy=fsdp, or use "
+                         "train.strategy=ddp on one process")
+    return dataclasses.replace(context, strategy=strategy)
 
 
 def from_environment(environ=os.environ) -> Context:
@@ -173,7 +193,7 @@ def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight
     """:func:`polopt.objective.batch_statistics` over the global batch: the weighted sums of every rank
     added by one all_reduce, then divided by the global weight."""
     w = torch.ones_like(rho) if weight is None else weight.to(rho.dtype)  # (B_r,)
-    sums = torch.stack([(w * rho).sum(), (w * (rho > 0).to(rho.dtype)).sum(), (w * logratio_w).sum(),
+    sums = torch.stack([(w * rho).sum(), (w * (torch.sign(rho) + 1) / 2).sum(), (w * logratio_w).sum(),
                         (w * logratio_l).sum(), w.sum()])  # (5,)
     dist.all_reduce(sums)
     names = ("margin_mean", "pair_accuracy", "logratio_winner", "logratio_loser")
@@ -201,8 +221,43 @@ def scorer(policy: nn.Module, context: Context, device: torch.device | None = No
     a DDP-wrapped view of it with several (gradients averaged over ranks in the backward pass;
     on a GPU, DDP is told which one). The policy stays the unwrapped module, so its state dict
     has no ``module.`` prefix."""
-    if not context.active:
+    if not context.active or context.sharded:  # fsdp: ``policy`` is the sharded copy (:func:`shard_for`)
         return policy.logprobs
     device_ids = [device.index] if device is not None and device.type == "cuda" else None
     # buffers (reference tables, enumerations) are the same on every rank by construction
     return nn.parallel.DistributedDataParallel(_Scorer(policy), device_ids=device_ids, forward_sync_buffers=False)
+
+
+def shard_for(policy: nn.Module, context: Context, device: torch.device | str | None = None) -> nn.Module:
+    """The module the optimiser trains: ``policy`` itself, or with ``train.strategy=fsdp`` a sharded
+    copy (:mod:`polopt.fsdp`; ``policy`` is then emptied until :func:`gathered` or :func:`give_back`
+    fills it)."""
+    if not context.sharded:
+        return policy
+    from polopt import fsdp
+
+    return fsdp.shard_policy(policy, context.world_size, torch.device(device or "cpu"))
+
+
+def gathered(trained: nn.Module, policy: nn.Module):
+    """A context in which ``policy`` holds the trained weights (a no-op unless ``trained`` is its sharded copy)."""
+    if trained is policy:
+        return contextlib.nullcontext(policy)
+    from polopt import fsdp
+
+    return fsdp.filled(trained, policy)
+
+
+def give_back(trained: nn.Module, policy: nn.Module) -> None:
+    """After the last step: ``policy`` holds the trained weights for good."""
+    if trained is not policy:
+        from polopt import fsdp
+
+        fsdp.fill(trained, policy)
+
+
+def clip_grad_norm(module: nn.Module, max_norm: float) -> float:
+    """torch's ``clip_grad_norm_`` over ``module``'s gradients (sharded ones too); the total norm as a float."""
+    from polopt.fsdp import total_norm
+
+    return total_norm(nn.utils.clip_grad_norm_(module.parameters(), max_norm))

@@ -1,6 +1,6 @@
 """A local ``transformers`` causal language model as a policy or a reference (the ``hf`` extra).
 
-``model=hf model.path=DIR`` names a directory written by ``save_pretrained``: the
+``model=local_lm model.path=DIR`` names a directory written by ``save_pretrained``: the
 model is read with ``AutoModelForCausalLM.from_pretrained(DIR, local_files_only=True)``
 and its tokenizer with ``AutoTokenizer.from_pretrained(DIR, local_files_only=True)``;
 nothing is ever downloaded. The model is wrapped to the same
@@ -21,7 +21,7 @@ without them and followed by the end token, so that the model also scores where 
 response stops. Prompt and response are tokenised apart, so a merge across their
 boundary never happens (common practice).
 
-On the enumerable sequence task (``task=sequence model=hf``) the task's own token
+On the enumerable sequence task (``task=sequence model=local_lm``) the task's own token
 ids are the input, the model's vocabulary must hold them (``vocab_size`` at least
 the task's), and the next-token distribution is restricted to the task's output
 tokens (the first ``output_size`` logits), so that the enumerated responses carry
@@ -36,7 +36,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from polopt.logprobs import SequencePolicy, batched_logprobs, real_tokens
+from polopt.logprobs import SequencePolicy, batched_logprobs, lengths, real_tokens
 from polopt.pair_set import PairSet
 
 Tensor = torch.Tensor
@@ -48,14 +48,14 @@ def _transformers():
     try:
         import transformers
     except ImportError:
-        raise ValueError("model=hf needs the transformers package; install the extra: pip install 'polopt[hf]'") \
-            from None
+        raise ValueError("model=local_lm needs the transformers package; install the extra: "
+                         "pip install 'polopt[local-lm]'") from None
     return transformers
 
 
 def _directory(path) -> Path:
     if path is None or path == "???":
-        raise ValueError("model=hf needs model.path=DIR, a local directory saved by a transformers causal LM")
+        raise ValueError("model=local_lm needs model.path=DIR, a local directory saved by a transformers causal LM")
     directory = Path(path)
     if not (directory / "config.json").is_file():
         raise ValueError(f"model.path must be a local directory holding a transformers causal LM (config.json and "
@@ -155,4 +155,5 @@ def text_pairs(reference: SequencePolicy, tokenizer, prompt: list[str], winner: 
     ref_w, ref_l = both.double().chunk(2)
     tokens = real_tokens(p, w, pad_id=PAD) + real_tokens(p, lo, pad_id=PAD)  # (N,)
     weights = None if weight is None else torch.as_tensor(weight, dtype=torch.float64)
-    return PairSet(p, w, lo, ref_w, ref_l, weights, tokens=tokens)
+    return PairSet(p, w, lo, ref_w, ref_l, weights, tokens=tokens, len_winner=lengths(w, pad_id=PAD),
+                   len_loser=lengths(lo, pad_id=PAD))  # (N,) each: response tokens for pair objectives

@@ -1,14 +1,18 @@
 """From four log-probabilities to one scalar objective.
 
 This module owns the only place where the margin is computed, and the only
-place where per-pair losses are reduced:
+place where per-pair losses are smoothed and reduced:
 
     h(x, y)  = log pi(y|x) - log pi_ref(y|x)                (log-ratio)
     rho      = h(x, y_w) - h(x, y_l)                          (margin)
-    loss     = sum_k w_k [(1 - eps) f(beta rho_k) + eps f(-beta rho_k)] / sum_k w_k
+    loss     = sum_k w_k [(1 - eps) ell(y_w, y_l)_k + eps ell(y_l, y_w)_k] / sum_k w_k
 
 with optional per-pair weights ``w`` (exact mode passes the population win
-weights) and label smoothing ``eps`` (the label is flipped with probability eps).
+weights) and label smoothing ``eps`` (the label is flipped with probability eps:
+winner and loser swap, lengths included). ``ell`` is a pair objective
+(:mod:`polopt.objectives`); for a margin loss ``f`` it is ``f(beta rho)`` (through
+:func:`polopt.objectives.from_margin`), so the swapped pair gives ``f(-beta rho)``, bit for
+bit the margin path of :func:`pair_losses`.
 
 :func:`batch_loss` is the one call the training loop makes for a batch's loss (one process
 or a rank's share under torchrun); :func:`batch_statistics` the margins' logged summary.
@@ -22,6 +26,8 @@ import torch
 
 from polopt import distributed
 from polopt.losses import Loss
+from polopt.objectives import PairObjective, as_objective, check_values
+from polopt.pair_scores import PairScores
 from polopt.pair_set import PairSet
 
 Tensor = torch.Tensor
@@ -54,15 +60,52 @@ def preference_loss(loss: Loss, rho: Tensor, *, beta: float, smoothing: float = 
 
     ``weights`` (B,) need not be normalised; None means equal weights.
     """
-    return _weighted_mean(pair_losses(loss, rho, beta=beta, smoothing=smoothing), weights)
+    return reduce(pair_losses(loss, rho, beta=beta, smoothing=smoothing), weights)
 
 
-def _weighted_mean(values: Tensor, weights: Tensor | None) -> Tensor:
+def reduce(values: Tensor, weights: Tensor | None = None) -> Tensor:
     """``sum_k w_k v_k / sum_k w_k``, or the plain mean when ``weights`` is None. (B,) -> scalar."""
     if weights is None:
         return values.mean()
     weights = weights.to(values.dtype)
     return (weights * values).sum() / weights.sum()
+
+
+def scores(batch, logp_w: Tensor, logp_l: Tensor) -> PairScores:
+    """The :class:`PairScores` of a batch (a PairSet) given the policy's log-probs (B,) of its
+    winners and losers; lengths of 1 where the batch has none."""
+    def length(t: Tensor | None) -> Tensor:
+        return torch.ones_like(logp_w) if t is None else t.to(device=logp_w.device, dtype=logp_w.dtype)
+
+    return PairScores(logp_w, logp_l, batch.reference_winner, batch.reference_loser,
+                      length(getattr(batch, "len_winner", None)), length(getattr(batch, "len_loser", None)))
+
+
+def swapped(pair: PairScores) -> PairScores:
+    """The pair with winner and loser exchanged (the flipped label of smoothing)."""
+    return PairScores(pair.loser, pair.winner, pair.ref_loser, pair.ref_winner, pair.len_loser, pair.len_winner)
+
+
+def objective_values(loss: Loss | PairObjective, pair: PairScores, *, beta: float,
+                     smoothing: float = 0.0) -> Tensor:
+    """Per-pair losses ``(1 - eps) ell(pair) + eps ell(swapped pair)``, validated: a ValueError
+    (one line) when ``ell`` does not return shape (B,). (B,) -> (B,).
+
+    For a margin loss this is :func:`pair_losses` of the same margins, bit for bit."""
+    objective = as_objective(loss)
+    values = objective(pair, beta)
+    check_values(objective.name, values, pair.winner.shape[0])
+    if smoothing:
+        flipped = objective(swapped(pair), beta)
+        values = (1.0 - smoothing) * values + smoothing * flipped
+    return values
+
+
+def batch_losses(loss: Loss | PairObjective, batch, logp_w: Tensor, logp_l: Tensor, *, beta: float,
+                 smoothing: float = 0.0) -> Tensor:
+    """Per-pair losses (B,) of a batch (a PairSet) from the policy's log-probs of its winners and
+    losers (B,), for a margin loss or a pair objective alike."""
+    return objective_values(loss, scores(batch, logp_w, logp_l), beta=beta, smoothing=smoothing)
 
 
 class BatchLoss(NamedTuple):
@@ -75,28 +118,29 @@ class BatchLoss(NamedTuple):
     per_pair: Tensor  # (B,) unreduced losses
 
 
-def batch_loss(loss: Loss, policy_winner: Tensor, policy_loser: Tensor, batch: PairSet, *, beta: float,
-               smoothing: float = 0.0, total_weight=None,
+def batch_loss(loss: Loss | PairObjective, policy_winner: Tensor, policy_loser: Tensor, batch: PairSet, *,
+               beta: float, smoothing: float = 0.0, total_weight=None,
                context: distributed.Context = distributed.SINGLE) -> BatchLoss:
     """The loss of ``batch`` from the policy's log-probs of its winners and losers, shape (B,) each.
 
-    One process: :func:`preference_loss`. Several (``context.active``): this rank's share
+    A margin loss or any pair objective (:func:`batch_losses`). One process: the weighted mean
+    (:func:`reduce`). Several (``context.active``): this rank's share
     ``N S_r / W`` of the global weighted mean (derivation in :func:`polopt.distributed.sharded_mean`),
     ``total_weight`` being W, the global batch's weight sum.
     """
     rho = margins(policy_winner, policy_loser, batch.reference_winner, batch.reference_loser)  # (B,)
-    values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)  # (B,)
+    values = batch_losses(loss, batch, policy_winner, policy_loser, beta=beta, smoothing=smoothing)  # (B,)
     if context.active:
         objective, value = distributed.sharded_mean(values, weight=batch.weight, total_weight=total_weight,
                                                     context=context)
         return BatchLoss(objective, value, rho, values)
-    value = _weighted_mean(values, batch.weight)
+    value = reduce(values, batch.weight)
     return BatchLoss(value, value, rho, values)
 
 
 def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight: Tensor | None,
                      context: distributed.Context | None = None) -> dict:
-    """Weighted means of the margin, the share of pairs with a positive margin, and
+    """Weighted means of the margin, the share of pairs with a positive margin (ties count half), and
     the two log-ratios (both falling together is likelihood displacement); over the global
     batch of all ranks when ``context`` is given and active. Shapes: all (B,)."""
     if context is not None and context.active:
@@ -105,7 +149,7 @@ def batch_statistics(rho: Tensor, logratio_w: Tensor, logratio_l: Tensor, weight
     w = w / w.sum()
     return {
         "margin_mean": float((w * rho).sum()),
-        "pair_accuracy": float((w * (rho > 0).to(rho.dtype)).sum()),
+        "pair_accuracy": float((w * (torch.sign(rho) + 1) / 2).sum()),  # a tie (rho = 0) counts half
         "logratio_winner": float((w * logratio_w).sum()),
         "logratio_loser": float((w * logratio_l).sum()),
     }

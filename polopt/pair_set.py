@@ -24,7 +24,9 @@ class PairSet:
     indices for finite tasks). ``reference_winner``/``reference_loser`` (N,) are
     the cached reference log-probabilities; ``weight`` (N,) or None; ``tokens`` (N,)
     the real tokens of each pair (prompt with winner plus prompt with loser, no
-    padding) for the ``tokens_per_s`` metric, or None.
+    padding) for the ``tokens_per_s`` metric, or None; ``len_winner``/``len_loser`` (N,)
+    the responses' lengths in tokens, read by pair objectives (None: 1 each; see
+    :mod:`polopt.pair_scores`).
     """
 
     prompt: Tensor
@@ -34,15 +36,19 @@ class PairSet:
     reference_loser: Tensor
     weight: Tensor | None = None
     tokens: Tensor | None = None
+    len_winner: Tensor | None = None
+    len_loser: Tensor | None = None
 
     def __len__(self) -> int:
         return len(self.prompt)
 
+    def _optional(self) -> tuple:
+        return self.weight, self.tokens, self.len_winner, self.len_loser
+
     def select(self, index: Tensor) -> PairSet:
         return PairSet(self.prompt[index], self.winner[index], self.loser[index],
                        self.reference_winner[index], self.reference_loser[index],
-                       None if self.weight is None else self.weight[index],
-                       None if self.tokens is None else self.tokens[index])
+                       *(None if t is None else t[index] for t in self._optional()))
 
     def to(self, device: torch.device) -> PairSet:
         """The same pairs with every tensor on ``device`` (no copy when they are there already)."""
@@ -50,7 +56,7 @@ class PairSet:
             return None if t is None else t.to(device, non_blocking=True)
 
         return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
-                                           self.reference_loser, self.weight, self.tokens)))
+                                           self.reference_loser, *self._optional())))
 
 
 def score_pairs(score: Callable[[Tensor, Tensor], Tensor], prompt: Tensor, winner: Tensor,

@@ -8,7 +8,7 @@ cross-entropy over the response tokens,
     L = - (1 / sum_i |y_i|) sum_i sum_t log pi(y_{i,t} | x_i, y_{i,<t})
 
 (torch.nn.functional.cross_entropy over the masked positions), and owns the
-reference checkpoint file that ``task=pairs`` (``task.reference=PATH``) and
+reference checkpoint file that ``task=pairs`` (``task.reference_checkpoint=PATH``) and
 ``polopt demo`` load: a plain dict of the state dict, the architecture, the
 tokenizer and the special ids, read back with ``torch.load(weights_only=True)``.
 
@@ -172,14 +172,14 @@ def load_reference(path: str | Path) -> tuple[TinyTransformer, dict]:
     """The frozen reference model (eval mode, no gradients) and the checkpoint's other fields."""
     path = Path(path)
     if not path.is_file():
-        raise ValueError(f"task.reference must be a reference checkpoint written by polopt sft, got {str(path)!r} "
-                         "(no such file)")
+        raise ValueError(f"task.reference_checkpoint must be a reference checkpoint written by polopt sft, "
+                         f"got {str(path)!r} (no such file)")
     try:
         state = torch.load(path, weights_only=True)
     except Exception as err:  # a truncated or foreign file: say which
-        raise ValueError(f"task.reference {str(path)!r} cannot be read as a checkpoint: {err}") from None
+        raise ValueError(f"task.reference_checkpoint {str(path)!r} cannot be read as a checkpoint: {err}") from None
     if not isinstance(state, dict) or state.get("kind") != CHECKPOINT_KIND:
-        raise ValueError(f"task.reference {str(path)!r} is not a reference checkpoint written by polopt sft")
+        raise ValueError(f"task.reference_checkpoint {str(path)!r} is not a reference checkpoint written by polopt sft")
     arch = state["architecture"]
     model = TinyTransformer(arch["vocab_size"], context=arch["context"], width=arch["width"],
                             layers=arch["layers"], heads=arch["heads"])

@@ -16,6 +16,11 @@ writes such a file chunk by chunk, never holding the whole dataset.
 
 Full-batch training (``train.batch_size=null``) would read every row each step;
 a mapped set refuses it with a ValueError.
+
+:class:`StreamedPairs` is the same for ``task.stream=true`` (:mod:`polopt.pairs_stream`): the file
+holds only the token columns (and ``weight``), and ``select`` computes the reference
+log-probabilities of each batch as it reads it (no gradients), so they are never computed for
+the whole file up front nor held for it.
 """
 
 from __future__ import annotations
@@ -74,6 +79,7 @@ class MappedPairs:
     """
 
     streamed = True  # the batcher reads it batch by batch through select(); no whole-set tensors
+    required = COLUMNS
 
     def __init__(self, path: str | Path, *, pad_id: int = 0, count_tokens: bool = True):
         import datasets
@@ -82,9 +88,9 @@ class MappedPairs:
         if not self.path.is_file():
             raise ValueError(f"pairs file {str(path)!r} does not exist (write one with polopt.stream.write_arrow)")
         self.dataset = datasets.Dataset.from_file(str(self.path), in_memory=False)
-        missing = [c for c in COLUMNS if c not in self.dataset.column_names]
+        missing = [c for c in self.required if c not in self.dataset.column_names]
         if missing:
-            raise ValueError(f"pairs file {self.path} lacks the columns {missing}; it needs {', '.join(COLUMNS)} "
+            raise ValueError(f"pairs file {self.path} lacks the columns {missing}; it needs {', '.join(self.required)} "
                              "(and may have weight)")
         self.pad_id = pad_id
         self.weighted = "weight" in self.dataset.column_names
@@ -104,7 +110,10 @@ class MappedPairs:
 
     def select(self, index: Tensor) -> PairSet:
         """The rows ``index`` (B,) as an in-memory PairSet, token lists right-padded with ``pad_id``."""
-        rows = self.dataset[index.tolist()]
+        return self.from_rows(self.dataset[index.tolist()])
+
+    def from_rows(self, rows: dict) -> PairSet:
+        """Columns of some rows (as ``datasets`` gives them) as a PairSet."""
         prompt, winner, loser = (_pad(rows[c], self.pad_id) for c in ("prompt", "winner", "loser"))
         if winner.dim() == 2:  # one response width for winners and losers, as PairSet has
             width = max(winner.shape[1], loser.shape[1])
@@ -115,5 +124,51 @@ class MappedPairs:
             n = (prompt != self.pad_id).sum(1)  # (B,)
             tokens = 2 * n + (winner != self.pad_id).sum(1) + (loser != self.pad_id).sum(1)  # (B,)
         weight = torch.as_tensor(rows["weight"], dtype=torch.float64) if self.weighted else None
-        return PairSet(prompt, winner, loser, torch.as_tensor(rows["reference_winner"], dtype=torch.float64),
-                       torch.as_tensor(rows["reference_loser"], dtype=torch.float64), weight, tokens)
+        ref_w, ref_l = self.reference_of(rows, prompt, winner, loser)
+        return PairSet(prompt, winner, loser, ref_w, ref_l, weight, tokens,
+                       *((t != self.pad_id).sum(1) if t.dim() == 2 else None for t in (winner, loser)))  # (B,)
+
+    def reference_of(self, rows: dict, prompt: Tensor, winner: Tensor, loser: Tensor) -> tuple[Tensor, Tensor]:
+        return (torch.as_tensor(rows["reference_winner"], dtype=torch.float64),
+                torch.as_tensor(rows["reference_loser"], dtype=torch.float64))
+
+
+class StreamedPairs(MappedPairs):
+    """Token pairs in a memory-mapped Arrow file (prompt, winner, loser, optional weight); each batch's
+    reference log-probs are computed when it is read, by the model given to :meth:`attach_reference`."""
+
+    required = ("prompt", "winner", "loser")
+
+    def __init__(self, path: str | Path, *, pad_id: int, digest: bytes, count_tokens: bool = True):
+        super().__init__(path, pad_id=pad_id, count_tokens=count_tokens)
+        self.digest = digest  # SHA-256 of the accepted pairs, from the streaming pass
+        self.reference = None
+
+    def attach_reference(self, model: torch.nn.Module) -> None:
+        self.reference = model.eval().requires_grad_(False)
+
+    def identity(self) -> tuple[Tensor, ...]:
+        """Tensors that pin these pairs for a checkpoint's fingerprint: the pass's digest and the reference's
+        weights (the in-memory path fingerprints the cached reference log-probs instead)."""
+        weights = tuple(self.reference.state_dict().values()) if self.reference is not None else ()
+        return (torch.frombuffer(bytearray(self.digest), dtype=torch.uint8), *weights)
+
+    def in_order(self, size: int) -> Iterable[PairSet]:
+        """Every pair, in file order, ``size`` at a time; read with plain reads, not through the memory map,
+        so a full pass leaves no file pages resident in this process."""
+        import pyarrow as pa
+
+        with pa.OSFile(str(self.path)) as source:
+            for batch in pa.ipc.open_stream(source):
+                for start in range(0, batch.num_rows, size):
+                    yield self.from_rows(batch.slice(start, size).to_pydict())
+
+    @torch.no_grad()
+    def reference_of(self, rows: dict, prompt: Tensor, winner: Tensor, loser: Tensor) -> tuple[Tensor, Tensor]:
+        from polopt.logprobs import batched_logprobs
+
+        if self.reference is None:
+            raise ValueError("streamed pairs need a reference model before a batch is read (attach_reference)")
+        both = batched_logprobs(self.reference, torch.cat([prompt, prompt]), torch.cat([winner, loser]),
+                                pad_id=self.pad_id, batch_size=2 * len(prompt))  # (2B,)
+        return both.chunk(2)

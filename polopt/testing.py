@@ -9,8 +9,10 @@
         assert_sound_loss(my_loss)
         assert_reaches_optimum(my_loss, noisy_labels(n_responses=4), beta=0.5, tol=1e-4)
 
-Both raise a plain ``AssertionError`` whose message says what was expected and what
-was reached, so pytest shows it as a test failure.
+Both take margin losses f(x) and pair objectives f(pair, beta) alike (a callable, a
+registered name or a dotted path; see :mod:`polopt.objectives`). Both raise a plain
+``AssertionError`` whose message says what was expected and what was reached, so pytest
+shows it as a test failure.
 """
 
 from __future__ import annotations

@@ -176,7 +176,8 @@ def _open_local(directory: Path):
         import transformers
     except ImportError:
         raise ValueError(f"tokenizer directory {str(directory)!r} needs the 'tokenizers' package (for a "
-                         "tokenizer.json) or 'transformers'; install the extra: pip install 'polopt[hf]'") from None
+                         "tokenizer.json) or 'transformers'; install the extra: "
+                         "pip install 'polopt[local-lm]'") from None
     return None, transformers.AutoTokenizer.from_pretrained(str(directory), local_files_only=True)
 
 

@@ -29,7 +29,7 @@ from pathlib import Path
 import torch
 from tqdm.auto import tqdm
 
-from polopt import distributed
+from polopt import distributed, objectives
 from polopt.batching import Batcher
 from polopt.checkpoint import restore_training_state, training_state
 from polopt.contracts import TrainResult
@@ -106,7 +106,8 @@ class StepLoss:
 class PairObjective:
     """The offline objective: a loss of the family on batches of ``pairs`` (full or drawn)."""
 
-    def __init__(self, policy: torch.nn.Module, pairs: PairSet, loss: Loss, settings: TrainSettings,
+    def __init__(self, policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairObjective,
+                 settings: TrainSettings,
                  context: distributed.Context = distributed.SINGLE):
         full = settings.batch_size is None or settings.batch_size >= len(pairs)
         if full and getattr(pairs, "streamed", False):
@@ -265,7 +266,7 @@ def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings) -> tupl
     else:
         out.objective.backward()
         clip = settings.optim.grad_clip if settings.optim.grad_clip else math.inf
-        grad_norm = float(torch.nn.utils.clip_grad_norm_(policy.parameters(), clip))
+        grad_norm = distributed.clip_grad_norm(policy, clip)
         if not math.isfinite(grad_norm):
             problem = f"the gradient norm is {grad_norm}"
     if problem is None:
@@ -305,11 +306,12 @@ def _record(step: int, lr: float, grad_norm: float, out: StepLoss, loop: _Loop, 
     return record
 
 
-def _checkpoint(step: int, policy, objective, loop: _Loop, save: Callable[[dict], object]) -> None:
+def _checkpoint(step: int, policy, objective, loop: _Loop, save: Callable[[dict], object], *,
+                sharded: bool = False) -> None:
     order, cursor = objective.position()
     save(training_state(step=step, policy=policy, optimiser=loop.optimiser, scheduler=loop.scheduler,
                         generator=loop.generator, order=order, cursor=cursor, history=loop.history,
-                        skipped=loop.skipped, seconds=time.perf_counter() - loop.start))
+                        skipped=loop.skipped, seconds=time.perf_counter() - loop.start, sharded=sharded))
 
 
 def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
@@ -326,6 +328,9 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
     ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
     """
     settings.check()
+    caller, policy = policy, distributed.shard_for(policy, context, settings.device)  # fsdp: a sharded copy
+    if policy is not caller:
+        objective.policy = policy
     loop = _begin(policy, objective, settings, resume)
     steps = settings.steps
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
@@ -339,7 +344,8 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
             if problem is not None:
                 _guard(step, problem, out, loop, settings, context)
             elif step % settings.log_every == 0 or step == steps or step == 1:  # 6 (a skipped step has no metrics)
-                record = _record(step, lr, grad_norm, out, loop, policy, objective, evaluate)
+                with distributed.gathered(policy, caller):  # evaluate reads the caller's policy
+                    record = _record(step, lr, grad_norm, out, loop, caller, objective, evaluate)
                 loop.history.append(record)
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")
@@ -350,16 +356,17 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
                 bar.set_postfix(postfix, refresh=False)
             if save_checkpoint is not None and (step == steps or settings.checkpoint_every
                                                 and step % settings.checkpoint_every == 0):  # 7
-                _checkpoint(step, policy, objective, loop, save_checkpoint)
+                _checkpoint(step, policy, objective, loop, save_checkpoint, sharded=context.sharded)
     finally:
         bar.close()
         if sink is not None:
             sink.close()
+    distributed.give_back(policy, caller)
     final = loop.history[-1] if loop.history else {}
     return TrainResult(steps, time.perf_counter() - loop.start, final, loop.history, loop.skipped)
 
 
-def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss, settings: TrainSettings, *,
+def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairObjective, settings: TrainSettings, *,
           evaluate: Callable[[torch.nn.Module], dict] | None = None, metrics_path: Path | None = None,
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
           context: distributed.Context = distributed.SINGLE) -> TrainResult:

@@ -6,12 +6,14 @@ pickle it by name.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import socket
 
+import numpy as np
 import torch
 
-from polopt import distributed, losses
+from polopt import distributed, objectives
 from polopt.optim import OptimConfig
 from polopt.train import TrainSettings, train
 from toy_tasks.families import bradley_terry
@@ -27,6 +29,10 @@ SETUPS = {
     # one pair's reference log-prob is NaN: the batches holding it are skipped on every rank alike
     "sampled-skip-nan": dict(mode="sampled", kind="tabular", batch_size=7, optim=OptimConfig("adam", 0.05),
                              nan_pair=5, on_nonfinite="skip"),
+    # a pair objective that reads the lengths (R-DPO), smoothed: each rank's shard carries its pairs' lengths
+    "pair-objective-lengths": dict(mode="sampled", kind="tabular", batch_size=7, optim=OptimConfig("adam", 0.05),
+                                   loss=("length_regularised", {"alpha": 0.3}), smoothing=0.1,
+                                   lengths=[1.0, 2.0, 3.0, 5.0, 8.0]),
 }
 STEPS = 40
 
@@ -40,8 +46,12 @@ def free_port() -> int:
 
 def session_and_policy(setup: str):
     s = SETUPS[setup]
-    loss = losses.get("logistic")
-    session = prepare(bradley_terry(n_responses=5, seed=3), loss, beta=0.5, mode=s["mode"], n_pairs=29, seed=1)
+    name, params = s.get("loss", ("logistic", {}))
+    loss = objectives.resolve(name, **params)
+    task = bradley_terry(n_responses=5, seed=3)
+    if "lengths" in s:
+        task = dataclasses.replace(task, lengths=np.array([s["lengths"]]))
+    session = prepare(task, loss, beta=0.5, mode=s["mode"], n_pairs=29, seed=1)
     return session, session.build_policy(kind=s["kind"], width=6, seed=2), loss
 
 
@@ -53,7 +63,8 @@ def run(setup: str, context: distributed.Context = distributed.SINGLE, *, steps:
         session.pairs.reference_winner[s["nan_pair"]] = float("nan")
     result = train(policy, session.pairs, loss,
                    TrainSettings(beta=0.5, steps=steps, optim=s["optim"], batch_size=s["batch_size"], seed=7,
-                                 log_every=5, progress=False, on_nonfinite=s.get("on_nonfinite", "stop")),
+                                 log_every=5, progress=False, on_nonfinite=s.get("on_nonfinite", "stop"),
+                                 smoothing=s.get("smoothing", 0.0)),
                    evaluate=session.evaluate, context=context, **kwargs)
     return policy, result
 

@@ -34,7 +34,7 @@ def _target_cases(marker: Path) -> dict[str, list[str]]:
 
 @pytest.mark.parametrize("where", ["top", "nested"])
 @pytest.mark.parametrize("command", ["train", "train -m", "export", "compare", "realign", "check", "demo",
-                                     "data", "sft"])
+                                     "data", "sft", "reward"])
 def test_every_command_refuses_a_target_outside_the_task_packages_and_creates_nothing(
         command, where, tmp_path, monkeypatch, capsys):
     work = tmp_path / "work"
@@ -51,7 +51,8 @@ def test_every_command_refuses_a_target_outside_the_task_packages_and_creates_no
             "check": ["check", "logistic", *keys, "--quick"],
             "demo": ["demo", *keys, "--quick", "--out", out],
             "data": ["data", *keys],
-            "sft": ["sft", *keys, "--out", str(work / "ref.pt")]}[command]
+            "sft": ["sft", *keys, "--out", str(work / "ref.pt")],
+            "reward": ["reward", *keys, "--out", out]}[command]
     assert main(argv) == 2
     line = _one_line(capsys)
     assert line.startswith(f"polopt {command.split()[0]}: error: ")
@@ -202,7 +203,7 @@ def test_a_file_system_error_is_one_line(tmp_path, capsys):
 
 def test_help_and_losses_import_no_torch():
     calls = [["--help"], ["losses"], ["train", "--help"], *[[c, "--help"] for c in (
-        "losses", "export", "data", "sft", "demo", "compare", "realign", "checkpoints", "check")]]
+        "losses", "export", "data", "sft", "demo", "compare", "realign", "checkpoints", "check", "reward")]]
     script = ("import contextlib, io, json, sys\nfrom polopt.commands.main import main\nseen = {}\n"
               f"for argv in {calls!r}:\n"
               "    with contextlib.redirect_stdout(io.StringIO()):\n"
@@ -226,6 +227,17 @@ def test_the_losses_catalogue_is_the_registry():
         loss = losses.get(name)
         _, e1, e2 = loss.derivatives_at(0.0)  # autograd, float64
         assert (d1, d2) == pytest.approx((e1, e2), abs=1e-12) and (convex, source) == (loss.convex, loss.source)
+    import inspect
+
+    from polopt import objectives
+    from polopt.commands.losses import PAIR_CATALOGUE
+
+    registry = []
+    for name in objectives.names():
+        objective = objectives.resolve(name)
+        keys = {k: p.default for k, p in inspect.signature(objective.fn).parameters.items() if p.kind is p.KEYWORD_ONLY}
+        registry.append((name, ", ".join(f"{k}={v}" for k, v in keys.items()) or "-", objective.source))
+    assert PAIR_CATALOGUE == registry
 
 
 def test_check_prints_a_progress_line_per_check_with_its_time(capsys):

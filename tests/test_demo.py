@@ -27,8 +27,8 @@ def test_summary_fields_of_the_design(quick):
     assert json.loads((out / "summary.json").read_text()) == json.loads(json.dumps(summary))
     lo, hi = summary["win_rate_ci"]
     assert 0.0 <= lo <= summary["win_rate"] <= hi <= 1.0
-    assert 0.0 <= summary["judge_win_rate_raw"] <= 1.0 and 0.0 <= summary["judge_win_rate_swapped"] <= 1.0
-    assert summary["wins"] + summary["losses"] + summary["ties"] == summary["comparisons"] == QUICK["eval_samples"]
+    assert 0.0 <= summary["judge_win_rate_policy_first"] <= 1.0 and 0.0 <= summary["judge_win_rate_both_orders"] <= 1.0
+    assert summary["wins"] + summary["defeats"] + summary["ties"] == summary["comparisons"] == QUICK["eval_samples"]
     assert isinstance(summary["kl_to_reference"], float) and summary["loss_name"] == "squared"
     assert [e["beta"] for e in summary["frontier"]] == sorted(QUICK["betas"])
 

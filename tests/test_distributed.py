@@ -176,3 +176,13 @@ def test_torchrun_matches_one_process_and_its_checkpoint_resumes_on_one(tmp_path
     assert [json.loads(line)["step"] for line in (resumed / "metrics.jsonl").read_text().splitlines()] == \
         [1, 4, 8, 12]
 
+
+
+def test_torchrun_trains_a_pair_objective_as_one_process_does(tmp_path):
+    """SimPO (reference-free, per-token lengths of the sampled token pairs) under torchrun: each rank
+    scores its shard with the shard's own lengths, and the run ends where the one-process run does."""
+    extra = ("loss=length_normalised_free", "train.checkpoint_every=0")
+    two = polopt_train(tmp_path / "two", 2, *extra)
+    one = polopt_train(tmp_path / "one", 1, *extra)
+    assert two["loss_name"] == one["loss_name"] == "length_normalised_free"
+    assert_close_runs(two, one)

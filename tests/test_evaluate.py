@@ -36,7 +36,7 @@ def test_ground_truth_counts_ties_apart():
     reward = {"good": 2.0, "ok": 1.0, "bad": 0.0}
     out = ground_truth_win_rate(lambda x, y: reward[y], ["p"] * 5, ["good", "good", "ok", "bad", "ok"],
                                 ["bad", "ok", "ok", "good", "bad"])
-    assert (out["wins"], out["losses"], out["ties"]) == (3, 1, 1)
+    assert (out["wins"], out["defeats"], out["ties"]) == (3, 1, 1)
     assert out["win_rate"] == 0.75 and out["win_rate_ci"] == pytest.approx(wilson(3, 4))
     assert out["win_rate_ties_half"] == pytest.approx(3.5 / 5)
 
@@ -68,8 +68,8 @@ def test_swapping_removes_the_bias_for_identical_policies():
     judge = PositionBiasedJudge(SCENARIO, bias=0.4)
     replies = _replies(60, seed=1)
     rates = judged_win_rates(judge.prefers_first, [PROMPT.text] * 60, replies, replies[::-1])
-    assert rates["judge_win_rate_swapped"] == pytest.approx(0.5, abs=1e-12)
-    assert rates["judge_win_rate_raw"] == pytest.approx(0.5 + 0.4 / 2, abs=1e-12)
+    assert rates["judge_win_rate_both_orders"] == pytest.approx(0.5, abs=1e-12)
+    assert rates["judge_win_rate_policy_first"] == pytest.approx(0.5 + 0.4 / 2, abs=1e-12)
 
 
 def test_swapped_rate_does_not_depend_on_the_bias():
@@ -81,7 +81,7 @@ def test_swapped_rate_does_not_depend_on_the_bias():
         rates = judged_win_rates(judge.prefers_first, prompts, policy, reference)
         r = SCENARIO.reward
         d = [r(PROMPT.text, a) - r(PROMPT.text, b) for a, b in zip(policy, reference, strict=True)]
-        assert rates["judge_win_rate_swapped"] == pytest.approx(
+        assert rates["judge_win_rate_both_orders"] == pytest.approx(
             sum(0.5 + (1 - bias) * (sigmoid(x) - 0.5) for x in d) / 40, abs=1e-12)
 
 
@@ -91,8 +91,8 @@ def test_drawn_votes_agree_with_the_probabilities():
     rates = judged_win_rates(judge.prefers_first, [PROMPT.text] * 4000, replies, replies[::-1],
                              rng=random.Random(0))
     # 4000 Bernoulli votes around 0.65: 4 standard errors is about 0.03 (seeded, so deterministic)
-    assert rates["judge_win_rate_raw"] == pytest.approx(0.65, abs=4 * math.sqrt(0.65 * 0.35 / 4000))
-    assert rates["judge_win_rate_swapped"] == pytest.approx(0.5, abs=0.03)
+    assert rates["judge_win_rate_policy_first"] == pytest.approx(0.65, abs=4 * math.sqrt(0.65 * 0.35 / 4000))
+    assert rates["judge_win_rate_both_orders"] == pytest.approx(0.5, abs=0.03)
 
 
 def test_reward_of_the_scenario():

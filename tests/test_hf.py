@@ -1,4 +1,4 @@
-"""The ``hf`` extra: a local transformers causal LM as policy and reference (polopt/hf.py).
+"""The ``local-lm`` extra (``model=local_lm``): a local transformers causal LM as policy and reference (polopt/hf.py).
 
 Every model here is a tiny randomly initialised GPT-2 (1 layer, 2 heads, width 32) that
 the test builds and saves into a temporary folder, with a word-level tokenizer built by
@@ -108,10 +108,10 @@ def test_a_pairs_file_trains_a_few_steps(model_dir, tmp_path):
 
 
 def test_the_sequence_task_takes_a_causal_lm(tmp_path):
-    """``task=sequence model=hf``: the sequence-level policy is a distribution over the enumerated
+    """``task=sequence model=local_lm``: the sequence-level policy is a distribution over the enumerated
     responses (sums to 1 per prompt: the output restriction to the task's tokens) and training runs."""
     model_dir = save_tiny_model(tmp_path / "seq-lm", vocab_size=8, tokenizer=False)  # task vocab: 2 + 1 + 2 + 1
-    overrides = ["+experiment=sequence", "model=hf", f"model.path={model_dir}", "task.n_symbols=2",
+    overrides = ["+experiment=sequence", "model=local_lm", f"model.path={model_dir}", "task.n_symbols=2",
                  "task.max_length=3", "task.reference_width=16", "task.reference_layers=1", "train.steps=5",
                  "train.log_every=5", "train.progress=false", "optim.warmup_steps=0"]
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
@@ -134,6 +134,6 @@ def test_errors_name_the_field(tmp_path):
     with pytest.raises(ValueError, match=r"the model holds 32 positions but this task needs 40"):
         hf.causal_lm_policy(small, context_needed=40)
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
-        cfg = compose("config", overrides=["+experiment=sequence", "model=hf"])
-    with pytest.raises(ValueError, match=r"model=hf needs model.path=DIR"):
+        cfg = compose("config", overrides=["+experiment=sequence", "model=local_lm"])
+    with pytest.raises(ValueError, match=r"model=local_lm needs model.path=DIR"):
         run(cfg, tmp_path / "run")

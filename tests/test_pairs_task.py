@@ -105,19 +105,20 @@ def test_policy_starts_at_the_sft_reference(pair_file, reference_checkpoint, tmp
     # at step 1 the policy is the reference, so every margin is 0 up to float rounding
     # (rho = 0 when pi = pi_ref: Rafailov et al. 2023, eq. 7)
     path, _ = pair_file
-    summary = run(_cfg(f"task.path={path}", "task.max_length=40", f"task.reference={reference_checkpoint}",
+    summary = run(_cfg(f"task.path={path}", "task.max_length=40", f"task.reference_checkpoint={reference_checkpoint}",
                        "model.width=32"), tmp_path)
     first = json.loads((tmp_path / "metrics.jsonl").read_text().splitlines()[0])
     assert abs(first["margin_mean"]) < 1e-4 and abs(first["logratio_winner"]) < 1e-4
     assert first["loss"] == pytest.approx(torch.nn.functional.softplus(torch.tensor(0.0)).item(), abs=1e-4)
-    assert summary["reference"] == str(reference_checkpoint)
+    assert summary["reference_checkpoint"] == str(reference_checkpoint)
     assert any("reference's architecture" in n for n in summary["notes"])  # model.width=32 was not used
 
 
 @pytest.mark.parametrize(("overrides", "message"), [
     (["task.mode=exact"], r"task.mode must be sampled for task=pairs"),
     (["model.context=8"], r"model.context must be at least \d+ for this file"),
-    (["task.reference=/nonexistent/ref.pt"], r"task.reference must be a reference checkpoint written by polopt sft"),
+    (["task.reference_checkpoint=/nonexistent/ref.pt"],
+     r"task.reference_checkpoint must be a reference checkpoint written by polopt sft"),
     (["model.kind=bigram"], r"task=pairs trains model=transformer, got model.kind='bigram'"),
 ])
 def test_errors_name_the_field(pair_file, tmp_path, overrides, message):
@@ -129,8 +130,8 @@ def test_errors_name_the_field(pair_file, tmp_path, overrides, message):
 def test_a_reference_too_short_for_the_file(reference_checkpoint, tmp_path):
     path = tmp_path / "long.jsonl"
     path.write_text(json.dumps({"prompt": "q", "winner": "y" * 80, "loser": "n"}) + "\n", encoding="utf-8")
-    with pytest.raises(ValueError, match=r"task.reference has context 48 but the longest pair needs 82"):
-        run(_cfg(f"task.path={path}", f"task.reference={reference_checkpoint}"), tmp_path / "run")
+    with pytest.raises(ValueError, match=r"task.reference_checkpoint has context 48 but the longest pair needs 82"):
+        run(_cfg(f"task.path={path}", f"task.reference_checkpoint={reference_checkpoint}"), tmp_path / "run")
 
 
 def test_the_pairs_experiment_composes():

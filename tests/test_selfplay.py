@@ -11,10 +11,13 @@ reference is not the equilibrium.
 
 import numpy as np
 import pytest
+import scipy.special
 import torch
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.commands.train import CONFIG_DIR, run
+from polopt.methods.selfplay import best_response_divergence, selfplay_objective
 from toy_tasks.equilibrium import nash_equilibrium, tau_of_beta
 from toy_tasks.families import bradley_terry, nontransitive
 from toy_tasks.finite import make_task
@@ -76,9 +79,47 @@ def test_offline_squared_and_selfplay_end_at_different_policies_on_a_nontransiti
     assert any("Nash equilibrium" in note for note in selfplay["notes"])
 
 
-def test_an_unconverged_run_says_so(tmp_path):
+def test_an_unconverged_gradient_run_says_so(tmp_path):
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         summary = run(compose("config", overrides=["task=nontransitive", "beta=0.05", "task.seed=5", "train.steps=50",
-                                                   "method=selfplay", "train.progress=false"]), tmp_path)
-    assert summary["tv_to_optimum"] > 1e-3
-    assert any(note.startswith("self-play has not converged (TV > 1e-3)") for note in summary["notes"])
+                                                   "method=selfplay", "method.update=gradient",
+                                                   "train.progress=false"]), tmp_path)
+    assert summary["tv_to_optimum"] > 1e-3 and summary["reached_optimum"] is False
+    assert any(note.startswith("gradient self-play has not converged (TV > 1e-3)") for note in summary["notes"])
+
+
+def test_gradient_selfplay_still_reaches_the_equilibrium_at_moderate_beta(run_method):
+    task = nontransitive()
+    _, policy, _ = run_method(task, "selfplay", beta=0.5, steps=1000, update="gradient")
+    assert tv(trained(policy), equilibrium(task, 0.5)) < 1e-3
+
+
+def test_the_best_response_divergence_is_tau_times_the_jeffreys_divergence_and_zero_at_the_equilibrium():
+    """D(pi) = tau (KL(pi || BR) + KL(BR || pi)), BR(pi) ∝ pi_ref exp(P pi / tau) (Munos et al. 2023),
+    here against scipy's rel_entr; zero at the equilibrium of toy_tasks.equilibrium."""
+    task, beta = nontransitive(seed=3), 0.2
+    tau = tau_of_beta(beta)
+    reference, preference = torch.as_tensor(np.log(task.reference)), torch.as_tensor(task.preference)
+    pi = task.reference
+    best = scipy.special.softmax(np.log(task.reference) + np.einsum("xij,xj->xi", task.preference, pi) / tau, axis=1)
+    expected = tau * (scipy.special.rel_entr(pi, best) + scipy.special.rel_entr(best, pi)).sum(1)
+    got = best_response_divergence(reference, reference, preference, tau=tau).numpy()
+    np.testing.assert_allclose(got, expected, rtol=1e-10)
+    assert got[0] > 1e-3
+    at_equilibrium = torch.as_tensor(np.log(equilibrium(task, beta)))
+    assert float(best_response_divergence(at_equilibrium, reference, preference, tau=tau)[0]) < 1e-20
+
+
+@pytest.mark.parametrize("keys, message", [
+    ({"update": "fixed_point", "estimator": "sampled"}, r"method.update=fixed_point needs method.estimator=exact"),
+    ({"update": "fixed_point", "loss": "hinge"}, r"method.update=fixed_point solves the squared loss's game .* "
+                                                 r"got method.loss=hinge"),
+    ({"update": "newton"}, r"method.update must be one of fixed_point, gradient or null, got 'newton'"),
+])
+def test_update_errors_name_the_key(keys, message):
+    task = nontransitive()
+    session = task.prepare(losses.get("squared"), beta=0.5)
+    env = session.for_method("selfplay").environment()
+    with pytest.raises(ValueError, match=message):
+        selfplay_objective(session.build_policy("tabular"), env, losses.get(keys.pop("loss", "squared")), beta=0.5,
+                           **keys)

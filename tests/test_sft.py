@@ -90,7 +90,7 @@ def test_polopt_sft_command(tmp_path, capsys):
     code = main(["sft", str(data), "--out", str(out), "train.steps=3", "model.width=16", "model.layers=1",
                  "model.heads=2", "train.progress=false"])
     assert code == 0 and out.is_file()
-    assert f"use it as task.reference={out}" in capsys.readouterr().out
+    assert f"use it as task.reference_checkpoint={out}" in capsys.readouterr().out
     assert load_reference(out)[1]["architecture"]["context"] == len("wind 12 knots") + 1  # bos + text + eos - 1
 
 

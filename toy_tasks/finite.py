@@ -21,7 +21,8 @@ diagonal, so the optima are the same.
 The JSON file (``task=file task.path=...``) holds one prompt at the top level::
 
     {"responses": [...], "reference": [...], "sampling": [...],
-     "preference": [[...], ...]  or  "rewards": [...]}
+     "preference": [[...], ...]  or  "rewards": [...],
+     "lengths": [n_0, ...]}            # optional: tokens per response, default 1 each
 
 or several under ``"prompts": [{"prompt": "...", "weight": 1.0, ...same keys...}, ...]``.
 """
@@ -35,7 +36,7 @@ from pathlib import Path
 import numpy as np
 import scipy.special
 
-from toy_tasks import session
+from toy_tasks import reward_fit, session
 from toy_tasks.measures import kl_divergence
 
 PROBABILITY_TOLERANCE = 1e-6
@@ -63,6 +64,8 @@ class FiniteTask:
         preference: (X, K, K) P with P + P^T = 1.
         prompt_weights: (X,) sums to 1.
         rewards: (X, K) Bradley–Terry rewards, or None.
+        lengths: (X, K) response lengths in tokens (positive integers, stored as float64);
+            1 for every response of a task given without lengths.
         responses: K response labels; prompts: X prompt labels.
     """
 
@@ -75,6 +78,11 @@ class FiniteTask:
     prompts: list[str] = field(default_factory=list)
     name: str = "finite"
     description: str = ""
+    lengths: np.ndarray | None = None
+
+    def __post_init__(self):
+        if self.lengths is None:  # frozen: set the default through object.__setattr__
+            object.__setattr__(self, "lengths", np.ones_like(self.reference))
 
     @property
     def n_prompts(self) -> int:
@@ -135,6 +143,12 @@ class FiniteTask:
         trainer's view of this task (see :mod:`toy_tasks.session`)."""
         return session.prepare(self, loss, **kwargs)
 
+    def fit_reward(self, **kwargs):
+        """``polopt reward``: a Bradley–Terry reward table fitted to this task's pairs
+        (see :mod:`toy_tasks.reward_fit`)."""
+        table_keys = {k: v for k, v in kwargs.items() if k not in ("model", "steps", "lr")}  # no network to train
+        return reward_fit.fit_task_reward(self, **table_keys)
+
     # ------------------------------------------------------------------ files
 
     def to_dict(self) -> dict:
@@ -152,6 +166,7 @@ class FiniteTask:
                 entry["rewards"] = self.rewards[x].tolist()
             else:
                 entry["preference"] = self.preference[x].tolist()
+            entry["lengths"] = [int(n) for n in self.lengths[x]]
             entries.append(entry)
         if self.n_prompts == 1:
             out = entries[0]
@@ -181,13 +196,14 @@ def bradley_terry_preference(rewards: np.ndarray) -> np.ndarray:
 
 
 def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt_weights=None,
-              responses=None, prompts=None, name: str = "finite", description: str = "",
+              responses=None, prompts=None, lengths=None, name: str = "finite", description: str = "",
               where: str = "task") -> FiniteTask:
     """Build and validate a :class:`FiniteTask` from nested lists or arrays.
 
     ``reference`` is (K,) for one prompt or (X, K); ``preference`` (K, K) or
     (X, K, K); give ``rewards`` instead of ``preference`` for Bradley–Terry.
-    ``sampling`` defaults to the reference. Every problem raises a ValueError
+    ``sampling`` defaults to the reference; ``lengths`` (K,) or (X, K) tokens per
+    response default to 1. Every problem raises a ValueError
     naming the field (prefixed by ``where``) and what to do.
     """
     ref = _as_array(reference, "reference", where)
@@ -249,7 +265,52 @@ def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt
     if labels and len(labels) != k:
         raise ValueError(f"{where}: field 'responses' has {len(labels)} labels but 'reference' has {k} entries")
     prompt_labels = list(prompts) if prompts is not None else []
-    return FiniteTask(ref, mu, pref, weights, r, labels, prompt_labels, name, description)
+    n_tokens = np.ones_like(ref) if lengths is None else _check_lengths(lengths, (n_prompts, k), single, where)
+    return FiniteTask(ref, mu, pref, weights, r, labels, prompt_labels, name, description, n_tokens)
+
+
+def _check_lengths(lengths, shape: tuple[int, int], single: bool, where: str) -> np.ndarray:
+    """Response lengths as an (X, K) float64 array of positive integers, or a one-line ValueError."""
+    shown = str(lengths)[:60]
+    fix = "give one positive whole number of tokens per response, or leave 'lengths' out (1 each)"
+    label = "lengths" if single else "prompts[x].lengths"
+    if not _only_numbers(lengths) or not _integral(lengths):
+        raise ValueError(f"{where}: field '{label}' must hold whole numbers of tokens, got {shown!r}; {fix}")
+    if not single and isinstance(lengths, (list, tuple)) and len(lengths) == shape[0]:
+        for x, row in enumerate(lengths):  # name the prompt whose list has the wrong size
+            if isinstance(row, (list, tuple)) and len(row) != shape[1]:
+                raise ValueError(f"{where}: field 'prompts[{x}].lengths' must have {shape[1]} entries, one per "
+                                 f"response of 'reference', got {len(row)}: {str(row)[:60]!r}; {fix}")
+    try:
+        arr = np.asarray(lengths, dtype=np.float64)
+    except (TypeError, ValueError, OverflowError) as err:
+        raise ValueError(f"{where}: field '{label}' must be a regular list of whole numbers, got {shown!r}; "
+                         f"{fix}") from err
+    if single and arr.ndim == 1:
+        arr = arr[None]
+    if arr.shape != shape:
+        want = shape[1] if single else f"{shape[0]} lists of {shape[1]}"
+        got = arr.shape[-1] if single and arr.ndim == 2 else arr.shape
+        raise ValueError(f"{where}: field '{label}' must have {want} entries, one per response of 'reference', "
+                         f"got {got}: {shown!r}; {fix}")
+    if not np.all(arr >= 1):
+        x, i = np.argwhere(~(arr >= 1))[0]
+        label = "lengths" if single else f"prompts[{x}].lengths"
+        raise ValueError(f"{where}: field '{label}' entry {i} is {arr[x, i]:g}; every length must be a positive "
+                         f"whole number of tokens (>= 1); {fix}")
+    return arr
+
+
+def _integral(value) -> bool:
+    """Whether every number in (nested lists of) ``value`` is a whole number (3 or 3.0, not 2.5)."""
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, (list, tuple, np.ndarray)):
+            stack.extend(item)
+        elif not float(item).is_integer():  # NaN and infinities are not whole numbers either
+            return False
+    return True
 
 
 def _only_numbers(value) -> bool:
@@ -329,7 +390,7 @@ def load_task(path: str | Path) -> FiniteTask:
     return task_from_dict(data, where=where, name=path.stem)
 
 
-_ENTRY_FIELDS = {"prompt", "responses", "reference", "sampling", "preference", "rewards", "weight"}
+_ENTRY_FIELDS = {"prompt", "responses", "reference", "sampling", "preference", "rewards", "weight", "lengths"}
 
 
 def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> FiniteTask:
@@ -363,6 +424,10 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
     sampling = None
     if any("sampling" in e for e in entries):
         sampling = [e.get("sampling", e["reference"]) for e in entries] if len(entries) > 1 else entries[0]["sampling"]
+    tokens = None
+    if any("lengths" in e for e in entries):
+        tokens = [e.get("lengths", [1] * len(e["reference"])) for e in entries] if len(entries) > 1 \
+            else entries[0]["lengths"]
     responses = entries[0].get("responses")
     weights = [e.get("weight", 1.0) for e in entries] if len(entries) > 1 else None
     prompts = [e.get("prompt", f"prompt {x}") for x, e in enumerate(entries)] if len(entries) > 1 else None
@@ -370,6 +435,6 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
         stack("reference"),
         stack("preference") if has_pref[0] else None,
         rewards=stack("rewards") if has_rewards[0] else None,
-        sampling=sampling, prompt_weights=weights, responses=responses, prompts=prompts,
+        sampling=sampling, prompt_weights=weights, responses=responses, prompts=prompts, lengths=tokens,
         name=name, description=description, where=where,
     )

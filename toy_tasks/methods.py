@@ -18,7 +18,10 @@ Every summary also carries the fields ``polopt compare`` tabulates:
 
 Rewards (``method.reward``): ``task`` uses the task's Bradley–Terry rewards;
 ``win_rate`` uses r(y) = P(y > mu), the win rate against the sampling
-distribution, which every task has.
+distribution, which every task has; a path is a reward model file written by
+``polopt reward`` for this task: the method optimises that learned reward, its
+exact target is computed from it, and the summary adds the learned and the true
+reward of the result, the target and the reference (:mod:`toy_tasks.reward_fit`).
 """
 
 from __future__ import annotations
@@ -33,9 +36,11 @@ from polopt.contracts import TrainResult
 from polopt.methods import METHODS
 from polopt.methods.environment import FiniteEnvironment
 from polopt.realign import equivalent_beta, realign
+from polopt.verdict import REACHED_TOLERANCE, verdict_fields
 from toy_tasks.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
 from toy_tasks.measures import per_prompt, total_variation
+from toy_tasks.reward_fit import learned_reward_fields, learned_rewards
 from toy_tasks.solve import solve
 from toy_tasks.tables import method_footer, policy_rows
 
@@ -48,7 +53,10 @@ def task_rewards(task, kind: str = "task") -> np.ndarray | None:
         return task.rewards
     if kind == "win_rate":
         return np.einsum("xij,xj->xi", task.preference, task.sampling)  # P(y > mu)
-    raise ValueError(f"method.reward must be one of {', '.join(REWARDS)}, got {kind!r}")
+    if isinstance(kind, str) and kind:  # a reward model file from polopt reward
+        return learned_rewards(task, kind)
+    raise ValueError(f"method.reward must be one of {', '.join(REWARDS)} or a reward model file from polopt reward, "
+                     f"got {kind!r}")
 
 
 def kl_optimum(reference: np.ndarray, rewards: np.ndarray, beta: float) -> np.ndarray:
@@ -208,11 +216,12 @@ class MethodView:
                 f"the Nash equilibrium of the regularised preference game (tau = beta / 2 = {self.equilibrium.tau:g})"
                 f" is {self._format(self.equilibrium.policy)}; self-play ends at TV "
                 f"{summary['tv_to_equilibrium']:.2g} from it")
-            if self.target is not None and summary["tv_to_optimum"] > 1e-3:
+            if self.target is not None and summary["tv_to_optimum"] > 1e-3 and self.method.get("update") == "gradient":
                 summary["notes"].append(
-                    "self-play has not converged (TV > 1e-3): at small beta the game's cyclic part dominates "
-                    "its regularisation and gradient steps circle the equilibrium; lower optim.lr (roughly in "
-                    "proportion to beta) and raise train.steps")
+                    "gradient self-play has not converged (TV > 1e-3): at small beta the game's cyclic part "
+                    "dominates its regularisation and gradient steps circle the equilibrium; the default "
+                    "method.update=fixed_point does not (or lower optim.lr roughly in proportion to beta and raise "
+                    "train.steps)")
         elif name == "best_of_n":
             n = self.method.get("n", 4)
             kl_bon = scipy.special.rel_entr(self.target, pi).sum(1)
@@ -223,6 +232,14 @@ class MethodView:
             summary["notes"].append(
                 f"KL(best-of-{n} || reference) = {summary['best_of_n_kl_to_reference']:.4g} exactly; "
                 f"log n - (n-1)/n = {kl_formula(n):.4g} is an upper bound on a finite set (Beirami et al. 2024)")
+        if self.method.get("reward", "task") not in REWARDS:  # optimised against a learned reward
+            summary.update(learned_reward_fields(pi, self.target, self.rewards, task, self.method["reward"]))
+            summary["notes"].append(
+                f"optimised against the learned reward of {self.method['reward']}: learned_reward "
+                f"{summary['learned_reward']:.4f}, true_reward {summary['true_reward']:.4f} (the reference scores 0 "
+                "under both: reference-weighted mean zero)")
+        summary.update(verdict_fields(summary, result.history,
+                                      tolerance=getattr(self.session, "tolerance", REACHED_TOLERANCE)))
         return summary
 
     def _format(self, p: np.ndarray) -> str:

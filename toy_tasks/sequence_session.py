@@ -27,11 +27,12 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from polopt.logprobs import real_tokens
+from polopt.logprobs import lengths, real_tokens
 from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
 from polopt.pair_set import PairSet, score_pairs
 from polopt.reference_cache import FILE_NAME, reference_logprobs
+from polopt.verdict import SEQUENCE_MODEL_TOLERANCE
 from toy_tasks.sequence_methods import SequenceMethodView
 from toy_tasks.sequence_policy import EnumeratedSequencePolicy
 from toy_tasks.session import FiniteSession
@@ -58,13 +59,15 @@ class SequenceSession:
                      context: int = 16, seed: int = 0, init: str = "reference",
                      path: str | None = None) -> torch.nn.Module:
         """A sequence model over the task's vocabulary, wrapped to score enumerated responses
-        (``kind="hf"``: the transformers causal LM saved in ``path``, at its own weights)."""
-        if kind == "hf":
+        (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights)."""
+        if kind == "local_lm":
             from polopt.hf import causal_lm_policy  # the optional extra: imported only when asked for
 
             lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
                                   vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
             return EnumeratedSequencePolicy(lm.model, self.task)
+        if kind not in ("tabular", "loglinear"):  # a sequence model fits the enumerated distribution approximately
+            self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE
         if kind in ("tabular", "loglinear"):
             if self.finite.mode != "exact":
                 raise ValueError(f"model={kind} scores enumerated responses, not tokens: on task=sequence it "
@@ -142,7 +145,8 @@ def token_pairs(task, index_pairs: PairSet, *, cache: Path | None) -> tuple[Pair
     ref_w, ref_l = score_pairs(reference_pass, prompt, winner, loser)
     pad = task.vocab.pad_id
     tokens = real_tokens(prompt, winner, pad_id=pad) + real_tokens(prompt, loser, pad_id=pad)  # (N,)
-    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens), reused[0]
+    return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens,
+                   len_winner=lengths(winner, pad_id=pad), len_loser=lengths(loser, pad_id=pad)), reused[0]
 
 
 def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",

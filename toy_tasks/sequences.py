@@ -40,7 +40,7 @@ import torch
 
 from polopt.logprobs import batched_logprobs
 from polopt.models import TinyTransformer
-from toy_tasks import sequence_session
+from toy_tasks import sequence_reward, sequence_session
 from toy_tasks.finite import FiniteTask, make_task
 
 PREFERENCES = ("bradley_terry", "nontransitive")
@@ -194,7 +194,14 @@ class SequenceTask:
                        f"per response, {self.n_responses} responses per prompt, {kind}")
         preference = None if self.rewards is not None else self.cyclic_preference()
         return make_task(reference, preference, rewards=self.rewards, responses=labels, prompts=prompts,
+                         lengths=np.broadcast_to(self.token_counts, (self.n_prompts, self.n_responses)),
                          name="sequence", description=description)
+
+    @property
+    def token_counts(self) -> np.ndarray:
+        """Tokens the model generates for each enumerated response, (K,): its symbols plus the end
+        token (a response of ``max_length`` symbols stops without one)."""
+        return np.array([len(r) for r in self.responses], dtype=np.float64)
 
     def finite_task(self) -> FiniteTask:
         return self.finite
@@ -202,6 +209,10 @@ class SequenceTask:
     def save(self, path: str | Path) -> Path:
         """Write the enumerated finite task as a task file (``polopt export sequence OUT.json``)."""
         return self.finite.save(path)
+
+    def fit_reward(self, **kwargs):
+        """``polopt reward``: a scalar head on the tiny transformer (see :mod:`toy_tasks.sequence_reward`)."""
+        return sequence_reward.fit_sequence_reward(self, **kwargs)
 
     def prepare(self, loss, **kwargs):
         """The trainer's view of this task (see :mod:`toy_tasks.sequence_session`)."""

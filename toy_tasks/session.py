@@ -1,7 +1,7 @@
 """A finite task prepared for one training run: pairs, optimum, metrics, summary.
 
 This is the finite tasks' side of the trainer's interface (see
-:mod:`polopt.train`): :func:`prepare` turns a task, a loss and beta into the
+:class:`polopt.contracts.Session`): :func:`prepare` turns a task, a loss and beta into the
 :class:`polopt.pair_set.PairSet` to train on (``exact``: every ordered pair with
 its win weight; ``sampled``: a seeded sample of labelled pairs), solves the
 exact optimum of that very objective once, and then measures a policy against
@@ -19,9 +19,12 @@ from polopt.contracts import TrainResult
 from polopt.losses import Loss
 from polopt.pair_set import PairSet
 from polopt.policies import build_policy
+from polopt.verdict import REACHED_TOLERANCE, verdict_fields
 from toy_tasks.measures import displacement_warning, loss_gaps, margin_growth, per_prompt, total_variation
 from toy_tasks.methods import MethodView
-from toy_tasks.solve import Optimum, population_loss, smoothed_weights, solve
+from toy_tasks.optimum_traits import traits
+from toy_tasks.pair_solve import exact_optimum, objective_value
+from toy_tasks.solve import Optimum, smoothed_weights
 from toy_tasks.tables import policy_rows
 
 MODES = ("exact", "sampled")
@@ -41,6 +44,7 @@ class FiniteSession:
     optimum: Optimum  # of the trained objective
     population_optimum: Optimum  # of the population objective (the same object in exact mode)
     threads: int = 1  # the run's torch thread count unless the config sets `threads`
+    tolerance: float = REACHED_TOLERANCE  # TV within which reached_optimum is true (a sequence model's is wider)
 
     # ------------------------------------------------------------ model
 
@@ -82,7 +86,7 @@ class FiniteSession:
         """The finite-task fields of summary.json (DESIGN.md's contract, plus diagnostics)."""
         h = self.logratios(policy)
         pi = self.task.policy_from_logratios(h)
-        value = population_loss(self.loss, self.weights, h, beta=self.beta)
+        value = self.objective_value(self.weights, h)
         opt = self.optimum
         gap, relative = loss_gaps(value, opt.value)
         summary = {
@@ -111,9 +115,11 @@ class FiniteSession:
             "seconds": result.seconds,
             "notes": list(opt.notes),
         }
+        summary.update(traits(self.task, self.weights, opt.logratios if opt.finite else None))
+        summary.update(verdict_fields(summary, result.history, tolerance=self.tolerance))
         if self.mode == "sampled":
             pop = self.population_optimum
-            pop_value = population_loss(self.loss, self.population_weights, h, beta=self.beta)
+            pop_value = self.objective_value(self.population_weights, h)
             summary.update({
                 "population_loss": pop_value,
                 "population_optimum": per_prompt(self.task.policy_from_logratios(pop.aligned_to(h)))
@@ -141,6 +147,10 @@ class FiniteSession:
             summary["notes"].append(displacement)
         return summary
 
+    def objective_value(self, weights: np.ndarray, h: np.ndarray) -> float:
+        """The population loss of the trained objective (margin loss or pair objective) at log-ratios h."""
+        return objective_value(self.loss, weights, h, self.task.reference, self.task.lengths, beta=self.beta)
+
     def table(self, summary: dict) -> str:
         """The trained policy beside the reference and the exact optimum, as text."""
         lines = []
@@ -162,6 +172,19 @@ class FiniteSession:
         return "\n".join(lines)
 
 
+def pair_lengths(task, x: np.ndarray, i: np.ndarray, j: np.ndarray):
+    """The lengths (N,) of the winners ``i`` and losers ``j`` of prompts ``x`` from the task's
+    ``lengths`` (X, K); (None, None) where the task has none or every length is 1 (pair objectives
+    then read 1, and the checkpoints' fingerprints stay those of tasks without lengths)."""
+    lengths = getattr(task, "lengths", None)
+    if lengths is None:
+        return None, None
+    lengths = np.broadcast_to(np.asarray(lengths, dtype=np.float64), task.reference.shape)  # (X, K)
+    if np.all(lengths == 1.0):
+        return None, None
+    return torch.as_tensor(lengths[x, i], dtype=DTYPE), torch.as_tensor(lengths[x, j], dtype=DTYPE)
+
+
 def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
             n_pairs: int = 2000, seed: int = 0, run_dir=None) -> FiniteSession:
     """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``. ``run_dir`` is
@@ -179,17 +202,18 @@ def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str 
         weights = task.empirical_win_weights(sample)
         pair_weight = None
     log_ref = np.log(task.reference)
+    len_w, len_l = pair_lengths(task, x, i, j)
     pairs = PairSet(
         prompt=torch.as_tensor(x, dtype=torch.long), winner=torch.as_tensor(i, dtype=torch.long),
         loser=torch.as_tensor(j, dtype=torch.long),
         reference_winner=torch.as_tensor(log_ref[x, i], dtype=DTYPE),  # cached once, never recomputed
         reference_loser=torch.as_tensor(log_ref[x, j], dtype=DTYPE),
-        weight=pair_weight,
+        weight=pair_weight, len_winner=len_w, len_loser=len_l,
     )
     closed_ok = smoothing == 0.0
     trained = smoothed_weights(weights, smoothing)
     pop = smoothed_weights(population, smoothing)
-    extras = dict(rewards=task.rewards, sampling=task.sampling, preference=task.preference)
-    optimum = solve(loss, trained, beta=beta, population=mode == "exact" and closed_ok, **extras)
-    population_optimum = optimum if mode == "exact" else solve(loss, pop, beta=beta, population=closed_ok, **extras)
+    optimum = exact_optimum(loss, trained, task=task, beta=beta, population=mode == "exact" and closed_ok)
+    population_optimum = optimum if mode == "exact" else exact_optimum(loss, pop, task=task, beta=beta,
+                                                                       population=closed_ok)
     return FiniteSession(task, loss, beta, smoothing, mode, trained, pop, pairs, optimum, population_optimum)

@@ -5,7 +5,7 @@
   (also the run folder of one training run), :mod:`~polopt.commands.check`, :mod:`~polopt.commands.compare`,
   :mod:`~polopt.commands.realign`, :mod:`~polopt.commands.demo`, :mod:`~polopt.commands.data`,
   :mod:`~polopt.commands.export`, :mod:`~polopt.commands.sft`, :mod:`~polopt.commands.checkpoints`,
-  :mod:`~polopt.commands.losses`.
+  :mod:`~polopt.commands.losses`, :mod:`~polopt.commands.reward`.
 - shared helpers: :mod:`~polopt.commands.config` (``key=value`` on the command line).
 
 Everything below this package is the library; nothing in it imports a command.

@@ -95,13 +95,16 @@ def main(argv: list[str]) -> int:
     if not args.tol > 0:
         raise ValueError(f"--tol must be > 0, got {args.tol}")
     tasks = check_tasks([] if args.quick else [t for t in args.tasks.split(",") if t and t != "none"])
+    pair = getattr(loss, "margin", True) is None  # a pair objective (not a margin loss)
+    noisy = check_tasks(["noisy_labels"])[0][1] if pair else None  # its optimum's finiteness
     start = time.perf_counter()
     print(f"polopt check: {loss.name} at beta = {beta:g}: {7 + len(tasks)} checks", file=sys.stderr, flush=True)
     report = check.run_checks(loss, beta=beta, tasks=tasks, steps=steps,
                               optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
-                              tol=args.tol, progress=False, on_check=_progress(start))
+                              tol=args.tol, progress=False, on_check=_progress(start),
+                              noisy_task=noisy)
     plot = None
-    if not args.no_plot:
+    if not args.no_plot and not pair:  # the plot draws f(x) and x*(p): margin losses only
         from polopt.report import plot_report
 
         plot = args.plot or "check-" + re.sub(r"[^A-Za-z0-9_-]+", "_", loss.name) + ".png"

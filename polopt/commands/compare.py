@@ -9,7 +9,10 @@ then one table (comparison.txt, .csv, .json) and one plot (comparison.png) hold
 for every run: KL to the reference, the win rate over the reference
 P(pi > pi_ref), the expected reward where the task has rewards, the TV distance
 to the run's own exact optimum and to the Nash equilibrium of the regularised
-preference game (tau = beta / 2), steps and seconds.
+preference game (tau = beta / 2), whether the run reached its optimum, and what
+the optimum does: the winners' mean log-ratio (likelihood displacement) and the
+mean response length against the reference's (length exploitation); steps and
+seconds. Pair objectives compare as margin losses do: ``loss=divergence_forward_kl,length_normalised_free``.
 
 Why a loop over Hydra's compose API rather than Hydra's multirun sweeper: the
 table needs every run's summary in one process, which the sweeper's launcher
@@ -30,8 +33,17 @@ import json
 import time
 from pathlib import Path
 
-COLUMNS = ("run", "method", "loss", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
-           "tv_to_optimum", "tv_to_equilibrium", "steps", "seconds")
+from polopt import overoptimisation
+
+# summary.json's own key names, so that the table, the CSV and the run folders say the same thing
+COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
+           "tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "optimum_logratio_winner", "optimum_mean_length",
+           "reference_mean_length", "steps", "seconds", "learned_reward", "true_reward", "reward_model")
+# the table's columns as printed, with the number format of each
+SHOWN = (("beta", "g"), ("kl_to_reference", ".4f"), ("win_rate_over_reference", ".4f"), ("expected_reward", ".4f"),
+         ("tv_to_optimum", ".2e"), ("tv_to_equilibrium", ".2e"), ("reached_optimum", ""),
+         ("optimum_logratio_winner", ".4f"), ("optimum_mean_length", ".3f"), ("reference_mean_length", ".3f"),
+         ("steps", "d"), ("seconds", ".2f"))
 SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not written out in the notes
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
@@ -79,6 +91,20 @@ def plan(overrides: list[str]) -> list[list[str]]:
     return runs
 
 
+def merge_notes(overrides: list[str]) -> list[str]:
+    """One note per method other than offline that a ``loss`` list was given to: it does not read the
+    ``loss`` group, so those combinations ran once (see :func:`plan`)."""
+    notes = []
+    combos = expand(overrides)
+    for method in dict.fromkeys(_value(c, "method") or "offline" for c in combos):
+        given = sorted({_value(c, "loss") for c in combos if (_value(c, "method") or "offline") == method} - {None})
+        if method != "offline" and len(given) > 1:
+            uses = "its own method.loss" if method == "selfplay" else "no preference loss"
+            notes.append(f"method={method} ignores the loss group (it trains with {uses}): its runs for "
+                         f"loss={','.join(given)} were merged into one")
+    return notes
+
+
 def label(summary: dict) -> str:
     method = summary.get("method", "offline")
     if method == "offline":
@@ -93,7 +119,7 @@ def label(summary: dict) -> str:
 def row(name: str, summary: dict) -> dict:
     method = summary.get("method", "offline")
     loss = summary.get("loss_name") if method == "offline" else summary.get("method_config", {}).get("loss")
-    return {"run": name, "method": method, "loss": loss, "beta": summary["beta"],
+    return {"run": name, "method": method, "loss_name": loss, "beta": summary["beta"],
             **{k: summary.get(k) for k in COLUMNS[4:]}}
 
 
@@ -113,7 +139,7 @@ def equilibrium_notes(rows: list[dict], summaries: list[dict]) -> list[str]:
                      f"(tau = beta / 2 = {beta / 2:g}) is {shown}; "
                      + (f"at it (TV <= {EQUILIBRIUM_TV:g}): {', '.join(at)}" if at else "no run ends at it"))
         for r, _ in members:
-            if r["method"] == "offline" and r["loss"] == "squared":
+            if r["method"] == "offline" and r["loss_name"] == "squared":
                 where = "also at the equilibrium" if r["tv_to_equilibrium"] <= EQUILIBRIUM_TV else "elsewhere"
                 notes.append(f"beta={beta:g}: {r['run']} ends {where}: TV {r['tv_to_equilibrium']:.3g} from the "
                              f"equilibrium, TV {_fmt(r['tv_to_optimum'])} from its own optimum "
@@ -126,18 +152,25 @@ def _fmt(value, spec: str = ".3g") -> str:
 
 
 def render(rows: list[dict], notes: list[str], task: str) -> str:
-    head = ["run", "beta", "kl_ref", "win_rate_ref", "reward", "tv_optimum", "tv_equilibrium", "steps", "seconds"]
-    body = [[r["run"], _fmt(r["beta"], "g"), _fmt(r["kl_to_reference"], ".4f"),
-             _fmt(r["win_rate_over_reference"], ".4f"), _fmt(r["expected_reward"], ".4f"),
-             _fmt(r["tv_to_optimum"], ".2e"), _fmt(r["tv_to_equilibrium"], ".2e"), str(r["steps"]),
-             _fmt(r["seconds"], ".2f")] for r in rows]
+    head = ["run", *(key for key, _ in SHOWN)]
+    body = [[r["run"], *(_cell(r[key], spec) for key, spec in SHOWN)] for r in rows]
     widths = [max(len(line[c]) for line in [head, *body]) for c in range(len(head))]
     lines = [f"task {task}"] + ["  ".join(cell.ljust(w) for cell, w in zip(line, widths, strict=True))
                                 for line in [head, *body]]
-    lines += ["", "kl_ref: KL(pi || pi_ref); win_rate_ref: P(pi > pi_ref); tv_optimum: TV to the run's own exact "
-                  "target; tv_equilibrium: TV to the Nash equilibrium at tau = beta / 2"]
+    lines += ["", "kl_to_reference: KL(pi || pi_ref); win_rate_over_reference: P(pi > pi_ref); tv_to_optimum: TV to "
+                  "the run's own exact target; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
+                  "optimum_logratio_winner: the optimum's mean log-ratio of preferred responses (below 0: they "
+                  "lose probability, likelihood displacement); optimum_mean_length, reference_mean_length: mean "
+                  "response length in tokens under the optimum and under the reference; reached_optimum: tv_to_optimum "
+                  "within the run's tolerance (summary.json)"]
     lines += [f"note: {n}" for n in notes]
     return "\n".join(lines)
+
+
+def _cell(value, spec: str) -> str:
+    if isinstance(value, bool):
+        return str(value).lower()
+    return _fmt(value, spec)
 
 
 def plot(rows: list[dict], path: Path, task: str) -> Path:
@@ -147,7 +180,7 @@ def plot(rows: list[dict], path: Path, task: str) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5))
+    fig, (left, right, third) = plt.subplots(1, 3, figsize=(18, 4.5))
     for r in rows:
         left.scatter(r["kl_to_reference"], r["win_rate_over_reference"], s=40)
         left.annotate(f"{r['run']} (beta={r['beta']:g})", (r["kl_to_reference"], r["win_rate_over_reference"]),
@@ -170,10 +203,27 @@ def plot(rows: list[dict], path: Path, task: str) -> Path:
     right.set_ylabel("total variation")
     right.set_title("distance to the exact targets")
     right.legend(fontsize=8)
+    _plot_traits(third, rows)
     fig.tight_layout()
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
+
+
+def _plot_traits(ax, rows: list[dict]) -> None:
+    """Each run's optimum: mean length against the reference's (x) and the winners' log-ratio (y)."""
+    shown = [r for r in rows if r.get("optimum_mean_length") is not None]
+    for r in shown:
+        shift = r["optimum_mean_length"] - r["reference_mean_length"]
+        ax.scatter(shift, r["optimum_logratio_winner"], s=40)
+        ax.annotate(r["run"], (shift, r["optimum_logratio_winner"]), textcoords="offset points", xytext=(5, 4),
+                    fontsize=8)
+    ax.axhline(0.0, color="grey", linewidth=1)
+    ax.axvline(0.0, color="grey", linewidth=1)
+    ax.set_xlabel("optimum_mean_length - reference_mean_length (tokens)")
+    ax.set_ylabel("optimum_logratio_winner")
+    ax.set_title("length exploitation and likelihood displacement" if shown else "no finite optimum to show")
+    ax.grid(alpha=0.3)
 
 
 def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
@@ -200,12 +250,17 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     for r in rows:  # runs that differ in something else than method and loss get their folder number
         if names.count(r["run"]) > 1:
             r["run"] = f"{r['run']} #{rows.index(r):02d}"
-    notes = equilibrium_notes(rows, summaries)
+    notes = merge_notes(overrides) + equilibrium_notes(rows, summaries)
     table = render(rows, notes, task)
     result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
               "notes": notes}
     write_tables(out / "comparison", table, rows, COLUMNS, result)
     plot(rows, out / "comparison.png", task)
+    learned = overoptimisation.rows_of_runs(rows, summaries)  # runs with method.reward=PATH
+    if learned:
+        table += "\n\n" + overoptimisation.render(learned, f"{task}: true and learned reward against KL")
+        (out / "comparison.txt").write_text(table + "\n", encoding="utf-8")
+        overoptimisation.plot(learned, out / "overoptimisation.png", task)
     return {**result, "table": table}
 
 

@@ -43,10 +43,16 @@ def _check_option(group: str, value: str) -> None:
 def rewrite_overrides(args: list[str]) -> list[str]:
     """Check ``group=option`` overrides before Hydra sees them, so that a typo gets one
     line listing the options, and turn ``loss=pkg.module:name`` into
-    ``loss=custom loss.name=pkg.module:name``."""
+    ``loss=custom loss.name=pkg.module:name``. With a loss of the user's own, ``loss.KEY=VALUE``
+    sets a keyword parameter of that function (conf/loss/custom.yaml lists none: Hydra's
+    ``+loss.KEY`` adds it)."""
+    custom = any(a.startswith("loss=") and (":" in a or a == "loss=custom") for a in args)
     out = []
     for arg in args:
         key, eq, value = arg.partition("=")
+        if custom and eq and key.startswith("loss.") and key not in ("loss.name", "loss.smoothing"):
+            out.append(f"+{arg}")  # a parameter of the user's function, e.g. loss.weight=1.0
+            continue
         group = key.lstrip("+")
         if eq and group in groups() and "," not in value:
             _check_option(group, value)

@@ -97,8 +97,9 @@ def main(argv: list[str] | None = None) -> int:
     summary = run_demo(cfg, out, progress=bool(run_keys["progress"]))
     lo, hi = summary["win_rate_ci"]
     print(f"win_rate {summary['win_rate']:.3f} [{lo:.3f}, {hi:.3f}] over the reference (ground truth, "
-          f"{summary['wins']} wins, {summary['losses']} losses, {summary['ties']} ties); judge raw "
-          f"{summary['judge_win_rate_raw']:.3f}, swapped {summary['judge_win_rate_swapped']:.3f}; "
+          f"{summary['wins']} wins, {summary['defeats']} defeats, {summary['ties']} ties); "
+          f"judge_win_rate_policy_first {summary['judge_win_rate_policy_first']:.3f}, "
+          f"judge_win_rate_both_orders {summary['judge_win_rate_both_orders']:.3f}; "
           f"kl_to_reference {summary['kl_to_reference']:.3f}; {summary['seconds']:.0f} s")
     print(f"output folder: {out} (summary.json, training_curves.png, frontier.png)")
     return 0

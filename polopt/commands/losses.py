@@ -21,6 +21,23 @@ CATALOGUE = {
 }
 
 
+# pair objectives (polopt.objectives): name, keyword parameters with their defaults, source
+PAIR_CATALOGUE = [
+    ("divergence_reverse_kl", "-", "Wang et al. 2023 (f-DPO, reverse KL = DPO)"),
+    ("divergence_forward_kl", "-", "Wang et al. 2023 (f-DPO, forward KL)"),
+    ("divergence_jensen_shannon", "-", "Wang et al. 2023 (f-DPO, Jensen-Shannon)"),
+    ("divergence_alpha", "alpha=0.5", "Wang et al. 2023 (f-DPO, alpha-divergence)"),
+    ("chi_squared_link", "clip=None", "Huang et al. 2024 (chi-PO)"),
+    ("length_normalised_free", "gamma=0.5", "Meng et al. 2024 (SimPO)"),
+    ("length_regularised", "alpha=0.05", "Park et al. 2024 (R-DPO)"),
+    ("winner_anchored", "penalty=50.0", "Pal et al. 2024 (DPO-Positive)"),
+    ("reference_free_logistic", "-", "Xu et al. 2024 (CPO's preference term)"),
+    ("plus_winner_nll", "base=reference_free_logistic, weight=1.0, per_token=False",
+     "Xu et al. 2024 (CPO: a loss plus the winner's NLL)"),
+    ("odds_ratio_with_nll", "weight=0.1", "Hong et al. 2024 (ORPO)"),
+]
+
+
 def main(argv: list[str]) -> int:
     """The ``polopt losses`` subcommand."""
     argparse.ArgumentParser(prog="polopt losses", description="List the built-in losses: f'(0), f''(0) at the "
@@ -29,4 +46,13 @@ def main(argv: list[str]) -> int:
     for name, (d1, d2, convex, source) in CATALOGUE.items():
         word = {True: "convex", False: "not convex", None: "convexity unknown"}[convex]
         print(f"{name:<20} f'(0)={d1:+.3f} f''(0)={d2 + 0.0:.3f}  {word:<12} {source}")
+    print("\npair objectives (functions of both log-ratios and the lengths, not of the margin alone):")
+    for name, takes, source in PAIR_CATALOGUE:
+        print(f"{name:<26} {takes:<54} {source}")
     return 0
+
+
+def _keyword_defaults(fn) -> dict:
+    import inspect
+
+    return {k: p.default for k, p in inspect.signature(fn).parameters.items() if p.kind is p.KEYWORD_ONLY}

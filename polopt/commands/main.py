@@ -5,6 +5,8 @@
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [task.KEY=VALUE ...]              check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
+    polopt reward [KEY=VALUE ...] [--out DIR]        fit a Bradley–Terry reward model to a task's pairs
+    polopt reward [KEY=VALUE ...] [--out DIR]          fit a Bradley–Terry reward model to a task's pairs
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
     polopt check LOSS [KEY=VALUE ...] [--json]         unit-test a loss against the analytic optimum
@@ -25,9 +27,10 @@ COMMANDS = {  # name: what it does (its module is polopt/commands/NAME.py, see _
     "losses": "list the registered losses with f'(0), f''(0) and their papers",
     "export": "write a built-in task out as a finite-task JSON file",
     "data": "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training",
-    "sft": "train the tiny transformer on plain text and save it as a reference model (task.reference)",
+    "sft": "train the tiny transformer on plain text; save it as a reference (task.reference_checkpoint)",
     "demo": "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots",
     "compare": "several losses / methods on one task: one table and one plot",
+    "reward": "fit a Bradley–Terry reward model to a task's pairs (method.reward=PATH optimises it)",
     "realign": "decoding-time realignment against retraining over a grid of lambda: table and plot",
     "checkpoints": "verify a run folder's checkpoints and show the resume point",
     "check": "unit-test a loss against the analytic optimum; exit code 1 on any failure",
@@ -51,6 +54,8 @@ def _command(name: str):
         from polopt.commands.demo import main
     elif name == "compare":
         from polopt.commands.compare import main
+    elif name == "reward":
+        from polopt.commands.reward import main
     elif name == "realign":
         from polopt.commands.realign import main
     elif name == "checkpoints":

@@ -18,7 +18,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="polopt sft",
         description="Train the tiny transformer on plain text by next-token cross-entropy and save it as the "
-                    "reference model of a preference run (task=pairs task.reference=OUT). Config keys as for "
+                    "reference model of a preference run (task=pairs task.reference_checkpoint=OUT). Config keys "
+                    "as for "
                     "polopt train: " + ", ".join(f"{k} (default {DEFAULTS[v]})" for k, v in KEYS.items()) +
                     "; model.context defaults to the longest example (give more to leave room for longer pairs).",
         epilog="examples:\n  polopt sft notes.txt --out runs/ref.pt\n"
@@ -71,5 +72,5 @@ def main(argv: list[str] | None = None) -> int:
     first, last = result.history[0]["loss"], result.final_loss
     print(f"{len(examples)} examples, {result.steps} steps in {result.seconds:.1f} s: next-token loss "
           f"{first:.3f} -> {last:.3f} nats per token")
-    print(f"wrote {path} (use it as task.reference={path})")
+    print(f"wrote {path} (use it as task.reference_checkpoint={path})")
     return 0

@@ -28,7 +28,7 @@ import torch
 from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, devices, distributed, losses
+from polopt import checkpoint, devices, distributed, losses, objectives, sharded_checkpoint
 from polopt.commands import runs
 from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.commands.errors import Escape
@@ -38,22 +38,27 @@ from polopt.objective import validate_hyperparameters
 from polopt.optim import OptimConfig
 from polopt.run_folder import RunFolder, run_summary
 from polopt.train import MethodObjective, PairObjective, TrainSettings, optimise
+from polopt.verdict import reached_line
 
 # keys that change how a run is kept, not what it computes: a resume may change them
-_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device")
+# (steps: a finished run continues when train.steps is raised; strategy: a sharded checkpoint resumes on ddp)
+_RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device", "steps",
+                     "strategy")
 
 
-def build_loss(cfg: DictConfig) -> losses.Loss:
-    """The loss named by ``loss.name`` with its parameters (every key but name and smoothing)."""
+def build_loss(cfg: DictConfig) -> losses.Loss | objectives.PairObjective:
+    """The margin loss or pair objective named by ``loss.name`` with its parameters (every key but
+    name and smoothing); see :mod:`polopt.objectives`."""
     params = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in ("name", "smoothing")}
-    return losses.get(cfg.name, **params)
+    return objectives.resolve(cfg.name, **params)
 
 
 _MISSING_HINTS = {
     "task.path": "task=file needs task.path=PATH to a JSON task file; task=pairs needs task.path=PATH to a pair "
                  "file (JSONL, CSV, Parquet or a saved dataset folder)",
-    "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x))",
-    "model.path": "model=hf needs model.path=DIR, a local folder saved by a transformers causal LM",
+    "loss.name": "loss=custom needs loss.name=pkg.module:function (an elementwise f(x) or a pair objective "
+                 "f(pair, beta))",
+    "model.path": "model=local_lm needs model.path=DIR, a local folder saved by a transformers causal LM",
 }
 
 
@@ -170,8 +175,12 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
     p = session.pairs
-    fingerprint = checkpoint.fingerprint(config, p.prompt, p.winner, p.loser, p.reference_winner,
-                                         p.reference_loser, p.weight)
+    # lengths of index pairs are data of their own (a task file's "lengths"); token pairs' follow from the tokens
+    lengths = () if getattr(policy, "pad_id", None) is not None else (getattr(p, "len_winner", None),
+                                                                       getattr(p, "len_loser", None))
+    data = p.identity() if hasattr(p, "identity") else (p.prompt, p.winner, p.loser, p.reference_winner,
+                                                         p.reference_loser, p.weight, *lengths)  # identity: streamed
+    fingerprint = checkpoint.fingerprint(config, *data)
     checkpoint.validate_keep(cfg.train.keep_checkpoints)
     state = resume_state(cfg, folder.checkpoints, fingerprint)
     distributed.barrier(context)  # every rank has read the same checkpoint before rank 0 writes a new one
@@ -179,9 +188,11 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     if state is not None and context.is_main:
         print(f"polopt train: resuming from {folder.checkpoints / checkpoint.checkpoint_name(state['step'])} "
               f"(step {state['step']} of {cfg.train.steps})", file=sys.stderr)
-    save = None if not offline else folder.checkpoint_saver(
-        run_id=state["run_id"] if state is not None else uuid.uuid4().hex, fingerprint=fingerprint, config=config,
-        keep=cfg.train.keep_checkpoints)
+    keys = dict(run_id=state["run_id"] if state is not None else uuid.uuid4().hex, fingerprint=fingerprint,
+                config=config, keep=cfg.train.keep_checkpoints)
+    save = None if not offline else folder.checkpoint_saver(**keys)
+    if offline and context.sharded:  # train.strategy=fsdp: every rank writes its shards
+        save = sharded_checkpoint.saver(folder.checkpoints, is_main=context.is_main, **keys)
     settings = train_settings(cfg, device, context.is_main)
     objective, evaluate = objective_of(method, view, session, policy, loss, settings, context)
     metrics_path = folder.start_metrics(None if state is None else state["history"])
@@ -192,10 +203,12 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     if not offline:
         folder.write_policy(policy, result.steps, config)
     summary = run_summary(session, view, policy, result, method=method["name"], context=context)
+    summary.setdefault("reached_optimum", None)  # no exact optimum known (e.g. task=pairs)
     if context.is_main:
         folder.write_summary(summary)
         print((session if offline else view).table(summary))
         print(f"run folder: {run_dir}")
+        print(reached_line(summary))  # the verdict last, where the eye lands
     return summary
 
 
@@ -217,7 +230,8 @@ def train_main(cfg: DictConfig) -> None:
         device = devices.resolve(cfg.train.get("device"), local_rank=context.local_rank, processes=context.world_size)
         if device.type == "cuda":
             torch.cuda.set_device(device)
-        context = distributed.setup(backend=devices.process_group_backend(device))
+        strategy = distributed.with_strategy(context, cfg.train.get("strategy")).strategy  # fsdp: under torchrun
+        context = distributed.with_strategy(distributed.setup(backend=devices.process_group_backend(device)), strategy)
         # every rank uses rank 0's folder (a ${now:...} in hydra.run.dir may differ between processes)
         run_dir = distributed.broadcast_path(run_dir, context)
         with checkpoint.exclusive(run_dir) if context.is_main else contextlib.nullcontext():

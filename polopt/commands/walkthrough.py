@@ -159,7 +159,7 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
     pairs_path = write_pairs(out / "pairs.jsonl", pair_prompts, a, b, judge, rng)
     loss = losses.get(cfg.loss)
     # a sample cut mid-character decodes to U+FFFD (3 bytes): cut such rare long replies back to the context
-    task = pair_task(path=str(pairs_path), reference=str(reference_path), max_length=context - 1,
+    task = pair_task(path=str(pairs_path), reference_checkpoint=str(reference_path), max_length=context - 1,
                      truncation="truncate_response", duplicates="keep")  # repeated samples are data
     base = task.prepare(loss, beta=cfg.beta, run_dir=out)
     acc = base.data.accounting
@@ -176,8 +176,9 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
         RunFolder(out / f"beta-{beta:g}").write_summary({k: v for k, v in entry.items() if k != "history"})
         frontier.append(entry)
         lo, hi = scores["win_rate_ci"]
-        log(f"4-5. {cfg.loss} beta {beta:g}: win_rate {scores['win_rate']:.3f} [{lo:.3f}, {hi:.3f}]  judge raw "
-            f"{scores['judge_win_rate_raw']:.3f} swapped {scores['judge_win_rate_swapped']:.3f}  "
+        log(f"4-5. {cfg.loss} beta {beta:g}: win_rate {scores['win_rate']:.3f} [{lo:.3f}, {hi:.3f}]  "
+            f"judge_win_rate_policy_first {scores['judge_win_rate_policy_first']:.3f}  "
+            f"judge_win_rate_both_orders {scores['judge_win_rate_both_orders']:.3f}  "
             f"kl_to_reference {scores['kl_to_reference']:.3f}  ({entry['train_seconds']:.0f} s)")
 
     main_entry = next(e for e in frontier if e["beta"] == cfg.beta)
@@ -186,8 +187,9 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
         "scenario": "Tern Island weather-station bot (invented; polopt.demo_scenario)",
         "loss_name": cfg.loss,
         "beta": cfg.beta,
-        **{k: main_entry[k] for k in ("win_rate", "win_rate_ci", "judge_win_rate_raw", "judge_win_rate_swapped",
-                                      "kl_to_reference", "kl_to_reference_se", "wins", "losses", "ties",
+        **{k: main_entry[k] for k in ("win_rate", "win_rate_ci", "judge_win_rate_policy_first",
+                                      "judge_win_rate_both_orders", "kl_to_reference", "kl_to_reference_se",
+                                      "wins", "defeats", "ties",
                                       "comparisons", "win_rate_ties_half", "mean_reward_policy",
                                       "mean_reward_reference", "pair_accuracy", "margin_mean", "examples")},
         "judge_bias": cfg.bias,
@@ -200,8 +202,9 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
         "seconds": time.perf_counter() - start,
         "notes": ["win_rate and win_rate_ci are over the comparisons the ground truth decides (equal rewards are "
                   "'ties'); the interval is Wilson's score interval at 95% (scipy.stats.binomtest)",
-                  "judge_win_rate_raw shows the policy's reply first every time; judge_win_rate_swapped judges "
-                  "both orders and averages, which cancels the position bias",
+                  "judge_win_rate_policy_first shows the policy's reply first every time (inflated by the judge's "
+                  "position bias); judge_win_rate_both_orders judges both orders and averages, which cancels it",
+                  "defeats counts the comparisons the reference won under the ground truth",
                   "kl_to_reference is the Monte-Carlo mean of log pi - log pi_ref over the policy's samples"],
     }
     RunFolder(out).write_summary(summary)
@@ -236,8 +239,8 @@ def plot_results(frontier: list[dict], out: Path, *, loss_name: str) -> list[Pat
     err = [[w - e["win_rate_ci"][0] for w, e in zip(wr, frontier, strict=True)],
            [e["win_rate_ci"][1] - w for w, e in zip(wr, frontier, strict=True)]]
     ax.errorbar(kl, wr, yerr=err, fmt="o-", capsize=3, label="ground truth (95% Wilson)")
-    ax.plot(kl, [e["judge_win_rate_raw"] for e in frontier], "s--", label="judge, policy shown first")
-    ax.plot(kl, [e["judge_win_rate_swapped"] for e in frontier], "^:", label="judge, both orders")
+    ax.plot(kl, [e["judge_win_rate_policy_first"] for e in frontier], "s--", label="judge, policy shown first")
+    ax.plot(kl, [e["judge_win_rate_both_orders"] for e in frontier], "^:", label="judge, both orders")
     for e in frontier:
         ax.annotate(f"beta {e['beta']:g}", (e["kl_to_reference"], e["win_rate"]), textcoords="offset points",
                     xytext=(4, -10), fontsize=8)

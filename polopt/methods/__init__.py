@@ -49,7 +49,8 @@ def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironme
                             generator=generator)
     if name == "selfplay":
         return selfplay_objective(policy, env, loss, beta=beta, estimator=estimator,
-                                  batch_size=method.get("batch_size", 64), generator=generator)
+                                  batch_size=method.get("batch_size", 64), update=method.get("update"),
+                                  generator=generator)
     if name == "best_of_n":
         return distill_objective(policy, env, target=target, estimator=estimator, n=method.get("n", 4),
                                  n_samples=method.get("n_samples", 4096), generator=generator)
