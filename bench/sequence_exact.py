@@ -17,11 +17,10 @@ import time
 
 import torch
 from hydra import compose, initialize_config_dir
-from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from polopt import losses
-from polopt.commands.train import _TASK_RUN_KEYS, CONFIG_DIR
+from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.logprobs import sequence_logprobs
 from polopt.models import TinyTransformer
 from polopt.optim import OptimConfig
@@ -33,8 +32,7 @@ TARGET = 0.05
 def exact_run(loss_name: str, steps: int, precision: str) -> dict:
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose("config", overrides=["+experiment=sequence", f"loss={loss_name}", f"train.steps={steps}"])
-    builder = {k: v for k, v in OmegaConf.to_container(cfg.task).items() if k not in _TASK_RUN_KEYS}
-    task = instantiate(builder, _convert_="all")
+    task = build_task(cfg.task)
     loss = losses.get(loss_name)
     start = time.perf_counter()
     session = task.prepare(loss, beta=float(cfg.beta), mode="exact")

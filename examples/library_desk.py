@@ -12,7 +12,7 @@ folder ``pairs_folder/`` (with ``--bad``: the same good pairs, with bad rows of
 every kind the format can hold mixed in), and ``expected.json``: the good pairs
 in order and, for each file, every bad row's location, field and reason. The
 tests read that manifest to check that each bad row is reported and that no
-good row is lost; ``polopt data OUT_DIR/pairs.jsonl --max-length 400`` shows it.
+good row is lost; ``polopt data OUT_DIR/pairs.jsonl task.max_length=400`` shows it.
 """
 
 from __future__ import annotations

@@ -672,7 +672,7 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
         else:
             problems.append(f"training did not reach the exact optimum: {measured} > {tol:g} after {steps} steps "
                             f"(trained loss {summary['loss']:.6g}, optimal {value:.6g}; TV {tv:.3g}); either "
-                            "the loss's optimum is slow to reach (try more --steps) or the exact solver and the "
+                            "the loss's optimum is slow to reach (try more train.steps) or the exact solver and the "
                             "trainer disagree about f")
     else:
         support = summary.get("limit_support") or []
@@ -707,13 +707,17 @@ def _guarded(name: str, fn: Callable[[], CheckResult]) -> CheckResult:
 
 def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
                steps: int = 2000, optim: OptimConfig | None = None, tol: float = 1e-3,
-               progress: bool | None = False, params: dict | None = None, noisy_task=None) -> Report:
+               progress: bool | None = False, params: dict | None = None, noisy_task=None,
+               on_check: Callable[[CheckResult, float], None] | None = None) -> Report:
     """Every check of the module docstring; the population checks on ``tasks``
     (objects with ``prepare``, or ``(name, task)`` pairs). When f is not elementwise
     the other checks are skipped: f of a single margin is then not defined.
     A pair objective gets the checks of :mod:`polopt.pair_check` (``noisy_task``: the finite task
     whose exact optimum's finiteness it reports).
-    ``progress``: a tqdm bar over the checks (None: only on a terminal)."""
+    ``progress``: a tqdm bar over the checks (None: only on a terminal);
+    ``on_check(result, seconds)``: called as each check ends (``polopt check``'s progress lines)."""
+    import time
+
     from tqdm.auto import tqdm
 
     loss = as_loss(loss, **(params or {}))
@@ -733,15 +737,21 @@ def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta
     for label, task in labelled:
         checks.append((f"population:{label}", lambda task=task, label=label: check_population(
             loss, task, beta=beta, steps=steps, optim=optim, tol=tol, name=label)))
+    start = time.perf_counter()
     results = [_guarded("elementwise", lambda: check_elementwise(loss))]
+    if on_check is not None:
+        on_check(results[0], time.perf_counter() - start)
     elementwise = results[0].status != "fail"
     quiet = None if progress is None else not progress  # tqdm: None hides the bar off a terminal
     for name, fn in tqdm(checks, desc=f"check {loss.name}", disable=quiet, leave=False):
+        start = time.perf_counter()
         if elementwise:
             results.append(_guarded(name, fn))
         else:
             results.append(CheckResult(name, "skip", "not run: f is not elementwise, so the loss of one margin "
                                        "(and everything built on it) is not defined"))
+        if on_check is not None:
+            on_check(results[-1], time.perf_counter() - start)
     pair = next(r for r in results if r.name == "pair_optimum")
     if pair.facts.get("infinite_below_certainty"):
         for r in results:

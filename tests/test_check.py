@@ -300,7 +300,7 @@ def test_cli_exit_code_and_reason_for_a_broken_user_loss(tmp_path, monkeypatch, 
 
 def test_cli_population_and_plot(tmp_path, capsys):
     png = tmp_path / "report.png"
-    rc = main(["check", "huber", "--param", "delta=0.5", "--tasks", "noisy_labels", "--steps", "600",
+    rc = main(["check", "huber", "loss.delta=0.5", "--tasks", "noisy_labels", "train.steps=600",
                "--plot", str(png)])
     out = capsys.readouterr().out
     assert rc == 0 and "population:noisy_labels" in out and "PASS" in out
@@ -313,17 +313,26 @@ def test_cli_builds_tasks_from_the_task_configs():
     from polopt.commands.check import check_tasks as _check_tasks
     from polopt.commands.train import CONFIG_DIR
 
-    (name, task), = _check_tasks(["bradley_terry"])[0]
+    (name, task), = _check_tasks(["bradley_terry"])
     expected = OmegaConf.load(CONFIG_DIR / "task" / "bradley_terry.yaml")
     assert name == "bradley_terry" and task.n_responses == expected.n_responses
 
 
 @pytest.mark.parametrize("argv, message", [
     (["check", "no_such_loss"], "polopt check: error: unknown loss 'no_such_loss'"),
-    (["check", "logistic", "--param", "delta"], "polopt check: error: --param must look like KEY=VALUE"),
-    (["check", "huber", "--param", "width=3"], "polopt check: error: loss 'huber' got unknown parameter"),
+    (["check", "logistic", "loss.delta=1"], "polopt check: error: loss=logistic has no key 'delta' (its keys: name, "
+                                              "smoothing); delta belongs to loss=huber: choose it first"),
+    (["check", "huber", "loss.width=3"], "polopt check: error: unknown key 'loss.width'; the keys under loss are: "
+                                         "loss.delta, loss.name, loss.smoothing"),
+    (["check", "huber", "+loss.width=3"], "polopt check: error: loss 'huber' got unknown parameter"),
     (["check", "logistic", "--tasks", "atlas"], "polopt check: error: --tasks: unknown task 'atlas'"),
-    (["check", "logistic", "--beta", "-1"], r"polopt check: error: --beta must be > 0, got -1"),
+    (["check", "logistic", "beta=-1"], "polopt check: error: beta must be a number > 0 (e.g. beta=0.1), got -1.0"),
+    (["check", "logistic", "beta=0.1,0.3"], "polopt check: error: 'beta=0.1,0.3' is a list of values: polopt check "
+                                            "takes one value a key"),
+    (["check", "logistic", "train.steps=0"], "polopt check: error: train.steps must be a positive integer, got 0"),
+    (["check", "logistic", "task=nontransitive"], "polopt check: error: polopt check reads loss, loss.KEY, beta, "
+                                                  "train.steps, optim, optim.KEY only; 'task=nontransitive' would "
+                                                  "change nothing here"),
 ])
 def test_cli_user_errors_are_one_line_with_exit_code_2(argv, message, capsys):
     rc = main(argv)

@@ -6,7 +6,8 @@ import pytest
 from hydra import compose, initialize_config_dir
 
 from polopt import losses, objectives
-from polopt.commands.train import CONFIG_DIR, build_loss, build_task
+from polopt.commands.config import CONFIG_DIR, build_task
+from polopt.commands.train import build_loss
 
 ROOT = Path(__file__).resolve().parent.parent
 

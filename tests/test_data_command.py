@@ -22,7 +22,7 @@ def files(tmp_path_factory):
 def test_text_report_rejects_file_and_plot(files, tmp_path, capsys):
     out, manifest = files
     rejects, plot = tmp_path / "r.jsonl", tmp_path / "len.png"
-    code = main(["data", str(out / "pairs.jsonl"), "--max-length", str(MAX_LENGTH), "--rejects", str(rejects),
+    code = main(["data", str(out / "pairs.jsonl"), f"task.max_length={MAX_LENGTH}", "--rejects", str(rejects),
                  "--plot", str(plot)])
     text = capsys.readouterr().out
     n_bad, n_good = len(manifest["expected"]["jsonl"]), len(manifest["good"])
@@ -35,7 +35,7 @@ def test_text_report_rejects_file_and_plot(files, tmp_path, capsys):
 
 def test_json_accounting(files, tmp_path, capsys):
     out, manifest = files
-    code = main(["data", str(out / "pairs.csv"), "--max-length", "200", "--truncation", "truncate_response",
+    code = main(["data", str(out / "pairs.csv"), "task.max_length=200", "task.truncation=truncate_response",
                  "--rejects", str(tmp_path / "r.jsonl"), "--json"])
     report = json.loads(capsys.readouterr().out)
     assert code == 0
@@ -55,9 +55,13 @@ def test_default_rejects_file_is_written_in_the_current_folder(files, tmp_path, 
 
 @pytest.mark.parametrize(("args", "message"), [
     (["missing.jsonl"], r"^polopt data: error: pair file not found: 'missing.jsonl'"),
-    (["{file}", "--columns", "prompt=question"], r"^polopt data: error: .*missing column\(s\) question; the file has: "
-                                                 r"'prompt', 'winner', 'loser', 'weight'"),
-    (["{file}", "--max-length", "1"], r"^polopt data: error: max_length must be an integer >= 2"),
+    (["{file}", "task.columns={{prompt: question}}"], r"^polopt data: error: .*missing column\(s\) question; the file "
+                                                    r"has: 'prompt', 'winner', 'loser', 'weight'"),
+    (["{file}", "task.max_length=1"], r"^polopt data: error: max_length must be an integer >= 2"),
+    (["{file}", "task.max_lenght=9"], r"^polopt data: error: unknown key 'task.max_lenght'; did you mean "
+                                      r"task.max_length\?$"),
+    (["{file}", "beta=0.1"], r"^polopt data: error: polopt data reads task.columns, .* only; 'beta=0.1' would "
+                             r"change nothing here$"),
 ])
 def test_file_level_problems_are_one_line_and_exit_2(files, tmp_path, monkeypatch, capsys, args, message):
     out, _ = files

@@ -70,7 +70,7 @@ def test_column_mapping_reads_other_names(mapped, fmt):
 def test_default_names_on_a_mapped_file_is_one_file_level_error(mapped, fmt):
     out, _ = mapped
     with pytest.raises(ValueError, match=r"missing column\(s\) prompt, winner, loser; the file has: .*question.*"
-                                         r"Map your names with columns"):
+                                         r"Map your names with task.columns"):
         load_pairs(out / FILES[fmt])
 
 

@@ -8,8 +8,9 @@ import json
 
 import pytest
 
-from polopt.commands.demo import QUICK, DemoConfig, run_demo
+from polopt.commands.demo_settings import QUICK, DemoConfig
 from polopt.commands.main import main
+from polopt.commands.walkthrough import run_demo
 
 PNG = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
 
@@ -53,9 +54,13 @@ def test_run_folder(quick):
 
 
 @pytest.mark.parametrize(("args", "message"), [
-    (["--loss", "nope"], r"^polopt demo: error: unknown loss 'nope'"),
+    (["loss=nope"], r"^polopt demo: error: unknown loss 'nope'"),
     (["--betas", "0.1,x"], r"^polopt demo: error: --betas must be comma-separated numbers"),
-    (["--beta", "-1"], r"^polopt demo: error: beta must be a number > 0"),
+    (["beta=-1"], r"^polopt demo: error: beta must be a number > 0"),
+    (["beta=0.1,0.3"], r"^polopt demo: error: 'beta=0.1,0.3' is a list of values: polopt demo takes one value a key"),
+    (["train.stepz=3"], r"^polopt demo: error: unknown key 'train.stepz'; did you mean train.steps"),
+    (["loss=huber", "loss.delta=3"], r"^polopt demo: error: polopt demo reads loss, beta, train.steps, .* only; "
+                                     r"'loss.delta=3' would change nothing here$"),
     (["--bias", "1.5"], r"^polopt demo: error: --bias must lie in \[0, 1\)"),
 ])
 def test_errors_are_one_line(args, message, capsys, tmp_path):

@@ -195,7 +195,8 @@ def test_bad_reward_input_is_one_line_and_exit_2(tmp_path):
         (("train", "method=best_of_n", f"method.reward={tmp_path / 'none.pt'}"), r"none.pt' does not exist"),
         (("reward", "task.mode=sampled", "task.n_pairs=20", "--out", str(tmp_path / "x")),
          r"polopt reward: error: the Bradley–Terry maximum-likelihood fit does not exist.*reward.l2"),
-        (("reward", "reward.nosuch=1", "--out", str(tmp_path / "z")), r"Key 'nosuch' is not in struct \(reward.nosuch"),
+        (("reward", "reward.nosuch=1", "--out", str(tmp_path / "z")),
+         r"unknown key 'reward.nosuch'; did you mean reward\."),
         (("reward", "task.mode=sampled", "reward.heldout=1.5", "--out", str(tmp_path / "y")),
          r"reward.heldout .* must lie in \[0, 1\)"),
     ]

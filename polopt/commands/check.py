@@ -1,62 +1,32 @@
-"""``polopt check LOSS``: the command line of the loss battery (:mod:`polopt.check` holds the checks)."""
+"""``polopt check LOSS [loss.KEY=VALUE] [beta=B] [train.steps=N] [optim.KEY=VALUE]``: the command line of the
+loss battery (:mod:`polopt.check` holds the checks). Its config keys are ``polopt train``'s; flags only for
+what is not a config key (``--tasks``, ``--quick``, ``--tol``, ``--json``, ``--plot``)."""
 
 from __future__ import annotations
 
 import argparse
 import sys
+import textwrap
+import time
 
-from polopt.commands.config import group_options
+from polopt.commands import config
 
 CHECK_TASKS = ("bradley_terry", "noisy_labels", "nontransitive", "deterministic")
+KEYS = ("loss", "loss.", "beta", "train.steps", "optim", "optim.")  # the config keys the check reads
 
 
-def _parse_params(items: list[str]) -> dict:
-    """``--param delta=0.5`` -> {"delta": 0.5}; values are Python literals, else strings."""
-    import ast
-
-    params = {}
-    for item in items:
-        key, eq, value = item.partition("=")
-        if not eq or not key:
-            raise ValueError(f"--param must look like KEY=VALUE (e.g. --param delta=0.5), got {item!r}")
-        try:
-            params[key] = ast.literal_eval(value)
-        except (ValueError, SyntaxError):
-            params[key] = value
-    return params
-
-
-def check_tasks(names: list[str]) -> tuple[list, dict]:
-    """The finite tasks of ``polopt check`` from conf/task (Hydra compose + ``_target_``),
-    and the run defaults of conf/config.yaml (beta, train.steps, optim)."""
-    from hydra import compose, initialize_config_dir
-    from omegaconf import OmegaConf
-
-    from polopt.commands.train import CONFIG_DIR, build_task
-
-    options = group_options("task")
+def check_tasks(names: list[str]) -> list[tuple[str, object]]:
+    """The finite tasks of ``polopt check`` from conf/task, built by :func:`polopt.commands.config.build_task`."""
+    allowed = [o for o in config.group_options("task") if o not in ("file", "pairs")]
     tasks = []
-    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
-        defaults = compose("config")
-        for name in names:
-            if name not in options or name in ("file", "pairs"):
-                allowed = [o for o in options if o not in ("file", "pairs")]
-                raise ValueError(f"--tasks: unknown task {name!r}; choose from: {', '.join(allowed)}")
-            tasks.append((name, build_task(compose("config", overrides=[f"task={name}"]).task)))
-    return tasks, {"beta": float(defaults.beta), "steps": int(defaults.train.steps),
-                   "optim": OmegaConf.to_container(defaults.optim, resolve=True)}
+    for name in names:
+        if name not in allowed:
+            raise ValueError(f"--tasks: unknown task {name!r}; choose from: {', '.join(allowed)}")
+        tasks.append((name, config.build_task(config.compose([f"task={name}"]).task)))
+    return tasks
 
 
-def main(argv: list[str]) -> int:
-    """The ``polopt check`` subcommand."""
-    import json
-    import re
-    import textwrap
-
-    from polopt import check
-    from polopt.optim import OptimConfig
-    from polopt.run_folder import json_ready
-
+def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="polopt check",
         description=textwrap.fill(
@@ -65,24 +35,22 @@ def main(argv: list[str]) -> int:
             "equal-regularisation beta of every built-in, the per-pair optimum x*(p) and p = 1, "
             "whether f is a rescaled built-in, and the exact population optimum of small finite tasks "
             "against what the trainer reaches in exact mode. FAIL: the loss cannot do its job; WARN: it "
-            "works, but not as one would likely assume (not convex; a rescaled built-in). Exit code 1 on "
-            "any failure, 2 on a usage error.", 78),
-        epilog="examples:\n  polopt check logistic\n  polopt check huber --param delta=0.5 --beta 0.1\n"
+            "works, but not as one would likely assume (not convex; a rescaled built-in). Config keys as for "
+            "polopt train: loss.KEY=VALUE (the loss's parameters), beta=, train.steps=, optim.KEY=. "
+            "A progress line per check goes to stderr. Exit code 1 on any failure, 2 on a usage error.", 78),
+        epilog="examples:\n  polopt check logistic\n  polopt check huber loss.delta=0.5 beta=0.1\n"
                "  polopt check mypkg.losses:my_loss --json > report.json\n  polopt check mypkg.losses:my_loss "
                "--quick --plot my_loss.png",
         formatter_class=argparse.RawDescriptionHelpFormatter)
-    from polopt import losses
-
-    parser.add_argument("loss", help=f"a registered loss ({', '.join(losses.names())}) or a dotted path "
+    builtins = [o for o in config.group_options("loss") if o != "custom"]
+    parser.add_argument("loss", help=f"a loss option ({', '.join(builtins)}) or a dotted path "
                                      "pkg.module:name to an elementwise f(x)")
-    parser.add_argument("--beta", type=float, default=None, help="beta (default: conf/config.yaml's beta)")
-    parser.add_argument("--param", action="append", default=[], metavar="KEY=VALUE",
-                        help="a loss parameter, e.g. --param delta=0.5 (repeatable)")
+    parser.add_argument("overrides", nargs="*", metavar="KEY=VALUE",
+                        help="config keys as for polopt train: loss.KEY (e.g. loss.delta=0.5; a parameter of "
+                             "your own loss: +loss.KEY=VALUE), beta, train.steps, optim.KEY")
     parser.add_argument("--tasks", default=",".join(CHECK_TASKS),
                         help="comma-separated finite tasks for the population check (default: %(default)s)")
     parser.add_argument("--quick", action="store_true", help="skip the population check (no training)")
-    parser.add_argument("--steps", type=int, default=None, help="training steps per task "
-                                                                "(default: conf/config.yaml's train.steps)")
     parser.add_argument("--tol", type=float, default=1e-3,
                         help="largest TV to the exact optimum (relative loss gap where the optimum is not unique) "
                              "that passes (default: %(default)s)")
@@ -90,27 +58,51 @@ def main(argv: list[str]) -> int:
     parser.add_argument("--plot", default=None, metavar="PATH",
                         help="PNG of f, x*(p) and trained vs exact optima (default: check-LOSS.png)")
     parser.add_argument("--no-plot", action="store_true", help="write no PNG")
-    args = parser.parse_args(argv)
-    try:
-        params = _parse_params(args.param)
-        loss = check.as_loss(args.loss, **params)
-        names = [] if args.quick else [t for t in args.tasks.split(",") if t and t != "none"]
-        tasks, defaults = check_tasks(names)
-        pair = getattr(loss, "margin", True) is None  # a pair objective (not a margin loss)
-        noisy = check_tasks(["noisy_labels"])[0][0][1] if pair else None  # its optimum's finiteness
-        beta = defaults["beta"] if args.beta is None else args.beta
-        steps = defaults["steps"] if args.steps is None else args.steps
-        if not beta > 0:
-            raise ValueError(f"--beta must be > 0, got {beta}")
-        if steps < 1:
-            raise ValueError(f"--steps must be a positive integer, got {steps}")
-        if not args.tol > 0:
-            raise ValueError(f"--tol must be > 0, got {args.tol}")
-    except (ValueError, TypeError) as err:
-        print(f"polopt check: error: {err}", file=sys.stderr)
-        return 2
-    report = check.run_checks(loss, beta=beta, tasks=tasks, steps=steps, optim=OptimConfig(**defaults["optim"]),
-                              tol=args.tol, progress=None, noisy_task=noisy)
+    return parser
+
+
+def _progress(start: float):
+    """One stderr line per finished check: its name, status and the elapsed time."""
+    def log(result, seconds: float) -> None:
+        total = time.perf_counter() - start
+        print(f"  {result.name:<28} {result.status.upper():<5} {seconds:6.1f} s  (total {total:.1f} s)",
+              file=sys.stderr, flush=True)
+    return log
+
+
+def main(argv: list[str]) -> int:
+    """The ``polopt check`` subcommand."""
+    args = build_parser().parse_intermixed_args(argv)  # before the imports below: --help loads no torch
+    import json
+    import re
+
+    from omegaconf import OmegaConf
+
+    from polopt import check
+    from polopt.objective import validate_hyperparameters
+    from polopt.optim import OptimConfig
+    from polopt.run_folder import json_ready
+
+    loss_arg = args.loss.removeprefix("loss=")
+    cfg = config.compose([f"loss={loss_arg}", *args.overrides], command="polopt check")
+    config.only_keys(args.overrides, KEYS, "polopt check")
+    params = {k: v for k, v in OmegaConf.to_container(cfg.loss, resolve=True).items() if k not in ("name", "smoothing")}
+    loss = check.as_loss(cfg.loss.name, **params)
+    beta, steps = float(cfg.beta), cfg.train.steps
+    validate_hyperparameters(beta)
+    if not isinstance(steps, int) or steps < 1:
+        raise ValueError(f"train.steps must be a positive integer, got {steps!r}")
+    if not args.tol > 0:
+        raise ValueError(f"--tol must be > 0, got {args.tol}")
+    tasks = check_tasks([] if args.quick else [t for t in args.tasks.split(",") if t and t != "none"])
+    pair = getattr(loss, "margin", True) is None  # a pair objective (not a margin loss)
+    noisy = check_tasks(["noisy_labels"])[0][1] if pair else None  # its optimum's finiteness
+    start = time.perf_counter()
+    print(f"polopt check: {loss.name} at beta = {beta:g}: {7 + len(tasks)} checks", file=sys.stderr, flush=True)
+    report = check.run_checks(loss, beta=beta, tasks=tasks, steps=steps,
+                              optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
+                              tol=args.tol, progress=False, on_check=_progress(start),
+                              noisy_task=noisy)
     plot = None
     if not args.no_plot and not pair:  # the plot draws f(x) and x*(p): margin losses only
         from polopt.report import plot_report

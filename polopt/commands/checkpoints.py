@@ -3,14 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import sys
 
 
 def main(argv: list[str]) -> int:
     """The ``polopt checkpoints`` subcommand."""
-    from pathlib import Path
-
-    from polopt.checkpoint import list_checkpoints
 
     parser = argparse.ArgumentParser(prog="polopt checkpoints",
                                      description="Verify every checkpoint of a run folder: size, SHA-256 and "
@@ -18,11 +14,13 @@ def main(argv: list[str]) -> int:
                                                  "rerun resumes from.")
     parser.add_argument("run_dir", help="a run folder (hydra.run.dir of polopt train)")
     args = parser.parse_args(argv)
+    from pathlib import Path  # after parsing: --help loads no torch
+
+    from polopt.checkpoint import list_checkpoints
+
     folder = Path(args.run_dir) / "checkpoints"
     if not folder.is_dir():
-        print(f"polopt checkpoints: error: {folder} does not exist; give the run folder of a polopt train run",
-              file=sys.stderr)
-        return 2
+        raise ValueError(f"{folder} does not exist; give the run folder of a polopt train run")
     entries = list_checkpoints(folder)
     for e in entries:
         print(f"{e['file']}  step {e['step']:>8}  {'ok' if e['ok'] else 'BAD: ' + e['problem']}")

@@ -30,12 +30,10 @@ import csv
 import io
 import itertools
 import json
-import sys
 import time
 from pathlib import Path
 
 from polopt import overoptimisation
-from polopt.methods import METHODS
 
 # summary.json's own key names, so that the table, the CSV and the run folders say the same thing
 COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
@@ -77,6 +75,8 @@ def _value(combo: list[str], key: str) -> str | None:
 def plan(overrides: list[str]) -> list[list[str]]:
     """The runs of a comparison: the expanded combinations, without the ``loss`` override for
     methods that do not use it, duplicates removed (order kept)."""
+    from polopt.methods import METHODS
+
     runs, seen = [], set()
     for combo in expand(overrides):
         method = _value(combo, "method") or "offline"
@@ -264,16 +264,6 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     return {**result, "table": table}
 
 
-def user_error(err: Exception) -> Exception | None:
-    """The user's mistake behind ``err`` (a bad value, a config or override error, Hydra's wrapping
-    unwrapped), or None for a bug that should keep its traceback."""
-    cause = err.__cause__ or err
-    name = type(cause).__name__
-    if isinstance(cause, (ValueError, TypeError, FloatingPointError)) or "Override" in name or "Config" in name:
-        return cause
-    return None
-
-
 def write_tables(stem: Path, text: str, rows: list[dict], columns: list[str] | tuple[str, ...], result: dict) -> None:
     """One table three ways: ``stem.txt`` (as printed), ``stem.csv`` (``columns``) and ``stem.json``."""
     stem.with_suffix(".txt").write_text(text + "\n", encoding="utf-8")
@@ -286,8 +276,6 @@ def write_tables(stem: Path, text: str, rows: list[dict], columns: list[str] | t
 
 def main(argv: list[str]) -> int:
     """The ``polopt compare`` subcommand."""
-    from polopt.commands.config import rewrite_overrides
-
     parser = argparse.ArgumentParser(
         prog="polopt compare",
         description="Train several losses / methods on one task and tabulate them side by side: KL to the "
@@ -298,18 +286,14 @@ def main(argv: list[str]) -> int:
     parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train'; comma lists sweep")
     parser.add_argument("--out", default=None, help="the comparison folder (default runs/compare/DATE-TIME)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
-    args = parser.parse_args(argv)
+    args = parser.parse_intermixed_args(argv)
+    from polopt.commands import config  # after parsing: --help loads no torch
+    from polopt.commands.train import precheck
+
     out = Path(args.out) if args.out else Path("runs") / "compare" / time.strftime("%Y-%m-%d/%H-%M-%S")
-    try:
-        for combo in expand(args.overrides):
-            rewrite_overrides(combo)  # one line naming the options for a mistyped group option
-        result = compare(args.overrides, out, progress=not args.quiet)
-    except Exception as err:  # config, override-grammar and task errors alike: one line
-        cause = user_error(err)
-        if cause is None:
-            raise
-        print(f"polopt compare: error: {cause}", file=sys.stderr)
-        return 2
+    for cfg in config.compose_all(args.overrides, sweep=True, command="polopt compare"):
+        precheck(cfg)  # every combination checked before any folder is made
+    result = compare(args.overrides, out, progress=not args.quiet)
     print(result["table"])
     print(f"comparison folder: {out}")
     return 0

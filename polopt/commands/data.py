@@ -1,70 +1,67 @@
-"""``polopt data FILE``: check and summarise a preference-pair file without training.
+"""``polopt data FILE [task.KEY=VALUE ...]``: check and summarise a preference-pair file without training.
 
     polopt data pairs.jsonl
-    polopt data answers.csv --columns prompt=question,winner=good_reply,loser=other_reply
-    polopt data pairs.parquet --max-length 512 --truncation truncate_response --plot lengths.png
+    polopt data answers.csv 'task.columns={prompt: question, winner: good_reply, loser: other_reply}'
+    polopt data pairs.parquet task.max_length=512 task.truncation=truncate_response --plot lengths.png
     polopt data pairs_folder --json
 
-Prints rows in / accepted / rejected by reason / truncated / duplicates, a text
-histogram of pair lengths, and the first rejects; writes every reject to a
-JSON Lines file (``--rejects``). A problem with the file as a whole is one line
-``polopt data: error: ...`` and exit code 2; bad rows are never an error.
+The keys are those of ``polopt train task=pairs`` (task.columns, task.format, task.max_length,
+task.truncation, task.duplicates, task.tokenizer, task.hub), so a file checked here reads the same in
+training. Prints rows in / accepted / rejected by reason / truncated / duplicates, a text histogram of
+pair lengths, and the first rejects; writes every reject to a JSON Lines file (``--rejects``). A
+problem with the file as a whole is one line ``polopt data: error: ...`` and exit code 2; bad rows are
+never an error.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
-import sys
 from pathlib import Path
 
-from polopt.data import DUPLICATES, FORMATS, TRUNCATION, load_pairs, plot_lengths, summary_text, write_rejects
+KEYS = ("task.columns", "task.format", "task.max_length", "task.truncation", "task.duplicates", "task.tokenizer",
+        "task.hub")  # the task=pairs keys that say how a pair file is read
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="polopt data", description=__doc__.split("\n\n")[0].split(": ", 1)[1],
-        epilog="Row numbers: 1-based line (where the record starts) for JSONL and CSV, 0-based row index for "
+        epilog="Keys (as for polopt train task=pairs): task.columns={prompt: COL, winner: COL, loser: COL[, "
+               "weight: COL]} (default prompt, winner, loser and weight, used when present); task.format=auto|"
+               "jsonl|csv|parquet|folder; task.max_length=N (tokens of task.tokenizer; default no limit); "
+               "task.truncation=reject|truncate_response|truncate_prompt; task.duplicates=reject|keep; "
+               "task.tokenizer=byte|DIR; task.hub=true (FILE may name a hub data set: downloads). "
+               "Row numbers: 1-based line (where the record starts) for JSONL and CSV, 0-based row index for "
                "Parquet and saved folders. Lengths are bytes of UTF-8 with the built-in tokenizer. Reasons: "
                "invalid_utf8, invalid_json, not_an_object, wrong_field_count, missing, not_a_string, empty, "
                "bad_weight, identical, too_long, duplicate.")
     parser.add_argument("file", help="a .jsonl/.csv/.tsv/.parquet file or a folder written by datasets' save_to_disk")
-    parser.add_argument("--columns", default=None,
-                        help="our field=the file's column, e.g. prompt=question,winner=good_reply,loser=other_reply"
-                             "[,weight=w]; default prompt, winner, loser and weight (used when present)")
-    parser.add_argument("--format", default="auto", choices=[f for f in FORMATS if f != "hub"],
-                        help="the file's format (default: from the suffix)")
-    parser.add_argument("--max-length", type=int, default=None,
-                        help="longest pair (prompt + longer response) in tokens of --tokenizer; default no limit")
-    parser.add_argument("--truncation", default="reject", choices=list(TRUNCATION),
-                        help="what to do with a pair longer than --max-length: " +
-                             "; ".join(f"{k}: {v}" for k, v in TRUNCATION.items()))
-    parser.add_argument("--duplicates", default="reject", choices=list(DUPLICATES),
-                        help="exact repeats of an accepted row: reject the later ones (default) or keep and count them")
-    parser.add_argument("--tokenizer", default="byte",
-                        help="'byte' (built-in, lengths in bytes) or a local tokenizer directory "
-                             "(needs polopt[local-lm])")
+    parser.add_argument("overrides", nargs="*", metavar="task.KEY=VALUE",
+                        help=f"how to read the file, as for polopt train task=pairs: {', '.join(KEYS)}")
     parser.add_argument("--rejects", default=None, type=Path,
                         help="where to write the rejects (JSON Lines); default NAME.rejects.jsonl here")
     parser.add_argument("--plot", default=None, type=Path, help="also write the length histogram as a PNG")
     parser.add_argument("--json", action="store_true", help="print the accounting as JSON instead of the text report")
-    parser.add_argument("--hub", action="store_true",
-                        help="allow FILE to be a data set name on the hub when it is not a local path (downloads)")
     return parser
 
 
 def main(argv: list[str]) -> int:
-    args = build_parser().parse_args(argv)
-    try:
-        data = load_pairs(args.file, columns=args.columns, format=args.format, max_length=args.max_length,
-                          truncation=args.truncation, duplicates=args.duplicates, tokenizer=args.tokenizer,
-                          hub=args.hub)
-        rejects = args.rejects or Path(f"{Path(args.file).name or 'pairs'}.rejects.jsonl")
-        write_rejects(data.rejects, rejects)
-        plot = plot_lengths(data, args.plot) if args.plot is not None else None
-    except (ValueError, TypeError, OSError) as err:
-        print(f"polopt data: error: {err}", file=sys.stderr)
-        return 2
+    """The ``polopt data`` subcommand."""
+    from omegaconf import OmegaConf
+
+    from polopt.commands import config
+    from polopt.data import load_pairs, plot_lengths, summary_text, write_rejects
+
+    args = build_parser().parse_intermixed_args(argv)
+    cfg = config.compose(["task=pairs", *args.overrides], command="polopt data")
+    config.only_keys(args.overrides, KEYS, "polopt data")
+    task = OmegaConf.to_container(cfg.task, resolve=True)
+    data = load_pairs(args.file, columns=task["columns"], format=task["format"], max_length=task["max_length"],
+                      truncation=task["truncation"], duplicates=task["duplicates"], tokenizer=task["tokenizer"],
+                      hub=task["hub"])
+    rejects = args.rejects or Path(f"{Path(args.file).name or 'pairs'}.rejects.jsonl")
+    write_rejects(data.rejects, rejects)
+    plot = plot_lengths(data, args.plot) if args.plot is not None else None
     if args.json:
         print(json.dumps(data.accounting | {"rejects_file": str(rejects), "plot": plot and str(plot)}, indent=1))
     else:

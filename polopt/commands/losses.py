@@ -1,24 +1,54 @@
-"""``polopt losses``: list the registered losses with f'(0), f''(0), convexity and their papers."""
+"""``polopt losses``: list the built-in losses with f'(0), f''(0), convexity and their papers.
+
+The list is :data:`CATALOGUE`, written out so that the command prints at once without loading torch;
+tests/test_commands.py recomputes every row from the registry (:meth:`polopt.losses.Loss.derivatives_at`,
+autograd) and fails when the two differ, so the catalogue cannot drift from :mod:`polopt.losses`.
+"""
 
 from __future__ import annotations
+
+import argparse
+
+# name: (f'(0), f''(0), convex, source), as polopt.losses computes and declares them
+CATALOGUE = {
+    "logistic": (-0.5, 0.25, True, "Rafailov et al. 2023 (DPO)"),
+    "squared": (-2.0, 2.0, True, "Azar et al. 2023 (IPO)"),
+    "hinge": (-1.0, 0.0, True, "Zhao et al. 2023 (SLiC)"),
+    "huber": (-2.0, 0.0, True, "Huber 1964, on the squared loss"),
+    "exponential": (-1.0, 1.0, True, "Tang et al. 2024 (GPO)"),
+    "truncated_quadratic": (-2.0, 2.0, True, "Tang et al. 2024 (GPO)"),
+    "savage": (-0.25, 0.125, False, "Tang et al. 2024 (GPO)"),
+}
+
+
+# pair objectives (polopt.objectives): name, keyword parameters with their defaults, source
+PAIR_CATALOGUE = [
+    ("divergence_reverse_kl", "-", "Wang et al. 2023 (f-DPO, reverse KL = DPO)"),
+    ("divergence_forward_kl", "-", "Wang et al. 2023 (f-DPO, forward KL)"),
+    ("divergence_jensen_shannon", "-", "Wang et al. 2023 (f-DPO, Jensen-Shannon)"),
+    ("divergence_alpha", "alpha=0.5", "Wang et al. 2023 (f-DPO, alpha-divergence)"),
+    ("chi_squared_link", "clip=None", "Huang et al. 2024 (chi-PO)"),
+    ("length_normalised_free", "gamma=0.5", "Meng et al. 2024 (SimPO)"),
+    ("length_regularised", "alpha=0.05", "Park et al. 2024 (R-DPO)"),
+    ("winner_anchored", "penalty=50.0", "Pal et al. 2024 (DPO-Positive)"),
+    ("reference_free_logistic", "-", "Xu et al. 2024 (CPO's preference term)"),
+    ("plus_winner_nll", "base=reference_free_logistic, weight=1.0, per_token=False",
+     "Xu et al. 2024 (CPO: a loss plus the winner's NLL)"),
+    ("odds_ratio_with_nll", "weight=0.1", "Hong et al. 2024 (ORPO)"),
+]
 
 
 def main(argv: list[str]) -> int:
     """The ``polopt losses`` subcommand."""
-    from polopt import losses  # imported here: torch loads in seconds, and `polopt data` needs none of it
-
-    for name in losses.names():
-        loss = losses.get(name)
-        f0, d1, d2 = loss.derivatives_at(0.0)
-        convex = {True: "convex", False: "not convex", None: "convexity unknown"}[loss.convex]
-        print(f"{name:<20} f'(0)={d1:+.3f} f''(0)={d2:.3f}  {convex:<12} {loss.source}")
-    from polopt import objectives
-
+    argparse.ArgumentParser(prog="polopt losses", description="List the built-in losses: f'(0), f''(0) at the "
+                            "default parameters, convexity and the paper each comes from. Use one with "
+                            "polopt train loss=NAME; your own with loss=pkg.module:name.").parse_args(argv)
+    for name, (d1, d2, convex, source) in CATALOGUE.items():
+        word = {True: "convex", False: "not convex", None: "convexity unknown"}[convex]
+        print(f"{name:<20} f'(0)={d1:+.3f} f''(0)={d2 + 0.0:.3f}  {word:<12} {source}")
     print("\npair objectives (functions of both log-ratios and the lengths, not of the margin alone):")
-    for name in objectives.names():
-        objective = objectives.resolve(name)
-        takes = ", ".join(f"{k}={v}" for k, v in _keyword_defaults(objective.fn).items()) or "-"
-        print(f"{name:<26} {takes:<54} {objective.source}")
+    for name, takes, source in PAIR_CATALOGUE:
+        print(f"{name:<26} {takes:<54} {source}")
     return 0
 
 

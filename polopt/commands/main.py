@@ -3,12 +3,17 @@
     polopt train [GROUP=OPTION ...] [KEY=VALUE ...]   train one loss on one task (Hydra overrides)
     polopt losses                                      list the registered losses
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
-    polopt data FILE [--columns ...] [--max-length N]  check and summarise a preference-pair file
+    polopt data FILE [task.KEY=VALUE ...]              check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
     polopt reward [KEY=VALUE ...] [--out DIR]        fit a Bradley–Terry reward model to a task's pairs
+    polopt reward [KEY=VALUE ...] [--out DIR]          fit a Bradley–Terry reward model to a task's pairs
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
-    polopt check LOSS [--beta B] [--json] [--plot P]   unit-test a loss against the analytic optimum
+    polopt check LOSS [KEY=VALUE ...] [--json]         unit-test a loss against the analytic optimum
+    polopt demo [KEY=VALUE ...] [--quick]              the end-to-end walk-through
+    polopt sft FILE --out REF.pt [KEY=VALUE ...]       supervised fine-tuning of a reference model
+
+Every command takes polopt train's config keys as KEY=VALUE; flags only for what is not a config key.
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -17,19 +22,47 @@ from __future__ import annotations
 
 import sys
 
-COMMANDS = {
-    "train": ('train', "train one loss on one task; Hydra overrides, see 'polopt train --help'"),
-    "losses": ('losses', "list the registered losses with f'(0), f''(0) and their papers"),
-    "export": ('export', "write a built-in task out as a finite-task JSON file"),
-    "data": ('data', "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training"),
-    "sft": ('sft', "train the tiny transformer on plain text; save it as a reference (task.reference_checkpoint)"),
-    "demo": ('demo', "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots"),
-    "compare": ('compare', "several losses / methods on one task: one table and one plot"),
-    "reward": ('reward', "fit a Bradley–Terry reward model to a task's pairs (method.reward=PATH optimises it)"),
-    "realign": ('realign', "decoding-time realignment against retraining over a grid of lambda: table and plot"),
-    "checkpoints": ('checkpoints', "verify a run folder's checkpoints and show the resume point"),
-    "check": ('check', "unit-test a loss against the analytic optimum; exit code 1 on any failure"),
+COMMANDS = {  # name: what it does (its module is polopt/commands/NAME.py, see _command)
+    "train": "train one loss on one task; Hydra overrides, see 'polopt train --help'",
+    "losses": "list the registered losses with f'(0), f''(0) and their papers",
+    "export": "write a built-in task out as a finite-task JSON file",
+    "data": "check and summarise a preference-pair file (JSONL, CSV, Parquet, folder) without training",
+    "sft": "train the tiny transformer on plain text; save it as a reference (task.reference_checkpoint)",
+    "demo": "the end-to-end walk-through: SFT, sampled pairs, a biased judge, training, win-rates, plots",
+    "compare": "several losses / methods on one task: one table and one plot",
+    "reward": "fit a Bradley–Terry reward model to a task's pairs (method.reward=PATH optimises it)",
+    "realign": "decoding-time realignment against retraining over a grid of lambda: table and plot",
+    "checkpoints": "verify a run folder's checkpoints and show the resume point",
+    "check": "unit-test a loss against the analytic optimum; exit code 1 on any failure",
 }
+
+
+def _command(name: str):
+    """The ``main`` of command ``name``, imported only when it runs (torch loads in seconds); plain import
+    statements, so that nothing is imported by a name read at run time."""
+    if name == "train":
+        from polopt.commands.train import main
+    elif name == "losses":
+        from polopt.commands.losses import main
+    elif name == "export":
+        from polopt.commands.export import main
+    elif name == "data":
+        from polopt.commands.data import main
+    elif name == "sft":
+        from polopt.commands.sft import main
+    elif name == "demo":
+        from polopt.commands.demo import main
+    elif name == "compare":
+        from polopt.commands.compare import main
+    elif name == "reward":
+        from polopt.commands.reward import main
+    elif name == "realign":
+        from polopt.commands.realign import main
+    elif name == "checkpoints":
+        from polopt.commands.checkpoints import main
+    else:
+        from polopt.commands.check import main
+    return main
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -38,17 +71,26 @@ def main(argv: list[str] | None = None) -> int:
         lines = ["usage: polopt COMMAND [ARGS ...]", "",
                  "Offline preference optimisation on small models, checked against exact optima.", "",
                  "commands:"]
-        lines += [f"  {name:<11} {text}" for name, (_, text) in COMMANDS.items()]
+        lines += [f"  {name:<11} {text}" for name, text in COMMANDS.items()]
         lines += ["", "'polopt COMMAND --help' explains each command."]
         known = not argv or argv[0] in ("-h", "--help")
         print("\n".join(lines), file=sys.stdout if known else sys.stderr)
         if not known:
             print(f"polopt: error: unknown command {argv[0]!r}", file=sys.stderr)
         return 0 if known else 2
-    import importlib
+    from polopt.commands.errors import run_command
 
-    module, _ = COMMANDS[argv[0]]  # imported only when its command runs: torch loads in seconds
-    return importlib.import_module(f"polopt.commands.{module}").main(argv[1:])
+    name = argv[0]
+    if name == "train" and any(a in ("-h", "--help", "--hydra-help") for a in argv[1:]):
+        from polopt.commands import runs  # Hydra's help without loading torch
+
+        return runs.help_main(argv[1:])
+
+    def command(args: list[str]) -> int:
+        return _command(name)(args)
+
+    hint = "the newest good checkpoint is kept: rerun the same command to resume" if name == "train" else ""
+    return run_command(name, command, argv[1:], os_hint=hint)
 
 
 if __name__ == "__main__":

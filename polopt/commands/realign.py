@@ -24,13 +24,12 @@ from __future__ import annotations
 import argparse
 import contextlib
 import io
-import sys
 import time
 from pathlib import Path
 
 import numpy as np
 
-from polopt.commands.compare import user_error, write_tables
+from polopt.commands.compare import write_tables
 
 COLUMNS = ("lambda", "beta_equivalent", "tv_geometric", "tv_per_token", "tv_per_token_exact", "tv_retrained",
            "tv_per_token_to_retrained", "tv_geometric_to_retrained", "kl_per_token", "kl_retrained")
@@ -185,17 +184,14 @@ def main(argv: list[str]) -> int:
     parser.add_argument("--no-retrain", action="store_true", help="only the mixtures, no retrained runs")
     parser.add_argument("--out", default=None, help="the folder (default runs/realign/DATE-TIME)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
-    args = parser.parse_args(argv)
+    args = parser.parse_intermixed_args(argv)
+    from polopt.commands import config  # after parsing: --help loads no torch
+    from polopt.commands.train import precheck
+
     out = Path(args.out) if args.out else Path("runs") / "realign" / time.strftime("%Y-%m-%d/%H-%M-%S")
-    try:
-        lambdas = parse_lambdas(args.lambdas)
-        result = realign_sweep(args.overrides, lambdas, out, retrain=not args.no_retrain, progress=not args.quiet)
-    except Exception as err:  # config, override-grammar and task errors alike: one line
-        cause = user_error(err)
-        if cause is None:
-            raise
-        print(f"polopt realign: error: {cause}", file=sys.stderr)
-        return 2
+    lambdas = parse_lambdas(args.lambdas)
+    precheck(config.compose_all(args.overrides, command="polopt realign")[0])  # before any folder is made
+    result = realign_sweep(args.overrides, lambdas, out, retrain=not args.no_retrain, progress=not args.quiet)
     print(result["table"])
     print(f"realign folder: {out}")
     return 0

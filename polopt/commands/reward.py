@@ -15,8 +15,6 @@ output folder. Give ``method.reward=OUT/reward.pt`` to ``method=best_of_n`` or
 from __future__ import annotations
 
 import argparse
-import os
-import sys
 import time
 from pathlib import Path
 
@@ -24,17 +22,15 @@ from pathlib import Path
 def fit(overrides: list[str], out: Path) -> dict:
     """Compose the config, fit the task's reward model, write the folder; return summary.json's content."""
     import torch
-    from hydra import compose, initialize_config_dir
     from omegaconf import OmegaConf
 
     from polopt.checkpoint import atomic_write
-    from polopt.commands.config import CONFIG_DIR, rewrite_overrides
-    from polopt.commands.train import build_task, check_complete
+    from polopt.commands.config import build_task, compose
+    from polopt.commands.train import check_complete
     from polopt.reward_model import save_reward_model
     from polopt.run_folder import write_json
 
-    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
-        cfg = compose("config", overrides=rewrite_overrides(overrides))
+    cfg = compose(overrides, command="polopt reward")  # every key checked; the task by the allow-list
     check_complete(cfg)
     task = build_task(cfg.task)
     if not hasattr(task, "fit_reward"):
@@ -59,7 +55,7 @@ def fit(overrides: list[str], out: Path) -> dict:
 
 
 def main(argv: list[str]) -> int:
-    """The ``polopt reward`` subcommand: user errors are one line and exit code 2."""
+    """The ``polopt reward`` subcommand."""
     parser = argparse.ArgumentParser(
         prog="polopt reward",
         description="Fit a Bradley–Terry reward model by maximum likelihood to a task's pairs: a table of rewards per "
@@ -71,21 +67,9 @@ def main(argv: list[str]) -> int:
     parser.add_argument("overrides", nargs="*", help="key=value overrides as for 'polopt train' (and reward.l2, "
                                                      "reward.heldout, reward.bins, reward.steps, reward.lr)")
     parser.add_argument("--out", default=None, help="the output folder (default runs/reward/DATE/TIME)")
-    args = parser.parse_args(argv)
+    args = parser.parse_intermixed_args(argv)
     out = Path(args.out) if args.out else Path("runs") / "reward" / time.strftime("%Y-%m-%d/%H-%M-%S")
-    try:
-        summary = fit(args.overrides, out)
-    except Exception as err:  # config, override-grammar and task errors alike: one line
-        from polopt.commands.compare import user_error
-
-        cause = user_error(err)
-        if cause is None or os.environ.get("POLOPT_DEBUG"):
-            raise
-        lines = str(cause).splitlines() or [type(cause).__name__]  # OmegaConf's errors span several lines
-        key = next((line.split(":", 1)[1].strip() for line in lines if line.strip().startswith("full_key:")), None)
-        where = f" ({key}; 'polopt train --help' lists every key)" if key else ""
-        print(f"polopt reward: error: {lines[0]}{where}", file=sys.stderr)
-        return 2
+    summary = fit(args.overrides, out)  # a user error: one line by polopt.commands.errors
     print(summary["screen"])
     hint = "  (give it to method.reward=PATH)" if summary.get("rewards") is not None else ""
     print(f"reward model: {summary['reward_model']}{hint}")

@@ -19,7 +19,6 @@ or call anything else (a user loss comes only from ``loss.name=pkg.module:name``
 from __future__ import annotations
 
 import contextlib
-import os
 import sys
 import uuid
 from pathlib import Path
@@ -27,11 +26,12 @@ from pathlib import Path
 import hydra
 import torch
 from hydra.core.hydra_config import HydraConfig
-from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
 from polopt import checkpoint, devices, distributed, losses, objectives, sharded_checkpoint
-from polopt.commands.config import CONFIG_DIR, rewrite_overrides
+from polopt.commands import runs
+from polopt.commands.config import CONFIG_DIR, build_task
+from polopt.commands.errors import Escape
 from polopt.compiling import compile_policy
 from polopt.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu
 from polopt.methods import method_objective
@@ -41,8 +41,6 @@ from polopt.run_folder import RunFolder, run_summary
 from polopt.train import MethodObjective, PairObjective, TrainSettings, optimise
 from polopt.verdict import reached_line
 
-_TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
-TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 # keys that change how a run is kept, not what it computes: a resume may change them
 # (steps: a finished run continues when train.steps is raised; strategy: a sharded checkpoint resumes on ddp)
 _RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every", "threads", "device", "steps",
@@ -54,38 +52,6 @@ def build_loss(cfg: DictConfig) -> losses.Loss | objectives.PairObjective:
     name and smoothing); see :mod:`polopt.objectives`."""
     params = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in ("name", "smoothing")}
     return objectives.resolve(cfg.name, **params)
-
-
-def build_task(cfg: DictConfig):
-    """The task object from the ``task`` group, by its ``_target_``."""
-    builder = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in _TASK_RUN_KEYS}
-    check_target(builder)
-    try:
-        return instantiate(builder, _convert_="all", _recursive_=False)
-    except Exception as err:  # Hydra wraps the builder's own error; show the builder's words
-        cause = err.__cause__ or err
-        if isinstance(cause, (ValueError, TypeError)):
-            raise ValueError(str(cause)) from err
-        raise
-
-
-def check_target(builder: dict) -> None:
-    """Allow only a top-level ``_target_`` inside :data:`TASK_PACKAGES`, so that no config can
-    import or call arbitrary code; nested ``_target_`` keys are refused too."""
-    target = builder.get("_target_")
-    if not isinstance(target, str) or not target.startswith(TASK_PACKAGES):
-        raise ValueError(f"task._target_ must name a task builder in {' or '.join(p[:-1] for p in TASK_PACKAGES)}, "
-                         f"got {target!r}; a loss of your own goes in loss.name=pkg.module:name")
-    stack = [v for k, v in builder.items() if k != "_target_"]
-    while stack:
-        value = stack.pop()
-        if isinstance(value, dict):
-            if "_target_" in value:
-                raise ValueError(f"task: a nested _target_ ({value['_target_']!r}) is not allowed; "
-                                 "task keys hold data only")
-            stack.extend(value.values())
-        elif isinstance(value, list):
-            stack.extend(value)
 
 
 _MISSING_HINTS = {
@@ -252,9 +218,18 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     return summary
 
 
+def precheck(cfg: DictConfig) -> None:
+    """The refusals that need no task (missing values, the loss, beta): before any folder is made."""
+    plain = OmegaConf.masked_copy(cfg, [k for k in cfg if k != "hydra"])
+    check_complete(plain)
+    build_loss(plain.loss)
+    validate_hyperparameters(plain.beta, plain.loss.smoothing)
+
+
 @hydra.main(version_base="1.3", config_path=str(CONFIG_DIR), config_name="config")
 def train_main(cfg: DictConfig) -> None:
-    """Hydra's entry point for ``polopt train``: user errors become one line and exit code 2."""
+    """Hydra's entry point for ``polopt train``: errors are carried past Hydra's own report to the
+    commands' error boundary (:mod:`polopt.commands.errors`); a run refused before training leaves no folder."""
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
         context = distributed.from_environment()
@@ -266,29 +241,28 @@ def train_main(cfg: DictConfig) -> None:
         # every rank uses rank 0's folder (a ${now:...} in hydra.run.dir may differ between processes)
         run_dir = distributed.broadcast_path(run_dir, context)
         with checkpoint.exclusive(run_dir) if context.is_main else contextlib.nullcontext():
-            run(cfg, run_dir, context, device)
+            summary = run(cfg, run_dir, context, device)
         distributed.teardown(context)
+        runs.record(HydraConfig.get().overrides.task, run_dir, summary)
     except KeyboardInterrupt:
         print(f"polopt train: interrupted; rerun the same command to resume from the newest checkpoint in "
               f"{run_dir / 'checkpoints'}", file=sys.stderr)
         sys.exit(130)
-    except (ValueError, TypeError, FloatingPointError, checkpoint.CheckpointError, OSError) as err:
-        if os.environ.get("POLOPT_DEBUG"):
-            raise
-        if isinstance(err, OSError):  # e.g. a full disk while writing metrics or the summary
-            err = f"cannot write to {err.filename or run_dir}: {err.strerror or err}; the newest good checkpoint " \
-                  "is kept: rerun the same command to resume"
-        print(f"polopt train: error: {err}", file=sys.stderr)
-        sys.exit(2)
+    except Exception as err:
+        runs.discard(run_dir)
+        raise Escape(err) from err
+
+
 
 
 def main(argv: list[str]) -> int:
-    """The ``polopt train`` subcommand: group options checked, then Hydra's entry point."""
-    try:
-        overrides = rewrite_overrides(argv)
-    except ValueError as err:
-        print(f"polopt train: error: {err}", file=sys.stderr)
-        return 2
-    sys.argv = ["polopt train", *overrides]
+    """The ``polopt train`` subcommand: the overrides checked and the run folder fixed (:mod:`polopt.commands.runs`),
+    then Hydra's entry point; a sweep (``-m``) ends with one table of its runs."""
+    plan = runs.plan(argv)
+    for cfg in plan.configs if plan.folder is not None else ():  # (not for --cfg / --info: nothing runs)
+        precheck(cfg)
+    sys.argv = ["polopt train", *plan.argv]
     train_main()
+    if plan.multirun:
+        print(runs.sweep_table(plan))
     return 0

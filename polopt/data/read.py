@@ -125,9 +125,8 @@ def _check_columns(found: list[str], columns: Columns, source: str) -> bool:
     if missing:
         shown = ", ".join(map(repr, found[:20])) + (" ..." if len(found) > 20 else "") if found else "none"
         raise ValueError(f"{source}: missing column(s) {', '.join(missing)}; the file has: {shown}. "
-                         "Map your names with columns, e.g. task.columns='{prompt: question, winner: good_reply, "
-                         "loser: other_reply}' or polopt data --columns prompt=question,winner=good_reply,"
-                         "loser=other_reply")
+                         "Map your names with task.columns, e.g. task.columns='{prompt: question, winner: "
+                         "good_reply, loser: other_reply}' (polopt train task=pairs and polopt data alike)")
     return columns.weight is not None and columns.weight in found
 
 

@@ -1,0 +1,158 @@
+"""The run folders of ``polopt train``: planned before Hydra runs, left behind only by runs that trained.
+
+:func:`plan` checks the command line (:func:`polopt.commands.config.compose_all`) and fixes the run
+folder (or a sweep's folder) once, so that Hydra and this module name the same path and know whether
+this command created it; :func:`discard` removes a folder this command created for a run refused
+before training (no ``metrics.jsonl``, no checkpoint); :func:`record` and :func:`sweep_table` give a
+sweep (``-m``) one table of all its runs, named by their overrides (``hydra.sweep.subdir``).
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from polopt.commands import config
+
+# summary keys a sweep's table shows, where some run has them (the rest stay in each summary.json)
+SWEEP_COLUMNS = ("tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "loss_gap", "kl_to_reference",
+                 "win_rate_over_reference", "expected_reward", "pair_accuracy", "steps", "seconds")
+_HELP_FLAGS = ("-h", "--help", "--hydra-help", "--info", "-i", "--shell-completion", "-sc")
+
+
+@dataclass
+class Plan:
+    argv: list[str]  # what Hydra is given: the user's arguments, the folder pinned
+    multirun: bool = False
+    folder: Path | None = None  # the run folder, or a sweep's folder
+    created: Path | None = None  # the topmost folder this command creates (None: the folder exists already)
+    configs: list = field(default_factory=list)  # every run's composed config (Hydra's settings under hydra)
+    records: list[tuple[list[str], Path, dict]] = field(default_factory=list)  # (overrides, folder, summary)
+
+
+_CURRENT = Plan(argv=[])
+
+
+def wants_help(argv: list[str]) -> bool:
+    return any(a in _HELP_FLAGS for a in argv)
+
+
+def help_main(argv: list[str]) -> int:
+    """``polopt train --help`` (Hydra's help with conf/hydra/help/polopt.yaml) without loading the kit."""
+    import sys
+
+    import hydra
+
+    @hydra.main(version_base="1.3", config_path=str(config.CONFIG_DIR), config_name="config")
+    def _show(cfg) -> None:  # never called: Hydra prints the help and exits
+        pass
+
+    sys.argv = ["polopt train", *argv]
+    try:
+        _show()
+    except SystemExit as stop:
+        return int(stop.code or 0)
+    return 0
+
+
+def _quoted(path: Path) -> str:
+    text = str(path)
+    return f"'{text}'" if "'" not in text else text
+
+
+def _topmost_missing(folder: Path) -> Path | None:
+    created = None
+    for candidate in (folder, *folder.parents):
+        if candidate.exists():
+            break
+        created = candidate
+    return created
+
+
+def plan(argv: list[str]) -> Plan:
+    """Check ``polopt train ARGV`` and fix its folder; a mistake raises one ValueError line."""
+    global _CURRENT
+    from hydra._internal.utils import get_args_parser
+    from hydra.core.hydra_config import HydraConfig
+
+    args = get_args_parser().parse_args(argv)
+    if args.config_path or args.config_name or args.config_dir:
+        raise ValueError("polopt train reads the kit's own config folder; give settings as key=value "
+                         "(or +experiment=NAME), not --config-path, --config-name or --config-dir")
+    multirun = bool(args.multirun)
+    configs = config.compose_all(args.overrides, sweep=multirun)
+    argv = [a for a in argv if a not in args.overrides] + config.rewrite_overrides(args.overrides)
+    if args.cfg or args.info or args.resolve:  # Hydra prints the config; nothing is run or written
+        _CURRENT = Plan(argv=argv, configs=configs)
+        return _CURRENT
+    key = "hydra.sweep.dir" if multirun else "hydra.run.dir"
+    HydraConfig.instance().set_config(configs[0])
+    folder = Path(str(configs[0].hydra.sweep.dir if multirun else configs[0].hydra.run.dir))
+    given = any(o.lstrip("+").startswith(f"{key}=") for o in args.overrides)
+    pinned = list(argv) if given else [*argv, f"{key}={_quoted(folder)}"]
+    _CURRENT = Plan(argv=pinned, multirun=multirun, folder=folder, created=_topmost_missing(folder),
+                    configs=configs)
+    return _CURRENT
+
+
+def _trained(run_dir: Path) -> bool:
+    return (run_dir / "metrics.jsonl").exists() or (run_dir / "checkpoints").exists()
+
+
+def discard(run_dir: Path) -> None:
+    """Remove ``run_dir`` (and the empty folders above it that this command created) when this command
+    created it and the run never trained; a folder that existed before is never touched."""
+    created = _CURRENT.created
+    run_dir = Path(run_dir)
+    if created is None or _trained(run_dir) or not run_dir.resolve().is_relative_to(created.resolve()):
+        return
+    shutil.rmtree(run_dir, ignore_errors=True)
+    for folder in (run_dir, *run_dir.parents):
+        if folder.exists() and {p.name for p in folder.iterdir()} - {"multirun.yaml"}:
+            break
+        shutil.rmtree(folder, ignore_errors=True)
+        if folder.resolve() == created.resolve():
+            break
+
+
+def record(overrides: list[str], run_dir: Path, summary: dict) -> None:
+    """One finished run of this command (a sweep's table row) and its command-line overrides."""
+    _CURRENT.records.append((list(overrides), Path(run_dir), summary))
+
+
+def _plain(value):
+    """JSON's values: NaN and inf become null (as in summary.json)."""
+    if isinstance(value, float) and (value != value or value in (float("inf"), float("-inf"))):
+        return None
+    return value if isinstance(value, (str, int, float, bool, type(None))) else str(value)
+
+
+def _cell(value) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    return "-" if value is None else str(value)
+
+
+def sweep_table(current: Plan | None = None) -> str:
+    """One table of a sweep's runs (their overrides, then :data:`SWEEP_COLUMNS` where some run has them);
+    written to ``runs.txt`` and ``runs.json`` in the sweep's folder."""
+    current = current or _CURRENT
+    columns = [c for c in SWEEP_COLUMNS if any(c in s for _, _, s in current.records)]
+    common = set.intersection(*(set(o) for o, _, _ in current.records)) if current.records else set()
+    names = [" ".join(o for o in overrides if o not in common) or " ".join(overrides) or "(defaults)"
+             for overrides, _, _ in current.records]
+    rows = [[name, *(_cell(s.get(c)) for c in columns)] for name, (_, _, s) in zip(names, current.records,
+                                                                                   strict=True)]
+    header = ["run", *columns]
+    widths = [max(len(r[i]) for r in [header, *rows]) for i in range(len(header))]
+    lines = ["  ".join(cell.ljust(w) for cell, w in zip(row, widths, strict=True)).rstrip()
+             for row in [header, *rows]]
+    text = "\n".join([lines[0], "  ".join("-" * w for w in widths), *lines[1:]])
+    if current.folder is not None and current.folder.is_dir():
+        (current.folder / "runs.txt").write_text(text + "\n", encoding="utf-8")
+        data = [{"run": name, "overrides": o, "folder": str(folder), **{c: _plain(s.get(c)) for c in columns}}
+                for name, (o, folder, s) in zip(names, current.records, strict=True)]
+        (current.folder / "runs.json").write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
+    return f"{text}\nsweep folder: {current.folder} ({len(rows)} runs; runs.txt, runs.json)"
