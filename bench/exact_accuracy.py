@@ -1,9 +1,10 @@
 """How close the trainer gets to the exact optimum, per loss and task (exact mode, default settings).
 
-    python bench/exact_accuracy.py [--steps 2000] [--seeds 3] [--json out.json]
+    python bench/exact_accuracy.py [--steps 2000] [--seeds 3] [--tol 1e-12] [--json out.json]
 
 Prints one row per (task, loss, beta): TV to the optimum, the relative loss gap, the solver's
-gradient residual and the seconds of training. Random tasks of 50 responses are drawn per seed.
+gradient residual, the steps run (``train.tol``: early stopping, the finite tasks' default; 0:
+every step) and the seconds of training. Random tasks of 50 responses are drawn per seed.
 Figures, not a pass/fail test.
 """
 
@@ -15,6 +16,7 @@ import torch
 
 from polopt import losses
 from polopt.optim import OptimConfig
+from polopt.stopping import FINITE_TASK_TOL
 from polopt.train import TrainSettings, train
 from toy_tasks import families
 from toy_tasks.finite import make_task
@@ -34,13 +36,15 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=2000)
     parser.add_argument("--seeds", type=int, default=3)
+    parser.add_argument("--tol", type=float, default=FINITE_TASK_TOL, help="train.tol (0: every step)")
     parser.add_argument("--json", default=None, help="also write the rows here")
     args = parser.parse_args()
     torch.set_num_threads(1)  # as polopt train does for finite tasks
     tasks = [families.bradley_terry(), families.noisy_labels(), families.nontransitive(), families.contextual()]
     tasks += [random_task(s, 50, kind) for s in range(args.seeds) for kind in ("bt", "P")]
     rows = []
-    print(f"{'task':<14} {'loss':<20} {'beta':>5} {'tv_to_optimum':>14} {'rel_loss_gap':>13} {'residual':>9} {'s':>5}")
+    print(f"{'task':<14} {'loss':<20} {'beta':>5} {'tv_to_optimum':>14} {'rel_loss_gap':>13} {'residual':>9} "
+          f"{'steps':>5} {'s':>5}")
     for task in tasks:
         for name in losses.names():
             for beta in (0.1, 1.0):
@@ -49,17 +53,18 @@ def main() -> None:
                 policy = session.build_policy()
                 result = train(policy, session.pairs, loss,
                                TrainSettings(beta=beta, steps=args.steps, optim=OptimConfig(), progress=False,
-                                             log_every=args.steps))
+                                             log_every=args.steps, tol=args.tol))
                 s = session.summarise(policy, result)
                 row = {"task": task.name, "loss": name, "beta": beta, "tv_to_optimum": s["tv_to_optimum"],
                        "relative_loss_gap": s["relative_loss_gap"], "residual": s["optimum_residual"],
-                       "seconds": s["seconds"], "unique": s["optimum_unique"], "finite": s["optimum_finite"]}
+                       "seconds": s["seconds"], "steps": result.steps, "unique": s["optimum_unique"],
+                       "finite": s["optimum_finite"]}
                 rows.append(row)
                 tv = "no optimum" if row["tv_to_optimum"] is None else f"{row['tv_to_optimum']:.2e}"
                 gap = "-" if row["relative_loss_gap"] is None else f"{row['relative_loss_gap']:.2e}"
                 res = "-" if row["residual"] is None else f"{row['residual']:.0e}"
-                print(f"{task.name:<14} {name:<20} {beta:>5} {tv:>14} {gap:>13} {res:>9} {row['seconds']:>5.1f}",
-                      flush=True)
+                print(f"{task.name:<14} {name:<20} {beta:>5} {tv:>14} {gap:>13} {res:>9} {row['steps']:>5} "
+                      f"{row['seconds']:>5.1f}", flush=True)
     smooth = [r for r in rows if r["finite"] and r["unique"] and r["loss"] != "savage"]
     hinge = [r for r in rows if r["loss"] == "hinge" and r["relative_loss_gap"] is not None]
     print(f"\nworst TV, convex members with a unique optimum: {max(r['tv_to_optimum'] for r in smooth):.2e}")

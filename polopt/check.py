@@ -45,6 +45,7 @@ import scipy.optimize
 import torch
 
 from polopt import losses, objectives
+from polopt.contracts import session_tol
 from polopt.losses import Loss
 from polopt.objective import margins
 from polopt.objectives import PairObjective
@@ -634,7 +635,8 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
         policy = session.build_policy()
         result = train(policy, session.pairs, loss,
                        TrainSettings(beta=beta, steps=steps, optim=optim or OptimConfig(),
-                                     log_every=max(steps // 20, 1), progress=False))
+                                     log_every=max(steps // 20, 1), progress=False,
+                                     tol=session_tol(session)))  # the task's early stop, as polopt train
         summary = session.summarise(policy, result)
         mean_margin = _mean_margin(policy, session.pairs)
         balanced = bool(_net_win_weight(session.pairs).abs().max() <= 1e-9)
@@ -644,7 +646,7 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
     facts = {key: summary.get(key) for key in ("policy", "reference", "optimum", "optimum_finite", "optimum_value",
                                                "optimum_method", "optimum_unique", "tv_to_optimum", "loss",
                                                "loss_gap", "limit_support", "margin_growth")}
-    facts.update({"steps": steps, "mean_margin": mean_margin, "balanced": balanced, "tol": tol})
+    facts.update({"steps": result.steps, "mean_margin": mean_margin, "balanced": balanced, "tol": tol})
     problems, notes = [], []
     # 1. direction of the trained margins
     if balanced:

@@ -97,10 +97,11 @@ def fingerprint(config: dict, *tensors: torch.Tensor) -> str:
 
 def training_state(*, step: int, policy: torch.nn.Module, optimiser, scheduler, generator: torch.Generator,
                    order: torch.Tensor, cursor: int, history: list[dict], skipped: list[int],
-                   seconds: float, sharded: bool = False) -> dict:
+                   seconds: float, sharded: bool = False, convergence: dict | None = None) -> dict:
     """The trainer's whole state after ``step`` as a plain dict of tensors and containers; ``sharded``
     (train.strategy=fsdp): the policy and optimiser entries are this rank's shards, keyed by parameter
-    name (:mod:`polopt.sharded_checkpoint` writes them)."""
+    name (:mod:`polopt.sharded_checkpoint` writes them). ``convergence``: the early-stopping window
+    (:meth:`polopt.stopping.Convergence.state`, with ``stopped`` once the run has stopped on ``train.tol``)."""
     if sharded:
         from polopt.sharded_checkpoint import state_dicts
 
@@ -110,13 +111,14 @@ def training_state(*, step: int, policy: torch.nn.Module, optimiser, scheduler, 
     return {"format": FORMAT, "step": step, "policy": model_state, "optimiser": optimiser_state,
             "scheduler": scheduler.state_dict(), "generator": generator.get_state(),
             "torch_rng": torch.get_rng_state(), "order": order.clone(), "cursor": cursor,
-            "history": [dict(r) for r in history], "skipped": list(skipped), "seconds": seconds}
+            "history": [dict(r) for r in history], "skipped": list(skipped), "seconds": seconds,
+            "convergence": dict(convergence or {})}
 
 
 def restore_training_state(state: dict, *, policy: torch.nn.Module, optimiser, scheduler,
                            generator: torch.Generator) -> dict:
     """Load ``state`` into the given objects; return the loop variables
-    (step, order, cursor, history, skipped, seconds)."""
+    (step, order, cursor, history, skipped, seconds, convergence: {} in checkpoints that predate it)."""
     try:
         if state.get("sharded"):  # a sharded checkpoint's folder: DCP reads it into any layout
             from polopt.sharded_checkpoint import load_into
@@ -131,7 +133,8 @@ def restore_training_state(state: dict, *, policy: torch.nn.Module, optimiser, s
     except (RuntimeError, KeyError, ValueError, TypeError) as err:
         raise ValueError(f"the checkpoint of step {state.get('step')} does not fit this model and optimiser: "
                          f"{str(err).strip().splitlines()[0][:160]}") from err
-    return {k: state[k] for k in ("step", "order", "cursor", "history", "skipped", "seconds")}
+    return {**{k: state[k] for k in ("step", "order", "cursor", "history", "skipped", "seconds")},
+            "convergence": state.get("convergence") or {}}
 
 
 def nonfinite_entries(state: dict) -> list[str]:

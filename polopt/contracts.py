@@ -30,6 +30,7 @@ class TrainResult:
     final: dict
     history: list[dict] = field(default_factory=list)
     skipped: list[int] = field(default_factory=list)
+    stopped: str = "steps"  # why it ended: "steps" (ran train.steps) or "tol" (converged; polopt.stopping)
 
 
 @runtime_checkable
@@ -80,6 +81,11 @@ class MethodView(Protocol):
 def session_threads(session: Session) -> int | None:
     """The torch thread count a session asks for (None: torch's default)."""
     return getattr(session, "threads", None)
+
+
+def session_tol(session: Session) -> float | None:
+    """The early-stopping tolerance a session asks for when ``train.tol`` is null (None: run every step)."""
+    return getattr(session, "tol", None)
 
 
 def trains_on_gpu(session: Session) -> bool:

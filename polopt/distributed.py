@@ -212,8 +212,10 @@ class _Scorer(nn.Module):
         super().__init__()
         self.policy = policy
 
-    def forward(self, prompt: Tensor, response: Tensor) -> Tensor:
-        return self.policy.logprobs(prompt, response)
+    def forward(self, prompt: Tensor, response: Tensor, loser: Tensor | None = None) -> Tensor:
+        if loser is None:
+            return self.policy.logprobs(prompt, response)
+        return self.policy.logprobs(prompt, response, loser)  # a shared-prompt pass: (2B,)
 
 
 def scorer(policy: nn.Module, context: Context, device: torch.device | None = None):

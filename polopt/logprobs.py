@@ -16,9 +16,21 @@ change a log-probability.
 :class:`SequencePolicy` is the trainer's view of a sequence model
 (``logprobs(prompt, response) -> (B,)``); winners and losers go through it in
 one forward pass, concatenated along the batch.
+
+A pair's winner and loser share their prompt. :func:`pack_pairs` lays a pair out
+as one row ``[prompt, winner, loser]`` in which the prompt is computed once: the
+loser's positions restart after the prompt, and an attention mask lets each
+response see the prompt and its own earlier tokens but never the other response.
+Every response token then sees exactly the tokens and positions it sees when
+scored on its own, so :func:`shared_pair_logprobs` gives the log-probabilities of
+two separate passes (up to floating-point rounding) while the prompt's positions
+are computed once instead of twice. A model opts in with ``takes_layout = True``
+(its forward takes ``positions`` and ``mask``; :mod:`polopt.models`).
 """
 
 from __future__ import annotations
+
+from typing import NamedTuple
 
 import torch
 from torch import nn
@@ -89,6 +101,82 @@ def sequence_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pad
     return token_logprobs(model, tokens, mask).sum(dim=1)
 
 
+class PairLayout(NamedTuple):
+    """A batch of pairs packed one pair per row (see :func:`pack_pairs`)."""
+
+    tokens: Tensor  # (B, T) prompt, winner but its last token, loser but its last token, padding
+    positions: Tensor  # (B, T) each token's position in its own sequence (the loser restarts after the prompt)
+    mask: Tensor  # (B, 1, T, T) True where query t may attend to key s
+    score_winner: Tensor  # (B, T_w) the row index whose logits score each winner token
+    score_loser: Tensor  # (B, T_l) the same for the loser
+
+
+def pack_pairs(prompt: Tensor, winner: Tensor, loser: Tensor, *, pad_id: int) -> PairLayout:
+    """One row per pair, ``[x, y_w[:-1], y_l[:-1]]``, and the layout that keeps the two responses apart.
+
+    A response's last token is only scored, never read, so it is left out of the input. With
+    n_p, n_w, n_l real tokens and a_w = max(n_w - 1, 0), a_l = max(n_l - 1, 0), the row holds the
+    prompt at positions 0..n_p-1, the winner's inputs at n_p..n_p+a_w-1 and the loser's inputs
+    after them, at positions n_p..n_p+a_l-1 again. A query may attend to a key at or before it,
+    except that a loser token never attends to a winner token. Winner token k is scored by the
+    logits at row index n_p-1 (k = 0) or n_p+k-1; loser token k by n_p-1 (k = 0) or n_p+a_w+k-1.
+
+    Args:
+        prompt: (B, T_p), winner: (B, T_w), loser: (B, T_l), right-padded; every prompt has >= 1 token.
+    """
+    n_p = lengths(prompt, pad_id=pad_id)[:, None]  # (B, 1)
+    if bool((n_p < 1).any()):
+        raise ValueError("every prompt needs at least one token (the first response token is scored "
+                         "by the logits at the prompt's last token)")
+    n_w, n_l = lengths(winner, pad_id=pad_id)[:, None], lengths(loser, pad_id=pad_id)[:, None]  # (B, 1)
+    a_w, a_l = (n_w - 1).clamp(min=0), (n_l - 1).clamp(min=0)  # (B, 1)
+    total = max(int((n_p + a_w + a_l).max()), 1)
+    t = torch.arange(total, device=prompt.device)[None, :]  # (1, T)
+    in_prompt = t < n_p  # (B, T)
+    in_winner = (t >= n_p) & (t < n_p + a_w)  # (B, T)
+    in_loser = (t >= n_p + a_w) & (t < n_p + a_w + a_l)  # (B, T)
+
+    def take(source: Tensor, index: Tensor) -> Tensor:  # source[b, index[b, t]], index clamped into range
+        return source.gather(1, index.clamp(0, max(source.shape[1] - 1, 0)).expand(len(source), -1))  # (B, T)
+
+    tokens = torch.where(in_prompt, take(prompt, t), pad_id)  # (B, T)
+    tokens = torch.where(in_winner, take(winner, t - n_p), tokens)
+    tokens = torch.where(in_loser, take(loser, t - n_p - a_w), tokens)
+    positions = torch.where(in_loser, t - a_w, torch.where(in_prompt | in_winner, t, 0))  # (B, T)
+    causal = t[:, :, None] >= t[:, None, :]  # (1, T, T): query t, key s
+    crossing = in_loser[:, :, None] & in_winner[:, None, :]  # (B, T, T)
+    mask = (causal & ~crossing)[:, None]  # (B, 1, T, T)
+
+    def scorers(width: int, start: Tensor) -> Tensor:  # row index of the logits scoring token k
+        k = torch.arange(width, device=prompt.device)[None, :]  # (1, T_r)
+        return torch.where(k == 0, n_p - 1, start + k - 1).clamp(max=total - 1)  # (B, T_r)
+
+    return PairLayout(tokens, positions, mask, scorers(winner.shape[1], n_p), scorers(loser.shape[1], n_p + a_w))
+
+
+def picked_logprobs(logits: Tensor, rows: Tensor, response: Tensor, *, pad_id: int) -> Tensor:
+    """``sum_k log softmax(logits[b, rows[b, k]])[response[b, k]]`` over the real tokens: (B,).
+
+    ``logits`` (B, T, V), ``rows`` and ``response`` (B, T_r). The log-softmax runs in at least
+    float32, on the scoring rows only.
+    """
+    chosen = logits.gather(1, rows[..., None].expand(-1, -1, logits.shape[-1]))  # (B, T_r, V)
+    logp = torch.log_softmax(chosen.to(torch.promote_types(chosen.dtype, torch.float32)), dim=-1)  # (B, T_r, V)
+    real = response != pad_id  # (B, T_r)
+    picked = logp.gather(-1, torch.where(real, response, 0)[..., None]).squeeze(-1)  # (B, T_r)
+    return torch.where(real, picked, 0.0).sum(dim=1)  # (B,)
+
+
+def shared_pair_logprobs(model: nn.Module, prompt: Tensor, winner: Tensor, loser: Tensor, *,
+                         pad_id: int) -> tuple[Tensor, Tensor]:
+    """``log pi(winner | prompt)`` and ``log pi(loser | prompt)`` (B,) each, from one pass per pair
+    that computes the prompt once (:func:`pack_pairs`); the model must take ``positions`` and ``mask``."""
+    layout = pack_pairs(prompt, winner, loser, pad_id=pad_id)
+    logits = model(layout.tokens, positions=layout.positions, mask=layout.mask)  # (B, T, V)
+    return (picked_logprobs(logits, layout.score_winner, winner, pad_id=pad_id),
+            picked_logprobs(logits, layout.score_loser, loser, pad_id=pad_id))
+
+
 def real_tokens(prompt: Tensor, response: Tensor, *, pad_id: int) -> Tensor:
     """Prompt plus response tokens per row, padding excluded: (B,)."""
     return lengths(prompt, pad_id=pad_id) + lengths(response, pad_id=pad_id)
@@ -122,6 +210,8 @@ class SequencePolicy(nn.Module):
     do) runs as two forward passes, the short rows trimmed to their own longest
     (:func:`length_split`); rows are independent, so the values are those of one pass.
     ``split_lengths=False`` keeps one pass (the bench's padding baseline).
+    ``logprobs(prompt, winner, loser)`` scores a pair's two responses with one pass over
+    their prompt (:func:`shared_pair_logprobs`) when the model allows it (``shares_prompt``).
     """
 
     def __init__(self, model: nn.Module, *, pad_id: int, split_lengths: bool = True):
@@ -130,16 +220,35 @@ class SequencePolicy(nn.Module):
         self.pad_id = pad_id
         self.split_lengths = split_lengths
 
-    def logprobs(self, prompt: Tensor, response: Tensor) -> Tensor:
-        """(B, T_p), (B, T_r) right-padded -> (B,)."""
-        n = real_tokens(prompt, response, pad_id=self.pad_id)  # (B,)
+    @property
+    def shares_prompt(self) -> bool:
+        """Whether the model takes the shared-prompt layout (positions and an attention mask)."""
+        return bool(getattr(self.model, "takes_layout", False))
+
+    def logprobs(self, prompt: Tensor, response: Tensor, loser: Tensor | None = None) -> Tensor:
+        """(B, T_p), (B, T_r) right-padded -> (B,). With ``loser`` (B, T_l): ``response`` holds the
+        winners, both are scored in one pass over their prompt, and the result (2B,) is the winners'
+        log-probs then the losers' (the layout of scoring the two concatenated along the batch)."""
+        pad = self.pad_id
+        if loser is None:
+            n = real_tokens(prompt, response, pad_id=pad)  # (B,)
+
+            def run(rows: Tensor | slice) -> Tensor:  # (b,)
+                return sequence_logprobs(self.model, prompt[rows], response[rows], pad_id=pad)
+        else:
+            if not self.shares_prompt:
+                raise ValueError(f"train.share_prompt=true needs a model that takes positions and an attention "
+                                 f"mask; {type(self.model).__name__} does not: set train.share_prompt=false")
+            n = lengths(prompt, pad_id=pad) + lengths(response, pad_id=pad) + lengths(loser, pad_id=pad)  # (B,)
+
+            def run(rows: Tensor | slice) -> Tensor:  # (2, b)
+                return torch.stack(shared_pair_logprobs(self.model, prompt[rows], response[rows], loser[rows],
+                                                        pad_id=pad))
         order, k = length_split(n) if self.split_lengths else (None, 0)
         if k == 0:
-            return sequence_logprobs(self.model, prompt, response, pad_id=self.pad_id)
-        short, long = order[:k], order[k:]
-        values = torch.cat([sequence_logprobs(self.model, prompt[rows], response[rows], pad_id=self.pad_id)
-                            for rows in (short, long)])  # (B,) in the sorted order
-        return values[torch.argsort(order)]  # (B,) back in the batch's order
+            return run(slice(None)).flatten()  # (B,) or (2B,)
+        values = torch.cat([run(rows) for rows in (order[:k], order[k:])], dim=-1)  # (..., B) in the sorted order
+        return values[..., torch.argsort(order)].flatten()  # (B,) or (2B,) back in the batch's order
 
 
 @torch.no_grad()
@@ -151,11 +260,27 @@ def batched_logprobs(model: nn.Module, prompt: Tensor, response: Tensor, *, pad_
     chunk whose rows still differ much in length runs as two passes (:class:`SequencePolicy`;
     rows are independent: neither the order nor the split changes a value).
     """
-    out = []
     policy = SequencePolicy(model, pad_id=pad_id)
-    order = torch.sort(real_tokens(prompt, response, pad_id=pad_id), stable=True).indices  # (N,)
-    starts = range(0, len(prompt), batch_size)
-    for start in tqdm(starts, desc=desc, disable=not progress, leave=False):
-        rows = order[start:start + batch_size]
-        out.append(policy.logprobs(prompt[rows], response[rows]))
-    return torch.cat(out)[torch.argsort(order)] if out else torch.zeros(0)
+    n = real_tokens(prompt, response, pad_id=pad_id)  # (N,)
+    return _in_chunks(n, lambda rows: policy.logprobs(prompt[rows], response[rows]), batch_size, progress, desc)
+
+
+@torch.no_grad()
+def batched_pair_logprobs(model: nn.Module, prompt: Tensor, winner: Tensor, loser: Tensor, *, pad_id: int,
+                          batch_size: int = 4096, progress: bool = False, desc: str = "log-probs") -> Tensor:
+    """Winners' then losers' log-probs over a whole dataset (2N,), as :func:`batched_logprobs` of the
+    two concatenated along the batch, each pair in one pass over its prompt (:func:`shared_pair_logprobs`)."""
+    policy = SequencePolicy(model, pad_id=pad_id)
+    n = lengths(prompt, pad_id=pad_id) + lengths(winner, pad_id=pad_id) + lengths(loser, pad_id=pad_id)  # (N,)
+    both = _in_chunks(n, lambda rows: policy.logprobs(prompt[rows], winner[rows], loser[rows]).view(2, -1),
+                      batch_size, progress, desc)  # (2, N)
+    return both.flatten()  # (2N,)
+
+
+def _in_chunks(n: Tensor, score, batch_size: int, progress: bool, desc: str) -> Tensor:
+    """``score(rows)`` (..., b) over chunks of rows taken shortest first by ``n`` (N,), back in order (..., N)."""
+    order = torch.sort(n, stable=True).indices  # (N,)
+    starts = range(0, len(n), batch_size)
+    out = [score(order[start:start + batch_size]) for start in tqdm(starts, desc=desc, disable=not progress,
+                                                                    leave=False)]
+    return torch.cat(out, dim=-1)[..., torch.argsort(order)] if out else torch.zeros(0)

@@ -30,6 +30,24 @@ Tensor = torch.Tensor
 KINDS = ("transformer", "bigram")
 
 
+def check_positions(tokens: Tensor, positions: Tensor | None, context: int) -> Tensor:
+    """The position of every input token: 0..T-1 (T,) when ``positions`` is None, else ``positions``
+    (B, T); a ValueError naming ``model.context`` when a position lies beyond it."""
+    if positions is None:
+        t = tokens.shape[1]
+        if t > context:
+            raise ValueError(f"model.context is {context} but a sequence has {t} input tokens; "
+                             f"set model.context={t} or more")
+        return torch.arange(t, device=tokens.device)  # (T,)
+    if torch.compiler.is_compiling():  # a data-dependent check would break the compiled graph; eager runs check
+        return positions
+    longest = int(positions.max()) + 1 if positions.numel() else 0
+    if longest > context:
+        raise ValueError(f"model.context is {context} but a sequence has {longest} input tokens; "
+                         f"set model.context={longest} or more")
+    return positions  # (B, T)
+
+
 class CausalSelfAttention(nn.Module):
     """Multi-head self-attention in which position t attends to positions <= t only.
 
@@ -43,7 +61,9 @@ class CausalSelfAttention(nn.Module):
         self.qkv = nn.Linear(width, 3 * width)
         self.proj = nn.Linear(width, width)
 
-    def forward(self, x: Tensor) -> Tensor:
+    def forward(self, x: Tensor, mask: Tensor | None = None) -> Tensor:
+        """``mask`` (B, 1, T, T) boolean, True where query t may attend to key s, replaces the causal
+        mask (a shared-prompt row, :func:`polopt.logprobs.pack_pairs`); None: causal."""
         b, t, c = x.shape  # (B, T, C)
         q, k, v = self.qkv(x).split(c, dim=2)  # 3 x (B, T, C)
         q, k, v = (z.view(b, t, self.heads, c // self.heads).transpose(1, 2) for z in (q, k, v))  # (B, H, T, D)
@@ -51,9 +71,10 @@ class CausalSelfAttention(nn.Module):
             # the CPU's bf16 attention backward runs several times slower than its fp32 one (bench/throughput.py),
             # and attention is a small share of the FLOPs: compute it in fp32, the matrix products stay in bf16
             with torch.autocast("cpu", enabled=False):
-                y = F.scaled_dot_product_attention(q.float(), k.float(), v.float(), is_causal=True).to(q.dtype)
+                y = F.scaled_dot_product_attention(q.float(), k.float(), v.float(), attn_mask=mask,
+                                                   is_causal=mask is None).to(q.dtype)
         else:
-            y = F.scaled_dot_product_attention(q, k, v, is_causal=True)  # (B, H, T, D)
+            y = F.scaled_dot_product_attention(q, k, v, attn_mask=mask, is_causal=mask is None)  # (B, H, T, D)
         return self.proj(y.transpose(1, 2).reshape(b, t, c))  # (B, T, C)
 
 
@@ -79,8 +100,8 @@ class Block(nn.Module):
         self.norm_mlp = nn.LayerNorm(width)
         self.mlp = MLP(width)
 
-    def forward(self, x: Tensor) -> Tensor:
-        x = x + self.attn(self.norm_attn(x))  # (B, T, C)
+    def forward(self, x: Tensor, mask: Tensor | None = None) -> Tensor:
+        x = x + self.attn(self.norm_attn(x), mask)  # (B, T, C)
         return x + self.mlp(self.norm_mlp(x))  # (B, T, C)
 
 
@@ -118,16 +139,18 @@ class TinyTransformer(nn.Module):
                 if isinstance(module, nn.Linear) and module.bias is not None:
                     nn.init.zeros_(module.bias)
 
-    def forward(self, tokens: Tensor) -> Tensor:
-        """Next-token logits: tokens (B, T) -> (B, T, V_out)."""
-        t = tokens.shape[1]
-        if t > self.context:
-            raise ValueError(f"model.context is {self.context} but a sequence has {t} input tokens; "
-                             f"set model.context={t} or more")
-        positions = torch.arange(t, device=tokens.device)  # (T,)
+    takes_layout = True  # forward accepts positions and an attention mask (a shared-prompt row)
+
+    def forward(self, tokens: Tensor, positions: Tensor | None = None, mask: Tensor | None = None) -> Tensor:
+        """Next-token logits: tokens (B, T) -> (B, T, V_out).
+
+        ``positions`` (B, T) and ``mask`` (B, 1, T, T) lay out several sequences in one row (see
+        :func:`polopt.logprobs.pack_pairs`); None: one causal sequence at positions 0..T-1.
+        """
+        positions = check_positions(tokens, positions, self.context)  # (T,) or (B, T)
         x = self.token_embedding(tokens) + self.position_embedding(positions)  # (B, T, C)
         for block in self.blocks:
-            x = block(x)  # (B, T, C)
+            x = block(x, mask)  # (B, T, C)
         return self.head(self.norm(x))  # (B, T, V_out)
 
 
@@ -145,12 +168,11 @@ class BigramTable(nn.Module):
         self.context = context
         self.table = nn.Parameter(torch.zeros(context, vocab_size, output_size or vocab_size))
 
-    def forward(self, tokens: Tensor) -> Tensor:
-        t = tokens.shape[1]
-        if t > self.context:
-            raise ValueError(f"model.context is {self.context} but a sequence has {t} input tokens; "
-                             f"set model.context={t} or more")
-        positions = torch.arange(t, device=tokens.device)[None, :]  # (1, T)
+    takes_layout = True  # it reads one token: positions suffice, the mask changes nothing
+
+    def forward(self, tokens: Tensor, positions: Tensor | None = None, mask: Tensor | None = None) -> Tensor:
+        del mask  # each position sees its own token only
+        positions = check_positions(tokens, positions, self.context)  # (T,) or (B, T)
         return self.table[positions, tokens]  # (B, T, V_out)
 
 

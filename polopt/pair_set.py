@@ -59,10 +59,15 @@ class PairSet:
                                            self.reference_loser, *self._optional())))
 
 
-def score_pairs(score: Callable[[Tensor, Tensor], Tensor], prompt: Tensor, winner: Tensor,
-                loser: Tensor) -> tuple[Tensor, Tensor]:
+def score_pairs(score: Callable[..., Tensor], prompt: Tensor, winner: Tensor, loser: Tensor, *,
+                shared: bool = False) -> tuple[Tensor, Tensor]:
     """Log-probs of winners and losers in one pass: ``score(prompt, response)`` over the prompts
     twice and the winners then the losers, split in two. ``prompt`` (B, ...), ``winner`` and
-    ``loser`` (B, ...) of one width (index tensors (B,) or token tensors (B, T)); returns two (B,)."""
-    both = score(torch.cat([prompt, prompt]), torch.cat([winner, loser]))  # (2B,)
+    ``loser`` (B, ...) of one width (index tensors (B,) or token tensors (B, T)); returns two (B,).
+    ``shared``: ``score(prompt, winner, loser)`` computes each prompt once for both responses
+    (``train.share_prompt``; :func:`polopt.logprobs.shared_pair_logprobs`), same layout (2B,)."""
+    if shared:
+        both = score(prompt, winner, loser)  # (2B,): winners then losers
+    else:
+        both = score(torch.cat([prompt, prompt]), torch.cat([winner, loser]))  # (2B,)
     return both.chunk(2)

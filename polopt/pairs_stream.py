@@ -32,7 +32,7 @@ from polopt.encoding import SequenceIds
 from polopt.logprobs import batched_logprobs
 from polopt.losses import Loss
 from polopt.objective import margins, pair_losses
-from polopt.pairs_task import REJECTS_FILE, PairSession
+from polopt.pair_session import REJECTS_FILE, PairSession
 from polopt.stream import StreamedPairs, write_arrow
 from polopt.tokenizer import load_tokenizer
 
@@ -96,7 +96,7 @@ def prepare_streamed(task, loss: Loss, *, beta: float, smoothing: float, n_pairs
 
 
 class StreamSession(PairSession):
-    """:class:`polopt.pairs_task.PairSession` over pairs that stay on disk (see the module docstring)."""
+    """:class:`polopt.pair_session.PairSession` over pairs that stay on disk (see the module docstring)."""
 
     def encode(self) -> None:  # the pass has encoded the pairs into the Arrow file
         pass

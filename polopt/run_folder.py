@@ -102,8 +102,9 @@ def run_summary(session, view, policy: torch.nn.Module, result: TrainResult, *, 
     method view's for a method run), the run's own (``skipped_steps``, ``processes``) and, for an
     offline run on a task with method views, the comparison with the methods' targets."""
     if method != "offline":
-        return view.summarise(policy, result)
+        return {**view.summarise(policy, result), "stopped": result.stopped}
     summary = session.summarise(policy, result)
+    summary["stopped"] = result.stopped  # "tol" (converged) or "steps"; summary["steps"]: the steps that ran
     summary["skipped_steps"] = result.skipped
     if view is not None:
         summary = view.extend_offline(summary, policy)

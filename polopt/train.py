@@ -37,6 +37,7 @@ from polopt.losses import Loss
 from polopt.objective import batch_loss, batch_statistics
 from polopt.optim import OptimConfig, make_optimiser
 from polopt.pair_set import PairSet, score_pairs
+from polopt.stopping import Convergence, validate_tol
 
 Tensor = torch.Tensor
 ON_NONFINITE = ("stop", "skip")
@@ -56,6 +57,10 @@ class TrainSettings:
     consumes its batch and its learning rate. Token pairs come in batches trimmed to their longest
     row, grouped by length when ``bucketing`` (:mod:`polopt.batching`). ``device``: where the policy
     already is; each batch goes there, the batch order and the data stay on the CPU.
+    ``share_prompt``: a policy whose model allows it (``policy.shares_prompt``) scores each pair's
+    winner and loser in one pass over their prompt (:func:`polopt.logprobs.shared_pair_logprobs`).
+    ``tol``: stop once the loss change and the gradient norm stay below it (:mod:`polopt.stopping`);
+    ``TrainResult.steps`` is then the last step run and ``stopped`` is ``"tol"``.
     """
 
     steps: int
@@ -71,6 +76,8 @@ class TrainSettings:
     bucketing: bool = True
     progress: bool = True
     device: torch.device | str = "cpu"
+    share_prompt: bool = True
+    tol: float | None = None
 
     def check(self) -> None:
         """Raise one ValueError naming the first setting out of range."""
@@ -86,6 +93,7 @@ class TrainSettings:
         every = self.checkpoint_every
         if not isinstance(every, int) or isinstance(every, bool) or every < 0:
             raise ValueError(f"train.checkpoint_every must be an integer >= 0 (0: only at the end), got {every!r}")
+        validate_tol(self.tol)
 
 
 @dataclass
@@ -157,7 +165,8 @@ class PairObjective:
         if self._score is None:  # policy.logprobs, or its DDP view (built after any resume)
             self._score = distributed.scorer(self.policy, self.context, self.device)
         with torch.autocast(self.device.type, dtype=torch.bfloat16, enabled=self.settings.precision == "bf16"):
-            logp_w, logp_l = score_pairs(self._score, batch.prompt, batch.winner, batch.loser)
+            shared = self.settings.share_prompt and getattr(self.policy, "shares_prompt", False)
+            logp_w, logp_l = score_pairs(self._score, batch.prompt, batch.winner, batch.loser, shared=shared)
             dtype = batch.reference_winner.dtype
             return logp_w.to(dtype), logp_l.to(dtype)
 
@@ -231,6 +240,8 @@ class _Loop:
     skipped: list[int] = field(default_factory=list)
     start: float = 0.0  # perf_counter at step 0 (earlier on resume, by the checkpoint's seconds)
     loop_start: float = 0.0  # perf_counter when this process started (token throughput)
+    convergence: Convergence = field(default_factory=lambda: Convergence(None))  # train.tol's window
+    stopped: bool = False  # converged on train.tol
 
 
 def _begin(policy, objective, settings: TrainSettings, resume: dict | None) -> _Loop:
@@ -239,13 +250,15 @@ def _begin(policy, objective, settings: TrainSettings, resume: dict | None) -> _
     generator = torch.Generator().manual_seed(settings.seed)
     optimiser, scheduler = make_optimiser(policy.parameters(), settings.optim, settings.steps)
     objective.start(generator)
-    loop, seconds = _Loop(optimiser, scheduler, generator), 0.0
+    loop, seconds = _Loop(optimiser, scheduler, generator, convergence=Convergence(settings.tol)), 0.0
     if resume is not None:  # every piece of state the next step reads comes back exactly
         restored = restore_training_state(resume, policy=policy, optimiser=optimiser, scheduler=scheduler,
                                           generator=generator)
         objective.restore(restored["order"], restored["cursor"])
         loop.done, loop.history, loop.skipped = restored["step"], restored["history"], restored["skipped"]
         seconds = restored["seconds"]
+        loop.convergence.restore(restored["convergence"])
+        loop.stopped = restored["convergence"].get("stopped") == "tol"  # it had converged: nothing left to run
         if loop.done > settings.steps:
             raise ValueError(f"the checkpoint is at step {loop.done}, beyond train.steps={settings.steps}")
     loop.start, loop.loop_start = time.perf_counter() - seconds, time.perf_counter()
@@ -311,7 +324,8 @@ def _checkpoint(step: int, policy, objective, loop: _Loop, save: Callable[[dict]
     order, cursor = objective.position()
     save(training_state(step=step, policy=policy, optimiser=loop.optimiser, scheduler=loop.scheduler,
                         generator=loop.generator, order=order, cursor=cursor, history=loop.history,
-                        skipped=loop.skipped, seconds=time.perf_counter() - loop.start, sharded=sharded))
+                        skipped=loop.skipped, seconds=time.perf_counter() - loop.start, sharded=sharded,
+                        convergence={**loop.convergence.state(), **({"stopped": "tol"} if loop.stopped else {})}))
 
 
 def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
@@ -319,7 +333,9 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
              save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
              context: distributed.Context = distributed.SINGLE) -> TrainResult:
     """Minimise ``objective`` (a :class:`PairObjective` or :class:`MethodObjective`) over the
-    policy's parameters for ``settings.steps`` steps.
+    policy's parameters for ``settings.steps`` steps, or until the loss change and the gradient
+    norm have stayed below ``settings.tol`` (:mod:`polopt.stopping`; the stopping step is logged
+    and checkpointed like the last).
 
     Logged records go to ``metrics_path`` as JSON lines (appended: on resume the caller leaves
     the lines up to the checkpoint there). ``save_checkpoint(state)`` receives
@@ -334,7 +350,8 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
     loop = _begin(policy, objective, settings, resume)
     steps = settings.steps
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
-    bar = tqdm(range(loop.done + 1, steps + 1), desc=objective.name, disable=not settings.progress, leave=False,
+    last = loop.done if loop.stopped else steps  # a run that had converged before its checkpoint stays there
+    bar = tqdm(range(loop.done + 1, last + 1), desc=objective.name, disable=not settings.progress, leave=False,
                initial=loop.done, total=steps)
     try:
         for step in bar:
@@ -342,8 +359,11 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
             out = objective(step)  # 2-4
             problem, grad_norm = _update(policy, out, loop, settings)  # 5
             if problem is not None:
+                loop.convergence.skip()
                 _guard(step, problem, out, loop, settings, context)
-            elif step % settings.log_every == 0 or step == steps or step == 1:  # 6 (a skipped step has no metrics)
+            else:
+                loop.stopped = loop.convergence.update(float(out.value.detach()), grad_norm)
+            if problem is None and (step % settings.log_every == 0 or step in (1, steps) or loop.stopped):  # 6
                 with distributed.gathered(policy, caller):  # evaluate reads the caller's policy
                     record = _record(step, lr, grad_norm, out, loop, caller, objective, evaluate)
                 loop.history.append(record)
@@ -354,16 +374,20 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
                 if "margin_mean" in record:
                     postfix["margin"] = f"{record['margin_mean']:.3g}"
                 bar.set_postfix(postfix, refresh=False)
-            if save_checkpoint is not None and (step == steps or settings.checkpoint_every
+            if save_checkpoint is not None and (step == steps or loop.stopped or settings.checkpoint_every
                                                 and step % settings.checkpoint_every == 0):  # 7
                 _checkpoint(step, policy, objective, loop, save_checkpoint, sharded=context.sharded)
+            loop.done = step
+            if loop.stopped:
+                break
     finally:
         bar.close()
         if sink is not None:
             sink.close()
     distributed.give_back(policy, caller)
     final = loop.history[-1] if loop.history else {}
-    return TrainResult(steps, time.perf_counter() - loop.start, final, loop.history, loop.skipped)
+    return TrainResult(loop.done, time.perf_counter() - loop.start, final, loop.history, loop.skipped,
+                       stopped="tol" if loop.stopped else "steps")
 
 
 def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairObjective, settings: TrainSettings, *,

@@ -52,10 +52,15 @@ def test_no_code_from_data(forbidden):
 
 
 def test_imports_by_name_only_for_the_dotted_loss_path():
-    found = [f"{p.relative_to(ROOT)}" for p in SOURCES for _, name in _calls(p)
+    """The loss path, and the dispatcher's command modules: a constant prefix polopt.commands. with a
+    name from its fixed table of commands (the argument is checked to be such an f-string)."""
+    found = [(p.relative_to(ROOT).as_posix(), node) for p in SOURCES for node, name in _calls(p)
              if name in ("importlib.import_module", "import_module")]
-    # the dotted loss path, and the dispatcher, which imports only the modules of its fixed table
-    assert sorted(found) == ["polopt/commands/main.py", "polopt/losses.py"]
+    assert sorted(path for path, _ in found) == ["polopt/commands/main.py", "polopt/losses.py"]
+    (dispatch,) = [node for path, node in found if path == "polopt/commands/main.py"]
+    argument = dispatch.args[0]
+    assert isinstance(argument, ast.JoinedStr) and isinstance(argument.values[0], ast.Constant)
+    assert argument.values[0].value == "polopt.commands."
 
 
 def test_the_dispatcher_imports_only_its_own_command_modules():

@@ -30,7 +30,6 @@ the last digits). The residual reached is reported.
 from __future__ import annotations
 
 import hashlib
-from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.optimize
@@ -40,9 +39,6 @@ import torch
 from polopt.reward_model import CALIBRATION, load_reward_model, pair_metrics, split_heldout
 from toy_tasks.solve import _limit_support, _strong_components
 
-if TYPE_CHECKING:  # finite.py builds on this module (FiniteTask.fit_reward); no import at run time
-    from toy_tasks.finite import FiniteTask, LabelledPairs
-
 GAUGE = "per prompt, sum_y pi_ref(y|x) r(x, y) = 0 (reference-weighted mean zero)"
 GRADIENT_TOLERANCE = 1e-10
 
@@ -50,7 +46,7 @@ GRADIENT_TOLERANCE = 1e-10
 # ------------------------------------------------------------------ the fit
 
 
-def pair_counts(task: FiniteTask, pairs: LabelledPairs, index: np.ndarray | None = None) -> np.ndarray:
+def pair_counts(task, pairs, index: np.ndarray | None = None) -> np.ndarray:
     """``C[x, i, j]``: how often i beat j for prompt x among ``pairs`` (those at ``index`` if given). (X, K, K)."""
     pick = slice(None) if index is None else index
     counts = np.zeros((task.n_prompts, task.n_responses, task.n_responses))
@@ -125,13 +121,13 @@ def to_gauge(rewards: np.ndarray, reference: np.ndarray) -> np.ndarray:
 # ------------------------------------------------------------------ the file
 
 
-def task_identity(task: FiniteTask) -> dict:
+def task_identity(task) -> dict:
     """What a table reward model must match: the task's name, shape and a hash of its reference policy."""
     digest = hashlib.sha256(np.ascontiguousarray(task.reference, dtype=np.float64).tobytes()).hexdigest()[:16]
     return {"task": task.name, "prompts": task.n_prompts, "responses": task.n_responses, "reference_sha256": digest}
 
 
-def learned_rewards(task: FiniteTask, path, *, key: str = "method.reward") -> np.ndarray:
+def learned_rewards(task, path, *, key: str = "method.reward") -> np.ndarray:
     """The (X, K) learned rewards of a reward model file fitted for ``task``: a table, or a scalar head on
     the sequence task, whose file carries its scores of every enumerated response."""
     data = load_reward_model(path, task_identity(task), key=key)
@@ -145,12 +141,12 @@ def learned_rewards(task: FiniteTask, path, *, key: str = "method.reward") -> np
 # ------------------------------------------------------------------ methods on a learned reward
 
 
-def _expected(policy: np.ndarray, rewards: np.ndarray, task: FiniteTask) -> float:
+def _expected(policy: np.ndarray, rewards: np.ndarray, task) -> float:
     """Prompt-weighted ``E_pi r``."""
     return float(task.prompt_weights @ (policy * rewards).sum(1))
 
 
-def true_rewards(task: FiniteTask) -> tuple[np.ndarray, str]:
+def true_rewards(task) -> tuple[np.ndarray, str]:
     """The task's true rewards in :data:`GAUGE`: its Bradley–Terry rewards, else the win rate P(y > mu)."""
     if task.rewards is not None:
         return to_gauge(task.rewards, task.reference), "the task's Bradley–Terry rewards"
@@ -158,7 +154,7 @@ def true_rewards(task: FiniteTask) -> tuple[np.ndarray, str]:
         "the win rate P(y > mu) (the task has no Bradley–Terry rewards)"
 
 
-def learned_reward_fields(policy: np.ndarray, target: np.ndarray | None, learned: np.ndarray, task: FiniteTask,
+def learned_reward_fields(policy: np.ndarray, target: np.ndarray | None, learned: np.ndarray, task,
                           path: str) -> dict:
     """summary.json's fields of a method run against a learned reward: the learned and the true expected
     reward (both in :data:`GAUGE`, so the reference scores 0 under either) of the trained policy, of the
@@ -179,7 +175,7 @@ def learned_reward_fields(policy: np.ndarray, target: np.ndarray | None, learned
 # ------------------------------------------------------------------ the command's work
 
 
-def fit_task_reward(task: FiniteTask, *, mode: str, n_pairs: int, seed: int, l2: float = 0.0,
+def fit_task_reward(task, *, mode: str, n_pairs: int, seed: int, l2: float = 0.0,
                     heldout: float = 0.2, bins: int = 10) -> dict:
     """Fit a table reward model to ``task``'s pairs; return ``summary`` (summary.json), ``screen``
     (its text) and ``file`` (the reward model file's fields).
@@ -216,7 +212,7 @@ def fit_task_reward(task: FiniteTask, *, mode: str, n_pairs: int, seed: int, l2:
                      "l2": float(l2)}}
 
 
-def true_reward_distance(rewards: np.ndarray, task: FiniteTask) -> dict:
+def true_reward_distance(rewards: np.ndarray, task) -> dict:
     """Distance of learned to true rewards with both in :data:`GAUGE`: the reference-weighted RMS and the
     largest absolute difference (null where the task has no Bradley–Terry rewards)."""
     if task.rewards is None:

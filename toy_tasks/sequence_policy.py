@@ -36,7 +36,12 @@ class EnumeratedSequencePolicy(SequencePolicy):
         """log pi(y | x) of every enumerated response: (X, K)."""
         return super().logprobs(self.all_prompts, self.all_responses).reshape(self.shape)
 
-    def logprobs(self, prompt: torch.Tensor, response: torch.Tensor) -> torch.Tensor:
+    def logprobs(self, prompt: torch.Tensor, response: torch.Tensor,
+                 loser: torch.Tensor | None = None) -> torch.Tensor:
+        """(B,) or, with ``loser``, winners' then losers' log-probs (2B,) (see :class:`SequencePolicy`)."""
         if response.dim() == 1:  # indices into the enumeration
-            return self.log_distribution()[prompt, response]  # (B,)
-        return super().logprobs(prompt, response)  # (B,)
+            table = self.log_distribution()  # (X, K)
+            if loser is None:
+                return table[prompt, response]  # (B,)
+            return torch.cat([table[prompt, response], table[prompt, loser]])  # (2B,)
+        return super().logprobs(prompt, response, loser)  # (B,) or (2B,)

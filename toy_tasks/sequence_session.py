@@ -31,7 +31,7 @@ from polopt.logprobs import lengths, real_tokens
 from polopt.losses import Loss
 from polopt.models import build_model, copy_weights
 from polopt.pair_set import PairSet, score_pairs
-from polopt.reference_cache import FILE_NAME, reference_logprobs
+from polopt.reference_cache import FILE_NAME, reference_pair_logprobs
 from polopt.verdict import SEQUENCE_MODEL_TOLERANCE
 from toy_tasks.sequence_methods import SequenceMethodView
 from toy_tasks.sequence_policy import EnumeratedSequencePolicy
@@ -136,13 +136,13 @@ def token_pairs(task, index_pairs: PairSet, *, cache: Path | None) -> tuple[Pair
     _, loser = task.rows(index_pairs.prompt, index_pairs.loser)  # (N, L)
     reused = []
 
-    def reference_pass(prompts: torch.Tensor, responses: torch.Tensor) -> torch.Tensor:
-        both, was_reused = reference_logprobs(task.reference_model, prompts, responses, pad_id=task.vocab.pad_id,
-                                              path=cache)  # (2N,)
+    def reference_pass(prompts: torch.Tensor, winners: torch.Tensor, losers: torch.Tensor) -> torch.Tensor:
+        both, was_reused = reference_pair_logprobs(task.reference_model, prompts, winners, losers,
+                                                   pad_id=task.vocab.pad_id, path=cache)  # (2N,)
         reused.append(was_reused)
         return both
 
-    ref_w, ref_l = score_pairs(reference_pass, prompt, winner, loser)
+    ref_w, ref_l = score_pairs(reference_pass, prompt, winner, loser, shared=True)  # one pass over each prompt
     pad = task.vocab.pad_id
     tokens = real_tokens(prompt, winner, pad_id=pad) + real_tokens(prompt, loser, pad_id=pad)  # (N,)
     return PairSet(prompt, winner, loser, ref_w, ref_l, index_pairs.weight, tokens=tokens,

@@ -1,7 +1,7 @@
 """A finite task prepared for one training run: pairs, optimum, metrics, summary.
 
 This is the finite tasks' side of the trainer's interface (see
-:mod:`polopt.train`): :func:`prepare` turns a task, a loss and beta into the
+:class:`polopt.contracts.Session`): :func:`prepare` turns a task, a loss and beta into the
 :class:`polopt.pair_set.PairSet` to train on (``exact``: every ordered pair with
 its win weight; ``sampled``: a seeded sample of labelled pairs), solves the
 exact optimum of that very objective once, and then measures a policy against
@@ -19,6 +19,7 @@ from polopt.contracts import TrainResult
 from polopt.losses import Loss
 from polopt.pair_set import PairSet
 from polopt.policies import build_policy
+from polopt.stopping import FINITE_TASK_TOL
 from polopt.verdict import REACHED_TOLERANCE, verdict_fields
 from toy_tasks.measures import displacement_warning, loss_gaps, margin_growth, per_prompt, total_variation
 from toy_tasks.methods import MethodView
@@ -44,6 +45,7 @@ class FiniteSession:
     optimum: Optimum  # of the trained objective
     population_optimum: Optimum  # of the population objective (the same object in exact mode)
     threads: int = 1  # the run's torch thread count unless the config sets `threads`
+    tol: float = FINITE_TASK_TOL  # train.tol unless the config sets it: stop once converged (polopt.stopping)
     tolerance: float = REACHED_TOLERANCE  # TV within which reached_optimum is true (a sequence model's is wider)
 
     # ------------------------------------------------------------ model

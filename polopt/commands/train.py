@@ -32,7 +32,8 @@ from omegaconf import DictConfig, OmegaConf
 
 from polopt import checkpoint, devices, distributed, losses, objectives, sharded_checkpoint
 from polopt.commands.config import CONFIG_DIR, rewrite_overrides
-from polopt.contracts import MethodView, Session, method_view, session_threads, trains_on_gpu
+from polopt.compiling import compile_policy
+from polopt.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu
 from polopt.methods import method_objective
 from polopt.objective import validate_hyperparameters
 from polopt.optim import OptimConfig
@@ -133,15 +134,18 @@ def resume_state(cfg: DictConfig, directory: Path, fingerprint: str) -> dict | N
                      "give a new hydra.run.dir, or train.resume=false to start over there")
 
 
-def train_settings(cfg: DictConfig, device: torch.device | str = "cpu", main: bool = True) -> TrainSettings:
-    """The training loop's settings from the config (the progress bar on rank 0 only)."""
+def train_settings(cfg: DictConfig, device: torch.device | str = "cpu", main: bool = True,
+                   tol: float | None = None) -> TrainSettings:
+    """The training loop's settings from the config (the progress bar on rank 0 only); ``tol``: the
+    task's early-stopping tolerance, used when ``train.tol`` is null."""
     return TrainSettings(steps=cfg.train.steps, beta=float(cfg.beta),
                          optim=OptimConfig(**OmegaConf.to_container(cfg.optim, resolve=True)),
                          smoothing=float(cfg.loss.smoothing), batch_size=cfg.train.batch_size, seed=cfg.train.seed,
                          log_every=cfg.train.log_every, precision=cfg.precision,
                          checkpoint_every=cfg.train.checkpoint_every, on_nonfinite=cfg.train.on_nonfinite,
                          bucketing=cfg.train.get("bucketing", True), progress=cfg.train.progress and main,
-                         device=device)
+                         device=device, share_prompt=cfg.train.get("share_prompt", True),
+                         tol=tol if cfg.train.get("tol") is None else cfg.train.tol)
 
 
 def prepare_session(cfg: DictConfig, run_dir: Path, context: distributed.Context) -> tuple[losses.Loss, Session]:
@@ -206,6 +210,8 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     method, view = method_of(cfg, session, context, device)
     offline = method["name"] == "offline"
     policy = session.build_policy(**OmegaConf.to_container(cfg.model, resolve=True))
+    if cfg.train.get("compile", False):
+        compile_policy(policy)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
     p = session.pairs
@@ -227,7 +233,7 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     save = None if not offline else folder.checkpoint_saver(**keys)
     if offline and context.sharded:  # train.strategy=fsdp: every rank writes its shards
         save = sharded_checkpoint.saver(folder.checkpoints, is_main=context.is_main, **keys)
-    settings = train_settings(cfg, device, context.is_main)
+    settings = train_settings(cfg, device, context.is_main, tol=session_tol(session))
     objective, evaluate = objective_of(method, view, session, policy, loss, settings, context)
     metrics_path = folder.start_metrics(None if state is None else state["history"])
     policy.to(device)  # the training loop only; the summary and the files below work on the CPU
