@@ -30,7 +30,7 @@ def test_compare_pair_objectives_shows_displacement_and_length(tmp_path, capsys)
                 "reference_mean_length", "reached_optimum"):
         assert key in out
     result = json.loads((tmp_path / "cmp" / "comparison.json").read_text())
-    rows = {r["loss"]: r for r in result["rows"]}
+    rows = {r["loss_name"]: r for r in result["rows"]}
     assert set(rows) == {"divergence_reverse_kl", "length_regularised", "length_normalised_free"}
     task = load_task(path)
     w = task.win_weights()

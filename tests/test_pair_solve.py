@@ -111,7 +111,7 @@ def test_the_certificate_is_the_projected_gradient_on_the_simplex():
     (g,) = torch.autograd.grad(value, pi)
     projected = pi * (g - (pi * g).sum(dim=1, keepdim=True))
     assert float(projected.detach().abs().max()) <= 1e-8
-    assert optimum.value == pytest.approx(float(value), rel=1e-12)
+    assert optimum.value == pytest.approx(float(value.detach()), rel=1e-12)
 
 
 @pytest.mark.parametrize("seed", [0, 2, 4])
@@ -296,3 +296,17 @@ def test_winner_anchored_optimum_at_its_kink(penalty, seed):
     optimum = solve_pairs(objective, task.win_weights(), task.reference, task.lengths, beta=beta)
     assert optimum.finite and optimum.residual <= 1e-7
     np.testing.assert_allclose(reported_policy(optimum, task), dpop_by_slsqp(task, beta, penalty), atol=1e-6)
+
+
+@pytest.mark.parametrize("name", objectives.names())
+def test_the_assembled_hessian_is_autograds(name):
+    # the solver's Hessian in the logits, assembled pair by pair with the chain rule through log-softmax,
+    # against torch.autograd.functional.hessian of the same loss (K backward passes)
+    from toy_tasks.pair_solve import _Prompt
+
+    task = random_task(3, bradley_terry=False)
+    problem = _Prompt(objectives.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
+                      0.7)
+    z = np.random.default_rng(0).normal(size=task.n_responses)
+    full = torch.autograd.functional.hessian(problem.loss, torch.as_tensor(z)).numpy()
+    np.testing.assert_allclose(problem.hessian(z), full, atol=1e-12)

@@ -53,8 +53,9 @@ GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
 CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
 CERTIFIED = 1e-7  # an answer whose gradient is larger is reported as not certified
 KINK_BAND = 1e-4  # log-ratios this close to 0 are taken to sit at an anchor term's kink
+KINK_LIMIT = 128  # the kink search tries every transfer of mass (K^2 evaluations): up to this many responses
 MAX_ITERATIONS = 300  # trust-region iterations per solve: smooth problems need tens; a kink would take them all
-DENSE_LIMIT = 128  # above this many responses per prompt, Hessian-vector products instead of the Hessian
+DENSE_LIMIT = 1000  # above this many responses per prompt, Hessian-vector products instead of the Hessian
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
 DESCENT_RAY = (1.0, 4.0, 16.0, 64.0, 256.0)  # multiples of the final Newton step tried along the boundary ray
@@ -164,8 +165,43 @@ class _Prompt:
         return float(value.detach()) + 0.5 * shift**2, g.numpy() + shift
 
     def hess(self, z: np.ndarray) -> np.ndarray:
-        h = torch.autograd.functional.hessian(self.loss, torch.as_tensor(z, dtype=torch.float64))
-        return h.numpy() + 1.0  # the gauge term's Hessian is the all-ones matrix
+        return self.hessian(z) + 1.0  # the gauge term's Hessian is the all-ones matrix
+
+    def hessian(self, z: np.ndarray) -> np.ndarray:
+        """The Hessian of L in z (K, K), assembled from each pair's second derivatives in its two
+        log-probabilities (a pair's loss reads only its own winner and loser: the contract) and the
+        chain rule through log pi = z - logsumexp(z): ``J^T H J - (sum G) (diag(pi) - pi pi^T)`` with
+        ``J = I - 1 pi^T``, H and G the Hessian and gradient in log pi. One pass over the pairs
+        instead of K (autograd's full Hessian)."""
+        zt = torch.as_tensor(z, dtype=torch.float64)
+        log_pi = torch.log_softmax(zt, dim=0)  # (K,)
+        pi = log_pi.exp()
+        i, j = torch.nonzero(self.w > 0, as_tuple=True)  # (E,) each
+        w = self.w[i, j]
+        a, b = log_pi[i].clone().requires_grad_(True), log_pi[j].clone().requires_grad_(True)
+        values = self.objective(PairScores(a, b, self.log_ref[i], self.log_ref[j], self.lengths[i],
+                                           self.lengths[j]), self.beta)  # (E,)
+        ga, gb = torch.autograd.grad(values.sum(), (a, b), create_graph=True)
+
+        def second(g, wrt):  # elementwise d g_e / d wrt_e; zeros where g does not depend on it
+            if not g.requires_grad:
+                return [torch.zeros_like(a) for _ in wrt]
+            out = torch.autograd.grad(g.sum(), wrt, retain_graph=True, allow_unused=True)
+            return [torch.zeros_like(a) if d is None else d for d in out]
+
+        haa, hab = second(ga, (a, b))
+        (hbb,) = second(gb, (b,))
+        k = len(z)
+        grad_logpi = torch.zeros(k, dtype=torch.float64).index_add_(0, i, w * ga.detach()).index_add_(
+            0, j, w * gb.detach())  # (K,)
+        h = torch.zeros(k, k, dtype=torch.float64)
+        h.index_put_((i, i), w * haa, accumulate=True)
+        h.index_put_((j, j), w * hbb, accumulate=True)
+        h.index_put_((i, j), w * hab, accumulate=True)
+        h.index_put_((j, i), w * hab, accumulate=True)
+        jac = torch.eye(k, dtype=torch.float64) - pi[None, :]  # (K, K): d log pi_k / d z_m
+        curvature = torch.diag(pi) - torch.outer(pi, pi)  # (K, K): -d^2 log pi_k / dz^2, the same for every k
+        return (jac.T @ h.detach() @ jac - grad_logpi.sum() * curvature).numpy()
 
     def hessp(self, z: np.ndarray, p: np.ndarray) -> np.ndarray:
         zt = torch.as_tensor(z, dtype=torch.float64)
@@ -248,7 +284,7 @@ def _solve_prompt(problem: _Prompt, z0: np.ndarray) -> dict:
     log_pi = torch.log_softmax(torch.as_tensor(z), 0).numpy()
     out = {"z": z, "value": problem.value(z), "residual": float(np.abs(problem.grad(z)).max()),
            "finite": not on_boundary, "support": None}
-    if not on_boundary and out["residual"] > CERTIFIED and len(z) <= DENSE_LIMIT:  # a kink: no gradient vanishes
+    if not on_boundary and out["residual"] > CERTIFIED and len(z) <= KINK_LIMIT:  # a kink: no gradient vanishes
         kinked = _kinked(problem, z)
         if kinked is not None and kinked["value"] <= out["value"] + 1e-12 * (1.0 + abs(out["value"])):
             return kinked
@@ -278,6 +314,9 @@ class _Pinned(_Prompt):
 
     def loss(self, y: Tensor) -> Tensor:
         return _pair_terms(self.objective, self.w, self.log_policy(y), self.log_ref, self.lengths, self.beta)
+
+    def hessian(self, y: np.ndarray) -> np.ndarray:  # not a plain softmax chart: autograd's Hessian
+        return torch.autograd.functional.hessian(self.loss, torch.as_tensor(y, dtype=torch.float64)).numpy()
 
 
 def _transfer_slopes(problem: _Prompt, log_pi: np.ndarray, step: float = 1e-6) -> np.ndarray:
