@@ -20,7 +20,7 @@ from polopt.optim import OptimConfig
 from polopt.pair_scores import PairScores
 from polopt.train import TrainSettings, train
 from toy_tasks.families import noisy_labels
-from toy_tasks.finite import total_variation
+from toy_tasks.measures import total_variation
 from toy_tasks.session import prepare
 
 
