@@ -143,6 +143,46 @@ class StreamedPairs(MappedPairs):
         super().__init__(path, pad_id=pad_id, count_tokens=count_tokens)
         self.digest = digest  # SHA-256 of the accepted pairs, from the streaming pass
         self.reference = None
+        self._open_random_access()
+
+    def _open_random_access(self) -> None:
+        """Map the file for random reads (madvise MADV_RANDOM: no read-ahead). The kernel still maps
+        pages around each faulting one (fault-around), so :meth:`select` unmaps what it touched
+        (:meth:`_release`): measured, 20 batches of 64 rows otherwise left a 68 MiB file wholly resident."""
+        import bisect
+        import mmap
+
+        import pyarrow as pa
+
+        with self.path.open("rb") as f:
+            self._map = mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ)
+        if hasattr(self._map, "madvise") and hasattr(mmap, "MADV_RANDOM"):
+            self._map.madvise(mmap.MADV_RANDOM)
+        self._batches = list(pa.ipc.open_stream(pa.py_buffer(self._map)))
+        self._starts = [0]
+        for batch in self._batches:
+            self._starts.append(self._starts[-1] + batch.num_rows)
+        self._find = bisect.bisect_right
+
+    def select(self, index: Tensor) -> PairSet:
+        """The rows ``index`` (B,), read cell by cell from the mapped record batches."""
+        names = [*self.required, *(["weight"] if self.weighted else [])]
+        rows: dict[str, list] = {name: [] for name in names}
+        for i in index.tolist():
+            k = self._find(self._starts, i) - 1
+            batch, j = self._batches[k], i - self._starts[k]
+            for name in names:
+                rows[name].append(batch.column(name)[j].as_py())
+        self._release()
+        return self.from_rows(rows)
+
+    def _release(self) -> None:
+        """Unmap the pages this batch faulted in (MADV_DONTNEED on a read-only file mapping: they stay in
+        the page cache, a later read maps them again), so resident memory does not grow with the file."""
+        import mmap
+
+        if hasattr(mmap, "MADV_DONTNEED"):
+            self._map.madvise(mmap.MADV_DONTNEED)
 
     def attach_reference(self, model: torch.nn.Module) -> None:
         self.reference = model.eval().requires_grad_(False)
