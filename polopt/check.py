@@ -38,93 +38,33 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import scipy.optimize
 import torch
 
 from polopt import losses, objectives
-from polopt.contracts import session_tol
+from polopt.check_population import check_population
+from polopt.check_report import CheckResult, Report, guarded, what_it_tests
 from polopt.losses import Loss
-from polopt.objective import margins
 from polopt.objectives import PairObjective
 from polopt.optim import OptimConfig
-from polopt.pair_set import score_pairs
-from polopt.train import TrainSettings, train
+from polopt.pair_check import run_pair_checks
 
 Tensor = torch.Tensor
 
-STATUSES = ("pass", "warn", "fail", "skip")
 EXTREME_MARGINS = (-1e4, -1e3, -100.0, -50.0, -20.0, -5.0, -1.0, 0.0, 1.0, 5.0, 20.0, 50.0, 100.0, 1e3, 1e4)
 CURVE_P = np.round(np.linspace(0.02, 0.98, 49), 10)  # includes 1/2
 CONVEXITY_GRID = (-30.0, 30.0, 0.01)  # start, stop, step of the second differences
-STILL_MARGIN = 1e-3  # |beta * weighted mean margin| below this: the policy did not move (Adam amplifies rounding)
 NO_SIGNAL_SLOPE = 1e-8  # |f'(0)| below this (relative to max(1, |f''(0)|)) is no signal
 
 
-# what each check tests, in the words of its report row (the population rows: see :func:`what_it_tests`)
-CHECK_TESTS = {
-    "elementwise": "f acts on each margin alone",
-    "finite": "f and f' finite at extreme margins in float64, float32, bfloat16",
-    "signal": "a larger margin lowers the loss (f'(0) < 0)",
-    "convexity": "f is convex on a grid of margins",
-    "taylor": "f'(0), f''(0) and the beta that regularises like each built-in",
-    "pair_optimum": "the per-pair optimum x*(p) learns the preference",
-    "certainty": "x*(1): a finite margin for a certain preference",
-    "scale": "whether f is a built-in rescaled (a wrong scale)",
-}
 
 
-def what_it_tests(name: str) -> str:
-    """The phrase a report row opens with: what check ``name`` tests."""
-    if name.startswith("population:"):
-        return f"training reaches the exact optimum of task {name.partition(':')[2]}"
-    return CHECK_TESTS.get(name, name)
 
 
-@dataclass
-class CheckResult:
-    """The outcome of one check: ``status`` is one of pass, warn, fail, skip."""
-
-    name: str
-    status: str
-    reason: str
-    facts: dict = field(default_factory=dict)
-
-    def to_dict(self) -> dict:
-        return {**asdict(self), "tests": what_it_tests(self.name)}
 
 
-@dataclass
-class Report:
-    """Every check of one loss at one beta, plus the curves the plot draws."""
-
-    loss: str
-    beta: float
-    results: list[CheckResult]
-    curve: dict = field(default_factory=dict)
-
-    @property
-    def status(self) -> str:
-        statuses = {r.status for r in self.results}
-        return "fail" if "fail" in statuses else "warn" if "warn" in statuses else "pass"
-
-    @property
-    def failures(self) -> list[CheckResult]:
-        return [r for r in self.results if r.status == "fail"]
-
-    def result(self, name: str) -> CheckResult:
-        for r in self.results:
-            if r.name == name:
-                return r
-        raise KeyError(f"no check named {name!r}; checks: {', '.join(r.name for r in self.results)}")
-
-    def to_dict(self) -> dict:
-        return {"loss": self.loss, "beta": self.beta, "status": self.status,
-                "n_failures": len(self.failures),
-                "n_warnings": sum(r.status == "warn" for r in self.results),
-                "checks": [r.to_dict() for r in self.results], "curve": self.curve}
 
 
 # ----------------------------------------------------------------------------
@@ -392,6 +332,40 @@ def check_pair_optimum(loss: Loss) -> CheckResult:
         return _check_pair_optimum(loss)
 
 
+def _closed_form_problems(loss: Loss, xs: np.ndarray, numeric: np.ndarray) -> list[str]:
+    """A declared closed form of x*(p) must be a minimiser: no grid point where the numerical one is lower."""
+    for p, xc, xn in zip(CURVE_P, xs, numeric, strict=True):
+        vc, vn = float(loss.pair_objective(xc, p)), float(loss.pair_objective(np.clip(xn, -60, 60), p))
+        if vc > vn + 1e-9 * max(1.0, abs(vn)):
+            return [f"the declared closed form gives x*({p:g}) = {xc:.4g}, but x = {xn:.4g} has a "
+                    f"lower pair loss ({vn:.6g} < {vc:.6g})"]
+    return []
+
+
+def _symmetry_warnings(loss: Loss, xs: np.ndarray, facts: dict) -> list[str]:
+    """x*(1 - p) = -x*(p) where the minimiser is unique; where it breaks, say whether the pair objective is
+    flat there (an interval of optimal margins, recorded in ``facts``) or only numerically asymmetric."""
+    warnings: list[str] = []
+    mirror = xs[::-1]  # x*(1 - p) on the same grid
+    both = np.isfinite(xs) & np.isfinite(mirror)
+    asym = both & (np.abs(np.where(both, xs + mirror, 0.0)) > 1e-4 * (1 + np.abs(np.where(both, xs, 0.0))))
+    if asym.any():
+        k = int(np.flatnonzero(asym)[0])
+        lo, hi = flat_interval(loss, float(CURVE_P[k]), xs[k])
+        facts["flat_at"] = {"p": float(CURVE_P[k]), "margins": [lo, hi]}
+        if hi - lo > 1e-3:
+            level = float(loss.pair_objective(xs[k], CURVE_P[k]))
+            warnings.append(f"the pair objective is flat at p = {CURVE_P[k]:g}: every scaled margin from {lo:.4g} "
+                            f"to {hi:.4g} gives the same pair loss {level:.6g}, "
+                            "so the optimum is not unique there and such pairs keep whatever margin training gives "
+                            "them")
+        else:
+            warnings.append(f"x*(1 - p) != -x*(p) at p = {CURVE_P[k]:g}: x*({CURVE_P[k]:g}) = {xs[k]:.4g} but "
+                            f"-x*({1 - CURVE_P[k]:g}) = {-mirror[k]:.4g}; by the symmetry of the pair objective "
+                            "the minimiser is not unique there")
+    return warnings
+
+
 def _check_pair_optimum(loss: Loss) -> CheckResult:
     """The per-pair optimum x*(p) = argmin_x p f(x) + (1 - p) f(-x) on a grid of p.
 
@@ -412,12 +386,7 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
     facts = {"p": CURVE_P.tolist(), "optimum": xs.tolist()}
     problems, warnings = [], []
     if loss.closed_form_optimum is not None:
-        for p, xc, xn in zip(CURVE_P, xs, numeric, strict=True):
-            vc, vn = float(loss.pair_objective(xc, p)), float(loss.pair_objective(np.clip(xn, -60, 60), p))
-            if vc > vn + 1e-9 * max(1.0, abs(vn)):
-                problems.append(f"the declared closed form gives x*({p:g}) = {xc:.4g}, but x = {xn:.4g} has a "
-                                f"lower pair loss ({vn:.6g} < {vc:.6g})")
-                break
+        problems += _closed_form_problems(loss, xs, numeric)
     half = int(np.argmin(np.abs(CURVE_P - 0.5)))
     x_half = xs[half]
     if abs(x_half) > 1e-6 and float(loss.pair_objective(x_half, 0.5)) < float(loss.pair_objective(0.0, 0.5)) - 1e-12:
@@ -446,23 +415,7 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
             k = drops[0]
             problems.append(f"x*(p) decreases in p (x*({CURVE_P[k]:g}) = {xs[k]:.4g} > x*({CURVE_P[k + 1]:g}) = "
                             f"{xs[k + 1]:.4g}): a more strongly preferred pair would end with a smaller margin")
-    mirror = xs[::-1]  # x*(1 - p) on the same grid
-    both = np.isfinite(xs) & np.isfinite(mirror)
-    asym = both & (np.abs(np.where(both, xs + mirror, 0.0)) > 1e-4 * (1 + np.abs(np.where(both, xs, 0.0))))
-    if asym.any():
-        k = int(np.flatnonzero(asym)[0])
-        lo, hi = flat_interval(loss, float(CURVE_P[k]), xs[k])
-        facts["flat_at"] = {"p": float(CURVE_P[k]), "margins": [lo, hi]}
-        if hi - lo > 1e-3:
-            level = float(loss.pair_objective(xs[k], CURVE_P[k]))
-            warnings.append(f"the pair objective is flat at p = {CURVE_P[k]:g}: every scaled margin from {lo:.4g} "
-                            f"to {hi:.4g} gives the same pair loss {level:.6g}, "
-                            "so the optimum is not unique there and such pairs keep whatever margin training gives "
-                            "them")
-        else:
-            warnings.append(f"x*(1 - p) != -x*(p) at p = {CURVE_P[k]:g}: x*({CURVE_P[k]:g}) = {xs[k]:.4g} but "
-                            f"-x*({1 - CURVE_P[k]:g}) = {-mirror[k]:.4g}; by the symmetry of the pair objective "
-                            "the minimiser is not unique there")
+    warnings += _symmetry_warnings(loss, xs, facts)
     facts["x_half"] = x_half
     samples = ", ".join(f"x*({p:g}) = {_fmt(xs[np.argmin(np.abs(CURVE_P - p))])}" for p in (0.6, 0.75, 0.9))
     if problems:
@@ -590,119 +543,16 @@ def check_scale(loss: Loss, *, beta: float, tolerance: float = 1e-6) -> CheckRes
 # ----------------------------------------------------------------------------
 
 
-def _net_win_weight(pairs) -> Tensor:
-    """Per (prompt, response): total weight as winner minus as loser. All ~0 means the
-    preferences are balanced and h = 0 is already optimal for any convex f."""
-    weight = torch.ones(len(pairs), dtype=torch.float64) if pairs.weight is None else pairs.weight.double()
-    n_prompts = int(pairs.prompt.max()) + 1
-    n_responses = int(torch.maximum(pairs.winner.max(), pairs.loser.max())) + 1
-    net = torch.zeros(n_prompts * n_responses, dtype=torch.float64)
-    net.index_add_(0, pairs.prompt * n_responses + pairs.winner, weight)
-    net.index_add_(0, pairs.prompt * n_responses + pairs.loser, -weight)
-    return net / weight.sum()
 
 
-def _mean_margin(policy, pairs) -> float:
-    """Weighted mean of the trained margins rho over the pairs: E_W[rho]."""
-    with torch.no_grad():
-        logp_w, logp_l = score_pairs(policy.logprobs, pairs.prompt, pairs.winner, pairs.loser)  # (N,) each
-        rho = margins(logp_w.double(), logp_l.double(), pairs.reference_winner, pairs.reference_loser)  # (N,)
-        weight = torch.ones_like(rho) if pairs.weight is None else pairs.weight.double()
-        return float((weight * rho).sum() / weight.sum())
 
 
-def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim: OptimConfig | None = None,
-                     tol: float = 1e-3, name: str | None = None) -> CheckResult:
-    """Train ``loss`` on ``task`` in exact mode and compare with the task's exact optimum.
-
-    ``task.prepare(loss, beta=, mode="exact")`` must return a session with ``pairs``,
-    ``build_policy()`` and ``summarise(policy, result)`` whose summary has the
-    finite-task fields of DESIGN.md (``tv_to_optimum``, ``loss_gap``, ...).
-
-    Reached: TV to the optimum <= tol where the optimum is unique, else a relative
-    loss gap <= tol (hinge, non-convex losses); where no finite optimum exists, the
-    mass on the responses that take it all in the limit must have grown.
-    Direction: for convex f, f(x) >= f(0) + f'(0) x gives
-    L(h*) >= L(0) + f'(0) beta sum_ij W_ij rho*_ij, so with f'(0) < 0 and L(h*) <= L(0)
-    the optimal weighted mean margin is >= 0, and > 0 unless h = 0 is already optimal,
-    i.e. the preferences are balanced (derived here; a sign error makes it negative, a
-    loss with no signal leaves it at 0).
-    """
-    label = name or getattr(task, "name", type(task).__name__)
-    check = f"population:{label}"
-    try:
-        session = task.prepare(loss, beta=beta, mode="exact")
-        policy = session.build_policy()
-        result = train(policy, session.pairs, loss,
-                       TrainSettings(beta=beta, steps=steps, optim=optim or OptimConfig(),
-                                     log_every=max(steps // 20, 1), progress=False,
-                                     tol=session_tol(session)))  # the task's early stop, as polopt train
-        summary = session.summarise(policy, result)
-        mean_margin = _mean_margin(policy, session.pairs)
-        balanced = bool(_net_win_weight(session.pairs).abs().max() <= 1e-9)
-    except Exception as err:
-        return CheckResult(check, "fail", f"training or solving failed: {type(err).__name__}: {err}",
-                           {"error": str(err)})
-    facts = {key: summary.get(key) for key in ("policy", "reference", "optimum", "optimum_finite", "optimum_value",
-                                               "optimum_method", "optimum_unique", "tv_to_optimum", "loss",
-                                               "loss_gap", "limit_support", "margin_growth")}
-    facts.update({"steps": result.steps, "mean_margin": mean_margin, "balanced": balanced, "tol": tol})
-    problems, notes = [], []
-    # 1. direction of the trained margins
-    if balanced:
-        notes.append("preferences balanced (no direction to check)")
-    elif beta * mean_margin < -STILL_MARGIN:
-        problems.append(f"the trained policy prefers the losers: weighted mean margin {mean_margin:.4g} < 0")
-    elif beta * mean_margin <= STILL_MARGIN:
-        problems.append("the trained policy did not move from the reference (weighted mean margin "
-                        f"{mean_margin:.3g}) although the winners outweigh the losers")
-    else:
-        notes.append(f"weighted mean margin {mean_margin:.4g} > 0")
-    # 2. trained against exact
-    if summary["optimum_finite"]:
-        tv, gap, value = summary["tv_to_optimum"], summary["loss_gap"], summary["optimum_value"]
-        relative_gap = gap / max(abs(value), 1e-12)
-        facts["relative_loss_gap"] = relative_gap
-        if summary.get("optimum_unique", True):
-            ok, measured = tv <= tol, f"TV to the exact optimum {tv:.3g}"
-        else:
-            ok, measured = relative_gap <= tol, f"relative loss gap {relative_gap:.3g} (optimum not unique)"
-        if ok:
-            notes.insert(0, f"{measured} <= {tol:g} after {steps} steps")
-        else:
-            problems.append(f"training did not reach the exact optimum: {measured} > {tol:g} after {steps} steps "
-                            f"(trained loss {summary['loss']:.6g}, optimal {value:.6g}; TV {tv:.3g}); either "
-                            "the loss's optimum is slow to reach (try more train.steps) or the exact solver and the "
-                            "trainer disagree about f")
-    else:
-        support = summary.get("limit_support") or []
-        policy_p, reference_p = np.asarray(summary["policy"]), np.asarray(summary["reference"])
-        mass = [float(policy_p[x, s].sum()) for x, s in enumerate(support)]
-        start = [float(reference_p[x, s].sum()) for x, s in enumerate(support)]
-        facts.update({"limit_mass": mass, "limit_mass_reference": start})
-        moved = ", ".join(f"{a:.3g} -> {b:.4g}" for a, b in zip(start, mass, strict=True))
-        support = support[0] if len(support) == 1 else support  # one prompt: just its responses
-        if all(b > a for a, b in zip(start, mass, strict=True)):
-            notes.insert(0, f"no finite optimum (as theory says for this loss and task); mass on the responses that "
-                         f"take it all in the limit {support} grew {moved}")
-        else:
-            problems.append(f"no finite optimum, and training moved mass away from the responses that take it all "
-                            f"in the limit {support} ({moved})")
-    if problems:
-        return CheckResult(check, "fail", "; ".join(problems), facts)
-    return CheckResult(check, "pass", "; ".join(notes), facts)
 
 
 # ----------------------------------------------------------------------------
 # The battery
 # ----------------------------------------------------------------------------
 
-def _guarded(name: str, fn: Callable[[], CheckResult]) -> CheckResult:
-    """Run one check; an unexpected error becomes a failure with its message, not a crash."""
-    try:
-        return fn()
-    except Exception as err:  # a user's f can break a check in ways no check foresees
-        return CheckResult(name, "fail", f"could not run: {type(err).__name__}: {err}", {"error": str(err)})
 
 
 def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
@@ -722,8 +572,6 @@ def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta
 
     loss = as_loss(loss, **(params or {}))
     if isinstance(loss, PairObjective) and loss.margin is None:
-        from polopt.pair_check import run_pair_checks  # builds on this module
-
         return run_pair_checks(loss, beta=beta, tasks=tasks, noisy_task=noisy_task, steps=steps, optim=optim,
                                tol=tol)
     loss = loss.margin if isinstance(loss, PairObjective) else loss
@@ -738,7 +586,7 @@ def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta
         checks.append((f"population:{label}", lambda task=task, label=label: check_population(
             loss, task, beta=beta, steps=steps, optim=optim, tol=tol, name=label)))
     start = time.perf_counter()
-    results = [_guarded("elementwise", lambda: check_elementwise(loss))]
+    results = [guarded("elementwise", lambda: check_elementwise(loss))]
     if on_check is not None:
         on_check(results[0], time.perf_counter() - start)
     elementwise = results[0].status != "fail"
@@ -746,7 +594,7 @@ def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta
     for name, fn in tqdm(checks, desc=f"check {loss.name}", disable=quiet, leave=False):
         start = time.perf_counter()
         if elementwise:
-            results.append(_guarded(name, fn))
+            results.append(guarded(name, fn))
         else:
             results.append(CheckResult(name, "skip", "not run: f is not elementwise, so the loss of one margin "
                                        "(and everything built on it) is not defined"))

@@ -32,7 +32,8 @@ from collections.abc import Callable, Sequence
 import numpy as np
 import torch
 
-from polopt.check import CheckResult, Report, _guarded, check_population
+from polopt.check_population import check_population
+from polopt.check_report import CheckResult, Report, guarded
 from polopt.objectives import PairObjective, probe_pair
 from polopt.optim import OptimConfig
 from polopt.pair_scores import PairScores
@@ -235,7 +236,7 @@ def run_pair_checks(objective: PairObjective, *, beta: float = 0.5, tasks: Seque
     for label, task in labelled:
         checks.append((f"population:{label}", lambda task=task, label=label: check_population(
             objective, task, beta=beta, steps=steps, optim=optim, tol=tol, name=label)))
-    results = [_guarded(n, fn) for n, fn in checks]
+    results = [guarded(n, fn) for n, fn in checks]
     results += [CheckResult(n, "skip", f"not applicable: {why}") for n, why in NOT_APPLICABLE.items()]
     return Report(objective.name, beta, results, {})
 

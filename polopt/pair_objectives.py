@@ -210,23 +210,6 @@ def winner_nll(pair: PairScores, *, per_token: bool = False) -> Tensor:
     return -pair.winner / pair.len_winner if per_token else -pair.winner
 
 
-def plus_winner_nll(pair: PairScores, beta: float, *, base: str = "reference_free_logistic", weight: float = 1.0,
-                    per_token: bool = False) -> Tensor:
-    """Any loss plus a supervised term on the winner: ``loss_base(pair) + weight * NLL(y_w)``.
-
-    ``base`` is any registered loss or pair objective (or a dotted path); with the default
-    (the reference-free logistic loss), weight 1 and the whole-sequence NLL this is CPO.
-    ``per_token``: the NLL divided by the winner's length.
-
-    References:
-        Xu et al., Contrastive Preference Optimization, 2024 (CPO = preference term + NLL of the
-        winner; from memory).
-    """
-    from polopt.objectives import as_objective, resolve_cached  # the registry imports this module
-
-    return as_objective(resolve_cached(base))(pair, beta) + weight * winner_nll(pair, per_token=per_token)
-
-
 def _log_odds(logp: Tensor) -> Tensor:
     """``log(p / (1 - p))`` of ``p = e^logp``, overflow-safe. (B,) -> (B,)."""
     logp = logp.clamp(max=_LOGP_CAP)  # p = 1 has infinite odds

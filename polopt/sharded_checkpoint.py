@@ -33,7 +33,7 @@ from pathlib import Path
 
 import torch
 
-from polopt import checkpoint as ckpt
+from polopt import checkpoint_files as ckpt
 
 SUFFIX = ".dcp"
 TRAINER = "trainer.pt"

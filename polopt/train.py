@@ -2,7 +2,7 @@
 
 The loop minimises a *batch objective* over a policy's parameters. An objective hands the
 loop, for each step, a :class:`StepLoss` (the scalar to backpropagate, the loss to report,
-the batch's metrics); :class:`PairObjective` is the offline one (a loss of the family on
+the batch's metrics); :class:`OfflineObjective` is the offline one (a loss of the family on
 a task's :class:`polopt.pair_set.PairSet`), :class:`MethodObjective` wraps a method's
 ``step(step) -> (scalar, metrics)`` (:mod:`polopt.methods`).
 
@@ -111,7 +111,7 @@ class StepLoss:
 # ----------------------------------------------------------------------------
 
 
-class PairObjective:
+class OfflineObjective:
     """The offline objective: a loss of the family on batches of ``pairs`` (full or drawn)."""
 
     def __init__(self, policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairObjective,
@@ -332,7 +332,7 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
              evaluate: Callable[[torch.nn.Module], dict] | None = None, metrics_path: Path | None = None,
              save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
              context: distributed.Context = distributed.SINGLE) -> TrainResult:
-    """Minimise ``objective`` (a :class:`PairObjective` or :class:`MethodObjective`) over the
+    """Minimise ``objective`` (an :class:`OfflineObjective` or :class:`MethodObjective`) over the
     policy's parameters for ``settings.steps`` steps, or until the loss change and the gradient
     norm have stayed below ``settings.tol`` (:mod:`polopt.stopping`; the stopping step is logged
     and checkpointed like the last).
@@ -395,9 +395,9 @@ def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairO
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
           context: distributed.Context = distributed.SINGLE) -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters (:func:`optimise` of
-    a :class:`PairObjective`). ``context`` (from :func:`polopt.distributed.setup`) with several
+    an :class:`OfflineObjective`). ``context`` (from :func:`polopt.distributed.setup`) with several
     processes: each rank takes its slice of every global batch and the gradients are averaged."""
     settings.check()
-    objective = PairObjective(policy, pairs, loss, settings, context)
+    objective = OfflineObjective(policy, pairs, loss, settings, context)
     return optimise(policy, objective, settings, evaluate=evaluate, metrics_path=metrics_path,
                     save_checkpoint=save_checkpoint, resume=resume, context=context)

@@ -13,7 +13,7 @@ import torch
 
 from polopt import losses
 from polopt.optim import OptimConfig
-from polopt.train import PairObjective, TrainSettings, train
+from polopt.train import OfflineObjective, TrainSettings, train
 from toy_tasks import families
 from toy_tasks.finite import make_task
 
@@ -102,13 +102,13 @@ def test_sampled_mode_reaches_the_empirical_optimum(name):
 def test_sampled_mode_with_minibatches_uses_every_pair():
     """Minibatches of 64 from 500 sampled pairs: each epoch (7 batches) visits 448 distinct pairs in a
     fresh order, so over the run every pair is drawn, and training still reaches the empirical optimum
-    (the trainer's own batch step, PairObjective.batch, replayed with the run's seed)."""
+    (the trainer's own batch step, OfflineObjective.batch, replayed with the run's seed)."""
     summary, result = run(families.bradley_terry(), "squared", mode="sampled", n_pairs=500, seed=2, batch_size=64)
     assert summary["n_pairs"] == 500 and result.steps == STEPS
     assert summary["tv_to_optimum"] <= 0.05  # minibatch noise: looser than the full-batch 1e-3
     session = families.bradley_terry().prepare(losses.get("squared"), beta=0.5, mode="sampled", n_pairs=500, seed=2)
     settings = TrainSettings(beta=0.5, steps=STEPS, batch_size=64)
-    objective = PairObjective(session.build_policy(), session.pairs, losses.get("squared"), settings)
+    objective = OfflineObjective(session.build_policy(), session.pairs, losses.get("squared"), settings)
     objective.start(torch.Generator().manual_seed(settings.seed))
     seen, epoch = [], []
     for _ in range(3 * 7):

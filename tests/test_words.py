@@ -66,7 +66,8 @@ def test_the_flat_pair_objective_is_named_with_its_interval():
 
 
 def test_check_rows_say_what_they_test():
-    from polopt.check import CHECK_TESTS, CheckResult, Report, format_report
+    from polopt.check import format_report
+    from polopt.check_report import CHECK_TESTS, CheckResult, Report
 
     report = Report("x", 0.5, [CheckResult(name, "pass", "ok") for name in CHECK_TESTS]
                     + [CheckResult("population:nontransitive", "pass", "ok")])

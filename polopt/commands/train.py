@@ -38,7 +38,7 @@ from polopt.methods import method_objective
 from polopt.objective import validate_hyperparameters
 from polopt.optim import OptimConfig
 from polopt.run_folder import RunFolder, run_summary
-from polopt.train import MethodObjective, PairObjective, TrainSettings, optimise
+from polopt.train import MethodObjective, OfflineObjective, TrainSettings, optimise
 from polopt.verdict import reached_line
 
 # keys that change how a run is kept, not what it computes: a resume may change them
@@ -152,7 +152,7 @@ def objective_of(method: dict, view: MethodView | None, session: Session, policy
     or the method's objective on the view's environment."""
     settings.check()
     if method["name"] == "offline":
-        return PairObjective(policy, session.pairs, loss, settings, context), session.evaluate
+        return OfflineObjective(policy, session.pairs, loss, settings, context), session.evaluate
     step = method_objective(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
                             beta=settings.beta, target=view.target_tensor(), seed=settings.seed)
     return MethodObjective(step, method["name"]), view.evaluate

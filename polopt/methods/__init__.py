@@ -1,6 +1,6 @@
 """Methods beyond the offline losses, chosen by the ``method`` config group.
 
-- ``offline``: the offline losses on a task's pairs (the default path, :class:`polopt.train.PairObjective`).
+- ``offline``: the offline losses on a task's pairs (the default path, :class:`polopt.train.OfflineObjective`).
 - ``rl``: KL-regularised REINFORCE (:mod:`polopt.methods.rl`); target pi_ref e^{r / beta}.
 - ``selfplay``: pairs from the current policy (:mod:`polopt.methods.selfplay`); target the
   Nash equilibrium of the regularised preference game at tau = beta / 2.
@@ -54,7 +54,7 @@ def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironme
     if name == "best_of_n":
         return distill_objective(policy, env, target=target, estimator=estimator, n=method.get("n", 4),
                                  n_samples=method.get("n_samples", 4096), generator=generator)
-    raise ValueError("method=offline trains with polopt.train.PairObjective, not through polopt.methods")
+    raise ValueError("method=offline trains with polopt.train.OfflineObjective, not through polopt.methods")
 
 
 def train_method(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, *, loss: Loss, beta: float,
