@@ -36,6 +36,11 @@ def shard_policy(policy: nn.Module, world_size: int, device: torch.device) -> nn
 
     memo = {id(p): p for p in policy.parameters()}  # the copy takes the same Parameter objects, no second copy
     sharded = copy.deepcopy(policy, memo)
+    # every forward pass is a collective (each unit all-gathers its weights), so every rank must run the same
+    # number of passes: no splitting of a batch by its own rows' lengths, which differ between ranks
+    for module in sharded.modules():
+        if hasattr(module, "split_lengths"):
+            module.split_lengths = False
     mesh = init_device_mesh(device.type, (world_size,))
     for module in list(sharded.modules()):
         if isinstance(module, nn.ModuleList):
