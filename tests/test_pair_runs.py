@@ -57,7 +57,7 @@ def test_the_readme_example_trains_and_checks_by_dotted_path(tmp_path):
     assert summary["tv_to_optimum"] <= 1e-3
     config = (tmp_path / "run" / "config.yaml").read_text()
     assert "weight: 2.0" in config  # loss.weight reached the function
-    out = polopt("check", "team_objectives:my_objective", "--param", "weight=2.0", "--tasks", "noisy_labels",
+    out = polopt("check", "team_objectives:my_objective", "loss.weight=2.0", "--tasks", "noisy_labels",
                  "--json", extra_path=where)
     assert out.returncode == 0, out.stderr
     report = json.loads(out.stdout)

@@ -142,8 +142,9 @@ def test_streamed_training_equals_the_in_memory_run_and_scores_per_batch(tmp_pat
     monkeypatch.setattr("polopt.pairs_stream.batched_logprobs", recording)
     monkeypatch.setattr("polopt.logprobs.batched_logprobs", recording)
     monkeypatch.setattr(reference_cache, "reference_logprobs", whole_file)
+    monkeypatch.setattr(reference_cache, "reference_pair_logprobs", whole_file)
     monkeypatch.setattr("polopt.pairs_stream.STATISTICS_CHUNK", 40)
-    monkeypatch.setattr("polopt.pairs_task.reference_logprobs", whole_file)
+    monkeypatch.setattr("polopt.pair_session.reference_pair_logprobs", whole_file)
     streamed = run(_cfg(f"task.path={path}", "task.stream=true"), tmp_path / "streamed")
     assert sizes and max(sizes) <= 2 * 40  # a batch (winners and losers) or a statistics chunk, never all 150 pairs
     for key in ("rows_in", "rows_accepted", "rows_rejected", "n_pairs"):
