@@ -58,6 +58,7 @@ from polopt.checkpoint_files import (
     nonfinite_entries,
     prune,
     read_manifest,
+    refuse_nonfinite,
     sha256_hex,
     validate_keep,
     write_error,
@@ -155,10 +156,7 @@ def save(directory: str | Path, state: dict, *, run_id: str, fingerprint: str, c
     """
     validate_keep(keep)
     step = int(state["step"])
-    bad = nonfinite_entries(state)
-    if bad:
-        raise FloatingPointError(f"not writing a checkpoint at step {step}: {', '.join(bad[:5])} "
-                                 "hold non-finite values (NaN or infinity)")
+    refuse_nonfinite(step, nonfinite_entries(state))
     directory = Path(directory)
     directory.mkdir(parents=True, exist_ok=True)
     payload = {**state, "run_id": run_id, "fingerprint": fingerprint, "config": config}

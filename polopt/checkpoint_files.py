@@ -151,3 +151,11 @@ def _parse_manifest(directory: Path) -> dict | None:
     if not ok:
         raise ValueError("not a polopt checkpoint manifest of format 1")
     return data
+
+
+def refuse_nonfinite(step: int, bad: list[str]) -> None:
+    """Raise FloatingPointError naming the entries (``bad``, from :func:`nonfinite_entries`) of the state at
+    ``step`` that hold NaN or infinity: such a state is never written as a checkpoint."""
+    if bad:
+        raise FloatingPointError(f"not writing a checkpoint at step {step}: {', '.join(bad[:5])} "
+                                 "hold non-finite values (NaN or infinity)")

@@ -92,10 +92,7 @@ def save(directory: str | Path, state: dict, *, run_id: str, fingerprint: str, c
 
     ckpt.validate_keep(keep)
     step = int(state["step"])
-    bad = _nonfinite_anywhere(state)
-    if bad:
-        raise FloatingPointError(f"not writing a checkpoint at step {step}: {', '.join(bad[:5])} "
-                                 "hold non-finite values (NaN or infinity)")
+    ckpt.refuse_nonfinite(step, _nonfinite_anywhere(state))
     directory = Path(directory)
     final = directory / name(step)
     tmp = directory / f"{name(step)}.tmp"
