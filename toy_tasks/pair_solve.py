@@ -136,7 +136,9 @@ class _Prompt:
     def __init__(self, objective: PairObjective, w: np.ndarray, log_ref: np.ndarray, lengths: np.ndarray,
                  beta: float):
         self.objective, self.beta = objective, beta
-        self.w, self.log_ref, self.lengths = (torch.as_tensor(a, dtype=torch.float64) for a in (w, log_ref, lengths))
+        # torch.tensor copies: the task's arrays may be read-only views (np.broadcast_to)
+        self.w, self.log_ref, self.lengths = (torch.tensor(np.asarray(a), dtype=torch.float64)
+                                              for a in (w, log_ref, lengths))
 
     def loss(self, z: Tensor) -> Tensor:
         log_pi = torch.log_softmax(z, dim=0)  # (K,)
