@@ -10,12 +10,17 @@ is pure and unreduced; reduction (weights, label smoothing) happens once, in
 Notation: ``h_w = log pi(y_w) - log pi_ref(y_w)``, ``h_l`` likewise (log-ratios), ``u = pi / pi_ref
 = e^h``, ``n_w, n_l`` the lengths, ``sigma`` the logistic function.
 
-Where the formulas come from: the papers are named in each docstring. The search tool found each
-paper's abstract or a faithful summary (which confirms what each method changes: the divergence's
-link f'(u) for f-DPO, the chi^2 + KL link for chi-PO, "alpha (|y_w| - |y_l|) inside the
-log-sigmoid" for R-DPO, the penalty on the winner falling below the reference for DPO-Positive);
-the exact equations were not in the stored copies, so each formula below is written from memory
-and says so, with the derivation that fixes its signs.
+Where the formulas come from (checked with the search tool; each member's References name the
+text and say what matched). The stored copies of the arXiv and ar5iv pages return only their
+opening (abstract, introduction), so no equation was read from an arXiv page itself; it was read from
+the paper authors' own code (f-DPO, ORPO, SimPO's hyperparameters, CPO's objective in its first
+author's README) or from independent reproductions of the paper's equations (chi-PO, SimPO, CPO,
+ORPO, DPO-Positive, R-DPO), two sources wherever two were found. Every formula below matched those
+texts, signs and the place of each constant included, so none was changed; the default parameters
+are the papers' own values where a source gave one (each docstring says which). The derivations that
+fix the signs are kept, and ``tests/test_pair_objectives.py`` pins each member against a value
+computed by hand from the paper's equation. A "file id" below is the id of a stored file in the
+search tool's index (its ``read_file``), for texts that the index holds without a path.
 """
 
 from __future__ import annotations
@@ -61,8 +66,11 @@ def divergence_reverse_kl(pair: PairScores, beta: float) -> Tensor:
 
     References:
         Wang et al., Beyond Reverse KL: Generalizing Direct Preference Optimization with Diverse
-        Divergence Constraints, 2023 (from memory); Rafailov et al., Direct Preference
-        Optimization, 2023.
+        Divergence Constraints, 2023 (arXiv 2309.16240; OpenReview 2cRzmWXK9N). Checked: the
+        reverse-KL row (``u log u``, ``log u + 1``) of the f, f' table in a reproduction of the
+        paper (github.com/Lerostre/test-task-alignment, README), and the authors' own code
+        (github.com/alecwangcq/f-divergence-dpo, trainers.py), whose reverse-KL loss is the DPO
+        loss. Rafailov et al., Direct Preference Optimization, 2023.
     """
     return _logistic_of(beta * (pair.logratio_winner - pair.logratio_loser))
 
@@ -72,11 +80,15 @@ def divergence_forward_kl(pair: PairScores, beta: float) -> Tensor:
 
     ``f'(u) = -1/u = -e^{-h}``: ``loss = -log sigma(beta (e^{-h_l} - e^{-h_w}))``. The optimum on
     Bradley–Terry preferences solves ``-e^{-h_i} = r_i / beta + const``, i.e. ``pi ∝ pi_ref /
-    (c - r / beta)`` (from the KKT conditions of the paper; written from memory). ``e^{-h}`` keeps
-    a linear tail beyond ``-h = 50``.
+    (c - r / beta)`` (the link set equal to the reward plus a constant, as in the paper's KKT
+    argument; the closed form is derived here, not read). ``e^{-h}`` keeps a linear tail beyond
+    ``-h = 50``.
 
     References:
-        Wang et al., Beyond Reverse KL, 2023 (formula from memory).
+        Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: forward-KL row ``-log u``,
+        ``f'(u) = -1/u`` of the f, f' table in a reproduction (github.com/Lerostre/test-task-alignment),
+        and the authors' code (github.com/alecwangcq/f-divergence-dpo, trainers.py): logit
+        ``-e^{-h_w} + e^{-h_l}`` inside ``-log sigma(beta .)``, as here.
     """
     return _logistic_of(beta * (_exp_tail(-pair.logratio_loser) - _exp_tail(-pair.logratio_winner)))
 
@@ -89,7 +101,11 @@ def divergence_jensen_shannon(pair: PairScores, beta: float) -> Tensor:
     the reference earns little, so the optimum moves less than DPO's.
 
     References:
-        Wang et al., Beyond Reverse KL, 2023 (formula from memory).
+        Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: JS row ``u log u - (u + 1)
+        log((u + 1) / 2)``, ``f'(u) = log(2u / (1 + u))`` of the f, f' table in a reproduction
+        (github.com/Lerostre/test-task-alignment), and the authors' code
+        (github.com/alecwangcq/f-divergence-dpo, trainers.py), which writes the link as
+        ``log 2 - log(1 + 1/u)``, the same function.
     """
     return _logistic_of(beta * (F.logsigmoid(pair.logratio_winner) - F.logsigmoid(pair.logratio_loser)))
 
@@ -101,7 +117,12 @@ def divergence_alpha(pair: PairScores, beta: float, *, alpha: float = 0.5) -> Te
     a -> 0 the link tends to log u (reverse KL, DPO); at a = 1 it is ``1 - 1/u`` (forward KL).
 
     References:
-        Wang et al., Beyond Reverse KL, 2023 (formula from memory; the limits above are derived).
+        Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: alpha-divergence row
+        (``alpha`` in (0, 1)) ``f(u) = (u^{1-a} - (1 - a) u - a) / (a (a - 1))``, ``f'(u) = (1 -
+        u^{-a}) / a`` of the f, f' table in a reproduction (github.com/Lerostre/test-task-alignment),
+        and the authors' code (github.com/alecwangcq/f-divergence-dpo, trainers.py): logit
+        ``(u_l^{-a} - u_w^{-a}) / a``, alpha asserted in (0, 1), as here. The limits above are
+        derived, not read.
     """
     if not 0.0 < alpha < 1.0:
         raise ValueError(f"loss.alpha must lie in (0, 1) (e.g. loss.alpha=0.5), got {alpha!r}")
@@ -122,12 +143,18 @@ def chi_squared_link(pair: PairScores, beta: float, *, clip: float | None = None
     ``loss = -log sigma(clip_c[beta (phi(u_w) - phi(u_l))])``, ``phi(u) = e^h + h``. ``clip``
     (the paper's 2 R_max) limits the argument to [-clip, clip]; None: no clipping. The e^h term
     grows fast above the reference, so the policy is held near pi_ref where the data say little
-    (the paper's pessimism). ``e^h`` keeps a linear tail beyond h = 50.
+    (the paper's pessimism). ``e^h`` keeps a linear tail beyond h = 50. ``phi`` is ``f'`` of the
+    mixed divergence ``f(u) = (u - 1)^2 / 2 + u log u`` (chi^2 / 2 + KL): ``f'(u) = u + log u``.
 
     References:
         Huang et al., Correcting the Mythos of KL-Regularization: Direct Alignment without
-        Overoptimization via Chi-Squared Preference Optimization, 2024 ("a one-line change to
-        DPO ... modifying the logarithmic link function", confirmed; phi from memory).
+        Overoptimization via Chi-Squared Preference Optimization, 2024 (arXiv 2407.13399). Checked:
+        Algorithm 1 (chi-PO), ``argmax sum log sigma(clip_{2 R_max}[beta phi(u_+) - beta phi(u_-)])``
+        with ``phi(z) = z + log z``, clipping to [-2 R_max, 2 R_max] applied after beta, as here
+        (``clip`` = 2 R_max), in two independent reproductions of the paper's equations (study
+        notes in the search index, file ids 54585003573 and 67372298998), and the mixed generator
+        in a third (a Lean formalisation, file id 63012144797). No code of the authors was found;
+        the paper's R_max has no default, so ``clip`` defaults to none.
     """
     hw, hl = pair.logratio_winner, pair.logratio_loser
     z = beta * ((_exp_tail(hw) + hw) - (_exp_tail(hl) + hl))  # (B,)
@@ -148,9 +175,17 @@ def length_normalised_free(pair: PairScores, beta: float, *, gamma: float = 0.5)
     appears, so nothing holds the policy near pi_ref: on a finite task the infimum may be reached
     only at the simplex's boundary.
 
+    The margin gamma stands outside beta. The authors' released runs use beta 2.0 or 2.5 with
+    ``gamma / beta`` from 0.1 to 0.8 (gamma 0.25 to 1.6); the default gamma = 0.5 lies in that
+    range. polopt's default beta (0.5) is far below theirs: pass ``beta=2`` to train as they did.
+
     References:
         Meng et al., SimPO: Simple Preference Optimization with a Reference-Free Reward, 2024
-        (formula from memory).
+        (arXiv 2405.14734). Checked: the SimPO objective ``-log sigma(beta / |y_w| log pi(y_w) -
+        beta / |y_l| log pi(y_l) - gamma)`` (reward ``beta / |y| log pi(y)``, margin gamma in the
+        Bradley-Terry model) in a study note that follows the paper's equations (file id
+        62337312755) and in the README of github.com/fe1ixxu/CPO_SIMPO (by CPO's first author);
+        beta and gamma / beta in the authors' README (github.com/princeton-nlp/SimPO).
     """
     z = beta * (pair.winner / pair.len_winner - pair.loser / pair.len_loser) - gamma  # (B,)
     return _logistic_of(z)
@@ -166,7 +201,13 @@ def length_regularised(pair: PairScores, beta: float, *, alpha: float = 0.05) ->
 
     References:
         Park et al., Disentangling Length from Quality in Direct Preference Optimization, 2024
-        (the term's place confirmed from a summary; its sign derived above, from memory).
+        (arXiv 2403.19159; ACL Findings 2024). Checked, against summaries that quote the paper (no
+        copy of its equation itself was found): the penalty ``alpha |y|`` in the RL objective gives
+        "an additional regularization margin (alpha|y_w| - alpha|y_l|) in the binary classification
+        loss logit" that "up-weights gradients for pairs where the chosen answer is shorter" (file
+        id 59031621123), which fixes the sign + as derived above; the same + sign in two study
+        notes (file ids 66299925259, 61379349764). alpha = 0.05 per token is the paper's Phi-2 /
+        UltraFeedback run (0.1 on Anthropic HH), as quoted there.
     """
     z = beta * (pair.logratio_winner - pair.logratio_loser) + alpha * (pair.len_winner - pair.len_loser)
     return _logistic_of(z)
@@ -181,7 +222,13 @@ def winner_anchored(pair: PairScores, beta: float, *, penalty: float = 50.0) -> 
 
     References:
         Pal et al., Smaug: Fixing Failure Modes of Preference Optimisation with DPO-Positive, 2024
-        (formula and the default penalty 50 from memory).
+        (arXiv 2402.13228). Checked: ``-log sigma(beta (log pi(y_w)/pi_ref(y_w) - log
+        pi(y_l)/pi_ref(y_l) - lambda max(0, log pi_ref(y_w)/pi(y_w))))``, the penalty inside
+        beta's bracket and zero while the winner is at or above the reference (the paper's runs:
+        lambda = 50, beta = 0.3; ablation lambda in 5, 50, 500), in a reproduction note citing
+        the paper's v2 (file id 56770960704); the penalty ``max(0, log pi_ref(y_w)/pi(y_w))`` in a
+        second summary (file id 53476034720). The authors' repository (github.com/abacusai/smaug)
+        holds no code.
     """
     hw = pair.logratio_winner
     z = beta * (hw - pair.logratio_loser - penalty * F.relu(-hw))  # (B,)
@@ -195,7 +242,12 @@ def reference_free_logistic(pair: PairScores, beta: float) -> Tensor:
 
     References:
         Xu et al., Contrastive Preference Optimization: Pushing the Boundaries of LLM Performance in
-        Machine Translation, 2024 (formula from memory).
+        Machine Translation, 2024 (arXiv 2401.08417). Checked: ``L(pi; U) = -E log sigma(beta log
+        pi(y_w) - beta log pi(y_l))`` (the paper's Eq. 3, named so in a comment on
+        huggingface.co/papers/2405.14734) as reproduced at
+        deepnlp.org/equation/contrastive-preference-optimization-cpo and in the README of
+        github.com/fe1ixxu/CPO_SIMPO (by the paper's first author). Whole-sequence
+        log-probabilities, no length normalisation, as here.
     """
     return _logistic_of(beta * (pair.winner - pair.loser))
 
@@ -230,7 +282,13 @@ def odds_ratio_with_nll(pair: PairScores, beta: float, *, weight: float = 0.1) -
 
     References:
         Hong et al., ORPO: Monolithic Preference Optimization without Reference Model, 2024
-        (formula and the default weight 0.1 from memory).
+        (arXiv 2403.07691). Checked: Eq. 6 ``L = E[L_SFT + lambda L_OR]``, ``L_OR = -log
+        sigma(log odds(y_w) / odds(y_l))`` (deepnlp.org/equation/odds-ratio-preference-optimization-
+        orpo), ``P = exp(mean token log-probability)`` and a per-token NLL in study notes (file ids
+        66574299754, 60620769149), and the authors' code (github.com/xfactlab/orpo,
+        src/orpo_trainer.py): the token-averaged NLL of the winner plus ``lambda`` times ``-log
+        sigma(log-odds difference)`` of the length-normalised log-probabilities, as here; lambda =
+        0.1 in their run script (scripts/run_mistral_orpo_beta.sh).
     """
     del beta  # ORPO has no beta
     ratio = _log_odds(pair.winner / pair.len_winner) - _log_odds(pair.loser / pair.len_loser)  # (B,)

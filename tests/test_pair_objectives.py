@@ -4,7 +4,8 @@ the adapter bit for bit; the signature rule and its one-line errors.
 
 Every expected value comes from the formulas below, written here with numpy/scipy from the
 papers' definitions (u = pi / pi_ref, the link f'(u) of each divergence, lengths n), not from
-polopt's code.
+polopt's code; one pair per member is also worked out by hand from the paper's equation
+(HAND_COMPUTED), with numbers that tell the paper's form from its near misses.
 """
 
 import math
@@ -115,6 +116,79 @@ def test_finite_values_and_gradients_at_extremes(name, dtype):
         values.sum().backward()
         for g in inputs:  # no gradient at all: an input the objective does not read (the reference)
             assert g.grad is None or torch.isfinite(g.grad).all(), f"{name} {dtype} n={n}: non-finite gradients"
+
+
+# ---------------------------------------------------------------- each paper's equation, by hand
+#
+# One pair per member, with numbers chosen so that the paper's equation can be worked out by hand
+# (u = pi / pi_ref a small integer or fraction, log-probabilities multiples of log 2 or log 3). Each
+# expected value below is that hand computation, written as a closed form; the comment names the
+# paper, the equation and why the numbers tell the paper's form from a near miss (sign, or a constant
+# inside or outside beta). Sources of each equation: the member's docstring in polopt/pair_objectives.py.
+
+LN2, LN3 = math.log(2.0), math.log(3.0)
+
+
+def _one_pair(log_w, log_l, ref_w=0.0, ref_l=0.0, n_w=1.0, n_l=1.0):
+    return PairScores(*(torch.tensor([v], dtype=torch.float64) for v in (log_w, log_l, ref_w, ref_l, n_w, n_l)))
+
+
+HAND_COMPUTED = [
+    # Wang et al. 2023 (f-DPO), forward KL f'(u) = -1/u: u_w = 1, u_l = 2, beta = 1:
+    # -log sigma(-1 - (-1/2)) = log(1 + e^{1/2})
+    ("divergence_forward_kl", {}, 1.0, _one_pair(-LN2, -LN2, ref_w=-LN2, ref_l=-2 * LN2),
+     math.log(1.0 + math.exp(0.5))),
+    # Wang et al. 2023 (f-DPO), Jensen-Shannon f'(u) = log(2u / (1 + u)): u_w = 1 (f' = 0), u_l = 3
+    # (f' = log 3/2), beta = 2: -log sigma(-2 log 3/2) = log(1 + 9/4) = log(13/4)
+    ("divergence_jensen_shannon", {}, 2.0, _one_pair(-LN3, -LN3, ref_w=-LN3, ref_l=-2 * LN3),
+     math.log(13.0 / 4.0)),
+    # Wang et al. 2023 (f-DPO), alpha-divergence f'(u) = (1 - u^{-a}) / a, a = 1/2: u_w = 4 (f' = 1),
+    # u_l = 1 (f' = 0), beta = log 3: -log sigma(log 3) = log(1 + 1/3) = log(4/3)
+    ("divergence_alpha", {"alpha": 0.5}, LN3, _one_pair(-LN2, -LN2, ref_w=-3 * LN2, ref_l=-LN2),
+     math.log(4.0 / 3.0)),
+    # Huang et al. 2024 (chi-PO), Algorithm 1, phi(z) = z + log z: u_w = 1 (phi = 1), u_l = 1/2
+    # (phi = 1/2 - log 2), beta = 1: -log sigma(1/2 + log 2) = log(1 + e^{-1/2} / 2)
+    ("chi_squared_link", {}, 1.0, _one_pair(-LN2, -2 * LN2, ref_w=-LN2, ref_l=-LN2),
+     math.log(1.0 + math.exp(-0.5) / 2.0)),
+    # the same pair clipped at 2 R_max = 1 (clip applied to beta (phi_w - phi_l) = 1.19): log(1 + e^{-1})
+    ("chi_squared_link", {"clip": 1.0}, 1.0, _one_pair(-LN2, -2 * LN2, ref_w=-LN2, ref_l=-LN2),
+     math.log(1.0 + math.exp(-1.0))),
+    # Meng et al. 2024 (SimPO): -log sigma(beta/|y_w| log pi_w - beta/|y_l| log pi_l - gamma) with log pi_w
+    # = -6 over 3 tokens, log pi_l = -12 over 4, beta = 2, gamma = 1: -4 + 6 - 1 = 1 -> log(1 + e^{-1})
+    # (gamma inside beta would give 2 (2 - 1) = 2 instead)
+    ("length_normalised_free", {"gamma": 1.0}, 2.0, _one_pair(-6.0, -12.0, n_w=3.0, n_l=4.0),
+     math.log(1.0 + math.exp(-1.0))),
+    # Park et al. 2024 (R-DPO): + (alpha |y_w| - alpha |y_l|) in the logit: equal log-ratios (0),
+    # |y_w| = 10, |y_l| = 4, alpha = 0.1: -log sigma(0.6) = log(1 + e^{-0.6}) (the - sign: log(1 + e^{0.6}))
+    ("length_regularised", {"alpha": 0.1}, 0.5, _one_pair(-3.0, -5.0, ref_w=-3.0, ref_l=-5.0, n_w=10.0, n_l=4.0),
+     math.log(1.0 + math.exp(-0.6))),
+    # Pal et al. 2024 (DPO-Positive): -log sigma(beta (h_w - h_l - lambda max(0, log pi_ref(y_w)/pi(y_w))))
+    # with h_w = -0.1 (winner below its reference), h_l = -1.1, lambda = 5, beta = 2:
+    # 2 (1 - 0.5) = 1 -> log(1 + e^{-1}) (the penalty outside beta would give 2 - 0.5 = 1.5 instead)
+    ("winner_anchored", {"penalty": 5.0}, 2.0, _one_pair(-1.1, -2.1, ref_w=-1.0, ref_l=-1.0),
+     math.log(1.0 + math.exp(-1.0))),
+    # ... and with the winner above its reference (h_w = +0.1) the penalty is 0: DPO, 2 (0.1 + 1.1) = 2.4
+    ("winner_anchored", {"penalty": 5.0}, 2.0, _one_pair(-0.9, -2.1, ref_w=-1.0, ref_l=-1.0),
+     math.log(1.0 + math.exp(-2.4))),
+    # Xu et al. 2024 (CPO), Eq. 3 (L_prefer): log pi_w = -2, log pi_l = -2 - log 3, beta = 1:
+    # -log sigma(log 3) = log(4/3)
+    ("reference_free_logistic", {}, 1.0, _one_pair(-2.0, -2.0 - LN3), math.log(4.0 / 3.0)),
+    # Xu et al. 2024 (CPO): L_prefer + L_NLL, the whole-sequence NLL with weight 1: log(4/3) + 2
+    ("plus_winner_nll", {}, 1.0, _one_pair(-2.0, -2.0 - LN3), math.log(4.0 / 3.0) + 2.0),
+    # Hong et al. 2024 (ORPO), Eq. 6: L_SFT + lambda L_OR with P = exp(log pi / |y|): P_w = 1/2 (odds 1;
+    # log pi_w = -2 log 2 over 2 tokens, so L_SFT = log 2), P_l = 1/5 (odds 1/4), lambda = 0.1:
+    # L_OR = -log sigma(log 4) = log(5/4); total log 2 + 0.1 log(5/4). beta is not used.
+    ("odds_ratio_with_nll", {"weight": 0.1}, 7.0, _one_pair(-2 * LN2, -math.log(5.0), n_w=2.0, n_l=1.0),
+     LN2 + 0.1 * math.log(5.0 / 4.0)),
+]
+
+
+@pytest.mark.parametrize(("name", "params", "beta", "pair", "want"), HAND_COMPUTED,
+                         ids=[f"{c[0]}-{i}" for i, c in enumerate(HAND_COMPUTED)])
+def test_each_paper_equation_on_a_hand_computed_pair(name, params, beta, pair, want):
+    got = objectives.resolve(name, **params)(pair, beta)
+    assert got.shape == (1,)
+    assert float(got) == pytest.approx(want, rel=1e-12, abs=1e-12)
 
 
 # ---------------------------------------------------------------- relations between members

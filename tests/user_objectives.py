@@ -15,7 +15,7 @@ from polopt.pair_scores import PairScores
 
 Tensor = torch.Tensor
 
-SIMPO_GAMMA = 0.5  # target reward margin; Meng et al. 2024 use values of this order (from memory)
+SIMPO_GAMMA = 0.5  # target reward margin; the SimPO authors' released runs use 0.25 to 1.6 (their README)
 ANCHOR_WEIGHT = 2.0
 SUPERVISED_WEIGHT = 0.3
 ALPHA = 0.5
@@ -49,7 +49,8 @@ def logistic_with_winner_likelihood(pair: PairScores, beta: float) -> Tensor:
 
 def _divergence(link):
     """The f-divergence DPO loss ``-log sigmoid(beta f'(pi_w / ref_w) - beta f'(pi_l / ref_l))`` for
-    ``link = f'`` (Wang et al., Beyond Reverse KL, 2023, eq. for f-DPO; written from memory)."""
+    ``link = f'`` (Wang et al., Beyond Reverse KL, 2023; checked against the
+    authors' code, see polopt.pair_objectives)."""
 
     def objective(pair: PairScores, beta: float) -> Tensor:
         u_w, u_l = pair.logratio_winner.exp(), pair.logratio_loser.exp()  # (B,) probability ratios
