@@ -161,6 +161,19 @@ def test_train_rejects_bad_settings():
         task.prepare(loss, beta=0.5, mode="online")
     with pytest.raises(ValueError, match=r"precision must be fp32 or bf16, got 'fp8'"):
         train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(), precision="fp8"))
+    with pytest.raises(ValueError, match=r"optim.betas must be two numbers in \[0, 1\)"):
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(betas=[0.9, 1.0])))
+    with pytest.raises(ValueError, match=r"optim.betas applies to adam and adamw, not sgd"):
+        train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig("sgd", betas=[0.9, 0.9])))
+
+
+def test_optim_betas_reach_torch_adam():
+    """``optim.betas`` is torch.optim.Adam's own ``betas`` argument; None keeps torch's default (0.9, 0.999)."""
+    from polopt.optim import make_optimiser
+
+    weights = [torch.nn.Parameter(torch.zeros(3))]
+    assert make_optimiser(weights, OptimConfig(betas=[0.9, 0.9]), 10)[0].param_groups[0]["betas"] == (0.9, 0.9)
+    assert make_optimiser(weights, OptimConfig(), 10)[0].param_groups[0]["betas"] == (0.9, 0.999)
 
 
 def test_reference_log_probs_are_cached_in_the_pairs():
