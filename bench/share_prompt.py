@@ -10,7 +10,8 @@ times :func:`polopt.train.train` on the tiny transformer (2 layers, 4 heads) for
 - ``train.share_prompt`` true against false (winner and loser in one pass over their
   prompt, or the prompt computed twice), in fp32 and in bf16: real tokens/s (the trainer's
   ``tokens_per_s``: prompt with winner plus prompt with loser, padding excluded), and the
-  largest difference of the logged loss between the two after the same steps;
+  largest difference of the logged loss between the two after the same steps (both from the
+  first round, which draws the same batches: round r trains with seed r);
 - the one-off reference pass over the file, shared against separate (seconds);
 - ``precision=bf16`` against fp32 (autocast), both sharing the prompt;
 - ``train.compile=true`` against false (fp32, sharing the prompt), the compile time
@@ -191,8 +192,10 @@ def main(argv: list[str] | None = None) -> None:
                       seed=r)
             print(f"    width {cfg['width']}, {name(cfg)}: {row['tokens_per_s']:,.0f} tokens/s, load {row['load']:.2f}",
                   file=sys.stderr, flush=True)
+            first_losses = row["losses"] if best[i] is None else best[i]["losses"]  # round 0's: one seed for all
             if best[i] is None or row["tokens_per_s"] > best[i]["tokens_per_s"]:
                 best[i] = {**{k: v for k, v in cfg.items() if k != "warm"}, **row, "round": r}
+            best[i]["losses"] = first_losses
         print(f"  round {r + 1} of {args.rounds} done, load {os.getloadavg()[0]:.2f}", file=sys.stderr, flush=True)
     checks = ratios(best, reference)
     print(f"{'width':>5}  {'configuration':<40} {'tokens/s':>9} {'ms/step':>8} {'load':>5}")

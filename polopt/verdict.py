@@ -13,6 +13,9 @@ REACHED_TOLERANCE = 1e-3  # total variation to the optimum; the trained-policy t
 # a sequence model (tiny transformer, bigram) fits the enumerated distribution only approximately: the
 # tolerance the kit's defaults are held to on task=sequence (measured well inside it, see README)
 SEQUENCE_MODEL_TOLERANCE = 0.05
+# a run whose loss is this close to its optimum's (relatively) while its policy is still far away
+# sits on a nearly flat objective: each step gains little (our threshold; float32 sums round at ~1e-7)
+FLAT_RELATIVE_GAP = 1e-4
 
 
 def reached_optimum(tv_to_optimum: float | None, *, optimum_finite: bool | None, unique: bool = True,
@@ -30,8 +33,12 @@ def reached_optimum(tv_to_optimum: float | None, *, optimum_finite: bool | None,
     return bool(tv_to_optimum <= tolerance)
 
 
-def likely_fix(losses: list[float]) -> str:
+def likely_fix(losses: list[float], *, relative_loss_gap: float | None = None) -> str:
     """The most likely fix for a run that missed its optimum, from its logged loss curve.
+
+    A run whose loss is within :data:`FLAT_RELATIVE_GAP` of the optimum's (``relative_loss_gap``,
+    when known) but whose policy is not is on a nearly flat objective: the curve cannot tell more
+    steps from a larger rate there, and the screen says so with the figure.
 
     Over the second half of the logged values (all of them when fewer than six): a loss that changes
     direction in at least a third of its moves is oscillating (the step is too large: lower optim.lr);
@@ -50,6 +57,9 @@ def likely_fix(losses: list[float]) -> str:
     turns = sum(a != b for a, b in zip(signs[:-1], signs[1:], strict=True))
     if len(signs) >= 3 and turns >= len(moves) / 3:
         return "lower optim.lr (the loss oscillates)"
+    if relative_loss_gap is not None and 0.0 <= relative_loss_gap <= FLAT_RELATIVE_GAP:
+        return (f"raise train.steps (the objective is nearly flat here: the loss is within "
+                f"{relative_loss_gap:.2g} of the optimum's, relatively, so each step gains little)")
     quarter = tail[len(tail) // 2:]
     if quarter[0] - quarter[-1] > scale:
         return "raise train.steps (the loss was still falling)"
@@ -80,5 +90,7 @@ def verdict_fields(summary: dict, history: list[dict], *, tolerance: float = REA
     verdict = reached_optimum(summary.get("tv_to_optimum"), optimum_finite=summary.get("optimum_finite"),
                               unique=summary.get("optimum_unique", True) is not False,
                               relative_loss_gap=summary.get("relative_loss_gap"), tolerance=tolerance)
-    fix = likely_fix([r["loss"] for r in history if "loss" in r]) if verdict is False else None
+    fix = None
+    if verdict is False:
+        fix = likely_fix([r["loss"] for r in history if "loss" in r], relative_loss_gap=summary.get("relative_loss_gap"))
     return {"reached_optimum": verdict, "reached_optimum_tolerance": tolerance, "likely_fix": fix}

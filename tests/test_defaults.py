@@ -62,6 +62,15 @@ def test_the_command_line_wins_over_the_choices_a_task_or_a_model_makes():
     assert composed("task=sequence", "optim=sgd").optim == composed("optim=sgd").optim  # sgd keeps its own
 
 
+def test_an_objective_with_a_flat_link_gets_its_own_budget_on_the_transformer():
+    # conf/tuning/objective/adam_transformer_divergence_jensen_shannon.yaml (figures in its comments)
+    assert composed("task=sequence", "loss=divergence_jensen_shannon").train.steps == 1000
+    assert composed("task=sequence").train.steps == 400
+    assert composed("loss=divergence_jensen_shannon").train.steps == composed().train.steps  # the tables' own
+    assert composed("task=sequence", "loss=divergence_jensen_shannon", "train.steps=50").train.steps == 50
+    assert composed("task=sequence", "loss=custom", "loss.name=tests.user_objectives:winner_anchored").train.steps == 400
+
+
 def test_a_pair_file_picks_the_transformer_at_the_rate_for_text():
     cfg = composed("task=pairs", "task.path=x.jsonl")
     assert cfg.model.kind == "transformer"
@@ -90,6 +99,18 @@ def test_the_sequence_defaults_reach_the_exact_optimum(tmp_path):
     assert summary["tv_to_optimum"] <= 0.05
     assert summary["reached_optimum"] is True and summary["reached_optimum_tolerance"] == 0.05
     assert screen.rstrip().splitlines()[-1].startswith("reached_optimum: true")
+
+
+@pytest.mark.parametrize("loss, beta", [("divergence_jensen_shannon", 0.5), ("divergence_forward_kl", 2.0)])
+def test_the_sequence_defaults_reach_the_optimum_of_a_levelling_link(tmp_path, loss, beta):
+    """A pair objective whose link levels off above the reference, with every default of task=sequence
+    (Adam's second-moment decay 0.9, the objective's own step budget) on the 40-response task, against
+    the exact optimum of toy_tasks/pair_solve.py (the closed form f'(pi / pi_ref) = r / beta + c of
+    Wang et al. 2023, "Beyond Reverse KL", certified by its residual)."""
+    cfg = composed("task=sequence", "task.max_length=3", f"loss={loss}", f"beta={beta}", "train.progress=false")
+    summary, _ = quiet_run(cfg, tmp_path)
+    assert summary["optimum_method"].startswith("closed form")
+    assert summary["reached_optimum"] is True and summary["tv_to_optimum"] <= 0.05
 
 
 @pytest.mark.parametrize("beta", [0.01, 0.1, 1.0])

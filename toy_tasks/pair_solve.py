@@ -41,6 +41,7 @@ import numpy as np
 import scipy.optimize
 import scipy.special
 import torch
+from tqdm.auto import tqdm
 
 from polopt.losses import Loss
 from polopt.pair_scores import PairScores
@@ -57,6 +58,7 @@ KINK_LIMIT = 128  # the kink search tries every transfer of mass (K^2 evaluation
 MAX_ITERATIONS = 300  # trust-region iterations per solve: smooth problems need tens; a kink would take them all
 DENSE_LIMIT = 1000  # above this many responses per prompt, Hessian-vector products instead of the Hessian
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
+SOLVE_BAR_DELAY = 3.0  # seconds before the solve shows a progress bar (quick solves stay silent)
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
 DESCENT_RAY = (1.0, 4.0, 16.0, 64.0, 256.0)  # multiples of the final Newton step tried along the boundary ray
 BOUNDARY_ROUNDS = 4  # continuations along the ray before the infimum is reported
@@ -109,7 +111,7 @@ def _pair_terms(objective: PairObjective, w: Tensor, log_pi: Tensor, log_ref: Te
 def pair_population_loss(objective: PairObjective, weights: np.ndarray, policy: np.ndarray,
                          reference: np.ndarray, lengths: np.ndarray, *, beta: float) -> float:
     """L(pi) of the module docstring in float64, for policies pi (X, K) on the simplex."""
-    t = lambda a: torch.as_tensor(np.asarray(a, dtype=np.float64))  # noqa: E731
+    t = lambda a: torch.tensor(np.asarray(a, dtype=np.float64))  # noqa: E731  (a copy: a may be a read-only view)
     with np.errstate(divide="ignore"):
         log_pi = np.log(policy)
     value = _pair_terms(objective, t(weights), t(log_pi), t(np.log(reference)), t(lengths), beta)
@@ -498,8 +500,14 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     z = np.zeros((n_prompts, k))
     value, residual, finite, unique, support, notes = 0.0, 0.0, True, True, [], []
     n_starts = starts if k <= DENSE_LIMIT else min(starts, 2)
+    # a large or kinked problem takes minutes: a bar appears once the solve has run for SOLVE_BAR_DELAY s
+    bar = tqdm(total=n_prompts * n_starts, desc=f"exact optimum ({k} responses per prompt)", unit="start",
+               delay=SOLVE_BAR_DELAY, leave=False)
     for x, problem in enumerate(problems):
-        runs = [_solve_prompt(problem, z0) for z0 in _starts(log_ref[x], n_starts, seed + x)]
+        runs = []
+        for z0 in _starts(log_ref[x], n_starts, seed + x):
+            runs.append(_solve_prompt(problem, z0))
+            bar.update()
         certified = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
         runs = certified
         best = min(runs, key=lambda r: r["value"])
@@ -508,6 +516,7 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
         finite &= best["finite"]
         support.append(best["support"] if not best["finite"] else list(range(k)))
         unique &= _agree(runs, best, notes, x)
+    bar.close()
     if not finite:
         return Optimum(False, None, value, "no finite optimum: the infimum lies on the simplex's boundary "
                        "(trust-region Newton in the softmax logits, continued along the descent ray)",
