@@ -92,5 +92,6 @@ def verdict_fields(summary: dict, history: list[dict], *, tolerance: float = REA
                               relative_loss_gap=summary.get("relative_loss_gap"), tolerance=tolerance)
     fix = None
     if verdict is False:
-        fix = likely_fix([r["loss"] for r in history if "loss" in r], relative_loss_gap=summary.get("relative_loss_gap"))
+        losses = [r["loss"] for r in history if "loss" in r]
+        fix = likely_fix(losses, relative_loss_gap=summary.get("relative_loss_gap"))
     return {"reached_optimum": verdict, "reached_optimum_tolerance": tolerance, "likely_fix": fix}

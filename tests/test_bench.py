@@ -102,3 +102,27 @@ def test_the_streaming_bench_runs_and_writes_json(tmp_path, capsys):
     assert {report["runs"][m]["rows"] for m in ("mapped", "ram")} == {300}
     assert report["peak_rss_mapped_over_ram"] > 0 and all(math.isfinite(report["runs"][m]["loss"])
                                                            for m in ("mapped", "ram"))
+
+
+def test_the_cached_prefix_of_the_bench_scores_pairs_as_separate_scoring_does():
+    """bench/prefix_cache.py's other way of computing a prompt once (keys and values cached per layer)
+    must give the log-probabilities of scoring prompt + response on its own, or its timing means
+    nothing; the reference here is polopt.logprobs.sequence_logprobs over each (prompt, response)."""
+    from bench.prefix_cache import WAYS, prefix_pair_logprobs, separate_pair_logprobs
+    from polopt.models import TinyTransformer
+
+    pad = 0
+    g = torch.Generator().manual_seed(3)
+    model = TinyTransformer(12, context=24, width=16, layers=2, heads=2, seed=1)
+
+    def rows(n_rows, longest):  # right-padded random tokens 1..11, lengths 1..longest
+        n = torch.randint(1, longest + 1, (n_rows,), generator=g)
+        tokens = torch.randint(1, 12, (n_rows, longest), generator=g)
+        return torch.where(torch.arange(longest)[None, :] < n[:, None], tokens, pad)
+
+    prompt, winner, loser = rows(5, 9), rows(5, 4), rows(5, 6)
+    with torch.no_grad():
+        expected = torch.stack(separate_pair_logprobs(model, prompt, winner, loser, pad_id=pad))
+        cached = torch.stack(prefix_pair_logprobs(model, prompt, winner, loser, pad_id=pad))
+    assert torch.allclose(cached, expected, atol=1e-5, rtol=0)
+    assert set(WAYS) == {"separate (prompt twice)", "packed row (share_prompt=true)", "cached prefix"}

@@ -68,7 +68,8 @@ def test_an_objective_with_a_flat_link_gets_its_own_budget_on_the_transformer():
     assert composed("task=sequence").train.steps == 400
     assert composed("loss=divergence_jensen_shannon").train.steps == composed().train.steps  # the tables' own
     assert composed("task=sequence", "loss=divergence_jensen_shannon", "train.steps=50").train.steps == 50
-    assert composed("task=sequence", "loss=custom", "loss.name=tests.user_objectives:winner_anchored").train.steps == 400
+    users = composed("task=sequence", "loss=custom", "loss.name=tests.user_objectives:winner_anchored")
+    assert users.train.steps == 400
 
 
 def test_a_pair_file_picks_the_transformer_at_the_rate_for_text():
