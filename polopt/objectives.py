@@ -259,7 +259,7 @@ def plus_winner_nll(pair: PairScores, beta: float, *, base: str = "reference_fre
         Xu et al., Contrastive Preference Optimization, 2024 (arXiv 2401.08417). Checked: the CPO
         objective ``min L_prefer + L_NLL`` with ``L_NLL = -E log pi(y_w)`` (weight 1, whole
         sequence) as reproduced at deepnlp.org/equation/contrastive-preference-optimization-cpo
-        and in the README of github.com/fe1ixxu/CPO_SIMPO (by the paper's first author); see
+        and in a README by the paper's first author; see
         :func:`polopt.pair_objectives.reference_free_logistic` for L_prefer.
     """
     supervised = pair_objectives.winner_nll(pair, per_token=per_token)  # (B,)

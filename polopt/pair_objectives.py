@@ -19,8 +19,7 @@ ORPO, DPO-Positive, R-DPO), two sources wherever two were found. Every formula b
 texts, signs and the place of each constant included, so none was changed; the default parameters
 are the papers' own values where a source gave one (each docstring says which). The derivations that
 fix the signs are kept, and ``tests/test_pair_objectives.py`` pins each member against a value
-computed by hand from the paper's equation. A "file id" below is the id of a stored file in the
-search tool's index (its ``read_file``), for texts that the index holds without a path.
+computed by hand from the paper's equation.
 """
 
 from __future__ import annotations
@@ -68,8 +67,8 @@ def divergence_reverse_kl(pair: PairScores, beta: float) -> Tensor:
         Wang et al., Beyond Reverse KL: Generalizing Direct Preference Optimization with Diverse
         Divergence Constraints, 2023 (arXiv 2309.16240; OpenReview 2cRzmWXK9N). Checked: the
         reverse-KL row (``u log u``, ``log u + 1``) of the f, f' table in a reproduction of the
-        paper (github.com/Lerostre/test-task-alignment, README), and the authors' own code
-        (github.com/alecwangcq/f-divergence-dpo, trainers.py), whose reverse-KL loss is the DPO
+        paper, and the paper's published code
+       , whose reverse-KL loss is the DPO
         loss. Rafailov et al., Direct Preference Optimization, 2023.
     """
     return _logistic_of(beta * (pair.logratio_winner - pair.logratio_loser))
@@ -86,8 +85,8 @@ def divergence_forward_kl(pair: PairScores, beta: float) -> Tensor:
 
     References:
         Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: forward-KL row ``-log u``,
-        ``f'(u) = -1/u`` of the f, f' table in a reproduction (github.com/Lerostre/test-task-alignment),
-        and the authors' code (github.com/alecwangcq/f-divergence-dpo, trainers.py): logit
+        ``f'(u) = -1/u`` of the f, f' table in a reproduction,
+        and the paper's published code: logit
         ``-e^{-h_w} + e^{-h_l}`` inside ``-log sigma(beta .)``, as here.
     """
     return _logistic_of(beta * (_exp_tail(-pair.logratio_loser) - _exp_tail(-pair.logratio_winner)))
@@ -103,8 +102,8 @@ def divergence_jensen_shannon(pair: PairScores, beta: float) -> Tensor:
     References:
         Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: JS row ``u log u - (u + 1)
         log((u + 1) / 2)``, ``f'(u) = log(2u / (1 + u))`` of the f, f' table in a reproduction
-        (github.com/Lerostre/test-task-alignment), and the authors' code
-        (github.com/alecwangcq/f-divergence-dpo, trainers.py), which writes the link as
+       , and the paper's published code
+       , which writes the link as
         ``log 2 - log(1 + 1/u)``, the same function.
     """
     return _logistic_of(beta * (F.logsigmoid(pair.logratio_winner) - F.logsigmoid(pair.logratio_loser)))
@@ -119,8 +118,8 @@ def divergence_alpha(pair: PairScores, beta: float, *, alpha: float = 0.5) -> Te
     References:
         Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: alpha-divergence row
         (``alpha`` in (0, 1)) ``f(u) = (u^{1-a} - (1 - a) u - a) / (a (a - 1))``, ``f'(u) = (1 -
-        u^{-a}) / a`` of the f, f' table in a reproduction (github.com/Lerostre/test-task-alignment),
-        and the authors' code (github.com/alecwangcq/f-divergence-dpo, trainers.py): logit
+        u^{-a}) / a`` of the f, f' table in a reproduction,
+        and the paper's published code: logit
         ``(u_l^{-a} - u_w^{-a}) / a``, alpha asserted in (0, 1), as here. The limits above are
         derived, not read.
     """
@@ -152,8 +151,8 @@ def chi_squared_link(pair: PairScores, beta: float, *, clip: float | None = None
         Algorithm 1 (chi-PO), ``argmax sum log sigma(clip_{2 R_max}[beta phi(u_+) - beta phi(u_-)])``
         with ``phi(z) = z + log z``, clipping to [-2 R_max, 2 R_max] applied after beta, as here
         (``clip`` = 2 R_max), in two independent reproductions of the paper's equations (study
-        notes in the search index, file ids 54585003573 and 67372298998), and the mixed generator
-        in a third (a Lean formalisation, file id 63012144797). No code of the authors was found;
+        notes in the search index), and the mixed generator
+        in a third (a Lean formalisation). No code of the authors was found;
         the paper's R_max has no default, so ``clip`` defaults to none.
     """
     hw, hl = pair.logratio_winner, pair.logratio_loser
@@ -183,9 +182,8 @@ def length_normalised_free(pair: PairScores, beta: float, *, gamma: float = 0.5)
         Meng et al., SimPO: Simple Preference Optimization with a Reference-Free Reward, 2024
         (arXiv 2405.14734). Checked: the SimPO objective ``-log sigma(beta / |y_w| log pi(y_w) -
         beta / |y_l| log pi(y_l) - gamma)`` (reward ``beta / |y| log pi(y)``, margin gamma in the
-        Bradley-Terry model) in a study note that follows the paper's equations (file id
-        62337312755) and in the README of github.com/fe1ixxu/CPO_SIMPO (by CPO's first author);
-        beta and gamma / beta in the authors' README (github.com/princeton-nlp/SimPO).
+        Bradley-Terry model) in a study note that follows the paper's equations and in a README by
+        CPO's first author; beta and gamma / beta in the SimPO authors' README.
     """
     z = beta * (pair.winner / pair.len_winner - pair.loser / pair.len_loser) - gamma  # (B,)
     return _logistic_of(z)
@@ -204,10 +202,9 @@ def length_regularised(pair: PairScores, beta: float, *, alpha: float = 0.05) ->
         (arXiv 2403.19159; ACL Findings 2024). Checked, against summaries that quote the paper (no
         copy of its equation itself was found): the penalty ``alpha |y|`` in the RL objective gives
         "an additional regularization margin (alpha|y_w| - alpha|y_l|) in the binary classification
-        loss logit" that "up-weights gradients for pairs where the chosen answer is shorter" (file
-        id 59031621123), which fixes the sign + as derived above; the same + sign in two study
-        notes (file ids 66299925259, 61379349764). alpha = 0.05 per token is the paper's Phi-2 /
-        UltraFeedback run (0.1 on Anthropic HH), as quoted there.
+        loss logit" that "up-weights gradients for pairs where the chosen answer is shorter", which
+        fixes the sign + as derived above; the same + sign in two study notes. alpha = 0.05 per
+        token is the paper's Phi-2 / UltraFeedback run (0.1 on Anthropic HH), as quoted there.
     """
     z = beta * (pair.logratio_winner - pair.logratio_loser) + alpha * (pair.len_winner - pair.len_loser)
     return _logistic_of(z)
@@ -226,9 +223,8 @@ def winner_anchored(pair: PairScores, beta: float, *, penalty: float = 50.0) -> 
         pi(y_l)/pi_ref(y_l) - lambda max(0, log pi_ref(y_w)/pi(y_w))))``, the penalty inside
         beta's bracket and zero while the winner is at or above the reference (the paper's runs:
         lambda = 50, beta = 0.3; ablation lambda in 5, 50, 500), in a reproduction note citing
-        the paper's v2 (file id 56770960704); the penalty ``max(0, log pi_ref(y_w)/pi(y_w))`` in a
-        second summary (file id 53476034720). The authors' repository (github.com/abacusai/smaug)
-        holds no code.
+        the paper's v2; the penalty ``max(0, log pi_ref(y_w)/pi(y_w))`` in a
+        second summary.
     """
     hw = pair.logratio_winner
     z = beta * (hw - pair.logratio_loser - penalty * F.relu(-hw))  # (B,)
@@ -245,8 +241,8 @@ def reference_free_logistic(pair: PairScores, beta: float) -> Tensor:
         Machine Translation, 2024 (arXiv 2401.08417). Checked: ``L(pi; U) = -E log sigma(beta log
         pi(y_w) - beta log pi(y_l))`` (the paper's Eq. 3, named so in a comment on
         huggingface.co/papers/2405.14734) as reproduced at
-        deepnlp.org/equation/contrastive-preference-optimization-cpo and in the README of
-        github.com/fe1ixxu/CPO_SIMPO (by the paper's first author). Whole-sequence
+        deepnlp.org/equation/contrastive-preference-optimization-cpo and in a README by the paper's
+        first author. Whole-sequence
         log-probabilities, no length normalisation, as here.
     """
     return _logistic_of(beta * (pair.winner - pair.loser))
@@ -284,11 +280,10 @@ def odds_ratio_with_nll(pair: PairScores, beta: float, *, weight: float = 0.1) -
         Hong et al., ORPO: Monolithic Preference Optimization without Reference Model, 2024
         (arXiv 2403.07691). Checked: Eq. 6 ``L = E[L_SFT + lambda L_OR]``, ``L_OR = -log
         sigma(log odds(y_w) / odds(y_l))`` (deepnlp.org/equation/odds-ratio-preference-optimization-
-        orpo), ``P = exp(mean token log-probability)`` and a per-token NLL in study notes (file ids
-        66574299754, 60620769149), and the authors' code (github.com/xfactlab/orpo,
-        src/orpo_trainer.py): the token-averaged NLL of the winner plus ``lambda`` times ``-log
+        orpo), ``P = exp(mean token log-probability)`` and a per-token NLL in study notes, and the
+        paper's published code: the token-averaged NLL of the winner plus ``lambda`` times ``-log
         sigma(log-odds difference)`` of the length-normalised log-probabilities, as here; lambda =
-        0.1 in their run script (scripts/run_mistral_orpo_beta.sh).
+        0.1 in their published run script.
     """
     del beta  # ORPO has no beta
     ratio = _log_odds(pair.winner / pair.len_winner) - _log_odds(pair.loser / pair.len_loser)  # (B,)
