@@ -37,8 +37,9 @@ def likely_fix(losses: list[float], *, relative_loss_gap: float | None = None) -
     """The most likely fix for a run that missed its optimum, from its logged loss curve.
 
     A run whose loss is within :data:`FLAT_RELATIVE_GAP` of the optimum's (``relative_loss_gap``,
-    when known) but whose policy is not is on a nearly flat objective: the curve cannot tell more
-    steps from a larger rate there, and the screen says so with the figure.
+    when known) but whose policy is not, and whose last logged quarter moved by no more than that
+    gap, is on a nearly flat objective: its wiggles are smaller than what is left to gain, so the
+    curve's shape says nothing about the rate, and the screen says so with the figure.
 
     Over the second half of the logged values (all of them when fewer than six): a loss that changes
     direction in at least a third of its moves is oscillating (the step is too large: lower optim.lr);
@@ -53,14 +54,15 @@ def likely_fix(losses: list[float], *, relative_loss_gap: float | None = None) -
         return "raise train.steps (too few logged steps to read the loss curve)"
     moves = [b - a for a, b in zip(tail[:-1], tail[1:], strict=True)]
     scale = 1e-9 * max(1.0, max(abs(v) for v in tail))
+    quarter = tail[len(tail) // 2:]
+    if relative_loss_gap is not None and 0.0 <= relative_loss_gap <= FLAT_RELATIVE_GAP:
+        if max(quarter) - min(quarter) <= relative_loss_gap * abs(tail[-1]) + scale:
+            return (f"raise train.steps (the objective is nearly flat here: the loss is within "
+                    f"{relative_loss_gap:.2g} of the optimum's, relatively, so each step gains little)")
     signs = [m > 0 for m in moves if abs(m) > scale]
     turns = sum(a != b for a, b in zip(signs[:-1], signs[1:], strict=True))
     if len(signs) >= 3 and turns >= len(moves) / 3:
         return "lower optim.lr (the loss oscillates)"
-    if relative_loss_gap is not None and 0.0 <= relative_loss_gap <= FLAT_RELATIVE_GAP:
-        return (f"raise train.steps (the objective is nearly flat here: the loss is within "
-                f"{relative_loss_gap:.2g} of the optimum's, relatively, so each step gains little)")
-    quarter = tail[len(tail) // 2:]
     if quarter[0] - quarter[-1] > scale:
         return "raise train.steps (the loss was still falling)"
     return "raise optim.lr, or train.steps (the loss levelled off away from the optimum)"
