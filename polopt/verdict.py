@@ -19,14 +19,16 @@ FLAT_RELATIVE_GAP = 1e-4
 
 
 def reached_optimum(tv_to_optimum: float | None, *, optimum_finite: bool | None, unique: bool = True,
-                    relative_loss_gap: float | None = None, tolerance: float = REACHED_TOLERANCE) -> bool | None:
+                    relative_loss_gap: float | None = None, tolerance: float = REACHED_TOLERANCE,
+                    certified: bool = True) -> bool | None:
     """True when the trained policy is within ``tolerance`` of its exact optimum, False when it is
-    not, None when no optimum is known (none finite, or no exact target at all).
+    not, None when no optimum is known (none finite, an answer its solver could not certify, or no
+    exact target at all).
 
     Where the minimiser is not unique (hinge, a flat objective) policies are not comparable and the
     relative loss gap ``(L(pi) - L*) / |L*|`` is held to the same tolerance instead.
     """
-    if not optimum_finite or tv_to_optimum is None:
+    if not optimum_finite or not certified or tv_to_optimum is None:
         return None
     if not unique and relative_loss_gap is not None:
         return bool(abs(relative_loss_gap) <= tolerance)
@@ -73,6 +75,9 @@ def reached_line(summary: dict) -> str:
     ``reached_optimum_tolerance`` (and ``likely_fix`` when the verdict is false)."""
     verdict = summary.get("reached_optimum")
     if verdict is None:
+        if summary.get("optimum_certified") is False:
+            return ("reached_optimum: null (the solver could not certify the optimum of this run: "
+                    f"its gradient there is {summary.get('optimum_residual', float('nan')):.3g}; see the notes)")
         return "reached_optimum: null (no exact optimum is known for this run)"
     tolerance = summary.get("reached_optimum_tolerance", REACHED_TOLERANCE)
     if summary.get("optimum_unique") is False and summary.get("relative_loss_gap") is not None:
@@ -91,7 +96,8 @@ def verdict_fields(summary: dict, history: list[dict], *, tolerance: float = REA
     verdict is false) for a summary holding ``tv_to_optimum`` and ``optimum_finite``."""
     verdict = reached_optimum(summary.get("tv_to_optimum"), optimum_finite=summary.get("optimum_finite"),
                               unique=summary.get("optimum_unique", True) is not False,
-                              relative_loss_gap=summary.get("relative_loss_gap"), tolerance=tolerance)
+                              relative_loss_gap=summary.get("relative_loss_gap"), tolerance=tolerance,
+                              certified=summary.get("optimum_certified", True) is not False)
     fix = None
     if verdict is False:
         losses = [r["loss"] for r in history if "loss" in r]

@@ -310,3 +310,17 @@ def test_the_assembled_hessian_is_autograds(name):
     z = np.random.default_rng(0).normal(size=task.n_responses)
     full = torch.autograd.functional.hessian(problem.loss, torch.as_tensor(z)).numpy()
     np.testing.assert_allclose(problem.hessian(z), full, atol=1e-12)
+
+
+def test_an_answer_the_solver_cannot_certify_says_so(monkeypatch):
+    # the same kinked optimum with the kink search switched off (as for a task above KINK_LIMIT responses):
+    # Newton stops with a gradient far above the certificate's tolerance, and the answer must say it is
+    # no exact target rather than pass for one
+    import toy_tasks.pair_solve as pair_solve
+
+    monkeypatch.setattr(pair_solve, "KINK_LIMIT", 0)
+    task = random_task(0, bradley_terry=True)
+    optimum = solve_pairs(objectives.resolve("winner_anchored", penalty=50.0), task.win_weights(), task.reference,
+                          task.lengths, beta=0.7)
+    assert optimum.residual > 1e-7 and optimum.certified is False
+    assert any("not certified" in n and "kink search covers up to 0" in n for n in optimum.notes)

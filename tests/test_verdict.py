@@ -33,6 +33,13 @@ def test_a_non_unique_optimum_is_judged_by_its_relative_loss_gap():
     assert reached_optimum(0.0, optimum_finite=True, unique=False, relative_loss_gap=0.01) is False
 
 
+def test_an_uncertified_optimum_gives_null_and_says_why():
+    assert reached_optimum(0.0, optimum_finite=True, certified=False) is None
+    line = reached_line({"reached_optimum": None, "optimum_certified": False, "optimum_residual": 0.467})
+    assert line == ("reached_optimum: null (the solver could not certify the optimum of this run: its gradient "
+                    "there is 0.467; see the notes)")
+
+
 def test_an_oscillating_loss_asks_for_a_lower_rate():
     curve = [1.0 + 0.1 * (-1) ** k for k in range(40)]  # up, down, up, ... by construction
     assert likely_fix(curve).startswith("lower optim.lr")

@@ -528,9 +528,13 @@ def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.nda
     method = (f"trust-region Newton in the softmax logits (scipy {scheme}, torch autograd float64), "
               f"{n_starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
     if residual > CERTIFIED:
+        search = (f"the kink search covers up to {KINK_LIMIT} responses per prompt, this task has {k}" if k > KINK_LIMIT
+                  else "the kink search did not certify it either")
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
-                     "may not be differentiable there (a max(0, .) term), or the solve stopped early")
-    return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes)
+                     f"may not be differentiable there (a max(0, .) term; {search}), or the solve stopped early; "
+                     "reached_optimum is null")
+    return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes,
+                   certified=residual <= CERTIFIED)
 
 
 def _agree(runs: list[dict], best: dict, notes: list[str], x: int) -> bool:

@@ -109,6 +109,7 @@ class FiniteSession:
             "optimum_method": opt.method,
             "optimum_residual": opt.residual,
             "optimum_unique": opt.unique,
+            "optimum_certified": opt.certified,
             "tv_to_optimum": self.distance(h, opt),
             "loss_gap": gap,
             "relative_loss_gap": relative,

@@ -55,6 +55,8 @@ class Optimum:
             the mass as the log-ratios diverge.
         components: per prompt, a label per response: its weakly connected
             component (-1 for responses with no weight).
+        certified: False where the solver could not certify its answer (a gradient above its
+            tolerance at a kink it cannot search): the answer is then no exact target.
     """
 
     finite: bool
@@ -66,6 +68,7 @@ class Optimum:
     limit_support: list[list[int]] | None = None
     components: list[np.ndarray] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    certified: bool = True
 
     def aligned_to(self, h: np.ndarray) -> np.ndarray:
         """h* shifted, per connected component, to the mean of the given h; responses with
