@@ -40,6 +40,20 @@ def _mean_margin(policy, pairs) -> float:
         weight = torch.ones_like(rho) if pairs.weight is None else pairs.weight.double()
         return float((weight * rho).sum() / weight.sum())
 
+# the summary keys a population check reports as its facts
+FACT_KEYS = ("policy", "reference", "optimum", "optimum_finite", "optimum_value", "optimum_method", "optimum_unique",
+             "optimum_certified", "optimum_residual", "tv_to_optimum", "loss", "loss_gap", "limit_support",
+             "margin_growth")
+
+
+def _uncertified(summary: dict) -> list[str]:
+    """A note when the exact solver could not certify the optimum the run is compared with."""
+    if summary.get("optimum_certified") is not False:
+        return []
+    return [f"the exact solver could not certify its optimum (gradient {summary['optimum_residual']:.3g} there, a "
+            "kink it cannot search): the comparison below is with its best answer"]
+
+
 def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim: OptimConfig | None = None,
                      tol: float = 1e-3, name: str | None = None) -> CheckResult:
     """Train ``loss`` on ``task`` in exact mode and compare with the task's exact optimum.
@@ -72,10 +86,7 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
     except Exception as err:
         return CheckResult(check, "fail", f"training or solving failed: {type(err).__name__}: {err}",
                            {"error": str(err)})
-    facts = {key: summary.get(key) for key in ("policy", "reference", "optimum", "optimum_finite", "optimum_value",
-                                               "optimum_method", "optimum_unique", "tv_to_optimum", "loss",
-                                               "loss_gap", "limit_support", "margin_growth",
-                                               "optimum_certified", "optimum_residual")}
+    facts = {key: summary.get(key) for key in FACT_KEYS}
     facts.update({"steps": result.steps, "mean_margin": mean_margin, "balanced": balanced, "tol": tol})
     problems, notes = [], []
     # 1. direction of the trained margins
@@ -97,9 +108,7 @@ def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim:
             ok, measured = tv <= tol, f"TV to the exact optimum {tv:.3g}"
         else:
             ok, measured = relative_gap <= tol, f"relative loss gap {relative_gap:.3g} (optimum not unique)"
-        if summary.get("optimum_certified") is False:
-            notes.append(f"the exact solver could not certify its optimum (gradient {summary['optimum_residual']:.3g} "
-                         "there, a kink it cannot search): the comparison below is with its best answer")
+        notes += _uncertified(summary)
         if ok:
             notes.insert(0, f"{measured} <= {tol:g} after {steps} steps")
         else:
