@@ -67,9 +67,8 @@ def divergence_reverse_kl(pair: PairScores, beta: float) -> Tensor:
         Wang et al., Beyond Reverse KL: Generalizing Direct Preference Optimization with Diverse
         Divergence Constraints, 2023 (arXiv 2309.16240; OpenReview 2cRzmWXK9N). Checked: the
         reverse-KL row (``u log u``, ``log u + 1``) of the f, f' table in a reproduction of the
-        paper, and the paper's published code
-       , whose reverse-KL loss is the DPO
-        loss. Rafailov et al., Direct Preference Optimization, 2023.
+        paper, and the paper's published code, whose reverse-KL loss is the DPO loss.
+        Rafailov et al., Direct Preference Optimization, 2023.
     """
     return _logistic_of(beta * (pair.logratio_winner - pair.logratio_loser))
 
@@ -101,9 +100,8 @@ def divergence_jensen_shannon(pair: PairScores, beta: float) -> Tensor:
 
     References:
         Wang et al., Beyond Reverse KL, 2023 (arXiv 2309.16240). Checked: JS row ``u log u - (u + 1)
-        log((u + 1) / 2)``, ``f'(u) = log(2u / (1 + u))`` of the f, f' table in a reproduction
-       , and the paper's published code
-       , which writes the link as
+        log((u + 1) / 2)``, ``f'(u) = log(2u / (1 + u))`` of the f, f' table in a reproduction,
+        and the paper's published code, which writes the link as
         ``log 2 - log(1 + 1/u)``, the same function.
     """
     return _logistic_of(beta * (F.logsigmoid(pair.logratio_winner) - F.logsigmoid(pair.logratio_loser)))
@@ -242,8 +240,7 @@ def reference_free_logistic(pair: PairScores, beta: float) -> Tensor:
         pi(y_w) - beta log pi(y_l))`` (the paper's Eq. 3, named so in a comment on
         huggingface.co/papers/2405.14734) as reproduced at
         deepnlp.org/equation/contrastive-preference-optimization-cpo and in a README by the paper's
-        first author. Whole-sequence
-        log-probabilities, no length normalisation, as here.
+        first author. Whole-sequence log-probabilities, no length normalisation, as here.
     """
     return _logistic_of(beta * (pair.winner - pair.loser))
 

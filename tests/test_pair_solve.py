@@ -313,14 +313,32 @@ def test_the_assembled_hessian_is_autograds(name):
 
 
 def test_an_answer_the_solver_cannot_certify_says_so(monkeypatch):
-    # the same kinked optimum with the kink search switched off (as for a task above KINK_LIMIT responses):
+    # the same kinked optimum with the kink search failing (as it may from a start far from the kink):
     # Newton stops with a gradient far above the certificate's tolerance, and the answer must say it is
     # no exact target rather than pass for one
     import toy_tasks.pair_solve as pair_solve
 
-    monkeypatch.setattr(pair_solve, "KINK_LIMIT", 0)
+    monkeypatch.setattr(pair_solve, "_kinked", lambda problem, z: None)
     task = random_task(0, bradley_terry=True)
     optimum = solve_pairs(objectives.resolve("winner_anchored", penalty=50.0), task.win_weights(), task.reference,
                           task.lengths, beta=0.7)
     assert optimum.residual > 1e-7 and optimum.certified is False
-    assert any("not certified" in n and "kink search covers up to 0" in n for n in optimum.notes)
+    assert any("not certified" in n and "kink search did not certify" in n for n in optimum.notes)
+
+
+def test_transfer_slopes_from_one_sided_partials_equal_measured_ones():
+    # at the reference every winner sits at the anchor's kink max(0, -h_w) (Pal et al. 2024); the slopes of
+    # every transfer of mass, predicted from 4K one-sided partials, against a difference quotient along
+    # each transfer itself (the one-sided directional derivative, by its definition)
+    from toy_tasks.pair_solve import _measured_slope, _Prompt, _transfer_slopes
+
+    task = random_task(1, bradley_terry=False)
+    problem = _Prompt(objectives.resolve("winner_anchored", penalty=2.0), task.win_weights()[0],
+                      np.log(task.reference[0]), task.lengths[0], 0.7)
+    log_pi = np.log(task.reference[0])
+    predicted = _transfer_slopes(problem, log_pi)
+    k = task.n_responses
+    measured = np.array([[_measured_slope(problem, log_pi, i, j) if i != j else np.inf for j in range(k)]
+                         for i in range(k)])
+    np.testing.assert_allclose(predicted, measured, rtol=1e-6, atol=1e-8)
+    assert predicted[np.isfinite(predicted)].min() < 0 < predicted[np.isfinite(predicted)].max()  # both sides seen
