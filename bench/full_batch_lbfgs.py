@@ -21,13 +21,14 @@ Figures only; nothing passes or fails. One round is one ``LBFGS.step`` (up to 20
 from __future__ import annotations
 
 import argparse
+import ast
 import sys
 import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 
-DTYPES = {"float64": "float64", "float32": "float32"}
+DTYPES = ("float64", "float32")
 
 
 def minimise(session, objective, beta: float, dtype, rounds: int, report_every: int):
@@ -74,6 +75,10 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--dtypes", default="float64,float32", help="comma-separated: float64, float32")
     parser.add_argument("task", nargs="*", help="KEY=VALUE options of toy_tasks.sequences.sequence_task")
     args = parser.parse_args(argv)
+    dtypes = args.dtypes.split(",")
+    for name in dtypes:
+        if name not in DTYPES:
+            parser.error(f"--dtypes: {name!r} is not one of {', '.join(DTYPES)}")
     sys.path.insert(0, str(ROOT))
     import torch
 
@@ -82,17 +87,18 @@ def main(argv: list[str] | None = None) -> None:
 
     torch.set_num_threads(1)
     options = {}
-    for item in args.task:
+    for item in args.task:  # KEY=VALUE: a Python literal (3, 2.0, True) or else a string
         key, _, value = item.partition("=")
-        options[key] = int(value) if value.lstrip("-").isdigit() else value
+        try:
+            options[key] = ast.literal_eval(value)
+        except (ValueError, SyntaxError):
+            options[key] = value
     objective = objectives.resolve(args.loss)
     session = sequence_task(**options).prepare(objective, beta=args.beta)
     print(f"{args.loss} beta {args.beta}: {session.task.n_responses} responses per prompt, "
           f"optimum by {session.finite.optimum.method}")
     print(f"{'dtype':<8} {'round':>6} {'loss':>18} {'tv_to_optimum':>14} {'seconds':>8}")
-    for name in args.dtypes.split(","):
-        if name not in DTYPES:
-            parser.error(f"--dtypes: {name!r} is not one of {', '.join(DTYPES)}")
+    for name in dtypes:
         for step, loss, tv, seconds in minimise(session, objective, args.beta, getattr(torch, name), args.rounds,
                                                 args.report_every):
             print(f"{name:<8} {step:>6} {loss:>18.12f} {tv:>14.4g} {seconds:>8.1f}", flush=True)
