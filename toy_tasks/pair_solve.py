@@ -326,6 +326,11 @@ class _Pinned(_Prompt):
         return torch.autograd.functional.hessian(self.loss, torch.as_tensor(y, dtype=torch.float64)).numpy()
 
 
+def _richardson(quotient: Callable[[float], float], step: float) -> float:
+    """``2 q(step / 2) - q(step)``: a one-sided difference quotient q(t) with its O(t) error removed."""
+    return 2.0 * quotient(step / 2) - quotient(step)
+
+
 def _one_sided_partials(problem: _Prompt, log_pi: np.ndarray, step: float = 1e-6) -> tuple[np.ndarray, np.ndarray]:
     """L's one-sided partial derivatives in each log-probability at ``log_pi`` (K,): ``up[k]`` as
     log pi_k rises, ``down[k]`` as it falls, by Richardson-extrapolated one-sided differences (error
@@ -338,8 +343,8 @@ def _one_sided_partials(problem: _Prompt, log_pi: np.ndarray, step: float = 1e-6
         return (problem.value_at(moved) - base) / t
 
     k = len(log_pi)
-    up = np.array([2.0 * difference(i, step / 2) - difference(i, step) for i in range(k)])
-    down = np.array([2.0 * difference(i, -step / 2) - difference(i, -step) for i in range(k)])
+    up = np.array([_richardson(lambda t, i=i: difference(i, t), step) for i in range(k)])
+    down = np.array([_richardson(lambda t, i=i: difference(i, t), -step) for i in range(k)])
     return up, down
 
 
@@ -370,7 +375,7 @@ def _measured_slope(problem: _Prompt, log_pi: np.ndarray, i: int, j: int, step: 
         moved[i], moved[j] = pi[i] + t * pi[j], pi[j] * (1.0 - t)
         return (problem.value_at(np.log(moved)) - base) / t
 
-    return 2.0 * slope(step / 2) - slope(step)
+    return _richardson(slope, step)
 
 
 def _kinked(problem: _Prompt, z: np.ndarray) -> dict | None:
