@@ -50,10 +50,14 @@ class PairSet:
                        self.reference_winner[index], self.reference_loser[index],
                        *(None if t is None else t[index] for t in self._optional()))
 
-    def to(self, device: torch.device) -> PairSet:
-        """The same pairs with every tensor on ``device`` (no copy when they are there already)."""
+    def to(self, device: torch.device, dtype: torch.dtype | None = None) -> PairSet:
+        """The same pairs with every tensor on ``device`` (no copy when they are there already) and,
+        given ``dtype``, every floating-point tensor in it (reference log-probs, weights, lengths)."""
         def move(t: Tensor | None) -> Tensor | None:
-            return None if t is None else t.to(device, non_blocking=True)
+            if t is None:
+                return None
+            return t.to(device, dtype=dtype if dtype is not None and t.is_floating_point() else t.dtype,
+                        non_blocking=True)
 
         return PairSet(*(move(t) for t in (self.prompt, self.winner, self.loser, self.reference_winner,
                                            self.reference_loser, *self._optional())))

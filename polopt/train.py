@@ -13,10 +13,16 @@ One step reads top to bottom (:func:`optimise`):
     ``checkpoint_every`` steps and at the end; see :mod:`polopt.checkpoint`). ``resume``
     continues from a checkpoint's state so that the run ends bit-identical to an
     uninterrupted one.
+
+``optim=lbfgs`` (torch.optim.LBFGS, strong-Wolfe line search) changes step 5 only: the step is up to
+``optim.iterations`` L-BFGS iterations, and the line search re-evaluates the objective (2-4) through a
+closure, so it takes a fixed objective: the full batch of an offline run on one process. The
+evaluation at the step's start is the closure's first.
 """
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import sys
@@ -41,7 +47,7 @@ from polopt.stopping import Convergence, validate_tol
 
 Tensor = torch.Tensor
 ON_NONFINITE = ("stop", "skip")
-PRECISIONS = ("fp32", "bf16")
+PRECISIONS = ("fp32", "bf16", "fp64")
 
 
 @dataclass
@@ -60,7 +66,9 @@ class TrainSettings:
     ``share_prompt``: a policy whose model allows it (``policy.shares_prompt``) scores each pair's
     winner and loser in one pass over their prompt (:func:`polopt.logprobs.shared_pair_logprobs`).
     ``tol``: stop once the loss change and the gradient norm stay below it (:mod:`polopt.stopping`);
-    ``TrainResult.steps`` is then the last step run and ``stopped`` is ``"tol"``.
+    ``TrainResult.steps`` is then the last step run and ``stopped`` is ``"tol"``. ``precision``:
+    ``fp32``; ``bf16`` autocast; ``fp64`` the policy's parameters, its computation and the pairs'
+    floating-point data in float64 (a line search near a flat optimum needs the resolution).
     """
 
     steps: int
@@ -87,13 +95,18 @@ class TrainSettings:
         if size is not None and (not isinstance(size, int) or size < 1):
             raise ValueError(f"train.batch_size must be a positive integer or null (all pairs), got {size!r}")
         if self.precision not in PRECISIONS:
-            raise ValueError(f"precision must be fp32 or bf16, got {self.precision!r}")
+            raise ValueError(f"precision must be one of {', '.join(PRECISIONS)}, got {self.precision!r}")
         if self.on_nonfinite not in ON_NONFINITE:
             raise ValueError(f"train.on_nonfinite must be stop or skip, got {self.on_nonfinite!r}")
         every = self.checkpoint_every
         if not isinstance(every, int) or isinstance(every, bool) or every < 0:
             raise ValueError(f"train.checkpoint_every must be an integer >= 0 (0: only at the end), got {every!r}")
         validate_tol(self.tol)
+
+    @property
+    def dtype(self) -> torch.dtype | None:
+        """The dtype the policy and the pairs' floating-point data are cast to (None: left as they are)."""
+        return torch.float64 if self.precision == "fp64" else None
 
 
 @dataclass
@@ -144,7 +157,7 @@ class OfflineObjective:
         """(global indices, this process's batch on the device, the global batch's weight sum)."""
         if self.full_batch:
             if self._whole is None:
-                self._whole = self.pairs.to(self.device)  # the full batch moves once
+                self._whole = self.pairs.to(self.device, self.settings.dtype)  # the full batch moves once
             index, batch = torch.arange(len(self.pairs)), self._whole
         else:
             size = self.settings.batch_size
@@ -158,7 +171,7 @@ class OfflineObjective:
         total_weight = None
         if self.context.active:  # this rank's slice of the global batch, and the global batch's weight
             batch, index, total_weight = distributed.shard(batch, index, self.context)
-        return index, batch.to(self.device), total_weight
+        return index, batch.to(self.device, self.settings.dtype), total_weight
 
     def score(self, batch: PairSet) -> tuple[Tensor, Tensor]:
         """Policy log-probs of winners and losers in one forward pass: (2B,) -> two halves of (B,)."""
@@ -191,7 +204,7 @@ class MethodObjective:
     """A method's ``step(step) -> (scalar, metrics)`` as a batch objective (the method draws
     its own batches; a method run does not resume)."""
 
-    counts_tokens = False
+    counts_tokens, full_batch = False, False
 
     def __init__(self, step_objective: Callable[[int], tuple[Tensor, dict]], name: str):
         self.step_objective, self.name = step_objective, name
@@ -269,8 +282,10 @@ def _learning_rate(loop: _Loop) -> float:
     return loop.optimiser.param_groups[0]["lr"]
 
 
-def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings) -> tuple[str | None, float]:
+def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings,
+            evaluate_again: Callable[[], StepLoss]) -> tuple[str | None, float]:
     """Backward, clip, step; a non-finite loss or gradient never reaches the parameters.
+    ``evaluate_again``: the objective at the current parameters, for L-BFGS's line search.
     Returns (the problem or None, the gradient norm)."""
     loop.optimiser.zero_grad(set_to_none=True)
     problem, grad_norm = None, math.nan
@@ -282,12 +297,66 @@ def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings) -> tupl
         grad_norm = distributed.clip_grad_norm(policy, clip)
         if not math.isfinite(grad_norm):
             problem = f"the gradient norm is {grad_norm}"
-    if problem is None:
+    if problem is None and isinstance(loop.optimiser, torch.optim.LBFGS):
+        problem = _line_search_step(policy, out, loop.optimiser, evaluate_again)
+    elif problem is None:
         loop.optimiser.step()
     with warnings.catch_warnings():  # a skipped first step makes torch warn about the order
         warnings.filterwarnings("ignore", message=r"Detected call of `lr_scheduler.step\(\)`")
         loop.scheduler.step()
     return problem, grad_norm
+
+
+def _line_search_step(policy, out: StepLoss, optimiser: torch.optim.LBFGS,
+                      evaluate_again: Callable[[], StepLoss]) -> str | None:
+    """One L-BFGS step: up to ``optim.iterations`` iterations, each with a strong-Wolfe line search that
+    re-evaluates the objective. Its first evaluation is ``out``, whose gradient is already in place.
+    Parameters the step left non-finite are put back and the curvature history dropped; the problem
+    is returned (None: the step is good)."""
+    params = [p for group in optimiser.param_groups for p in group["params"]]
+    before = [p.detach().clone() for p in params]
+    first = [out]
+
+    def closure() -> Tensor:
+        if first:
+            return first.pop().value.detach()
+        optimiser.zero_grad(set_to_none=True)
+        again = evaluate_again()
+        if torch.isfinite(again.value):  # a non-finite trial point: the line search backs off from its value
+            again.objective.backward()
+        return again.value.detach()
+
+    optimiser.step(closure)
+    if all(bool(torch.isfinite(p).all()) for p in params):
+        return None
+    with torch.no_grad():
+        for p, saved in zip(params, before, strict=True):
+            p.copy_(saved)
+    optimiser.state.clear()
+    return "L-BFGS's line search left the parameters non-finite (they were put back, its history dropped)"
+
+
+def line_search_counts(optimiser: torch.optim.Optimizer) -> dict:
+    """L-BFGS's cumulative ``iterations`` and objective ``evaluations`` (empty for other optimisers)."""
+    if not isinstance(optimiser, torch.optim.LBFGS):
+        return {}
+    state = optimiser.state.get(optimiser.param_groups[0]["params"][0], {})
+    return {"iterations": int(state.get("n_iter", 0)), "evaluations": int(state.get("func_evals", 0))}
+
+
+def _check_line_search(objective, settings: TrainSettings, context: distributed.Context) -> None:
+    """Refuse optim=lbfgs where its line search would not see one fixed objective."""
+    if settings.optim.name != "lbfgs":
+        return
+    if context.active:
+        raise ValueError("optim=lbfgs trains on one process: every evaluation of its line search would have "
+                         "to run on all of torchrun's processes in step; use optim=adam under torchrun")
+    if isinstance(objective, MethodObjective):
+        raise ValueError(f"method={objective.name} draws new samples every step and optim=lbfgs's line search "
+                         "needs one fixed objective: use optim=adam")
+    if not objective.full_batch:
+        raise ValueError(f"optim=lbfgs's line search needs one fixed objective: set train.batch_size=null "
+                         f"(all {len(objective.pairs)} pairs each step), or use optim=adam for minibatches")
 
 
 def _guard(step: int, problem: str, out: StepLoss, loop: _Loop, settings: TrainSettings,
@@ -310,7 +379,7 @@ def _record(step: int, lr: float, grad_norm: float, out: StepLoss, loop: _Loop, 
     the task's evaluation, seconds and token throughput."""
     with torch.no_grad():
         record = {"step": step, "loss": float(out.value.detach()), "lr": lr, "grad_norm": grad_norm,
-                  **out.statistics()}
+                  **line_search_counts(loop.optimiser), **out.statistics()}
         if evaluate is not None:
             record.update(evaluate(policy))
     record["seconds"] = time.perf_counter() - loop.start
@@ -344,6 +413,9 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
     ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
     """
     settings.check()
+    _check_line_search(objective, settings, context)
+    if settings.dtype is not None:
+        policy.to(settings.dtype)  # before sharding, resuming and building the optimiser
     caller, policy = policy, distributed.shard_for(policy, context, settings.device)  # fsdp: a sharded copy
     if policy is not caller:
         objective.policy = policy
@@ -357,7 +429,7 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
         for step in bar:
             lr = _learning_rate(loop)  # 1
             out = objective(step)  # 2-4
-            problem, grad_norm = _update(policy, out, loop, settings)  # 5
+            problem, grad_norm = _update(policy, out, loop, settings, functools.partial(objective, step))  # 5
             if problem is not None:
                 loop.convergence.skip()
                 _guard(step, problem, out, loop, settings, context)

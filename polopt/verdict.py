@@ -35,13 +35,15 @@ def reached_optimum(tv_to_optimum: float | None, *, optimum_finite: bool | None,
     return bool(tv_to_optimum <= tolerance)
 
 
-def likely_fix(losses: list[float], *, relative_loss_gap: float | None = None) -> str:
+def likely_fix(losses: list[float], *, relative_loss_gap: float | None = None, line_search: bool = False) -> str:
     """The most likely fix for a run that missed its optimum, from its logged loss curve.
 
     A run whose loss is within :data:`FLAT_RELATIVE_GAP` of the optimum's (``relative_loss_gap``,
     when known) but whose policy is not, and whose last logged quarter moved by no more than that
     gap, is on a nearly flat objective: its wiggles are smaller than what is left to gain, so the
-    curve's shape says nothing about the rate, and the screen says so with the figure.
+    curve's shape says nothing about the rate, and the screen says so with the figure; unless the run
+    already used it (``line_search``), it names ``optim=lbfgs``, whose line search crosses a flat
+    stretch in far fewer steps.
 
     Over the second half of the logged values (all of them when fewer than six): a loss that changes
     direction in at least a third of its moves is oscillating (the step is too large: lower optim.lr);
@@ -59,8 +61,9 @@ def likely_fix(losses: list[float], *, relative_loss_gap: float | None = None) -
     quarter = tail[len(tail) // 2:]
     if relative_loss_gap is not None and 0.0 <= relative_loss_gap <= FLAT_RELATIVE_GAP:
         if max(quarter) - min(quarter) <= relative_loss_gap * abs(tail[-1]) + scale:
-            return (f"raise train.steps (the objective is nearly flat here: the loss is within "
-                    f"{relative_loss_gap:.2g} of the optimum's, relatively, so each step gains little)")
+            fix = (f"raise train.steps (the objective is nearly flat here: the loss is within "
+                   f"{relative_loss_gap:.2g} of the optimum's, relatively, so each step gains little)")
+            return fix if line_search else fix + "; or optim=lbfgs, a line search in float64 (full batch)"
     signs = [m > 0 for m in moves if abs(m) > scale]
     turns = sum(a != b for a, b in zip(signs[:-1], signs[1:], strict=True))
     if len(signs) >= 3 and turns >= len(moves) / 3:
@@ -101,5 +104,6 @@ def verdict_fields(summary: dict, history: list[dict], *, tolerance: float = REA
     fix = None
     if verdict is False:
         losses = [r["loss"] for r in history if "loss" in r]
-        fix = likely_fix(losses, relative_loss_gap=summary.get("relative_loss_gap"))
+        fix = likely_fix(losses, relative_loss_gap=summary.get("relative_loss_gap"),
+                         line_search=any("iterations" in r for r in history))  # L-BFGS logs its iterations
     return {"reached_optimum": verdict, "reached_optimum_tolerance": tolerance, "likely_fix": fix}

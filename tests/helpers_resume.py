@@ -12,7 +12,7 @@ from toy_tasks.families import bradley_terry
 from toy_tasks.session import prepare
 
 # one configuration per kind of state that must come back: Adam moments with a warm-up into a cosine
-# schedule, minibatch order across epochs, SGD, a log-linear model's buffers, bf16 autocast
+# schedule, minibatch order across epochs, SGD, a log-linear model's buffers, bf16 autocast, L-BFGS
 SETUPS = {
     "adam-minibatch": dict(mode="sampled", kind="tabular", optim=OptimConfig("adam", 0.05, warmup_steps=4),
                            batch_size=6, precision="fp32"),
@@ -21,6 +21,10 @@ SETUPS = {
                           batch_size=None, precision="fp32"),
     "adamw-bf16": dict(mode="sampled", kind="loglinear", optim=OptimConfig("adamw", 0.05, weight_decay=0.01),
                        batch_size=5, precision="bf16"),
+    # L-BFGS's curvature history, step length and counters (a line search re-evaluating the full batch)
+    "lbfgs-fp64": dict(mode="exact", kind="loglinear", optim=OptimConfig("lbfgs", 1.0, schedule="constant",
+                                                                         iterations=2, history=4),
+                       batch_size=None, precision="fp64"),
     # draws from torch's global RNG every step, as dropout in a sequence model does
     "adam-dropout": dict(mode="sampled", kind="dropout", optim=OptimConfig("adam", 0.05), batch_size=6,
                          precision="fp32"),

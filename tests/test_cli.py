@@ -92,6 +92,8 @@ def test_bad_task_file_is_one_clear_line(tmp_path, case):
     (["task=file"], "task=file needs task.path=PATH"),
     (["task=bandit"], "polopt train: error: unknown task 'bandit'; choose one of: bradley_terry"),
     (["loss.name=nothing_here"], "polopt train: error: unknown loss 'nothing_here'; known losses: logistic"),
+    (["optim=lbfgs", "task.mode=sampled", "train.batch_size=8"],
+     "polopt train: error: optim=lbfgs's line search needs one fixed objective: set train.batch_size=null"),
 ])
 def test_bad_options_are_one_clear_line(tmp_path, args, message):
     out = polopt("train", *args, f"hydra.run.dir={tmp_path}")

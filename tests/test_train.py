@@ -155,11 +155,11 @@ def test_train_rejects_bad_settings():
     policy = session.build_policy()
     with pytest.raises(ValueError, match=r"train.steps must be a positive integer, got 0"):
         train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=0, optim=OptimConfig()))
-    with pytest.raises(ValueError, match=r"optim.name must be one of adam, adamw, sgd, got 'lion'"):
+    with pytest.raises(ValueError, match=r"optim.name must be one of adam, adamw, sgd, lbfgs, got 'lion'"):
         train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(name="lion")))
     with pytest.raises(ValueError, match=r"task.mode must be one of exact, sampled, got 'online'"):
         task.prepare(loss, beta=0.5, mode="online")
-    with pytest.raises(ValueError, match=r"precision must be fp32 or bf16, got 'fp8'"):
+    with pytest.raises(ValueError, match=r"precision must be one of fp32, bf16, fp64, got 'fp8'"):
         train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(), precision="fp8"))
     with pytest.raises(ValueError, match=r"optim.betas must be two numbers in \[0, 1\)"):
         train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=5, optim=OptimConfig(betas=[0.9, 1.0])))

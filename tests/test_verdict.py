@@ -64,6 +64,9 @@ def test_a_nearly_flat_objective_says_so_with_its_loss_gap():
     for curve in (settling, wiggling):
         fix = likely_fix(curve, relative_loss_gap=7e-5)
         assert fix.startswith("raise train.steps (the objective is nearly flat here") and "7e-05" in fix
+        assert fix.endswith("; or optim=lbfgs, a line search in float64 (full batch)")
+        # a run that already ran L-BFGS is not sent back to it
+        assert "optim=lbfgs" not in likely_fix(curve, relative_loss_gap=7e-5, line_search=True)
     assert likely_fix(wiggling).startswith("lower optim.lr")  # without the gap, the curve alone decides
     # far from the optimum's loss: the curve decides
     assert likely_fix(settling, relative_loss_gap=0.02) == likely_fix(settling)
