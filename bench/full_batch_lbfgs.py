@@ -15,7 +15,9 @@ reference, as the trainer does, and minimises the population loss
 (``toy_tasks.pair_solve.pair_population_loss``'s terms) in each dtype, printing per report the
 loss, the TV to the exact optimum of the pair solver and the seconds so far. Near the optimum the
 loss changes by less than float32 resolves, which is where a line search in float32 stalls.
-Figures only; nothing passes or fails. One round is one ``LBFGS.step`` (up to 20 iterations).
+Figures only; nothing passes or fails. One round is one ``LBFGS.step`` (up to 20 iterations), as one
+step of the trainer's ``optim=lbfgs`` is; this bench keeps the population loss apart from the trainer
+so that the two precisions can be compared on the objective alone.
 """
 
 from __future__ import annotations

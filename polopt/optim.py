@@ -36,7 +36,7 @@ class OptimConfig:
     grad_clip: float | None = None
     betas: tuple[float, float] | list[float] | None = None  # Adam and AdamW only
     iterations: int = 20  # L-BFGS only: iterations per training step
-    history: int = 50  # L-BFGS only: curvature pairs kept
+    history: int = 100  # L-BFGS only: curvature pairs kept
 
 
 def make_optimiser(params, cfg: OptimConfig, steps: int):

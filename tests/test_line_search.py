@@ -170,7 +170,9 @@ def test_a_sequence_run_with_lbfgs_reaches_its_exact_optimum(tmp_path):
         defaults = compose("config", overrides=["task=sequence", "optim=lbfgs"])
         cfg = compose("config", overrides=[*SMALL_OVERRIDES, "task=sequence", "loss=divergence_forward_kl", "beta=2",
                                            "optim=lbfgs", "train.steps=20", "train.progress=false"])
+        alpha = compose("config", overrides=["task=sequence", "loss=divergence_alpha", "optim=lbfgs"])
     assert defaults.precision == "fp64" and defaults.train.steps == 150 and defaults.optim.schedule == "constant"
+    assert alpha.train.steps == 200  # conf/tuning/objective/lbfgs_transformer_divergence_alpha.yaml
     summary = run(cfg, tmp_path / "run")
     assert summary["optimum_method"].startswith("closed form")
     assert summary["tv_to_optimum"] <= 0.01 and summary["reached_optimum"] is True
