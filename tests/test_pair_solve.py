@@ -312,6 +312,23 @@ def test_the_assembled_hessian_is_autograds(name):
     np.testing.assert_allclose(problem.hessian(z), full, atol=1e-12)
 
 
+@pytest.mark.parametrize("name", objectives.names())
+def test_the_pinned_hessian_is_autograds(name):
+    # the active-set problem with some responses pinned at the reference (DPO-Positive's kink): the free
+    # responses form a softmax chart of their own, so the same chain rule holds on the free block
+    from toy_tasks.pair_solve import _Pinned, _Prompt
+
+    task = random_task(4, bradley_terry=True)
+    problem = _Prompt(objectives.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
+                      0.7)
+    pinned = np.zeros(task.n_responses, dtype=bool)
+    pinned[[0, 2]] = True
+    reduced = _Pinned(problem, pinned)
+    y = np.random.default_rng(1).normal(size=int((~pinned).sum()))
+    full = torch.autograd.functional.hessian(reduced.loss, torch.as_tensor(y)).numpy()
+    np.testing.assert_allclose(reduced.hessian(y), full, atol=1e-12)
+
+
 def test_an_answer_the_solver_cannot_certify_says_so(monkeypatch):
     # the same kinked optimum with the kink search failing (as it may from a start far from the kink):
     # Newton stops with a gradient far above the certificate's tolerance, and the answer must say it is

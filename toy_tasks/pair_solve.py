@@ -54,8 +54,10 @@ GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
 CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
 CERTIFIED = 1e-7  # an answer whose gradient is larger is reported as not certified
 KINK_BAND = 1e-4  # log-ratios this close to 0 are taken to sit at an anchor term's kink
-KINK_LIMIT = 128  # above this many responses, only the start at the reference searches a kink (its active-set
-#                   solves take minutes from a random start at K = 364)
+KINK_LIMIT = 128  # above this many responses, only the start at the reference searches a kink: from a random
+#                   start at K = 364 the active set changes one transfer at a time, and the search ran over 8
+#                   minutes (killed, beside the test suite) even with the chain-rule Hessian, where the
+#                   reference start took 29 s beside it
 SLOPE_AGREEMENT = 1e-6  # a transfer's measured slope and the one its one-sided partials predict agree this well
 MAX_ITERATIONS = 300  # trust-region iterations per solve: smooth problems need tens; a kink would take them all
 DENSE_LIMIT = 1000  # above this many responses per prompt, Hessian-vector products instead of the Hessian
@@ -175,16 +177,20 @@ class _Prompt:
 
     def hessian(self, z: np.ndarray) -> np.ndarray:
         """The Hessian of L in z (K, K), assembled from each pair's second derivatives in its two
-        log-probabilities (a pair's loss reads only its own winner and loser: the contract) and the
-        chain rule through log pi = z - logsumexp(z): ``J^T H J - (sum G) (diag(pi) - pi pi^T)`` with
-        ``J = I - 1 pi^T``, H and G the Hessian and gradient in log pi. One pass over the pairs
-        instead of K (autograd's full Hessian)."""
-        zt = torch.as_tensor(z, dtype=torch.float64)
-        log_pi = torch.log_softmax(zt, dim=0)  # (K,)
-        pi = log_pi.exp()
+        log-probabilities (:meth:`logpi_derivatives`) and the chain rule through log pi = z - logsumexp(z):
+        ``J^T H J - (sum G) (diag(pi) - pi pi^T)`` with ``J = I - 1 pi^T``, H and G the Hessian and
+        gradient in log pi. One pass over the pairs instead of K (autograd's full Hessian)."""
+        log_pi = torch.log_softmax(torch.as_tensor(z, dtype=torch.float64), dim=0)  # (K,)
+        grad_logpi, h = self.logpi_derivatives(log_pi)
+        return _softmax_chain_rule(log_pi.exp(), grad_logpi, h).numpy()
+
+    def logpi_derivatives(self, log_pi: Tensor) -> tuple[Tensor, Tensor]:
+        """The gradient (K,) and Hessian (K, K) of L in the log-probabilities ``log_pi`` (K,), from each
+        pair's first and second derivatives in its own winner's and loser's log-probabilities (a pair's
+        loss reads only those two: the contract)."""
         i, j = torch.nonzero(self.w > 0, as_tuple=True)  # (E,) each
         w = self.w[i, j]
-        a, b = log_pi[i].clone().requires_grad_(True), log_pi[j].clone().requires_grad_(True)
+        a, b = log_pi[i].detach().clone().requires_grad_(True), log_pi[j].detach().clone().requires_grad_(True)
         values = self.objective(PairScores(a, b, self.log_ref[i], self.log_ref[j], self.lengths[i],
                                            self.lengths[j]), self.beta)  # (E,)
         ga, gb = torch.autograd.grad(values.sum(), (a, b), create_graph=True)
@@ -197,17 +203,15 @@ class _Prompt:
 
         haa, hab = second(ga, (a, b))
         (hbb,) = second(gb, (b,))
-        k = len(z)
+        k = len(log_pi)
         grad_logpi = torch.zeros(k, dtype=torch.float64).index_add_(0, i, w * ga.detach()).index_add_(
             0, j, w * gb.detach())  # (K,)
         h = torch.zeros(k, k, dtype=torch.float64)
-        h.index_put_((i, i), w * haa, accumulate=True)
-        h.index_put_((j, j), w * hbb, accumulate=True)
-        h.index_put_((i, j), w * hab, accumulate=True)
-        h.index_put_((j, i), w * hab, accumulate=True)
-        jac = torch.eye(k, dtype=torch.float64) - pi[None, :]  # (K, K): d log pi_k / d z_m
-        curvature = torch.diag(pi) - torch.outer(pi, pi)  # (K, K): -d^2 log pi_k / dz^2, the same for every k
-        return (jac.T @ h.detach() @ jac - grad_logpi.sum() * curvature).numpy()
+        h.index_put_((i, i), w * haa.detach(), accumulate=True)
+        h.index_put_((j, j), w * hbb.detach(), accumulate=True)
+        h.index_put_((i, j), w * hab.detach(), accumulate=True)
+        h.index_put_((j, i), w * hab.detach(), accumulate=True)
+        return grad_logpi, h
 
     def hessp(self, z: np.ndarray, p: np.ndarray) -> np.ndarray:
         zt = torch.as_tensor(z, dtype=torch.float64)
@@ -322,8 +326,22 @@ class _Pinned(_Prompt):
     def loss(self, y: Tensor) -> Tensor:
         return _pair_terms(self.objective, self.w, self.log_policy(y), self.log_ref, self.lengths, self.beta)
 
-    def hessian(self, y: np.ndarray) -> np.ndarray:  # not a plain softmax chart: autograd's Hessian
-        return torch.autograd.functional.hessian(self.loss, torch.as_tensor(y, dtype=torch.float64)).numpy()
+    def hessian(self, y: np.ndarray) -> np.ndarray:
+        """The Hessian of L in y: the free responses' log pi = rest + log_softmax(y) is a softmax chart of
+        its own, so the same chain rule applies to the free block of L's derivatives in log pi."""
+        log_pi = self.log_policy(torch.as_tensor(y, dtype=torch.float64))
+        grad_logpi, h = self.logpi_derivatives(log_pi)
+        free = ~self.pinned
+        q = torch.softmax(torch.as_tensor(y, dtype=torch.float64), dim=0)  # the free responses' shares
+        return _softmax_chain_rule(q, grad_logpi[free], h[free][:, free]).numpy()
+
+
+def _softmax_chain_rule(pi: Tensor, grad_logpi: Tensor, h: Tensor) -> Tensor:
+    """The Hessian in logits z of a function of log pi = log_softmax(z) (+ a constant), from its gradient
+    G (K,) and Hessian H (K, K) in log pi: ``J^T H J - (sum G) (diag(pi) - pi pi^T)``, ``J = I - 1 pi^T``
+    (d log pi_k / d z_m = delta_km - pi_m; d^2 log pi_k / dz^2 = -(diag(pi) - pi pi^T) for every k)."""
+    jac = torch.eye(len(pi), dtype=torch.float64) - pi[None, :]  # (K, K)
+    return jac.T @ h @ jac - grad_logpi.sum() * (torch.diag(pi) - torch.outer(pi, pi))
 
 
 def _richardson(quotient: Callable[[float], float], step: float) -> float:
