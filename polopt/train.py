@@ -348,6 +348,9 @@ def _check_line_search(objective, settings: TrainSettings, context: distributed.
     """Refuse optim=lbfgs where its line search would not see one fixed objective."""
     if settings.optim.name != "lbfgs":
         return
+    if settings.precision == "bf16":
+        raise ValueError("optim=lbfgs compares losses along each line search, and bf16 autocast rounds them to "
+                         "about 3 significant digits: use precision=fp64 (its default) or fp32")
     if context.active:
         raise ValueError("optim=lbfgs trains on one process: every evaluation of its line search would have "
                          "to run on all of torchrun's processes in step; use optim=adam under torchrun")

@@ -102,6 +102,9 @@ def test_refusals_say_what_to_do():
     policy = session.build_policy()
     with pytest.raises(ValueError, match=r"set train.batch_size=null \(all 40 pairs each step\)"):
         train(policy, session.pairs, loss, settings(batch_size=8))
+    with pytest.raises(ValueError, match=r"bf16 autocast rounds them to about 3 significant digits: use "
+                                         r"precision=fp64 \(its default\) or fp32"):
+        train(policy, session.pairs, loss, settings(precision="bf16"))
     with pytest.raises(ValueError, match=r"optim=lbfgs trains on one process"):
         train(policy, session.pairs, loss, settings(), context=distributed.Context(rank=0, world_size=2))
     weights = [torch.nn.Parameter(torch.zeros(3))]
