@@ -413,7 +413,8 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
     the lines up to the checkpoint there). ``save_checkpoint(state)`` receives
     :func:`polopt.checkpoint.training_state` every ``checkpoint_every`` steps and after the
     last; ``resume`` is such a state to continue from. With several processes the caller passes
-    ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only.
+    ``metrics_path``/``save_checkpoint``/``progress`` to rank 0 only. With ``precision=fp64`` the
+    caller's policy is cast to float64 in place and stays so.
     """
     settings.check()
     _check_line_search(objective, settings, context)
