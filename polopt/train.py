@@ -204,7 +204,7 @@ class MethodObjective:
     """A method's ``step(step) -> (scalar, metrics)`` as a batch objective (the method draws
     its own batches; a method run does not resume)."""
 
-    counts_tokens, full_batch = False, False
+    counts_tokens = False
 
     def __init__(self, step_objective: Callable[[int], tuple[Tensor, dict]], name: str):
         self.step_objective, self.name = step_objective, name
