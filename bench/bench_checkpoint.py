@@ -13,11 +13,12 @@ import tempfile
 import time
 import uuid
 
-from polopt import checkpoint, losses
-from polopt.optim import OptimConfig
-from polopt.train import TrainSettings, train
+from polopt.checkpoints import store as checkpoint
+from polopt.losses import margin as losses
+from polopt.training.loop import TrainSettings, train
+from polopt.training.optim import OptimConfig
 from toy_tasks.families import contextual
-from toy_tasks.session import prepare
+from toy_tasks.finite.session import prepare
 
 
 def one_run(steps: int, every: int, folder: str) -> tuple[float, int]:

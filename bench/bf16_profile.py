@@ -32,10 +32,10 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from bench.share_prompt import invented_pairs, prepare  # noqa: E402
-from polopt import losses  # noqa: E402
-from polopt.logprobs import shared_pair_logprobs  # noqa: E402
-from polopt.optim import OptimConfig  # noqa: E402
-from polopt.train import TrainSettings, train  # noqa: E402
+from polopt.losses import margin as losses  # noqa: E402
+from polopt.models.logprobs import shared_pair_logprobs  # noqa: E402
+from polopt.training.loop import TrainSettings, train  # noqa: E402
+from polopt.training.optim import OptimConfig  # noqa: E402
 
 MATMUL = ("aten::mm", "aten::addmm", "aten::bmm")
 ATTENTION = "scaled_dot_product"

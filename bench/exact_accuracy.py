@@ -14,12 +14,12 @@ import json
 import numpy as np
 import torch
 
-from polopt import losses
-from polopt.optim import OptimConfig
-from polopt.stopping import FINITE_TASK_TOL
-from polopt.train import TrainSettings, train
+from polopt.losses import margin as losses
+from polopt.training.loop import TrainSettings, train
+from polopt.training.optim import OptimConfig
+from polopt.training.stopping import FINITE_TASK_TOL
 from toy_tasks import families
-from toy_tasks.finite import make_task
+from toy_tasks.finite.task import make_task
 
 
 def random_task(seed: int, k: int, kind: str):

@@ -12,7 +12,7 @@ reference, as the trainer does, and minimises the population loss
 
     L = sum_x sum_{i != j} W[x, i, j] ell(log pi_xi, log pi_xj, log ref_xi, log ref_xj, n_xi, n_xj)
 
-(``toy_tasks.pair_solve.pair_population_loss``'s terms) in each dtype, printing per report the
+(``toy_tasks.exact.pairs.pair_population_loss``'s terms) in each dtype, printing per report the
 loss, the TV to the exact optimum of the pair solver and the seconds so far. Near the optimum the
 loss changes by less than float32 resolves, which is where a line search in float32 stalls.
 Figures only; nothing passes or fails. One round is one ``LBFGS.step`` (up to 20 iterations), as one
@@ -39,7 +39,7 @@ def minimise(session, objective, beta: float, dtype, rounds: int, report_every: 
     import numpy as np
     import torch
 
-    from toy_tasks.pair_solve import _pair_terms
+    from toy_tasks.exact.pairs import _pair_terms
 
     policy = session.build_policy(init="reference").to(dtype)
     task = session.finite.task
@@ -75,7 +75,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--rounds", type=int, default=100, help="LBFGS.step calls (up to 20 iterations each)")
     parser.add_argument("--report-every", type=int, default=10)
     parser.add_argument("--dtypes", default="float64,float32", help="comma-separated: float64, float32")
-    parser.add_argument("task", nargs="*", help="KEY=VALUE options of toy_tasks.sequences.sequence_task")
+    parser.add_argument("task", nargs="*", help="KEY=VALUE options of toy_tasks.sequence.task.sequence_task")
     args = parser.parse_args(argv)
     dtypes = args.dtypes.split(",")
     for name in dtypes:
@@ -84,8 +84,8 @@ def main(argv: list[str] | None = None) -> None:
     sys.path.insert(0, str(ROOT))
     import torch
 
-    from polopt import objectives
-    from toy_tasks.sequences import sequence_task
+    from polopt.losses import registry as objectives
+    from toy_tasks.sequence.task import sequence_task
 
     torch.set_num_threads(1)
     options = {}

@@ -28,11 +28,11 @@ from pathlib import Path
 
 import numpy as np
 
-from polopt import overoptimisation
-from polopt.reward_model import save_reward_model
+from polopt.methods import overoptimisation
+from polopt.methods.reward_model import save_reward_model
 from toy_tasks.families import bradley_terry
+from toy_tasks.methods.reward_fit import fit_task_reward
 from toy_tasks.overoptimisation import BETAS, NS, exact_curves, study
-from toy_tasks.reward_fit import fit_task_reward
 
 SIZES = (100, 300, 1000, 10000)
 L2 = 0.1

@@ -7,7 +7,7 @@ started at its reference, exact mode: every pair weighted as drawn from the refe
 built-in objective, ``--jobs`` runs at a time (one torch thread each), with the defaults the
 configuration gives that objective (its ``conf/loss/NAME.yaml`` and ``conf/tuning/``) and any
 ``KEY=VALUE`` given here on top. Prints, per objective: beta, the steps run, the TV to the
-exact optimum of the pair solver (toy_tasks/pair_solve.py) at the end, whether the run says it
+exact optimum of the pair solver (toy_tasks/exact/pairs.py) at the end, whether the run says it
 reached it (TV <= 0.05 for a sequence model), the population loss's gap to its optimum, and the
 wall time of the whole command (the exact solve included). Figures only; nothing passes or fails.
 
@@ -34,7 +34,7 @@ ROOT = Path(__file__).resolve().parent.parent
 
 def builtin_names() -> list[str]:
     sys.path.insert(0, str(ROOT))
-    from polopt import objectives
+    from polopt.losses import registry as objectives
 
     return objectives.builtin_names()
 
@@ -60,8 +60,8 @@ def fit_optimum(name: str, beta: float, steps: int) -> dict:
     import torch
 
     sys.path.insert(0, str(ROOT))
-    from polopt import objectives
-    from toy_tasks.sequences import sequence_task
+    from polopt.losses import registry as objectives
+    from toy_tasks.sequence.task import sequence_task
 
     torch.set_num_threads(1)
     objective = objectives.resolve(name)

@@ -3,10 +3,10 @@
     PYTHONPATH=. python bench/prefix_cache.py [--width 256] [--batch 16] [--rounds 5] [--threads N]
 
 ``train.share_prompt=true`` packs each pair as one row ``[prompt, winner, loser]`` with an attention
-mask (:func:`polopt.logprobs.shared_pair_logprobs`). The other way the issue names is a cached
+mask (:func:`polopt.models.logprobs.shared_pair_logprobs`). The other way the issue names is a cached
 prefix: run the prompt once, keep every layer's keys and values, then run the winner and the loser
 as two short passes whose queries attend to the cached prompt keys and to their own earlier
-tokens. This file writes that second way for :class:`polopt.models.TinyTransformer` (the library
+tokens. This file writes that second way for :class:`polopt.models.transformer.TinyTransformer` (the library
 does not need it), checks that it gives the same log-probabilities as separate scoring, and times
 forward plus backward of the three ways on the prompt-heavy pair file of bench/share_prompt.py
 (prompts of 30-40 words, responses of 1-5), fastest of ``--rounds`` interleaved rounds, with the
@@ -30,8 +30,8 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from bench.share_prompt import invented_pairs, prepare  # noqa: E402
-from polopt.logprobs import lengths, picked_logprobs, sequence_logprobs, shared_pair_logprobs  # noqa: E402
-from polopt.models import TinyTransformer  # noqa: E402
+from polopt.models.logprobs import lengths, picked_logprobs, sequence_logprobs, shared_pair_logprobs  # noqa: E402
+from polopt.models.transformer import TinyTransformer  # noqa: E402
 
 Tensor = torch.Tensor
 

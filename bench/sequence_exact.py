@@ -19,12 +19,12 @@ import torch
 from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
-from polopt import losses
 from polopt.commands.config import CONFIG_DIR, build_task
-from polopt.logprobs import sequence_logprobs
-from polopt.models import TinyTransformer
-from polopt.optim import OptimConfig
-from polopt.train import TrainSettings, train
+from polopt.losses import margin as losses
+from polopt.models.logprobs import sequence_logprobs
+from polopt.models.transformer import TinyTransformer
+from polopt.training.loop import TrainSettings, train
+from polopt.training.optim import OptimConfig
 
 TARGET = 0.05
 

@@ -5,7 +5,7 @@
 Writes an invented pair file (prompts of 30-40 words, responses of 1-5 words, words made
 of random syllables, byte tokenizer: about 200 prompt tokens and 5-30 response tokens),
 reads it through ``task=pairs`` (the data layer, the tokenizer, the reference pass) and
-times :func:`polopt.train.train` on the tiny transformer (2 layers, 4 heads) for:
+times :func:`polopt.training.loop.train` on the tiny transformer (2 layers, 4 heads) for:
 
 - ``train.share_prompt`` true against false (winner and loser in one pass over their
   prompt, or the prompt computed twice), in fp32 and in bf16: real tokens/s (the trainer's
@@ -41,12 +41,12 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from bench.throughput import cpu_features  # noqa: E402
-from polopt import losses  # noqa: E402
-from polopt.compiling import compile_policy  # noqa: E402
-from polopt.logprobs import batched_logprobs, batched_pair_logprobs  # noqa: E402
-from polopt.optim import OptimConfig  # noqa: E402
-from polopt.pairs_task import pair_task  # noqa: E402
-from polopt.train import TrainSettings, train  # noqa: E402
+from polopt.losses import margin as losses  # noqa: E402
+from polopt.models.compiling import compile_policy  # noqa: E402
+from polopt.models.logprobs import batched_logprobs, batched_pair_logprobs  # noqa: E402
+from polopt.pairfile.task import pair_task  # noqa: E402
+from polopt.training.loop import TrainSettings, train  # noqa: E402
+from polopt.training.optim import OptimConfig  # noqa: E402
 
 LAYERS, HEADS, BETA = 2, 4, 0.5
 SYLLABLES = ("ka", "lo", "mir", "tu", "sen", "va", "dro", "pel", "ish", "ro", "na", "quo", "bel", "tam")

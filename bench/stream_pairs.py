@@ -4,10 +4,10 @@
                                               [--batch-size 256] [--max-length 128]
 
 Writes ``--pairs`` pairs as token lists with their reference log-probabilities to an Arrow
-file in a temporary folder, chunk by chunk (:func:`polopt.stream.write_arrow`), and then trains
+file in a temporary folder, chunk by chunk (:func:`polopt.pairfile.mapped.write_arrow`), and then trains
 the tiny transformer for ``--steps`` minibatch steps twice, each in a fresh process: once from
-the file through :class:`polopt.stream.MappedPairs` (memory-mapped, one batch read at a time),
-once from the same pairs as in-memory tensors (:class:`polopt.train.PairSet`, padded int64,
+the file through :class:`polopt.pairfile.mapped.MappedPairs` (memory-mapped, one batch read at a time),
+once from the same pairs as in-memory tensors (:class:`polopt.training.loop.PairSet`, padded int64,
 as ``polopt train`` holds them). Prints the peak resident set size (VmHWM) of each process and
 its resident set after training (VmRSS), the size of the file, and the ratios; never passes or
 fails.
@@ -44,7 +44,7 @@ CHUNK = 20_000  # the toy sampler holds a (2 CHUNK, K) table of cumulative proba
 
 
 def task():
-    from toy_tasks.sequences import sequence_task
+    from toy_tasks.sequence.task import sequence_task
 
     return sequence_task()
 
@@ -98,7 +98,7 @@ def skewed_chunk(n: int, k: int, max_length: int) -> dict[str, torch.Tensor]:
 
 def write_skewed(path: Path, n: int, max_length: int) -> None:
     from bench.skewed_data import PAD_ID
-    from polopt.stream import write_arrow
+    from polopt.pairfile.mapped import write_arrow
 
     def chunks():
         for k in range((n + CHUNK - 1) // CHUNK):
@@ -113,7 +113,7 @@ def write_skewed(path: Path, n: int, max_length: int) -> None:
 def skewed_in_ram(n: int, max_length: int):
     """The same pairs as one PairSet of padded int64 tensors (``polopt train``'s way)."""
     from bench.skewed_data import real_token_count
-    from polopt.pair_set import PairSet
+    from polopt.pairs import PairSet
 
     data = {}
     for k in range((n + CHUNK - 1) // CHUNK):  # filled in place: no second copy while concatenating
@@ -127,7 +127,7 @@ def skewed_in_ram(n: int, max_length: int):
 
 
 def write(path: Path, n: int) -> None:
-    from polopt.stream import write_arrow
+    from polopt.pairfile.mapped import write_arrow
 
     t = task()
     responses = t.response_tokens.numpy()
@@ -148,7 +148,7 @@ def write(path: Path, n: int) -> None:
 
 def in_ram(n: int):
     """The same pairs as one PairSet of int64 tensors (``polopt train``'s way)."""
-    from polopt.pair_set import PairSet
+    from polopt.pairs import PairSet
 
     t = task()
     parts = [draw(t, n, k) for k in range((n + CHUNK - 1) // CHUNK)]
@@ -162,9 +162,9 @@ def in_ram(n: int):
 
 
 def toy_policy_and_pairs(mode: str, path: Path, n: int):
-    from polopt.models import build_model, copy_weights
-    from polopt.stream import MappedPairs
-    from toy_tasks.sequence_policy import EnumeratedSequencePolicy
+    from polopt.models.transformer import build_model, copy_weights
+    from polopt.pairfile.mapped import MappedPairs
+    from toy_tasks.sequence.policy import EnumeratedSequencePolicy
 
     t = task()
     pairs = MappedPairs(path, pad_id=t.vocab.pad_id) if mode == "mapped" else in_ram(n)
@@ -176,9 +176,9 @@ def toy_policy_and_pairs(mode: str, path: Path, n: int):
 
 def skewed_policy_and_pairs(mode: str, path: Path, n: int, max_length: int):
     from bench.skewed_data import PAD_ID, VOCAB_SIZE
-    from polopt.logprobs import SequencePolicy
-    from polopt.models import TinyTransformer
-    from polopt.stream import MappedPairs
+    from polopt.models.logprobs import SequencePolicy
+    from polopt.models.transformer import TinyTransformer
+    from polopt.pairfile.mapped import MappedPairs
 
     pairs = MappedPairs(path, pad_id=PAD_ID) if mode == "mapped" else skewed_in_ram(n, max_length)
     model = TinyTransformer(VOCAB_SIZE, context=8 + max_length, width=32, layers=2, heads=2, seed=1)
@@ -186,9 +186,9 @@ def skewed_policy_and_pairs(mode: str, path: Path, n: int, max_length: int):
 
 
 def train_once(mode: str, path: Path, n: int, steps: int, batch_size: int, data: str, max_length: int) -> dict:
-    from polopt import losses
-    from polopt.optim import OptimConfig
-    from polopt.train import TrainSettings, train
+    from polopt.losses import margin as losses
+    from polopt.training.loop import TrainSettings, train
+    from polopt.training.optim import OptimConfig
 
     torch.set_num_threads(1)
     before = peak_rss_mib()

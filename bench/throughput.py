@@ -2,7 +2,7 @@
 
     PYTHONPATH=. python bench/throughput.py [--widths 64 256] [--steps 40] [--batch 32] [--json out.json]
 
-Runs :func:`polopt.train.train` (the logistic loss) on the tiny transformer over a
+Runs :func:`polopt.training.loop.train` (the logistic loss) on the tiny transformer over a
 length-skewed synthetic dataset (bench/skewed_data.py: most responses short, 5%
 at the maximum length) and prints a table, then writes the same figures as JSON:
 
@@ -27,7 +27,7 @@ at the maximum length) and prints a table, then writes the same figures as JSON:
   Language Models, 2020, with n_ctx = n and the backward twice the forward;
 - configurations: fp32 vs bf16 autocast; length handling on vs off (on: length
   bucketing of the batches and the length split of the forward pass in
-  polopt/logprobs.py; off: random batches, each one pass padded to its own longest
+  polopt/models/logprobs.py; off: random batches, each one pass padded to its own longest
   pair, which on this data is nearly always the maximum); the reference cache on vs off (off: the reference model
   recomputes its log-probabilities every step, over several epochs); and the
   hand-written loop of bench/baseline_loop.py (no polopt, every batch padded to the
@@ -57,14 +57,14 @@ if __package__ in (None, ""):
 
 from bench import baseline_loop  # noqa: E402
 from bench.skewed_data import PAD_ID, VOCAB_SIZE, real_token_count, skewed_pairs  # noqa: E402
-from polopt import losses  # noqa: E402
-from polopt.batching import Batcher  # noqa: E402
-from polopt.logprobs import SequencePolicy, batched_logprobs, length_split  # noqa: E402
-from polopt.models import TinyTransformer  # noqa: E402
-from polopt.objective import margins, preference_loss  # noqa: E402
-from polopt.optim import OptimConfig  # noqa: E402
-from polopt.pair_set import PairSet  # noqa: E402
-from polopt.train import TrainSettings, train  # noqa: E402
+from polopt.losses import margin as losses  # noqa: E402
+from polopt.losses.reduce import margins, preference_loss  # noqa: E402
+from polopt.models.logprobs import SequencePolicy, batched_logprobs, length_split  # noqa: E402
+from polopt.models.transformer import TinyTransformer  # noqa: E402
+from polopt.pairs import PairSet  # noqa: E402
+from polopt.training.batching import Batcher  # noqa: E402
+from polopt.training.loop import TrainSettings, train  # noqa: E402
+from polopt.training.optim import OptimConfig  # noqa: E402
 
 LAYERS, HEADS, BETA = 2, 4, 0.5
 
@@ -138,7 +138,7 @@ def positions(batch: PairSet) -> torch.Tensor:
 
 def computed_positions(n: torch.Tensor, split: bool) -> int:
     """Positions the forward pass computes, padding included, for rows of n real positions (one
-    pass at the longest, or the two passes of polopt.logprobs.length_split)."""
+    pass at the longest, or the two passes of polopt.models.logprobs.length_split)."""
     order, k = length_split(n + 1) if split else (None, 0)
     if k == 0:
         return len(n) * int(n.max())

@@ -10,7 +10,7 @@
         assert_reaches_optimum(my_loss, noisy_labels(n_responses=4), beta=0.5, tol=1e-4)
 
 Both take margin losses f(x) and pair objectives f(pair, beta) alike (a callable, a
-registered name or a dotted path; see :mod:`polopt.objectives`). Both raise a plain
+registered name or a dotted path; see :mod:`polopt.losses.registry`). Both raise a plain
 ``AssertionError`` whose message says what was expected and what was reached, so pytest
 shows it as a test failure.
 """
@@ -21,9 +21,9 @@ from collections.abc import Callable
 
 import torch
 
-from polopt.check import as_loss, check_population, run_checks
-from polopt.losses import Loss
-from polopt.optim import OptimConfig
+from polopt.checks.margin import as_loss, check_population, run_checks
+from polopt.losses.margin import Loss
+from polopt.training.optim import OptimConfig
 
 
 def assert_reaches_optimum(loss: Loss | str | Callable[[torch.Tensor], torch.Tensor], task, beta: float = 0.5,
@@ -35,7 +35,7 @@ def assert_reaches_optimum(loss: Loss | str | Callable[[torch.Tensor], torch.Ten
     that the trained margins favour the winners (weighted mean margin > 0).
 
     ``task``: any object with ``prepare(loss, beta=, mode="exact")`` (a
-    :class:`toy_tasks.finite.FiniteTask`, e.g. from :mod:`toy_tasks.families`).
+    :class:`toy_tasks.finite.task.FiniteTask`, e.g. from :mod:`toy_tasks.families`).
     Returns the measured facts (policies, TV, loss gap) for further assertions.
     """
     result = check_population(as_loss(loss), task, beta=beta, steps=steps, optim=OptimConfig(lr=lr), tol=tol)

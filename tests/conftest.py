@@ -2,13 +2,17 @@
 
 from __future__ import annotations
 
+import sys
+from pathlib import Path
+
 import pytest
 import torch
 
-from polopt import losses
+from polopt.losses import margin as losses
 from polopt.methods import train_method
-from polopt.optim import OptimConfig
+from polopt.training.optim import OptimConfig
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # helpers_*.py and user_*.py, from every tests/ folder
 torch.set_num_threads(1)  # the finite tasks' tensors are tiny: a thread pool only adds overhead on a shared CPU
 
 

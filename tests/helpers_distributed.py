@@ -13,11 +13,12 @@ import socket
 import numpy as np
 import torch
 
-from polopt import distributed, objectives
-from polopt.optim import OptimConfig
-from polopt.train import TrainSettings, train
+from polopt.losses import registry as objectives
+from polopt.parallel import distributed
+from polopt.training.loop import TrainSettings, train
+from polopt.training.optim import OptimConfig
 from toy_tasks.families import bradley_terry
-from toy_tasks.session import prepare
+from toy_tasks.finite.session import prepare
 
 # exact: weighted pairs, full batch (the ranks' weight sums differ, so the loss scale matters);
 # sampled: unweighted minibatches of 7 (shards of 4 and 3), across epochs, with clipping and a warm-up

@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import torch
 
-from polopt import losses
-from polopt.optim import OptimConfig
-from polopt.policies import TabularPolicy
-from polopt.train import TrainSettings, train
+from polopt.losses import margin as losses
+from polopt.models.tabular import TabularPolicy
+from polopt.training.loop import TrainSettings, train
+from polopt.training.optim import OptimConfig
 from toy_tasks.families import bradley_terry
-from toy_tasks.session import prepare
+from toy_tasks.finite.session import prepare
 
 # one configuration per kind of state that must come back: Adam moments with a warm-up into a cosine
 # schedule, minibatch order across epochs, SGD, a log-linear model's buffers, bf16 autocast, L-BFGS

@@ -78,7 +78,7 @@ def test_the_streaming_bench_maps_the_pairs_it_holds_in_ram(tmp_path):
     # the two processes of bench/stream_pairs.py must train on the same pairs: the Arrow file read
     # through MappedPairs gives, row for row, the padded tensors of the in-RAM PairSet
     from bench import stream_pairs
-    from polopt.stream import MappedPairs
+    from polopt.pairfile.mapped import MappedPairs
 
     path = tmp_path / "pairs.arrow"
     stream_pairs.write_skewed(path, 60, 16)
@@ -107,9 +107,9 @@ def test_the_streaming_bench_runs_and_writes_json(tmp_path, capsys):
 def test_the_cached_prefix_of_the_bench_scores_pairs_as_separate_scoring_does():
     """bench/prefix_cache.py's other way of computing a prompt once (keys and values cached per layer)
     must give the log-probabilities of scoring prompt + response on its own, or its timing means
-    nothing; the reference here is polopt.logprobs.sequence_logprobs over each (prompt, response)."""
+    nothing; the reference here is polopt.models.logprobs.sequence_logprobs over each (prompt, response)."""
     from bench.prefix_cache import WAYS, prefix_pair_logprobs, separate_pair_logprobs
-    from polopt.models import TinyTransformer
+    from polopt.models.transformer import TinyTransformer
 
     pad = 0
     g = torch.Generator().manual_seed(3)
@@ -133,8 +133,8 @@ def test_full_batch_lbfgs_reaches_the_closed_form_optimum_on_a_small_sequence_ta
     # forward-KL link's closed form f'(pi / pi_ref) = r / beta + c (Wang et al. 2023), which the session's
     # exact optimum is; the transformer started at the reference is 0.40 TV away from it
     from bench.full_batch_lbfgs import minimise
-    from polopt import objectives
-    from toy_tasks.sequences import sequence_task
+    from polopt.losses import registry as objectives
+    from toy_tasks.sequence.task import sequence_task
 
     objective = objectives.resolve("divergence_forward_kl")
     session = sequence_task(max_length=2, n_prompts=1).prepare(objective, beta=0.5)

@@ -1,7 +1,7 @@
 """Pair objectives written the way a user writes them, for the exact-optimum tests.
 
 Each is a plain function ``name(pair, beta) -> Tensor`` of per-pair losses (shape (B,)), with
-``pair`` a :class:`polopt.pair_scores.PairScores`. Named by dotted path as
+``pair`` a :class:`polopt.losses.scores.PairScores`. Named by dotted path as
 ``loss=user_objectives:<name>`` (tests/ is on the path in the tests). The divergence members carry
 their ``f'`` as ``ratio_link`` so that the solver can use the closed form of Wang et al. 2023.
 """
@@ -11,7 +11,7 @@ from __future__ import annotations
 import torch
 import torch.nn.functional as F
 
-from polopt.pair_scores import PairScores
+from polopt.losses.scores import PairScores
 
 Tensor = torch.Tensor
 
@@ -50,7 +50,7 @@ def logistic_with_winner_likelihood(pair: PairScores, beta: float) -> Tensor:
 def _divergence(link):
     """The f-divergence DPO loss ``-log sigmoid(beta f'(pi_w / ref_w) - beta f'(pi_l / ref_l))`` for
     ``link = f'`` (Wang et al., Beyond Reverse KL, 2023; checked against the
-    authors' code, see polopt.pair_objectives)."""
+    authors' code, see polopt.losses.pair)."""
 
     def objective(pair: PairScores, beta: float) -> Tensor:
         u_w, u_l = pair.logratio_winner.exp(), pair.logratio_loser.exp()  # (B,) probability ratios

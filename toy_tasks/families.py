@@ -1,6 +1,6 @@
 """Task families with exactly known optima, each selectable as ``task=<name>``.
 
-Every family returns a validated :class:`toy_tasks.finite.FiniteTask`. The
+Every family returns a validated :class:`toy_tasks.finite.task.FiniteTask`. The
 scenarios are invented for the kit: replies of a help desk of the fictional
 Quillfeather Lending Library, judged by simulated annotators. Randomness comes
 only from the ``seed`` argument.
@@ -12,7 +12,7 @@ import itertools
 
 import numpy as np
 
-from toy_tasks.finite import FiniteTask, load_task, make_task
+from toy_tasks.finite.task import FiniteTask, load_task, make_task
 
 _REPLIES = [
     "step-by-step renewal guide", "one-line answer", "friendly answer with a caveat",
@@ -107,7 +107,7 @@ def contextual(n_prompts: int = 3, n_responses: int = 5, reward_scale: float = 1
 
 
 def from_file(path: str) -> FiniteTask:
-    """A task read from a JSON task file (see :mod:`toy_tasks.finite`)."""
+    """A task read from a JSON task file (see :mod:`toy_tasks.finite.task`)."""
     if not path or path == "???":
         raise ValueError("task=file needs task.path=PATH to a JSON task file")
     return load_task(path)

@@ -3,9 +3,9 @@
 For a reward model learned from N sampled pairs, optimising it exactly gives
 
 - best-of-n: the exact best-of-n distribution under the learned reward
-  (:func:`toy_tasks.best_of_n.best_of_n_distribution`), n = 1 .. 64;
+  (:func:`toy_tasks.methods.best_of_n.best_of_n_distribution`), n = 1 .. 64;
 - KL-regularised RL: pi* ∝ pi_ref e^{r_learned / beta} (the closed form of
-  :func:`toy_tasks.methods.kl_optimum`), over a grid of beta;
+  :func:`toy_tasks.methods.view.kl_optimum`), over a grid of beta;
 
 and each is measured by its KL to the reference and its learned and true expected
 rewards, both rewards in the reference-weighted mean-zero gauge (the reference
@@ -20,10 +20,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from toy_tasks.best_of_n import best_of_n_distribution
-from toy_tasks.finite import FiniteTask
-from toy_tasks.methods import kl_optimum
-from toy_tasks.reward_fit import fit_task_reward, true_rewards
+from toy_tasks.finite.task import FiniteTask
+from toy_tasks.methods.best_of_n import best_of_n_distribution
+from toy_tasks.methods.reward_fit import fit_task_reward, true_rewards
+from toy_tasks.methods.view import kl_optimum
 
 NS = (1, 2, 4, 8, 16, 32, 64)
 BETAS = (4.0, 2.0, 1.0, 0.5, 0.25, 0.125, 0.0625)

@@ -1,5 +1,5 @@
 """``polopt check LOSS [loss.KEY=VALUE] [beta=B] [train.steps=N] [optim.KEY=VALUE]``: the command line of the
-loss battery (:mod:`polopt.check` holds the checks). Its config keys are ``polopt train``'s; flags only for
+loss battery (:mod:`polopt.checks.margin` holds the checks). Its config keys are ``polopt train``'s; flags only for
 what is not a config key (``--tasks``, ``--quick``, ``--tol``, ``--json``, ``--plot``)."""
 
 from __future__ import annotations
@@ -78,10 +78,10 @@ def main(argv: list[str]) -> int:
 
     from omegaconf import OmegaConf
 
-    from polopt import check
-    from polopt.objective import validate_hyperparameters
-    from polopt.optim import OptimConfig
-    from polopt.run_folder import json_ready
+    from polopt.checks import margin as check
+    from polopt.losses.reduce import validate_hyperparameters
+    from polopt.training.optim import OptimConfig
+    from polopt.training.run_folder import json_ready
 
     loss_arg = args.loss.removeprefix("loss=")
     cfg = config.compose([f"loss={loss_arg}", *args.overrides], command="polopt check")
@@ -105,7 +105,7 @@ def main(argv: list[str]) -> int:
                               noisy_task=noisy)
     plot = None
     if not args.no_plot and not pair:  # the plot draws f(x) and x*(p): margin losses only
-        from polopt.report import plot_report
+        from polopt.checks.plot import plot_report
 
         plot = args.plot or "check-" + re.sub(r"[^A-Za-z0-9_-]+", "_", loss.name) + ".png"
         plot = str(plot_report(report, loss, plot))

@@ -16,7 +16,7 @@ def main(argv: list[str]) -> int:
     args = parser.parse_args(argv)
     from pathlib import Path  # after parsing: --help loads no torch
 
-    from polopt.checkpoint import list_checkpoints
+    from polopt.checkpoints.store import list_checkpoints
 
     folder = Path(args.run_dir) / "checkpoints"
     if not folder.is_dir():

@@ -33,7 +33,7 @@ import json
 import time
 from pathlib import Path
 
-from polopt import overoptimisation
+from polopt.methods import overoptimisation
 
 # summary.json's own key names, so that the table, the CSV and the run folders say the same thing
 COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",

@@ -1,5 +1,5 @@
 """``polopt demo [KEY=VALUE ...]``: the command line of the end-to-end walk-through
-(:mod:`polopt.commands.walkthrough` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`);
+(:mod:`polopt.demo.pipeline` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`);
 flags only for what is not one (``--out``, ``--betas``, ``--bias``, ``--quick``, ...). Imports no torch
 until it runs."""
 
@@ -27,7 +27,7 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="examples:\n  polopt demo\n  polopt demo loss=squared --out runs/demo-squared\n"
                "  polopt demo loss=hinge train.steps=100 --betas 0.1,0.3\n  polopt demo --quick   # seconds, "
                "checks the mechanics only", formatter_class=argparse.RawDescriptionHelpFormatter)
-    from polopt.commands.demo_settings import DemoConfig
+    from polopt.demo.settings import DemoConfig
 
     d = DemoConfig()
     parser.add_argument("overrides", nargs="*", metavar="KEY=VALUE",
@@ -65,7 +65,7 @@ def _given(overrides: list[str]) -> dict:
 
 def config_from_args(args: argparse.Namespace) -> tuple:
     """The demo's config (a DemoConfig) and the run keys (threads, progress) from the command line."""
-    from polopt.commands.demo_settings import QUICK, DemoConfig
+    from polopt.demo.settings import QUICK, DemoConfig
 
     try:
         betas = tuple(float(b) for b in args.betas.split(",") if b.strip())
@@ -87,7 +87,7 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_intermixed_args(argv)  # before the imports below: --help loads no torch
     import torch
 
-    from polopt.commands.walkthrough import check_config, run_demo
+    from polopt.demo.pipeline import check_config, run_demo
 
     cfg, run_keys = config_from_args(args)
     check_config(cfg)

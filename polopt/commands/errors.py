@@ -37,7 +37,7 @@ def _is_config_error(err: BaseException) -> bool:
 def user_error(err: BaseException) -> BaseException | None:
     """The user's mistake behind ``err`` (a wrapper such as Hydra's instantiation error unwrapped),
     or None for a bug that should keep its traceback."""
-    from polopt.checkpoint import CheckpointError
+    from polopt.checkpoints.store import CheckpointError
 
     seen = err
     while True:

@@ -1,15 +1,15 @@
 """``polopt losses``: list the built-in losses with f'(0), f''(0), convexity and their papers.
 
 The list is :data:`CATALOGUE`, written out so that the command prints at once without loading torch;
-tests/test_commands.py recomputes every row from the registry (:meth:`polopt.losses.Loss.derivatives_at`,
-autograd) and fails when the two differ, so the catalogue cannot drift from :mod:`polopt.losses`.
+tests/test_commands.py recomputes every row from the registry (:meth:`polopt.losses.margin.Loss.derivatives_at`,
+autograd) and fails when the two differ, so the catalogue cannot drift from :mod:`polopt.losses.margin`.
 """
 
 from __future__ import annotations
 
 import argparse
 
-# name: (f'(0), f''(0), convex, source), as polopt.losses computes and declares them
+# name: (f'(0), f''(0), convex, source), as polopt.losses.margin computes and declares them
 CATALOGUE = {
     "logistic": (-0.5, 0.25, True, "Rafailov et al. 2023 (DPO)"),
     "squared": (-2.0, 2.0, True, "Azar et al. 2023 (IPO)"),
@@ -21,7 +21,7 @@ CATALOGUE = {
 }
 
 
-# pair objectives (polopt.objectives): name, keyword parameters with their defaults, source
+# pair objectives (polopt.losses.registry): name, keyword parameters with their defaults, source
 PAIR_CATALOGUE = [
     ("divergence_reverse_kl", "-", "Wang et al. 2023 (f-DPO, reverse KL = DPO)"),
     ("divergence_forward_kl", "-", "Wang et al. 2023 (f-DPO, forward KL)"),

@@ -24,11 +24,11 @@ def fit(overrides: list[str], out: Path) -> dict:
     import torch
     from omegaconf import OmegaConf
 
-    from polopt.checkpoint import atomic_write
+    from polopt.checkpoints.store import atomic_write
     from polopt.commands.config import build_task, compose
     from polopt.commands.train import check_complete
-    from polopt.reward_model import save_reward_model
-    from polopt.run_folder import write_json
+    from polopt.methods.reward_model import save_reward_model
+    from polopt.training.run_folder import write_json
 
     cfg = compose(overrides, command="polopt reward")  # every key checked; the task by the allow-list
     check_complete(cfg)

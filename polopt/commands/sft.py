@@ -1,5 +1,5 @@
 """``polopt sft FILE --out REF.pt [KEY=VALUE ...]``: train the tiny transformer on plain text and save it as a
-reference model (:mod:`polopt.sft` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`), over
+reference model (:mod:`polopt.training.sft` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`), over
 the defaults of :data:`DEFAULTS`; ``--out`` is the one flag."""
 
 from __future__ import annotations
@@ -49,9 +49,16 @@ def settings(overrides: list[str]) -> dict:
 def main(argv: list[str] | None = None) -> int:
     """The ``polopt sft`` subcommand."""
     args = build_parser().parse_intermixed_args(argv)  # before the imports below: --help loads no torch
-    from polopt.encoding import SequenceIds
-    from polopt.sft import build_model, context_needed, encode_examples, read_examples, save_reference, train_sft
-    from polopt.tokenizer import load_tokenizer
+    from polopt.data.encoding import SequenceIds
+    from polopt.data.tokenizer import load_tokenizer
+    from polopt.training.sft import (
+        build_model,
+        context_needed,
+        encode_examples,
+        read_examples,
+        save_reference,
+        train_sft,
+    )
 
     s = settings(args.overrides)
     tokenizer = load_tokenizer(s["tokenizer"])

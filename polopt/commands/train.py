@@ -3,10 +3,10 @@
 This is the one place where configuration meets code: the task is built by
 Hydra's ``_target_`` instantiation (so ``polopt`` never imports ``toy_tasks``
 itself), the loss comes from the registry, the one training loop
-(:func:`polopt.train.optimise`) does the work and :class:`polopt.run_folder.RunFolder`
-writes what it leaves. A task satisfies :class:`polopt.contracts.Task`: ``prepare(loss,
+(:func:`polopt.training.loop.optimise`) does the work and :class:`polopt.training.run_folder.RunFolder`
+writes what it leaves. A task satisfies :class:`polopt.training.contracts.Task`: ``prepare(loss,
 beta=, smoothing=, mode=, n_pairs=, seed=, run_dir=)`` returns a
-:class:`polopt.contracts.Session`.
+:class:`polopt.training.contracts.Session`.
 
 Rerunning the same command with the same ``hydra.run.dir`` resumes from the
 newest good checkpoint in its ``checkpoints/`` folder (``train.resume=false``
@@ -28,18 +28,22 @@ import torch
 from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig, OmegaConf
 
-from polopt import checkpoint, devices, distributed, losses, objectives, sharded_checkpoint
+from polopt.checkpoints import sharded as sharded_checkpoint
+from polopt.checkpoints import store as checkpoint
 from polopt.commands import runs
 from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.commands.errors import Escape
-from polopt.compiling import compile_policy
-from polopt.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu
+from polopt.losses import margin as losses
+from polopt.losses import registry as objectives
+from polopt.losses.reduce import validate_hyperparameters
 from polopt.methods import method_objective
-from polopt.objective import validate_hyperparameters
-from polopt.optim import OptimConfig
-from polopt.run_folder import RunFolder, run_summary
-from polopt.train import MethodObjective, OfflineObjective, TrainSettings, optimise
-from polopt.verdict import reached_line
+from polopt.models.compiling import compile_policy
+from polopt.parallel import devices, distributed
+from polopt.training.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu
+from polopt.training.loop import MethodObjective, OfflineObjective, TrainSettings, optimise
+from polopt.training.optim import OptimConfig
+from polopt.training.run_folder import RunFolder, run_summary
+from polopt.training.verdict import reached_line
 
 # keys that change how a run is kept, not what it computes: a resume may change them
 # (steps: a finished run continues when train.steps is raised; strategy: a sharded checkpoint resumes on ddp)
@@ -49,7 +53,7 @@ _RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every
 
 def build_loss(cfg: DictConfig) -> losses.Loss | objectives.PairObjective:
     """The margin loss or pair objective named by ``loss.name`` with its parameters (every key but
-    name and smoothing); see :mod:`polopt.objectives`."""
+    name and smoothing); see :mod:`polopt.losses.registry`."""
     params = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in ("name", "smoothing")}
     return objectives.resolve(cfg.name, **params)
 

@@ -28,8 +28,8 @@ from polopt.data.read import FORMATS, RawTable, read_table
 from polopt.data.report import histogram, plot_lengths, summary_text, write_rejects
 from polopt.data.rows import FIELDS, REASONS, Columns, Reject
 from polopt.data.spec import DEFAULTS, PairFileSpec
+from polopt.data.tokenizer import load_tokenizer
 from polopt.data.validate import DUPLICATES, TRUNCATION, PairData, check_policies, validate
-from polopt.tokenizer import load_tokenizer
 
 __all__ = ["DUPLICATES", "FIELDS", "FORMATS", "PAIR_FILE_KEYS", "REASONS", "TRUNCATION", "Columns", "PairData",
            "PairFileSpec", "RawTable", "Reject", "histogram", "load_pairs", "load_pairs_from_config", "plot_lengths",

@@ -16,7 +16,7 @@ Rejects go to ``rejects.jsonl`` as they are found, in file order; the accounting
 (:func:`accounting`) keeps ``rows_in = rows_accepted + rows_rejected`` and the keys
 of the in-memory path's. Accepted rows come out of :func:`accepted_chunks` as
 chunks of token lists (prompt ``bos + tokens``, responses ``tokens + eos``), for an
-Arrow writer (:func:`polopt.stream.write_arrow`).
+Arrow writer (:func:`polopt.pairfile.mapped.write_arrow`).
 """
 
 from __future__ import annotations

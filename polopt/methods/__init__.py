@@ -1,6 +1,6 @@
 """Methods beyond the offline losses, chosen by the ``method`` config group.
 
-- ``offline``: the offline losses on a task's pairs (the default path, :class:`polopt.train.OfflineObjective`).
+- ``offline``: the offline losses on a task's pairs (the default path, :class:`polopt.training.loop.OfflineObjective`).
 - ``rl``: KL-regularised REINFORCE (:mod:`polopt.methods.rl`); target pi_ref e^{r / beta}.
 - ``selfplay``: pairs from the current policy (:mod:`polopt.methods.selfplay`); target the
   Nash equilibrium of the regularised preference game at tau = beta / 2.
@@ -10,7 +10,7 @@ Each method talks to a policy through log-probabilities and to a task through a
 :class:`polopt.methods.environment.FiniteEnvironment`; the task computes each
 method's exact target itself, independently of this code. A method is a per-step objective
 ``step(step) -> (scalar to minimise, metrics)``; it trains in the one training loop
-(:func:`polopt.train.optimise`, through :class:`polopt.train.MethodObjective`).
+(:func:`polopt.training.loop.optimise`, through :class:`polopt.training.loop.MethodObjective`).
 """
 
 from __future__ import annotations
@@ -20,14 +20,14 @@ from pathlib import Path
 
 import torch
 
-from polopt.contracts import TrainResult
-from polopt.losses import Loss
+from polopt.losses.margin import Loss
 from polopt.methods.distill import distill_objective
 from polopt.methods.environment import FiniteEnvironment
 from polopt.methods.rl import rl_objective
 from polopt.methods.selfplay import selfplay_objective
-from polopt.optim import OptimConfig
-from polopt.train import MethodObjective, TrainSettings, optimise
+from polopt.training.contracts import TrainResult
+from polopt.training.loop import MethodObjective, TrainSettings, optimise
+from polopt.training.optim import OptimConfig
 
 METHODS = ("offline", "rl", "selfplay", "best_of_n")
 
@@ -54,7 +54,7 @@ def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironme
     if name == "best_of_n":
         return distill_objective(policy, env, target=target, estimator=estimator, n=method.get("n", 4),
                                  n_samples=method.get("n_samples", 4096), generator=generator)
-    raise ValueError("method=offline trains with polopt.train.OfflineObjective, not through polopt.methods")
+    raise ValueError("method=offline trains with polopt.training.loop.OfflineObjective, not through polopt.methods")
 
 
 def train_method(method: dict, policy: torch.nn.Module, env: FiniteEnvironment, *, loss: Loss, beta: float,

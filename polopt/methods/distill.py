@@ -46,7 +46,7 @@ def empirical_distribution(samples: Tensor, n_responses: int) -> Tensor:
 def distill_objective(policy: torch.nn.Module, env: FiniteEnvironment, *, target: Tensor | None = None,
                       estimator: str = "exact", n: int = 4, n_samples: int = 4096,
                       generator: torch.Generator | None = None) -> Callable[[int], tuple[Tensor, dict]]:
-    """The per-step objective of :func:`polopt.train.optimise`: KL(target || pi).
+    """The per-step objective of :func:`polopt.training.loop.optimise`: KL(target || pi).
 
     ``target`` (X, K) is needed for ``exact``; ``sampled`` draws its own data.
     """

@@ -2,7 +2,7 @@
 
 A method never imports a task package. The composition root hands it a
 :class:`FiniteEnvironment` built by the task (for finite tasks:
-``toy_tasks.methods``). Methods reach the policy only through
+``toy_tasks.methods.view``). Methods reach the policy only through
 ``log_distribution()`` (exact expectations over a finite response set) and
 ``logprobs(prompt, response)`` (sampled estimators), and the task only through
 the reference log-probabilities, the rewards and the preference. A sequence task

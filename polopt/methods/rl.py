@@ -49,7 +49,7 @@ def regularised_objective(logp: Tensor, env: FiniteEnvironment, *, beta: float) 
 def rl_objective(policy: torch.nn.Module, env: FiniteEnvironment, *, beta: float, estimator: str = "exact",
                  batch_size: int = 64, generator: torch.Generator | None = None
                  ) -> Callable[[int], tuple[Tensor, dict]]:
-    """The per-step surrogate of :func:`polopt.train.optimise` for KL-regularised REINFORCE."""
+    """The per-step surrogate of :func:`polopt.training.loop.optimise` for KL-regularised REINFORCE."""
     check_estimator(estimator)
     if env.rewards is None:
         env.reward(torch.zeros(1, dtype=torch.long), torch.zeros(1, dtype=torch.long))  # raises the named error

@@ -28,7 +28,7 @@ Two updates (``method.update``):
   optimiser's usual step works at every beta (measured: TV <= 1e-4 for beta from
   0.01 to 1 on the built-in tasks with the default Adam, 2000 steps). The reverse KL
   term keeps the gradient alive on responses the policy has nearly dropped.
-- ``gradient``: the offline objective ``f(beta rho)`` of :mod:`polopt.objective` on
+- ``gradient``: the offline objective ``f(beta rho)`` of :mod:`polopt.losses.reduce` on
   pairs from stopgrad(pi), labelled by P: online IPO when f is the squared loss. Any
   loss of the family; the update for sampled pairs.
 
@@ -46,11 +46,11 @@ from collections.abc import Callable
 
 import torch
 
-from polopt.losses import Loss
+from polopt.losses.margin import Loss
+from polopt.losses.reduce import margins, preference_loss
 from polopt.methods.environment import FiniteEnvironment
 from polopt.methods.rl import check_estimator
-from polopt.objective import margins, preference_loss
-from polopt.pair_set import score_pairs
+from polopt.pairs import score_pairs
 
 Tensor = torch.Tensor
 
@@ -89,7 +89,7 @@ def resolve_update(update: str | None, estimator: str, loss: Loss) -> str:
 def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Loss, *, beta: float,
                        estimator: str = "exact", batch_size: int = 64, update: str | None = None,
                        generator: torch.Generator | None = None) -> Callable[[int], tuple[Tensor, dict]]:
-    """The per-step objective of :func:`polopt.train.optimise` for self-play."""
+    """The per-step objective of :func:`polopt.training.loop.optimise` for self-play."""
     check_estimator(estimator)
     update = resolve_update(update, estimator, loss)
     if env.preference is None:

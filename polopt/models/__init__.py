@@ -1,0 +1,1 @@
+"""Policies and what scores them: tabular, tiny transformer, local causal LMs, log-probs, reference cache, sampling."""

@@ -1,0 +1,1 @@
+"""task=pairs: a preference-pair file trained with a sequence policy, in memory or streamed from disk."""

@@ -1,0 +1,110 @@
+"""``task=pairs``: a preference-pair file trained through the same trainer and run folder.
+
+Owns the task builder :func:`pair_task` (named by ``_target_`` in
+conf/task/pairs.yaml) and :class:`PairSession`, the trainer's interface
+(``pairs``, ``build_policy``, ``evaluate``, ``summarise``, ``table``) for real
+data:
+
+1. the file is read and checked by :mod:`polopt.data` (every row accepted or
+   rejected; the rejects go to ``rejects.jsonl`` in the run folder and the
+   accounting, ``rows_in = rows_accepted + rows_rejected``, into summary.json);
+2. prompts become ``bos + tokens`` and responses ``tokens + eos``
+   (:mod:`polopt.data.encoding`) with the byte tokenizer or a local one
+   (``task.tokenizer``);
+3. the reference is the model of ``task.reference_checkpoint`` (a checkpoint written by
+   ``polopt sft``), or, without one, a copy of the policy's own seeded
+   initialisation; its log-probabilities of every winner and loser are computed
+   once and cached in the run folder (:mod:`polopt.models.reference_cache`);
+4. the policy is a :class:`polopt.models.logprobs.SequencePolicy` over a tiny
+   transformer started at the reference's weights (``model.init=reference``).
+
+Without a reference checkpoint the reference log-probabilities depend on the
+policy's architecture, so they are computed in :meth:`PairSession.build_policy`
+(which ``polopt train`` calls before it reads ``pairs``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+
+from polopt.data import PairFileSpec, read_pair_file, write_rejects
+from polopt.data.encoding import SequenceIds
+from polopt.data.tokenizer import load_tokenizer
+from polopt.losses.margin import Loss
+from polopt.models.reference_cache import FILE_NAME
+from polopt.pairfile.session import REJECTS_FILE, PairSession
+from polopt.pairfile.streamed import prepare_streamed
+from polopt.training.sft import load_reference
+
+Tensor = torch.Tensor
+
+
+@dataclass
+class PairTask:
+    """The ``task=pairs`` config, checked; :meth:`prepare` reads the file."""
+
+    file: PairFileSpec
+    reference: str | None = None
+    cache_reference: bool = True
+    stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairfile.streamed)
+    summary_pairs: int | None = None  # task.summary_pairs (streamed): the summary's statistics over the first N
+
+    def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
+                n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
+        del seed  # the pairs are the file's; the trainer's seed orders the batches
+        if mode != "sampled":
+            raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs, there is no "
+                             f"population to weigh exactly), got {mode!r}")
+        if self.stream:
+            return prepare_streamed(self, loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs, run_dir=run_dir)
+        tokenizer = load_tokenizer(self.file.tokenizer or "byte")
+        data = read_pair_file(self.file, tokenizer=tokenizer)
+        rejects = None
+        if run_dir is not None:
+            rejects = write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
+        if n_pairs is not None:
+            if not isinstance(n_pairs, int) or isinstance(n_pairs, bool) or n_pairs < 1:
+                raise ValueError(f"task.n_pairs must be a positive integer or null (every accepted pair), "
+                                 f"got {n_pairs!r}")
+        if len(data) == 0:
+            raise ValueError(f"task.path {self.file.path!r}: no pair was accepted "
+                             f"({data.accounting['rows_rejected']} rejected; see {rejects or 'polopt data FILE'})")
+        model, meta = (None, None) if self.reference is None else load_reference(self.reference)
+        cache = Path(run_dir) / FILE_NAME if run_dir is not None and self.cache_reference else None
+        session = PairSession(data=data, tokenizer=tokenizer, file_tokenizer=str(self.file.tokenizer),
+                              ids=SequenceIds.for_tokenizer(tokenizer), loss=loss,
+                              beta=beta, smoothing=smoothing, n_pairs=n_pairs, reference_path=self.reference,
+                              reference_model=model, reference_meta=meta, cache=cache, rejects_path=rejects)
+        session.encode()
+        if model is not None:
+            session.check_reference()
+            session.attach_reference(model)
+        return session
+
+    def fit_reward(self, **kwargs):
+        """``polopt reward task=pairs``: a scalar-head reward model (see :mod:`polopt.pairfile.reward`)."""
+        from polopt.pairfile.reward import fit_pair_reward  # builds on the data layer, as this module does
+
+        return fit_pair_reward(self.file, **kwargs)
+
+
+def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
+              max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",
+              tokenizer: str = "byte", hub: bool = False, split: str = "train", reference_checkpoint: str | None = None,
+              cache_reference: bool = True, stream: bool = False, summary_pairs: int | None = None) -> PairTask:
+    """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
+    if path is None:
+        raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
+    file = PairFileSpec(path, format=format, columns=columns, max_length=max_length, truncation=truncation,
+                        duplicates=duplicates, tokenizer=tokenizer, hub=hub, split=split)
+    if not isinstance(stream, bool):
+        raise ValueError(f"task.stream must be true or false, got {stream!r}")
+    if summary_pairs is not None and (not isinstance(summary_pairs, int) or isinstance(summary_pairs, bool)
+                                      or summary_pairs < 1 or not stream):
+        raise ValueError(f"task.summary_pairs must be null (every pair) or a positive integer, with task.stream=true, "
+                         f"got {summary_pairs!r} (task.stream={stream})")
+    return PairTask(file, reference=None if reference_checkpoint in (None, "") else str(reference_checkpoint),
+                    cache_reference=bool(cache_reference), stream=stream, summary_pairs=summary_pairs)

@@ -1,0 +1,1 @@
+"""Several processes: torchrun / DDP, FSDP2 sharding, devices and process-group backends."""

@@ -1,0 +1,1 @@
+"""Finite tasks: responses, reference, sampling and preferences; the task file; a task prepared for a run."""

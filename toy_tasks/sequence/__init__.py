@@ -1,0 +1,1 @@
+"""The enumerable sequence task: its responses, session, policy, methods and reward."""
