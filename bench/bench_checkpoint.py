@@ -13,8 +13,8 @@ import tempfile
 import time
 import uuid
 
+from polopt import losses
 from polopt.checkpoints import store as checkpoint
-from polopt.losses import margin as losses
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
 from toy_tasks.families import contextual
@@ -22,7 +22,7 @@ from toy_tasks.finite.session import prepare
 
 
 def one_run(steps: int, every: int, folder: str) -> tuple[float, int]:
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = prepare(contextual(n_prompts=4, n_responses=8), loss, beta=0.5, mode="sampled", n_pairs=2000)
     policy = session.build_policy()
     run_id, saves = uuid.uuid4().hex, []

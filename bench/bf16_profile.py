@@ -32,7 +32,7 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from bench.share_prompt import invented_pairs, prepare  # noqa: E402
-from polopt.losses import margin as losses  # noqa: E402
+from polopt import losses  # noqa: E402
 from polopt.models.logprobs import shared_pair_logprobs  # noqa: E402
 from polopt.training.loop import TrainSettings, train  # noqa: E402
 from polopt.training.optim import OptimConfig  # noqa: E402
@@ -47,9 +47,10 @@ def profiled_shares(session, policy, precision: str, steps: int) -> dict:
 
     settings = TrainSettings(beta=0.5, steps=steps, seed=0, optim=OptimConfig("adam", 1e-4, schedule="constant"),
                              batch_size=16, progress=False, log_every=1, precision=precision, share_prompt=True)
-    train(copy.deepcopy(policy), session.pairs, losses.get("logistic"), dataclasses.replace(settings, steps=2))  # warm
+    train(copy.deepcopy(policy), session.pairs, losses.resolve_margin("logistic"),
+          dataclasses.replace(settings, steps=2))  # warm
     with profile(activities=[ProfilerActivity.CPU]) as prof:
-        train(copy.deepcopy(policy), session.pairs, losses.get("logistic"), settings)
+        train(copy.deepcopy(policy), session.pairs, losses.resolve_margin("logistic"), settings)
     events = prof.key_averages()
     total = sum(e.self_cpu_time_total for e in events)
     matmul = sum(e.self_cpu_time_total for e in events if e.key in MATMUL)

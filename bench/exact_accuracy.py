@@ -14,7 +14,7 @@ import json
 import numpy as np
 import torch
 
-from polopt.losses import margin as losses
+from polopt import losses
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
 from polopt.training.stopping import FINITE_TASK_TOL
@@ -46,9 +46,9 @@ def main() -> None:
     print(f"{'task':<14} {'loss':<20} {'beta':>5} {'tv_to_optimum':>14} {'rel_loss_gap':>13} {'residual':>9} "
           f"{'steps':>5} {'s':>5}")
     for task in tasks:
-        for name in losses.names():
+        for name in losses.names("margin"):
             for beta in (0.1, 1.0):
-                loss = losses.get(name)
+                loss = losses.resolve_margin(name)
                 session = task.prepare(loss, beta=beta, mode="exact")
                 policy = session.build_policy()
                 result = train(policy, session.pairs, loss,

@@ -84,7 +84,7 @@ def main(argv: list[str] | None = None) -> None:
     sys.path.insert(0, str(ROOT))
     import torch
 
-    from polopt.losses import registry as objectives
+    from polopt import losses
     from toy_tasks.sequence.task import sequence_task
 
     torch.set_num_threads(1)
@@ -95,7 +95,7 @@ def main(argv: list[str] | None = None) -> None:
             options[key] = ast.literal_eval(value)
         except (ValueError, SyntaxError):
             options[key] = value
-    objective = objectives.resolve(args.loss)
+    objective = losses.resolve(args.loss)
     session = sequence_task(**options).prepare(objective, beta=args.beta)
     print(f"{args.loss} beta {args.beta}: {session.task.n_responses} responses per prompt, "
           f"optimum by {session.finite.optimum.method}")

@@ -34,9 +34,9 @@ ROOT = Path(__file__).resolve().parent.parent
 
 def builtin_names() -> list[str]:
     sys.path.insert(0, str(ROOT))
-    from polopt.losses import registry as objectives
+    from polopt import losses
 
-    return objectives.builtin_names()
+    return losses.builtin_names("pair")
 
 
 def run_one(name: str, overrides: list[str], folder: Path) -> dict:
@@ -60,11 +60,11 @@ def fit_optimum(name: str, beta: float, steps: int) -> dict:
     import torch
 
     sys.path.insert(0, str(ROOT))
-    from polopt.losses import registry as objectives
+    from polopt import losses
     from toy_tasks.sequence.task import sequence_task
 
     torch.set_num_threads(1)
-    objective = objectives.resolve(name)
+    objective = losses.resolve(name)
     session = sequence_task().prepare(objective, beta=beta)
     policy = session.build_policy(init="reference")
     start = session.finite.logratios(policy)

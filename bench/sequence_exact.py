@@ -19,8 +19,8 @@ import torch
 from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
+from polopt import losses
 from polopt.commands.config import CONFIG_DIR, build_task
-from polopt.losses import margin as losses
 from polopt.models.logprobs import sequence_logprobs
 from polopt.models.transformer import TinyTransformer
 from polopt.training.loop import TrainSettings, train
@@ -33,7 +33,7 @@ def exact_run(loss_name: str, steps: int, precision: str) -> dict:
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose("config", overrides=["+experiment=sequence", f"loss={loss_name}", f"train.steps={steps}"])
     task = build_task(cfg.task)
-    loss = losses.get(loss_name)
+    loss = losses.resolve_margin(loss_name)
     start = time.perf_counter()
     session = task.prepare(loss, beta=float(cfg.beta), mode="exact")
     prepare_s = time.perf_counter() - start

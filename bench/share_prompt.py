@@ -41,7 +41,7 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from bench.throughput import cpu_features  # noqa: E402
-from polopt.losses import margin as losses  # noqa: E402
+from polopt import losses  # noqa: E402
 from polopt.models.compiling import compile_policy  # noqa: E402
 from polopt.models.logprobs import batched_logprobs, batched_pair_logprobs  # noqa: E402
 from polopt.pairfile.task import pair_task  # noqa: E402
@@ -74,7 +74,7 @@ def invented_pairs(n_pairs: int, seed: int = 0) -> list[dict]:
 
 def prepare(path: Path, width: int, n_pairs: int) -> tuple:
     """The file's session (pairs with reference log-probs) and a policy at the reference's start."""
-    session = pair_task(path=str(path)).prepare(losses.get("logistic"), beta=BETA, run_dir=None)
+    session = pair_task(path=str(path)).prepare(losses.resolve_margin("logistic"), beta=BETA, run_dir=None)
     context = session.context_needed + 1
     policy = session.build_policy(width=width, layers=LAYERS, heads=HEADS, context=context, seed=1)
     return session, policy
@@ -116,10 +116,11 @@ def run(cfg: dict, start_policy, session, *, steps: int, batch: int, seed: int) 
     kwargs = dict(beta=BETA, optim=OptimConfig("adam", 1e-4, schedule="constant"), batch_size=batch,
                   progress=False, log_every=1, precision=cfg["precision"], share_prompt=cfg["share"])
     if "warm" not in cfg:  # kernels, allocator, compilation: once per configuration, untimed
-        train(copy.deepcopy(policy) if not cfg["compile"] else policy, session.pairs, losses.get("logistic"),
+        train(copy.deepcopy(policy) if not cfg["compile"] else policy, session.pairs, losses.resolve_margin("logistic"),
               TrainSettings(steps=2, seed=10**6, **kwargs))
         cfg["warm"] = True
-    result = train(policy, session.pairs, losses.get("logistic"), TrainSettings(steps=steps, seed=seed, **kwargs))
+    result = train(policy, session.pairs, losses.resolve_margin("logistic"),
+                   TrainSettings(steps=steps, seed=seed, **kwargs))
     return {"tokens_per_s": result.final["tokens_per_s"], "step_s": result.seconds / steps,
             "losses": [r["loss"] for r in result.history], "load": os.getloadavg()[0]}
 

@@ -186,7 +186,7 @@ def skewed_policy_and_pairs(mode: str, path: Path, n: int, max_length: int):
 
 
 def train_once(mode: str, path: Path, n: int, steps: int, batch_size: int, data: str, max_length: int) -> dict:
-    from polopt.losses import margin as losses
+    from polopt import losses
     from polopt.training.loop import TrainSettings, train
     from polopt.training.optim import OptimConfig
 
@@ -198,7 +198,7 @@ def train_once(mode: str, path: Path, n: int, steps: int, batch_size: int, data:
         policy, pairs = skewed_policy_and_pairs(mode, path, n, max_length)
     loaded = peak_rss_mib()
     start = time.perf_counter()
-    result = train(policy, pairs, losses.get("logistic"),
+    result = train(policy, pairs, losses.resolve_margin("logistic"),
                    TrainSettings(beta=0.5, steps=steps, optim=OptimConfig("adam", 0.003), batch_size=batch_size,
                                  log_every=steps, progress=False))
     return {"mode": mode, "rows": len(pairs), "peak_rss_mb": peak_rss_mib(), "rss_end_mb": rss_now_mib(),

@@ -57,7 +57,7 @@ if __package__ in (None, ""):
 
 from bench import baseline_loop  # noqa: E402
 from bench.skewed_data import PAD_ID, VOCAB_SIZE, real_token_count, skewed_pairs  # noqa: E402
-from polopt.losses import margin as losses  # noqa: E402
+from polopt import losses  # noqa: E402
 from polopt.losses.reduce import margins, preference_loss  # noqa: E402
 from polopt.models.logprobs import SequencePolicy, batched_logprobs, length_split  # noqa: E402
 from polopt.models.transformer import TinyTransformer  # noqa: E402
@@ -166,7 +166,7 @@ def prepare(cfg: dict) -> dict:
     pairs = PairSet(data["prompt"], data["winner"], data["loser"], ref_w, ref_l, tokens=real_token_count(data))
     kwargs = dict(beta=BETA, optim=OptimConfig("adam", 1e-4, schedule="constant"), batch_size=cfg["batch"],
                   progress=False, log_every=10**9, precision=cfg["precision"], bucketing=cfg["bucketing"])
-    state = {"cfg": cfg, "policy": policy, "pairs": pairs, "loss": losses.get("logistic"), "kwargs": kwargs,
+    state = {"cfg": cfg, "policy": policy, "pairs": pairs, "loss": losses.resolve_margin("logistic"), "kwargs": kwargs,
              "reference_s": reference_s, "weights": weights}
     train(policy, pairs, state["loss"], TrainSettings(steps=3, seed=10**6, **kwargs))  # warm-up: kernels, allocator
     return state

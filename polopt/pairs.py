@@ -26,7 +26,7 @@ class PairSet:
     the real tokens of each pair (prompt with winner plus prompt with loser, no
     padding) for the ``tokens_per_s`` metric, or None; ``len_winner``/``len_loser`` (N,)
     the responses' lengths in tokens, read by pair objectives (None: 1 each; see
-    :mod:`polopt.losses.scores`).
+    :mod:`polopt.losses.pair`).
     """
 
     prompt: Tensor

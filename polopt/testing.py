@@ -21,12 +21,13 @@ from collections.abc import Callable
 
 import torch
 
-from polopt.checks.margin import as_loss, check_population, run_checks
-from polopt.losses.margin import Loss
+from polopt import losses
+from polopt.checks.margin import check_population, run_checks
+from polopt.losses.margin import MarginLoss
 from polopt.training.optim import OptimConfig
 
 
-def assert_reaches_optimum(loss: Loss | str | Callable[[torch.Tensor], torch.Tensor], task, beta: float = 0.5,
+def assert_reaches_optimum(loss: MarginLoss | str | Callable[[torch.Tensor], torch.Tensor], task, beta: float = 0.5,
                            tol: float = 1e-3, *, steps: int = 2000, lr: float = 0.05) -> dict:
     """Train ``loss`` on the finite ``task`` in exact mode (Adam, cosine decay) and assert
     the trained policy is the task's exact optimum: TV <= ``tol`` (a relative loss gap
@@ -38,21 +39,22 @@ def assert_reaches_optimum(loss: Loss | str | Callable[[torch.Tensor], torch.Ten
     :class:`toy_tasks.finite.task.FiniteTask`, e.g. from :mod:`toy_tasks.families`).
     Returns the measured facts (policies, TV, loss gap) for further assertions.
     """
-    result = check_population(as_loss(loss), task, beta=beta, steps=steps, optim=OptimConfig(lr=lr), tol=tol)
+    loss = losses.resolve(loss)
+    result = check_population(loss, task, beta=beta, steps=steps, optim=OptimConfig(lr=lr), tol=tol)
     facts = result.facts
     assert result.status != "fail", (
-        f"{as_loss(loss).name} at beta={beta:g} on {result.name.removeprefix('population:')}: expected the trained "
+        f"{loss.name} at beta={beta:g} on {result.name.removeprefix('population:')}: expected the trained "
         f"policy within tol={tol:g} of the exact optimum {_rounded(facts.get('optimum'))} and margins favouring "
         f"the winners; reached {_rounded(facts.get('policy'))}: {result.reason}")
     return facts
 
 
-def assert_sound_loss(loss: Loss | str | Callable[[torch.Tensor], torch.Tensor], beta: float = 0.5,
+def assert_sound_loss(loss: MarginLoss | str | Callable[[torch.Tensor], torch.Tensor], beta: float = 0.5,
                       **params) -> None:
     """Assert that every check of ``polopt check`` but the population one passes (no
     training; milliseconds): elementwise, finite, f'(0) < 0, per-pair optimum, ...
     Warnings (not convex, a rescaled built-in) do not fail."""
-    report = run_checks(as_loss(loss, **params), beta=beta)
+    report = run_checks(losses.resolve(loss, **params), beta=beta)
     failures = "; ".join(f"{r.name}: {r.reason}" for r in report.failures)
     assert not report.failures, f"{report.loss}: expected every check of polopt check to pass; failed: {failures}"
 

@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from polopt.losses import margin as losses
+from polopt import losses
 from polopt.methods import train_method
 from polopt.training.optim import OptimConfig
 
@@ -22,11 +22,11 @@ def run_method():
     one method trained on a finite task through the same calls as ``polopt train``."""
 
     def run(task, name, *, beta=0.5, steps=1000, lr=0.05, offline_loss="squared", **params):
-        session = task.prepare(losses.get(offline_loss), beta=beta)
+        session = task.prepare(losses.resolve_margin(offline_loss), beta=beta)
         view = session.for_method(name, **params)
         policy = session.build_policy("tabular")
         result = train_method({"name": name, **params}, policy, view.environment(),
-                              loss=losses.get(params.get("loss", "squared")), beta=beta, steps=steps,
+                              loss=losses.resolve_margin(params.get("loss", "squared")), beta=beta, steps=steps,
                               optim=OptimConfig(lr=lr), target=view.target_tensor(), progress=False)
         return view, policy, result
 

@@ -13,7 +13,7 @@ import socket
 import numpy as np
 import torch
 
-from polopt.losses import registry as objectives
+from polopt import losses
 from polopt.parallel import distributed
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
@@ -48,7 +48,7 @@ def free_port() -> int:
 def session_and_policy(setup: str):
     s = SETUPS[setup]
     name, params = s.get("loss", ("logistic", {}))
-    loss = objectives.resolve(name, **params)
+    loss = losses.resolve(name, **params)
     task = bradley_terry(n_responses=5, seed=3)
     if "lengths" in s:
         task = dataclasses.replace(task, lengths=np.array([s["lengths"]]))

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import torch
 
-from polopt.losses import margin as losses
+from polopt import losses
 from polopt.models.tabular import TabularPolicy
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
@@ -41,7 +41,7 @@ class DropoutPolicy(TabularPolicy):
 
 def build(setup: str, loss_name: str = "logistic"):
     s = SETUPS[setup]
-    loss = losses.get(loss_name)
+    loss = losses.resolve_margin(loss_name)
     session = prepare(bradley_terry(n_responses=4, seed=3), loss, beta=0.5, mode=s["mode"], n_pairs=23, seed=1)
     if s["kind"] == "dropout":
         policy = DropoutPolicy(session.build_policy().reference_logprobs, score_scale=2.0)

@@ -133,10 +133,10 @@ def test_full_batch_lbfgs_reaches_the_closed_form_optimum_on_a_small_sequence_ta
     # forward-KL link's closed form f'(pi / pi_ref) = r / beta + c (Wang et al. 2023), which the session's
     # exact optimum is; the transformer started at the reference is 0.40 TV away from it
     from bench.full_batch_lbfgs import minimise
-    from polopt.losses import registry as objectives
+    from polopt import losses
     from toy_tasks.sequence.task import sequence_task
 
-    objective = objectives.resolve("divergence_forward_kl")
+    objective = losses.resolve("divergence_forward_kl")
     session = sequence_task(max_length=2, n_prompts=1).prepare(objective, beta=0.5)
     assert session.finite.optimum.method.startswith("closed form")
     start = session.evaluate(session.build_policy(init="reference"))["tv_to_optimum"]

@@ -123,3 +123,55 @@ def test_the_training_loop_is_imported_only_by_the_modules_that_train():
     assert importers <= TRAIN_IMPORTERS, f"import the types from polopt.training.contracts, polopt.pairs or " \
                                          f"polopt.training.optim instead: {sorted(importers - TRAIN_IMPORTERS)}"
     assert len(importers) <= 5
+
+
+def test_no_function_in_toy_tasks_is_longer_than_80_lines():
+    long = {}
+    for path in sorted((ROOT / "toy_tasks").rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)):
+                lines = node.end_lineno - node.lineno + 1
+                if lines > MAX_FUNCTION_LINES:
+                    long[f"{path.relative_to(ROOT).as_posix()} {node.name}"] = lines
+    assert long == {}, f"functions over {MAX_FUNCTION_LINES} lines: {long}"
+
+
+# The stages, lowest first: a module may import its own stage and the stages below it, never above
+# (DEVELOPERS.md's layout). Tasks build on the library; the demo and the commands compose them.
+STAGES = [
+    ("polopt.losses", "polopt.data", "polopt.checkpoints", "polopt.parallel", "polopt.pairs"),
+    ("polopt.models",),
+    ("polopt.training",),
+    ("polopt.methods", "polopt.checks", "polopt.testing"),
+    ("polopt.pairfile", "toy_tasks"),
+    ("polopt.demo",),
+    ("polopt.commands", "polopt.__main__", "polopt"),
+]
+
+
+def stage_of(module: str) -> int:
+    """The index in :data:`STAGES` of the longest prefix naming ``module``'s package."""
+    best, rank = "", None
+    for k, prefixes in enumerate(STAGES):
+        for prefix in prefixes:
+            if (module == prefix or module.startswith(prefix + ".")) and len(prefix) > len(best):
+                best, rank = prefix, k
+    assert rank is not None, f"{module} belongs to no stage: add its package to STAGES"
+    return rank
+
+
+def test_dependencies_point_one_way_down_the_stages():
+    upward = sorted(f"{a} -> {b}" for a, imported in import_graph().items() for b in imported
+                    if stage_of(b) > stage_of(a))
+    assert upward == [], "imports that run up the stages: " + "; ".join(upward)
+
+
+def test_at_most_five_modules_directly_in_polopt_and_every_package_says_what_it_owns():
+    top = sorted(p.name for p in (ROOT / "polopt").glob("*.py") if p.name != "__init__.py")
+    assert len(top) <= 5, top
+    silent = []
+    for package in PACKAGES:
+        for init in sorted((ROOT / package).rglob("__init__.py")):
+            if not ast.get_docstring(ast.parse(init.read_text(encoding="utf-8"))):
+                silent.append(init.relative_to(ROOT).as_posix())
+    assert silent == [], f"packages without a docstring saying what they own: {silent}"

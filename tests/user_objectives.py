@@ -1,7 +1,7 @@
 """Pair objectives written the way a user writes them, for the exact-optimum tests.
 
 Each is a plain function ``name(pair, beta) -> Tensor`` of per-pair losses (shape (B,)), with
-``pair`` a :class:`polopt.losses.scores.PairScores`. Named by dotted path as
+``pair`` a :class:`polopt.losses.pair.PairScores`. Named by dotted path as
 ``loss=user_objectives:<name>`` (tests/ is on the path in the tests). The divergence members carry
 their ``f'`` as ``ratio_link`` so that the solver can use the closed form of Wang et al. 2023.
 """
@@ -11,7 +11,7 @@ from __future__ import annotations
 import torch
 import torch.nn.functional as F
 
-from polopt.losses.scores import PairScores
+from polopt.losses.pair import PairScores
 
 Tensor = torch.Tensor
 

@@ -43,13 +43,12 @@ import numpy as np
 import scipy.optimize
 import torch
 
+from polopt import losses
 from polopt.checks.pair import run_pair_checks
 from polopt.checks.population import check_population
 from polopt.checks.result import CheckResult, Report, guarded, what_it_tests
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
-from polopt.losses.margin import Loss
-from polopt.losses.registry import PairObjective
+from polopt.losses.margin import MarginLoss
+from polopt.losses.registry import PairLoss
 from polopt.training.optim import OptimConfig
 
 Tensor = torch.Tensor
@@ -73,40 +72,11 @@ NO_SIGNAL_SLOPE = 1e-8  # |f'(0)| below this (relative to max(1, |f''(0)|)) is n
 # ----------------------------------------------------------------------------
 
 
-def as_loss(loss: Loss | PairObjective | str | Callable[..., Tensor], **params) -> Loss | PairObjective:
-    """A :class:`Loss` (margin) or :class:`polopt.losses.registry.PairObjective` from either, a registered
-    name / dotted path, or a bare callable (told apart by its signature: f(x) or f(pair, beta))."""
-    if isinstance(loss, Loss):
-        return losses.get(loss.name, **params) if params else loss
-    if isinstance(loss, PairObjective):
-        return objectives.resolve(loss.name, **params) if params else loss
-    if isinstance(loss, str):
-        return objectives.resolve(loss, **params)
-    if callable(loss):
-        name = getattr(loss, "__name__", type(loss).__name__)
-        if objectives.kind_of(loss, name) == "pair":
-            objective = PairObjective(name, loss, dict(params), "user-supplied")
-            objectives.validate(objective)
-            return objective
-        return Loss(name, loss, dict(params), None, "user-supplied", None)
-    raise TypeError(f"loss must be a polopt Loss, a registered name, a dotted path or a callable f(x), "
-                    f"got {type(loss).__name__}")
+def _builtins() -> list[MarginLoss]:
+    return [losses.resolve_margin(name) for name in losses.builtin_names("margin")]
 
 
-def is_builtin(loss: Loss) -> bool:
-    """A registered member at its default parameters (its own reference in the scale check)."""
-    base = losses._REGISTRY.get(loss.name)
-    return base is not None and base.fn is loss.fn and not loss.params and base.source != "user-supplied"
-
-
-builtin_names = losses.builtin_names  # the registry's own members
-
-
-def _builtins() -> list[Loss]:
-    return [losses.get(name) for name in builtin_names()]
-
-
-def _call(loss: Loss, x: Tensor) -> Tensor:
+def _call(loss: MarginLoss, x: Tensor) -> Tensor:
     """f(x), with a TypeError when f does not return a tensor."""
     out = loss(x)
     if not isinstance(out, Tensor):
@@ -127,11 +97,11 @@ def _fmt(x: float) -> str:
 # ----------------------------------------------------------------------------
 
 
-def check_elementwise(loss: Loss) -> CheckResult:
+def check_elementwise(loss: MarginLoss) -> CheckResult:
     """Same shape out as in, one value per margin, no coupling between margins.
 
     A loss of the family is applied to each scaled margin separately and reduced
-    later (:func:`polopt.losses.reduce.preference_loss`); a mean or a sum inside f
+    later (:func:`polopt.losses.reduce.weighted_mean`); a mean or a sum inside f
     couples the pairs of a batch, so the loss would depend on the batch size.
     """
     name = "elementwise"
@@ -163,7 +133,7 @@ def check_elementwise(loss: Loss) -> CheckResult:
                        "(2, 3, 2) and by the Jacobian)", facts)
 
 
-def check_finite(loss: Loss) -> CheckResult:
+def check_finite(loss: MarginLoss) -> CheckResult:
     """Finite values and gradients at margins up to +-1e4 in float64, float32 and bfloat16."""
     name = "finite"
     bad, dtype_changes = [], []
@@ -198,7 +168,7 @@ def check_finite(loss: Loss) -> CheckResult:
                        "and bfloat16", facts)
 
 
-def check_signal(loss: Loss) -> CheckResult:
+def check_signal(loss: MarginLoss) -> CheckResult:
     """f'(0) < 0: at the reference every margin is 0, so the first gradient step moves
     each winner's log-ratio by -beta f'(0) (times the learning rate) relative to its loser's."""
     name = "signal"
@@ -225,7 +195,7 @@ def check_signal(loss: Loss) -> CheckResult:
 # ----------------------------------------------------------------------------
 
 
-def check_convexity(loss: Loss) -> CheckResult:
+def check_convexity(loss: MarginLoss) -> CheckResult:
     """Midpoint convexity on a grid: f(x - h) - 2 f(x) + f(x + h) >= 0 (up to rounding).
 
     Not convex is a warning, not a failure: the GPO family includes the savage loss.
@@ -261,13 +231,13 @@ def check_convexity(loss: Loss) -> CheckResult:
     return CheckResult(name, "warn", what, facts)
 
 
-def gpo_ratio(loss: Loss) -> float | None:
+def gpo_ratio(loss: MarginLoss) -> float | None:
     """f''(0) / |f'(0)|, the regularisation strength per unit beta (Tang et al. 2024, GPO); None if f'(0) = 0."""
     _, d1, d2 = loss.derivatives_at(0.0)
     return d2 / abs(d1) if d1 != 0 and math.isfinite(d1) and math.isfinite(d2) else None
 
 
-def check_taylor(loss: Loss, *, beta: float) -> CheckResult:
+def check_taylor(loss: MarginLoss, *, beta: float) -> CheckResult:
     """Taylor coefficients at 0 and the equal-regularisation beta of every built-in.
 
     Near 0, beta f(beta rho) ~ f(0) + f'(0) beta rho + f''(0) beta^2 rho^2 / 2; dividing by
@@ -305,14 +275,14 @@ def check_taylor(loss: Loss, *, beta: float) -> CheckResult:
 # ----------------------------------------------------------------------------
 
 
-def flat_interval(loss: Loss, p: float, x: float, *, bound: float = 60.0) -> tuple[float, float]:
+def flat_interval(loss: MarginLoss, p: float, x: float, *, bound: float = 60.0) -> tuple[float, float]:
     """The interval of scaled margins around ``x`` where ``p f(m) + (1 - p) f(-m)`` stays within
     rounding (1e-9 relative) of its value at ``x``, on a grid of step 1e-3; (x, x) when ``x`` is not finite."""
     if not math.isfinite(x):
         return (x, x)
     grid = np.linspace(-bound, bound, 120_001)  # step 1e-3
-    values = loss.pair_objective(grid, p)
-    level = float(loss.pair_objective(x, p))
+    values = loss.expected_pair_loss(grid, p)
+    level = float(loss.expected_pair_loss(x, p))
     flat = values <= level + 1e-9 * max(1.0, abs(level))
     k = int(np.argmin(np.abs(grid - x)))
     if not flat[k]:
@@ -322,28 +292,29 @@ def flat_interval(loss: Loss, p: float, x: float, *, bound: float = 60.0) -> tup
     return (float(grid[lo]), float(grid[hi]))
 
 
-def pair_optimum_curve(loss: Loss, ps: Sequence[float] = CURVE_P) -> np.ndarray:
-    """x*(p) for each p (:meth:`polopt.losses.margin.Loss.pair_optimum`: the member's closed form where it has one)."""
+def pair_optimum_curve(loss: MarginLoss, ps: Sequence[float] = CURVE_P) -> np.ndarray:
+    """x*(p) for each p (:meth:`polopt.losses.margin.MarginLoss.pair_optimum`: the member's closed form where it
+    has one)."""
     return np.array([loss.pair_optimum(float(p)) for p in ps])
 
 
-def check_pair_optimum(loss: Loss) -> CheckResult:
+def check_pair_optimum(loss: MarginLoss) -> CheckResult:
     """See :func:`_check_pair_optimum`; infinite optima make numpy's arithmetic warn harmlessly."""
     with np.errstate(invalid="ignore"):
         return _check_pair_optimum(loss)
 
 
-def _closed_form_problems(loss: Loss, xs: np.ndarray, numeric: np.ndarray) -> list[str]:
+def _closed_form_problems(loss: MarginLoss, xs: np.ndarray, numeric: np.ndarray) -> list[str]:
     """A declared closed form of x*(p) must be a minimiser: no grid point where the numerical one is lower."""
     for p, xc, xn in zip(CURVE_P, xs, numeric, strict=True):
-        vc, vn = float(loss.pair_objective(xc, p)), float(loss.pair_objective(np.clip(xn, -60, 60), p))
+        vc, vn = float(loss.expected_pair_loss(xc, p)), float(loss.expected_pair_loss(np.clip(xn, -60, 60), p))
         if vc > vn + 1e-9 * max(1.0, abs(vn)):
             return [f"the declared closed form gives x*({p:g}) = {xc:.4g}, but x = {xn:.4g} has a "
                     f"lower pair loss ({vn:.6g} < {vc:.6g})"]
     return []
 
 
-def _symmetry_warnings(loss: Loss, xs: np.ndarray, facts: dict) -> list[str]:
+def _symmetry_warnings(loss: MarginLoss, xs: np.ndarray, facts: dict) -> list[str]:
     """x*(1 - p) = -x*(p) where the minimiser is unique; where it breaks, say whether the pair objective is
     flat there (an interval of optimal margins, recorded in ``facts``) or only numerically asymmetric."""
     warnings: list[str] = []
@@ -355,7 +326,7 @@ def _symmetry_warnings(loss: Loss, xs: np.ndarray, facts: dict) -> list[str]:
         lo, hi = flat_interval(loss, float(CURVE_P[k]), xs[k])
         facts["flat_at"] = {"p": float(CURVE_P[k]), "margins": [lo, hi]}
         if hi - lo > 1e-3:
-            level = float(loss.pair_objective(xs[k], CURVE_P[k]))
+            level = float(loss.expected_pair_loss(xs[k], CURVE_P[k]))
             warnings.append(f"the pair objective is flat at p = {CURVE_P[k]:g}: every scaled margin from {lo:.4g} "
                             f"to {hi:.4g} gives the same pair loss {level:.6g}, "
                             "so the optimum is not unique there and such pairs keep whatever margin training gives "
@@ -367,7 +338,7 @@ def _symmetry_warnings(loss: Loss, xs: np.ndarray, facts: dict) -> list[str]:
     return warnings
 
 
-def _check_pair_optimum(loss: Loss) -> CheckResult:
+def _check_pair_optimum(loss: MarginLoss) -> CheckResult:
     """The per-pair optimum x*(p) = argmin_x p f(x) + (1 - p) f(-x) on a grid of p.
 
     Derivable facts for any f: the objective at (1 - p, -x) equals that at (p, x), so
@@ -381,7 +352,7 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
     name = "pair_optimum"
     try:
         xs = pair_optimum_curve(loss)
-        numeric = np.array([losses.numerical_pair_optimum(loss, float(p)) for p in CURVE_P])
+        numeric = np.array([losses.margin.numerical_pair_optimum(loss, float(p)) for p in CURVE_P])
     except Exception as err:
         return _error(name, err)
     facts = {"p": CURVE_P.tolist(), "optimum": xs.tolist()}
@@ -390,7 +361,8 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
         problems += _closed_form_problems(loss, xs, numeric)
     half = int(np.argmin(np.abs(CURVE_P - 0.5)))
     x_half = xs[half]
-    if abs(x_half) > 1e-6 and float(loss.pair_objective(x_half, 0.5)) < float(loss.pair_objective(0.0, 0.5)) - 1e-12:
+    at_zero = float(loss.expected_pair_loss(0.0, 0.5))
+    if abs(x_half) > 1e-6 and float(loss.expected_pair_loss(x_half, 0.5)) < at_zero - 1e-12:
         problems.append(f"x*(1/2) = {_fmt(x_half)} != 0: a pair with no preference still gets a non-zero margin, "
                         "in a direction chosen by where training starts")
     upper = CURVE_P > 0.5
@@ -430,7 +402,7 @@ def _check_pair_optimum(loss: Loss) -> CheckResult:
                        f"{samples} (scaled margins beta * rho)", facts)
 
 
-def check_certainty(loss: Loss) -> CheckResult:
+def check_certainty(loss: MarginLoss) -> CheckResult:
     """Whether a pair preferred with probability 1 has a finite optimal margin."""
     name = "certainty"
     try:
@@ -462,7 +434,7 @@ _FIT_X = torch.linspace(-4.0, 4.0, 161, dtype=torch.float64)  # where f is compa
 _FIT_A = np.concatenate([-np.geomspace(20.0, 0.05, 240), np.geomspace(0.05, 20.0, 240)])
 
 
-def fit_rescaled(loss: Loss, reference: Loss) -> tuple[float, float, float, float]:
+def fit_rescaled(loss: MarginLoss, reference: MarginLoss) -> tuple[float, float, float, float]:
     """The (a, c, k) minimising ||f(x) - c g(a x) - k|| on [-4, 4], and the residual
     relative to the spread of f. c and k are linear least squares for each a; a is
     searched on a grid (both signs) and refined with scipy's bounded scalar minimiser."""
@@ -496,7 +468,7 @@ def fit_rescaled(loss: Loss, reference: Loss) -> tuple[float, float, float, floa
     return a, c, k, res
 
 
-def check_scale(loss: Loss, *, beta: float, tolerance: float = 1e-6) -> CheckResult:
+def check_scale(loss: MarginLoss, *, beta: float, tolerance: float = 1e-6) -> CheckResult:
     """Whether f is a built-in g rescaled: f(x) = c g(a x) + k.
 
     With a > 0 this is g at beta a (margins 1/a times g's at the same beta); c > 0
@@ -507,7 +479,7 @@ def check_scale(loss: Loss, *, beta: float, tolerance: float = 1e-6) -> CheckRes
     matches = []
     try:
         for ref in _builtins():
-            if is_builtin(loss) and ref.name == loss.name:
+            if losses.is_builtin(loss) and ref.name == loss.name:
                 continue
             a, c, k, res = fit_rescaled(loss, ref)
             if res <= tolerance and abs(c) > 1e-9:  # c = 0 would "match" a constant f
@@ -516,7 +488,7 @@ def check_scale(loss: Loss, *, beta: float, tolerance: float = 1e-6) -> CheckRes
         return _error(name, err)
     facts = {"matches": matches}
     if not matches:
-        why = "" if is_builtin(loss) else " (its equivalent beta per built-in is in the taylor check)"
+        why = "" if losses.is_builtin(loss) else " (its equivalent beta per built-in is in the taylor check)"
         return CheckResult(name, "pass", f"not a rescaled built-in{why}", facts)
     m = min(matches, key=lambda m: abs(math.log(abs(m["a"]))) + abs(math.log(abs(m["c"]))))
     g, a, c = m["builtin"], m["a"], m["c"]
@@ -556,7 +528,7 @@ def check_scale(loss: Loss, *, beta: float, tolerance: float = 1e-6) -> CheckRes
 
 
 
-def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
+def run_checks(loss: MarginLoss | PairLoss | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
                steps: int = 2000, optim: OptimConfig | None = None, tol: float = 1e-3,
                progress: bool | None = False, params: dict | None = None, noisy_task=None,
                on_check: Callable[[CheckResult, float], None] | None = None) -> Report:
@@ -571,11 +543,11 @@ def run_checks(loss: Loss | PairObjective | str | Callable[..., Tensor], *, beta
 
     from tqdm.auto import tqdm
 
-    loss = as_loss(loss, **(params or {}))
-    if isinstance(loss, PairObjective) and loss.margin is None:
+    loss = losses.resolve(loss, **(params or {}))
+    if isinstance(loss, PairLoss) and loss.margin is None:
         return run_pair_checks(loss, beta=beta, tasks=tasks, noisy_task=noisy_task, steps=steps, optim=optim,
                                tol=tol)
-    loss = loss.margin if isinstance(loss, PairObjective) else loss
+    loss = loss.margin if isinstance(loss, PairLoss) else loss
     checks: list[tuple[str, Callable[[], CheckResult]]] = [
         ("finite", lambda: check_finite(loss)), ("signal", lambda: check_signal(loss)),
         ("convexity", lambda: check_convexity(loss)), ("taylor", lambda: check_taylor(loss, beta=beta)),

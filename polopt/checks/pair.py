@@ -34,8 +34,9 @@ import torch
 
 from polopt.checks.population import check_population
 from polopt.checks.result import CheckResult, Report, guarded
-from polopt.losses.registry import PairObjective, probe_pair
-from polopt.losses.scores import PairScores
+from polopt.losses.pair import PairLoss, PairScores
+from polopt.losses.reduce import per_pair_losses
+from polopt.losses.registry import probe_pair
 from polopt.training.optim import OptimConfig
 
 Tensor = torch.Tensor
@@ -65,7 +66,7 @@ def _grid_pairs(dtype: torch.dtype, length: float) -> PairScores:
     return PairScores(*grid, n, torch.full_like(n, 7.0))
 
 
-def check_per_pair(objective: PairObjective, *, beta: float) -> CheckResult:
+def check_per_pair(objective: PairLoss, *, beta: float) -> CheckResult:
     """Shape (B,), finite on ordinary pairs, and no coupling between pairs."""
     name = "per_pair"
     pair = probe_pair()
@@ -87,7 +88,7 @@ def check_per_pair(objective: PairObjective, *, beta: float) -> CheckResult:
     return CheckResult(name, "pass", "one loss per pair, shape (B,), the same alone as in a batch", facts)
 
 
-def check_finite_pairs(objective: PairObjective, *, beta: float) -> CheckResult:
+def check_finite_pairs(objective: PairLoss, *, beta: float) -> CheckResult:
     """Finite values and gradients on the extreme grid, lengths 1 and 1000, three dtypes."""
     name = "finite"
     bad = []
@@ -111,7 +112,7 @@ def check_finite_pairs(objective: PairObjective, *, beta: float) -> CheckResult:
                        "1000, in float64, float32 and bfloat16", facts)
 
 
-def check_winner_signal(objective: PairObjective, *, beta: float) -> CheckResult:
+def check_winner_signal(objective: PairLoss, *, beta: float) -> CheckResult:
     """d ell / d log pi(y_w) < 0 at the reference, over reference log-probs and lengths."""
     name = "winner_signal"
     refs = torch.tensor([-0.2, -1.0, -3.0, -8.0], dtype=torch.float64)
@@ -146,7 +147,7 @@ def check_winner_signal(objective: PairObjective, *, beta: float) -> CheckResult
                        f"reference over reference log-probs -0.2..-8 and lengths 1..4{note}", facts)
 
 
-def _balanced_population(objective: PairObjective, reference: Tensor, lengths: Tensor, beta: float):
+def _balanced_population(objective: PairLoss, reference: Tensor, lengths: Tensor, beta: float):
     """``L(z) = sum_{i != j} mu_i mu_j ell(i, j)`` with mu = pi_ref, each ordered pair once (p = 1/2)."""
     k = len(reference)
     i, j = (t.reshape(-1) for t in torch.meshgrid(torch.arange(k), torch.arange(k), indexing="ij"))
@@ -158,12 +159,12 @@ def _balanced_population(objective: PairObjective, reference: Tensor, lengths: T
     def population(z: Tensor) -> Tensor:
         logp = torch.log_softmax(z, dim=0)  # (K,)
         pair = PairScores(logp[i], logp[j], log_ref[i], log_ref[j], lengths[i], lengths[j])
-        return (weight * objective(pair, beta)).sum()
+        return (weight * per_pair_losses(objective, pair, beta=beta)).sum()
 
     return population
 
 
-def check_reference_pull(objective: PairObjective, *, beta: float) -> CheckResult:
+def check_reference_pull(objective: PairLoss, *, beta: float) -> CheckResult:
     """With p = 1/2 everywhere: is pi_ref a strict local minimum of the population objective?
 
     Probed along directions in the logits that change the policy (the basis vectors and 24 seeded
@@ -203,7 +204,7 @@ def check_reference_pull(objective: PairObjective, *, beta: float) -> CheckResul
                        "lengths): the objective pulls towards the reference", facts)
 
 
-def check_noisy_optimum(objective: PairObjective, task, *, beta: float) -> CheckResult:
+def check_noisy_optimum(objective: PairLoss, task, *, beta: float) -> CheckResult:
     """Whether the exact optimum of the population objective on a noisy task is finite."""
     name = "noisy_optimum"
     optimum = exact_optimum(objective, task, beta=beta)
@@ -216,12 +217,12 @@ def check_noisy_optimum(objective: PairObjective, task, *, beta: float) -> Check
                        "towards probability 0", facts)
 
 
-def exact_optimum(objective: PairObjective, task, *, beta: float):
+def exact_optimum(objective: PairLoss, task, *, beta: float):
     """The exact optimum of ``objective`` on a finite ``task`` (exact mode) by the task's own solver."""
     return task.prepare(objective, beta=beta, mode="exact").optimum
 
 
-def run_pair_checks(objective: PairObjective, *, beta: float = 0.5, tasks: Sequence = (), noisy_task=None,
+def run_pair_checks(objective: PairLoss, *, beta: float = 0.5, tasks: Sequence = (), noisy_task=None,
                     steps: int = 2000, optim: OptimConfig | None = None, tol: float = 1e-3) -> Report:
     """Every check of the module docstring for a pair objective; margin-only checks say why they skip."""
     checks: list[tuple[str, Callable[[], CheckResult]]] = [

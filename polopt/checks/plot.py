@@ -21,19 +21,19 @@ import matplotlib.pyplot as plt  # noqa: E402  (after the backend is chosen)
 import numpy as np  # noqa: E402
 import torch  # noqa: E402
 
-from polopt.checks.margin import Report, builtin_names, pair_optimum_curve  # noqa: E402
-from polopt.losses import margin as losses  # noqa: E402
-from polopt.losses.margin import Loss  # noqa: E402
+from polopt import losses  # noqa: E402
+from polopt.checks.margin import Report, pair_optimum_curve  # noqa: E402
+from polopt.losses.margin import MarginLoss  # noqa: E402
 
 _X = np.linspace(-4.0, 4.0, 401)
 _MARGIN_LIMIT = 6.0  # the optimum panel shows scaled margins in [-6, 6]
 
 
-def _builtins() -> list[Loss]:
-    return [losses.get(name) for name in builtin_names()]
+def _builtins() -> list[MarginLoss]:
+    return [losses.resolve_margin(name) for name in losses.builtin_names("margin")]
 
 
-def plot_report(report: Report, loss: Loss, path: str | Path) -> Path:
+def plot_report(report: Report, loss: MarginLoss, path: str | Path) -> Path:
     """Write the three panels of ``report`` for ``loss`` to the PNG ``path``."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)

@@ -10,7 +10,7 @@ import numpy as np
 import torch
 
 from polopt.checks.result import CheckResult
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
 from polopt.losses.reduce import margins
 from polopt.pairs import score_pairs
 from polopt.training.contracts import session_tol
@@ -54,7 +54,7 @@ def _uncertified(summary: dict) -> list[str]:
             "kink it cannot search): the comparison below is with its best answer"]
 
 
-def check_population(loss: Loss, task, *, beta: float, steps: int = 2000, optim: OptimConfig | None = None,
+def check_population(loss: MarginLoss, task, *, beta: float, steps: int = 2000, optim: OptimConfig | None = None,
                      tol: float = 1e-3, name: str | None = None) -> CheckResult:
     """Train ``loss`` on ``task`` in exact mode and compare with the task's exact optimum.
 

@@ -78,6 +78,7 @@ def main(argv: list[str]) -> int:
 
     from omegaconf import OmegaConf
 
+    from polopt import losses
     from polopt.checks import margin as check
     from polopt.losses.reduce import validate_hyperparameters
     from polopt.training.optim import OptimConfig
@@ -87,7 +88,7 @@ def main(argv: list[str]) -> int:
     cfg = config.compose([f"loss={loss_arg}", *args.overrides], command="polopt check")
     config.only_keys(args.overrides, KEYS, "polopt check")
     params = {k: v for k, v in OmegaConf.to_container(cfg.loss, resolve=True).items() if k not in ("name", "smoothing")}
-    loss = check.as_loss(cfg.loss.name, **params)
+    loss = losses.resolve(cfg.loss.name, **params)
     beta, steps = float(cfg.beta), cfg.train.steps
     validate_hyperparameters(beta)
     if not isinstance(steps, int) or steps < 1:

@@ -1,7 +1,7 @@
 """``polopt losses``: list the built-in losses with f'(0), f''(0), convexity and their papers.
 
 The list is :data:`CATALOGUE`, written out so that the command prints at once without loading torch;
-tests/test_commands.py recomputes every row from the registry (:meth:`polopt.losses.margin.Loss.derivatives_at`,
+tests/test_commands.py recomputes every row from the registry (:meth:`polopt.losses.margin.MarginLoss.derivatives_at`,
 autograd) and fails when the two differ, so the catalogue cannot drift from :mod:`polopt.losses.margin`.
 """
 

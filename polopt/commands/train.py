@@ -28,19 +28,18 @@ import torch
 from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig, OmegaConf
 
+from polopt import losses
 from polopt.checkpoints import sharded as sharded_checkpoint
 from polopt.checkpoints import store as checkpoint
 from polopt.commands import runs
 from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.commands.errors import Escape
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
 from polopt.losses.reduce import validate_hyperparameters
 from polopt.methods import method_objective
 from polopt.models.compiling import compile_policy
 from polopt.parallel import devices, distributed
 from polopt.training.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu
-from polopt.training.loop import MethodObjective, OfflineObjective, TrainSettings, optimise
+from polopt.training.loop import MethodBatches, PairBatches, TrainSettings, optimise
 from polopt.training.optim import OptimConfig
 from polopt.training.run_folder import RunFolder, run_summary
 from polopt.training.verdict import reached_line
@@ -51,11 +50,11 @@ _RESUME_FREE_KEYS = ("progress", "resume", "keep_checkpoints", "checkpoint_every
                      "strategy")
 
 
-def build_loss(cfg: DictConfig) -> losses.Loss | objectives.PairObjective:
+def build_loss(cfg: DictConfig) -> losses.MarginLoss | losses.PairLoss:
     """The margin loss or pair objective named by ``loss.name`` with its parameters (every key but
     name and smoothing); see :mod:`polopt.losses.registry`."""
     params = {k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k not in ("name", "smoothing")}
-    return objectives.resolve(cfg.name, **params)
+    return losses.resolve(cfg.name, **params)
 
 
 _MISSING_HINTS = {
@@ -118,7 +117,7 @@ def train_settings(cfg: DictConfig, device: torch.device | str = "cpu", main: bo
                          tol=tol if cfg.train.get("tol") is None else cfg.train.tol)
 
 
-def prepare_session(cfg: DictConfig, run_dir: Path, context: distributed.Context) -> tuple[losses.Loss, Session]:
+def prepare_session(cfg: DictConfig, run_dir: Path, context: distributed.Context) -> tuple[losses.MarginLoss, Session]:
     """The loss and the task's session for this run (rank 0 first: it may write caches in the run folder)."""
     loss = build_loss(cfg.loss)
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
@@ -151,15 +150,16 @@ def method_of(cfg: DictConfig, session: Session, context: distributed.Context,
 
 
 def objective_of(method: dict, view: MethodView | None, session: Session, policy: torch.nn.Module,
-                 loss: losses.Loss, settings: TrainSettings, context: distributed.Context):
+                 loss: losses.MarginLoss, settings: TrainSettings, context: distributed.Context):
     """(the batch objective of this run, the per-step evaluation): the loss on the session's pairs,
     or the method's objective on the view's environment."""
     settings.check()
     if method["name"] == "offline":
-        return OfflineObjective(policy, session.pairs, loss, settings, context), session.evaluate
-    step = method_objective(method, policy, view.environment(), loss=losses.get(method.get("loss", "squared")),
+        return PairBatches(policy, session.pairs, loss, settings, context), session.evaluate
+    loss = losses.resolve_margin(method.get("loss", "squared"))
+    step = method_objective(method, policy, view.environment(), loss=loss,
                             beta=settings.beta, target=view.target_tensor(), seed=settings.seed)
-    return MethodObjective(step, method["name"]), view.evaluate
+    return MethodBatches(step, method["name"]), view.evaluate
 
 
 def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE,

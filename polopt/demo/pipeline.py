@@ -35,12 +35,12 @@ from pathlib import Path
 
 import torch
 
+from polopt import losses
 from polopt.data.encoding import SequenceIds, encode_prompts
 from polopt.data.tokenizer import ByteTokenizer
 from polopt.demo.scenario import PositionBiasedJudge, Scenario
 from polopt.demo.settings import DemoConfig
 from polopt.demo.winrates import ground_truth_win_rate, judged_win_rates
-from polopt.losses import margin as losses
 from polopt.losses.reduce import validate_hyperparameters
 from polopt.models.sampling import kl_estimate, sample_responses
 from polopt.pairfile.task import pair_task
@@ -51,7 +51,7 @@ from polopt.training.sft import build_model, encode_examples, save_reference, tr
 
 
 def check_config(cfg: DemoConfig) -> None:
-    losses.get(cfg.loss)  # an unknown name raises a ValueError listing the registered ones
+    losses.resolve_margin(cfg.loss)  # an unknown name raises a ValueError listing the registered ones
     for b in (cfg.beta, *cfg.betas):
         validate_hyperparameters(b)
     if not 0.0 <= cfg.bias < 1.0:
@@ -157,7 +157,7 @@ def run_demo(cfg: DemoConfig, out: Path, *, progress: bool = True, log=print) ->
     a, _, _ = sample_texts(reference, pair_prompts, tokenizer, ids, cfg, generator, "pair samples")
     b, _, _ = sample_texts(reference, pair_prompts, tokenizer, ids, cfg, generator, "pair samples")
     pairs_path = write_pairs(out / "pairs.jsonl", pair_prompts, a, b, judge, rng)
-    loss = losses.get(cfg.loss)
+    loss = losses.resolve_margin(cfg.loss)
     # a sample cut mid-character decodes to U+FFFD (3 bytes): cut such rare long replies back to the context
     task = pair_task(path=str(pairs_path), reference_checkpoint=str(reference_path), max_length=context - 1,
                      truncation="truncate_response", duplicates="keep")  # repeated samples are data

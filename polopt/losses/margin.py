@@ -1,30 +1,26 @@
-"""The loss family f and its registry.
+"""The margin family: losses f of the scaled margin ``x = beta * rho``, and what a member knows.
 
-Every member is a pure, elementwise function of the *scaled margin*
-``x = beta * rho``, where ``rho`` is the policy/reference log-ratio margin of
-a labelled pair (see :mod:`polopt.losses.reduce`). Losses are unreduced: a tensor
-in, a tensor of the same shape out. Reduction is decided once, in
-:func:`polopt.losses.reduce.preference_loss`.
+Every member is a pure, elementwise function of ``x = beta * rho``, where ``rho`` is the
+policy/reference log-ratio margin of a labelled pair (computed once, in
+:func:`polopt.losses.reduce.margins`). Losses are unreduced: a tensor in, a tensor of the same
+shape out; reduction is decided once, in :func:`polopt.losses.reduce.weighted_mean`.
 
-The generalised family (Tang et al., Generalized Preference Optimization: A
-Unified Approach to Offline Alignment, 2024) writes the offline objective as
-``E f(beta * rho)`` for a scalar function ``f``. The registry below holds its
-published members; users add their own with :func:`register` or name one by a
-dotted path ``pkg.module:name`` (imported only when named, never from config
-data that is executed).
+The generalised family (Tang et al., Generalized Preference Optimization: A Unified Approach to
+Offline Alignment, 2024) writes the offline objective as ``E f(beta * rho)`` for a scalar
+function ``f``. :class:`MarginLoss` binds a member to its parameters and knows its per-pair
+optimum ``x*(p)``; the one registry that names members for ``loss=`` is
+:mod:`polopt.losses.registry`.
 
 Usage::
 
-    from polopt.losses import margin as losses
-    f = losses.get("huber", delta=0.5)
+    from polopt import losses
+    f = losses.resolve("huber", delta=0.5)     # a MarginLoss
     f(torch.tensor([0.0, 2.0]))
-    losses.names()
+    f.pair_optimum(0.8)
 """
 
 from __future__ import annotations
 
-import importlib
-import inspect
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -168,12 +164,12 @@ def _hinge_optimum(p: float) -> float:
 
 
 # ----------------------------------------------------------------------------
-# The registry
+# A member with what optimum analysis needs
 # ----------------------------------------------------------------------------
 
 
 @dataclass(frozen=True)
-class Loss:
+class MarginLoss:
     """A member of the family with what optimum analysis needs.
 
     Attributes:
@@ -210,7 +206,7 @@ class Loss:
             d2 = torch.zeros((), dtype=torch.float64)
         return value.item(), d1.item(), d2.item()
 
-    def pair_objective(self, x: np.ndarray | float, p: float) -> np.ndarray:
+    def expected_pair_loss(self, x: np.ndarray | float, p: float) -> np.ndarray:
         """``p f(x) + (1 - p) f(-x)``: the expected loss of one pair whose first
         response is preferred with probability ``p``, at scaled margin ``x``."""
         t = torch.as_tensor(np.asarray(x, dtype=np.float64))
@@ -233,7 +229,7 @@ class Loss:
         return numerical_pair_optimum(self, p)
 
 
-def numerical_pair_optimum(loss: Loss, p: float, *, bound: float = _PAIR_SEARCH_BOUND) -> float:
+def numerical_pair_optimum(loss: MarginLoss, p: float, *, bound: float = _PAIR_SEARCH_BOUND) -> float:
     """Minimise ``p f(x) + (1 - p) f(-x)`` over ``[-bound, bound]`` with scipy.
 
     A grid first brackets the global minimum (the objective may be non-convex),
@@ -243,7 +239,7 @@ def numerical_pair_optimum(loss: Loss, p: float, *, bound: float = _PAIR_SEARCH_
     flat over the whole grid gives nan (every margin is optimal).
     """
     grid = np.linspace(-bound, bound, 2401)
-    values = loss.pair_objective(grid, p)
+    values = loss.expected_pair_loss(grid, p)
     if np.ptp(values) <= 1e-12 * max(1.0, float(np.abs(values).max())):
         return math.nan
     k = int(np.nanargmin(values))
@@ -253,7 +249,7 @@ def numerical_pair_optimum(loss: Loss, p: float, *, bound: float = _PAIR_SEARCH_
         return -math.inf
     lo, hi = grid[max(k - 1, 0)], grid[min(k + 1, len(grid) - 1)]
     result = scipy.optimize.minimize_scalar(
-        lambda x: float(loss.pair_objective(x, p)), bounds=(lo, hi), method="bounded",
+        lambda x: float(loss.expected_pair_loss(x, p)), bounds=(lo, hi), method="bounded",
         options={"xatol": 1e-10},
     )
     # a flat minimum (hinge at p = 1/2, any x >= 1 at p = 1) is reported at its left edge
@@ -261,7 +257,7 @@ def numerical_pair_optimum(loss: Loss, p: float, *, bound: float = _PAIR_SEARCH_
     return math.copysign(math.inf, x) if _flat_to_rounding(loss, p, x, bound) else x
 
 
-def _flat_to_rounding(loss: Loss, p: float, x: float, bound: float) -> bool:
+def _flat_to_rounding(loss: MarginLoss, p: float, x: float, bound: float) -> bool:
     """Whether a numerical minimiser ``x`` (|x| > 1) only marks where a bounded f (a sigmoid,
     1 - tanh) became flat in floating point, its infimum being approached only at infinity:
     no better at the search bound than at x, and less than 1e-9 lower at x than one unit
@@ -269,105 +265,13 @@ def _flat_to_rounding(loss: Loss, p: float, x: float, bound: float) -> bool:
     if abs(x) <= 1.0:
         return False
     step = math.copysign(1.0, x)
-    value = float(loss.pair_objective(x, p))
-    at_edge, before = float(loss.pair_objective(bound * step, p)), float(loss.pair_objective(x - step, p))
+    value = float(loss.expected_pair_loss(x, p))
+    at_edge, before = float(loss.expected_pair_loss(bound * step, p)), float(loss.expected_pair_loss(x - step, p))
     scale = max(1.0, abs(value))
     return at_edge <= value + 1e-12 * scale and before - value < 1e-9 * scale
 
 
-_REGISTRY: dict[str, Loss] = {}
-
-
-def register(name: str | None = None, *, convex: bool | None = None, source: str = "",
-             closed_form_optimum: Callable[[float], float] | None = None):
-    """Decorator adding an elementwise ``f(x)`` to the registry under ``name``.
-
-    Example::
-
-        @polopt.losses.margin.register("softsquare", convex=True, source="ours")
-        def softsquare(x):
-            return torch.nn.functional.softplus(1 - x) ** 2
-    """
-
-    def decorate(fn: Callable[..., Tensor]) -> Callable[..., Tensor]:
-        key = name or fn.__name__
-        if not callable(fn):
-            raise TypeError(f"register: a loss must be callable, got {type(fn).__name__}")
-        _REGISTRY[key] = Loss(key, fn, {}, convex, source, closed_form_optimum)
-        return fn
-
-    return decorate
-
-
-def names() -> list[str]:
-    """The registered loss names, in registration order."""
-    return list(_REGISTRY)
-
-
-def builtin_names() -> list[str]:
-    """The registry's own members (defined in this module), not users' additions."""
-    return [name for name in names() if _REGISTRY[name].fn.__module__ == __name__]
-
-
-def _import_dotted(path: str) -> Callable[..., Tensor]:
-    module_name, _, attr = path.partition(":")
-    if not module_name or not attr:
-        raise ValueError(f"loss path {path!r} must look like 'pkg.module:name'")
-    try:
-        module = importlib.import_module(module_name)
-    except ImportError as err:
-        raise ValueError(f"loss path {path!r}: cannot import module {module_name!r} ({err}); "
-                         "is it on PYTHONPATH?") from err
-    try:
-        fn = getattr(module, attr)
-    except AttributeError as err:
-        raise ValueError(f"loss path {path!r}: module {module_name!r} has no attribute {attr!r}") from err
-    if not callable(fn):
-        raise TypeError(f"loss path {path!r} names a {type(fn).__name__}, not a callable f(x)")
-    return fn
-
-
-def get(name: str, **params) -> Loss:
-    """The registered loss ``name`` (or a dotted path ``pkg.module:name``) with
-    hyperparameters ``params`` bound, e.g. ``get("huber", delta=0.5)``.
-
-    Raises:
-        ValueError: unknown name (the message lists the known ones) or a
-            parameter the loss does not take.
-    """
-    if not isinstance(name, str) or not name:
-        raise ValueError(f"loss name must be a non-empty string, got {name!r}")
-    if ":" in name:
-        fn = _import_dotted(name)
-        base = _REGISTRY.get(getattr(fn, "__name__", ""))
-        if base is not None and base.fn is fn:  # a registered member named by path
-            loss = base
-        else:
-            loss = Loss(name, fn, {}, None, "user-supplied", None)
-    elif name in _REGISTRY:
-        loss = _REGISTRY[name]
-    else:
-        raise ValueError(f"unknown loss {name!r}; known losses: {', '.join(names())}; "
-                         "or give a dotted path 'pkg.module:name'")
-    if params:
-        accepted = inspect.signature(loss.fn).parameters
-        unknown = [k for k in params if k not in accepted]
-        if unknown:
-            takes = [k for k, p in accepted.items() if p.kind is p.KEYWORD_ONLY] or ["no parameters"]
-            raise ValueError(f"loss {name!r} got unknown parameter(s) {', '.join(unknown)}; "
-                             f"it takes: {', '.join(takes)}")
-        # the closed form of a member holds at its default parameters only
-        loss = Loss(loss.name, loss.fn, dict(params), loss.convex, loss.source,
-                    loss.closed_form_optimum if _defaults_match(loss.fn, params) else None)
-    return loss
-
-
-def _defaults_match(fn: Callable, params: dict) -> bool:
-    sig = inspect.signature(fn).parameters
-    return all(sig[k].default == v for k, v in params.items())
-
-
-def has_finite_pair_optimum_at_certainty(loss: Loss) -> bool:
+def has_finite_pair_optimum_at_certainty(loss: MarginLoss) -> bool:
     """Whether a pair preferred with probability 1 has a finite optimal margin.
 
     False for logistic, exponential and savage: with deterministic labels their
@@ -376,14 +280,9 @@ def has_finite_pair_optimum_at_certainty(loss: Loss) -> bool:
     return math.isfinite(loss.pair_optimum(1.0))
 
 
-_BUILTINS = [
-    (logistic, True, "Rafailov et al. 2023 (DPO)", _logit_optimum),
-    (squared, True, "Azar et al. 2023 (IPO)", _linear_optimum),
-    (hinge, True, "Zhao et al. 2023 (SLiC)", _hinge_optimum),
-    (huber, True, "Huber 1964, on the squared loss", lambda p: (2.0 * p - 1.0) / max(p, 1.0 - p)),
-    (exponential, True, "Tang et al. 2024 (GPO)", _half_logit_optimum),
-    (truncated_quadratic, True, "Tang et al. 2024 (GPO)", _linear_optimum),
-    (savage, False, "Tang et al. 2024 (GPO)", _logit_optimum),
-]
-for _fn, _convex, _source, _optimum in _BUILTINS:
-    register(_fn.__name__, convex=_convex, source=_source, closed_form_optimum=_optimum)(_fn)
+# the closed-form per-pair optimum of each built-in member (DESIGN.md's table), read by the registry
+CLOSED_FORM_OPTIMA = {
+    "logistic": _logit_optimum, "squared": _linear_optimum, "hinge": _hinge_optimum,
+    "huber": lambda p: (2.0 * p - 1.0) / max(p, 1.0 - p), "exponential": _half_logit_optimum,
+    "truncated_quadratic": _linear_optimum, "savage": _logit_optimum,
+}

@@ -1,11 +1,12 @@
-"""The built-in pair objectives: published losses that are not a function of the margin alone.
+"""Pair losses: losses of the whole pair, their argument, and the built-in members.
 
-A pair objective is a plain function ``name(pair, beta, *, params...) -> Tensor`` returning one
-loss per pair, shape (B,), where ``pair`` is a :class:`polopt.losses.scores.PairScores` (policy and
-reference log-probabilities of winner and loser, and their lengths in tokens). Each member below
-is pure and unreduced; reduction (weights, label smoothing) happens once, in
-:mod:`polopt.losses.reduce`. The registry that names them for ``loss=...`` lives in
-:mod:`polopt.losses.registry`.
+A *pair loss* is a plain function ``name(pair, beta, *, params...) -> Tensor`` returning one
+loss per pair, shape (B,), where ``pair`` is a :class:`PairScores` (policy and reference
+log-probabilities of winner and loser, and their lengths in tokens); :class:`PairLoss` binds one
+to its parameters. Every margin loss ``f`` is a pair loss too, ``f(beta * ((winner - ref_winner)
+- (loser - ref_loser)))`` (:func:`as_pair_loss`). Each member below is pure and unreduced;
+reduction (weights, label smoothing) happens once, in :mod:`polopt.losses.reduce`. The registry
+that names them for ``loss=...`` is :mod:`polopt.losses.registry`.
 
 Notation: ``h_w = log pi(y_w) - log pi_ref(y_w)``, ``h_l`` likewise (log-ratios), ``u = pi / pi_ref
 = e^h``, ``n_w, n_l`` the lengths, ``sigma`` the logistic function.
@@ -18,18 +19,21 @@ author's README) or from independent reproductions of the paper's equations (chi
 ORPO, DPO-Positive, R-DPO), two sources wherever two were found. Every formula below matched those
 texts, signs and the place of each constant included, so none was changed; the default parameters
 are the papers' own values where a source gave one (each docstring says which). The derivations that
-fix the signs are kept, and ``tests/test_pair_objectives.py`` pins each member against a value
+fix the signs are kept, and ``tests/losses/test_pair_objectives.py`` pins each member against a value
 computed by hand from the paper's equation.
 """
 
 from __future__ import annotations
 
+import inspect
 import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
 
 import torch
 import torch.nn.functional as F
 
-from polopt.losses.scores import PairScores
+from polopt.losses.margin import MarginLoss
 
 Tensor = torch.Tensor
 
@@ -50,6 +54,114 @@ def _exp_tail(z: Tensor) -> Tensor:
 def _logistic_of(z: Tensor) -> Tensor:
     """``-log sigma(z)``, overflow-safe. (B,) -> (B,)."""
     return F.softplus(-z)  # softplus(-z) = log(1 + e^-z) = -log sigma(z)
+
+
+# ----------------------------------------------------------------------------
+# The argument and the type
+# ----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class PairScores:
+    """The argument every pair loss reads: log-probabilities and lengths of a batch of labelled
+    pairs, each field (B,).
+
+        winner, loser          policy log-probabilities of the whole responses, log pi(y|x)
+        ref_winner, ref_loser  reference log-probabilities, log pi_ref(y|x)
+        len_winner, len_loser  response lengths in tokens (1 for every response of a finite task
+                               whose file gives no lengths)
+    """
+
+    winner: Tensor
+    loser: Tensor
+    ref_winner: Tensor
+    ref_loser: Tensor
+    len_winner: Tensor
+    len_loser: Tensor
+
+    @property
+    def logratio_winner(self) -> Tensor:
+        """``h(x, y_w) = log pi(y_w|x) - log pi_ref(y_w|x)``, (B,)."""
+        return self.winner - self.ref_winner
+
+    @property
+    def logratio_loser(self) -> Tensor:
+        """``h(x, y_l) = log pi(y_l|x) - log pi_ref(y_l|x)``, (B,)."""
+        return self.loser - self.ref_loser
+
+    def swapped(self) -> PairScores:
+        """The pair with winner and loser exchanged, lengths included (the flipped label of smoothing)."""
+        return PairScores(self.loser, self.winner, self.ref_loser, self.ref_winner, self.len_loser,
+                          self.len_winner)
+
+
+@dataclass(frozen=True)
+class PairLoss:
+    """A loss of the whole pair: ``ell(pair, beta, **params) -> (B,)``.
+
+    Attributes:
+        name: registry name or dotted path.
+        fn: the callable ``fn(pair, beta, **params)``.
+        params: keyword parameters bound into ``fn`` (from ``loss.<key>=``).
+        source: the paper (built-ins) or "user-supplied".
+        margin: the margin loss this pair loss is (:func:`as_pair_loss`), else None.
+    """
+
+    name: str
+    fn: Callable[..., Tensor]
+    params: dict = field(default_factory=dict)
+    source: str = ""
+    margin: MarginLoss | None = None
+
+    def __call__(self, pair: PairScores, beta: float) -> Tensor:
+        return self.fn(pair, beta, **self.params)
+
+    def __repr__(self) -> str:
+        extra = "".join(f", {k}={v}" for k, v in self.params.items() if k != "loss")
+        return f"PairLoss({self.name!r}{extra})"
+
+
+def _margin_pair_loss(pair: PairScores, beta: float, *, loss: MarginLoss) -> Tensor:
+    """``f(beta * rho)`` with ``rho = (w - ref_w) - (l - ref_l)``, the same expression (and so the
+    same floating-point result) as :func:`polopt.losses.reduce.margins`. (B,) -> (B,)."""
+    return loss(beta * (pair.logratio_winner - pair.logratio_loser))
+
+
+def as_pair_loss(loss: MarginLoss | PairLoss | Callable[..., Tensor]) -> PairLoss:
+    """Any loss as a :class:`PairLoss`: a pair loss as it is, a margin loss ``f`` as ``f(beta * rho)``
+    (remembering ``f`` in ``margin``), a bare callable by its signature (:func:`kind_of`)."""
+    if isinstance(loss, PairLoss):
+        return loss
+    if not isinstance(loss, MarginLoss):
+        if not callable(loss):
+            raise TypeError(f"expected a polopt MarginLoss, PairLoss or a callable f(x) or f(pair, beta), got "
+                            f"{type(loss).__name__}")
+        name = getattr(loss, "__name__", type(loss).__name__)
+        if kind_of(loss, name) == "pair":
+            return PairLoss(name, loss, {}, "user-supplied")
+        loss = MarginLoss(name, loss, {}, None, "user-supplied")
+    return PairLoss(loss.name, _margin_pair_loss, {"loss": loss}, loss.source, margin=loss)
+
+
+def kind_of(fn: Callable, label: str) -> str:
+    """``"margin"`` for ``f(x)``, ``"pair"`` for ``ell(pair, beta)``, decided by the positional
+    parameters without defaults; a TypeError naming ``label`` for any other signature."""
+    try:
+        parameters = list(inspect.signature(fn).parameters.values())
+    except (TypeError, ValueError):  # a builtin without a signature (torch.exp): one tensor in
+        return "margin"
+    if any(p.kind is p.VAR_POSITIONAL for p in parameters):
+        raise TypeError(f"loss {label!r} takes *args: write f(x) for a margin loss or f(pair, beta) for a pair "
+                        "objective (extra parameters keyword-only, after *)")
+    positional = [p.name for p in parameters if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)
+                  and p.default is p.empty]
+    if len(positional) == 1:
+        return "margin"
+    if len(positional) == 2:
+        return "pair"
+    raise TypeError(f"loss {label!r} takes ({', '.join(positional)}): a loss takes one tensor, f(x) (a margin "
+                    "loss of x = beta * margin), or two arguments, f(pair, beta) (a pair objective returning one "
+                    "loss per pair); extra parameters go after * as keyword-only")
 
 
 # ----------------------------------------------------------------------------

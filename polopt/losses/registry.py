@@ -1,245 +1,256 @@
-"""Naming a training objective: the registry of pair objectives, dotted paths, and the margin adapter.
+"""The one registry of losses: names and dotted paths to a loss, registration, validation.
 
 ``loss=NAME`` (or ``loss=pkg.module:name``) names either
 
-- a *margin loss* ``f(x)`` of :mod:`polopt.losses.margin` (a function of one tensor, the scaled margin
-  ``x = beta * rho``), returned as a :class:`polopt.losses.margin.Loss` so that every analysis of the
+- a *margin loss* ``f(x)`` (:mod:`polopt.losses.margin`: a function of one tensor, the scaled
+  margin ``x = beta * rho``), resolved to a :class:`MarginLoss` so that every analysis of the
   family (closed forms, the per-pair optimum x*(p), ``polopt check``) keeps working; or
-- a *pair objective* ``ell(pair, beta)`` (a function of a :class:`polopt.losses.scores.PairScores`
-  and beta, returning one loss per pair), returned as a :class:`PairObjective`.
+- a *pair loss* ``ell(pair, beta)`` (:mod:`polopt.losses.pair`: a function of a
+  :class:`PairScores` and beta, returning one loss per pair), resolved to a :class:`PairLoss`.
 
-A dotted path is told apart by its signature: one positional parameter is a margin loss, two
-(``pair, beta``) a pair objective; keyword-only parameters are the ``loss.<key>=`` settings (as
-Huber's ``delta``). Anything else is a one-line TypeError. Every margin loss is also a pair
-objective through :func:`from_margin` (``f(beta * ((w - ref_w) - (l - ref_l)))``), so the trainer
-has one objective code path (:func:`polopt.losses.reduce.batch_losses`).
+Both kinds live in one table, told apart by the signature: one positional parameter is a margin
+loss, two (``pair, beta``) a pair loss; keyword-only parameters are the ``loss.<key>=`` settings
+(as Huber's ``delta``). Anything else is a one-line TypeError. :func:`resolve` is the one way from
+a name, a dotted path, a bare callable or a loss to a loss with its parameters bound.
 
 Usage::
 
-    from polopt.losses import registry as objectives
-    objectives.resolve("divergence_alpha", alpha=0.3)      # a PairObjective
-    objectives.resolve("logistic")                          # a Loss (margin)
-    objectives.resolve("team_objectives:my_objective")      # by signature
+    from polopt import losses
+    losses.resolve("divergence_alpha", alpha=0.3)      # a PairLoss
+    losses.resolve("logistic")                          # a MarginLoss
+    losses.resolve("team_losses:my_loss")               # by signature
+    losses.names("margin"), losses.names("pair")
 """
 
 from __future__ import annotations
 
 import functools
+import importlib
 import inspect
 from collections.abc import Callable
-from dataclasses import dataclass, field
 
 import torch
 
-from polopt.losses import margin as losses
-from polopt.losses import pair as pair_objectives
-from polopt.losses.margin import Loss
-from polopt.losses.scores import PairScores
+from polopt.losses import margin, pair
+from polopt.losses.margin import MarginLoss
+from polopt.losses.pair import PairLoss, PairScores, kind_of, winner_nll
+from polopt.losses.reduce import check_values, per_pair_losses
 
 Tensor = torch.Tensor
+KINDS = ("margin", "pair")
 
-
-@dataclass(frozen=True)
-class PairObjective:
-    """A loss of the whole pair: ``ell(pair, beta, **params) -> (B,)``.
-
-    Attributes:
-        name: registry name or dotted path.
-        fn: the callable ``fn(pair, beta, **params)``.
-        params: keyword parameters bound into ``fn`` (from ``loss.<key>=``).
-        source: the paper (built-ins) or "user-supplied".
-        margin: the margin loss this objective wraps (:func:`from_margin`), else None.
-    """
-
-    name: str
-    fn: Callable[..., Tensor]
-    params: dict = field(default_factory=dict)
-    source: str = ""
-    margin: Loss | None = None
-
-    def __call__(self, pair: PairScores, beta: float) -> Tensor:
-        return self.fn(pair, beta, **self.params)
-
-    def __repr__(self) -> str:
-        extra = "".join(f", {k}={v}" for k, v in self.params.items() if k != "loss")
-        return f"PairObjective({self.name!r}{extra})"
-
-
-def _margin_objective(pair: PairScores, beta: float, *, loss: Loss) -> Tensor:
-    """``f(beta * rho)`` with ``rho = (w - ref_w) - (l - ref_l)``, the same expression (and so the
-    same floating-point result) as :func:`polopt.losses.reduce.margins`. (B,) -> (B,)."""
-    return loss(beta * (pair.logratio_winner - pair.logratio_loser))
-
-
-def from_margin(loss: Loss) -> PairObjective:
-    """The margin loss ``loss`` as a pair objective (the adapter of the one objective path)."""
-    return PairObjective(loss.name, _margin_objective, {"loss": loss}, loss.source, margin=loss)
-
-
-def as_objective(loss: Loss | PairObjective) -> PairObjective:
-    """A :class:`PairObjective` for either kind (margin losses through :func:`from_margin`)."""
-    if isinstance(loss, PairObjective):
-        return loss
-    if isinstance(loss, Loss):
-        return from_margin(loss)
-    raise TypeError(f"expected a polopt Loss or PairObjective, got {type(loss).__name__}")
+_REGISTRY: dict[str, MarginLoss | PairLoss] = {}
 
 
 # ----------------------------------------------------------------------------
-# The registry of pair objectives
+# Importing a dotted path
 # ----------------------------------------------------------------------------
 
-_REGISTRY: dict[str, PairObjective] = {}
+
+def import_dotted(path: str) -> Callable[..., Tensor]:
+    """The callable a dotted path ``pkg.module:name`` names (imported only when named)."""
+    module_name, _, attr = path.partition(":")
+    if not module_name or not attr:
+        raise ValueError(f"loss path {path!r} must look like 'pkg.module:name'")
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as err:
+        raise ValueError(f"loss path {path!r}: cannot import module {module_name!r} ({err}); "
+                         "is it on PYTHONPATH?") from err
+    try:
+        fn = getattr(module, attr)
+    except AttributeError as err:
+        raise ValueError(f"loss path {path!r}: module {module_name!r} has no attribute {attr!r}") from err
+    if not callable(fn):
+        raise TypeError(f"loss path {path!r} names a {type(fn).__name__}, not a callable f(x) or f(pair, beta)")
+    return fn
 
 
-def register(name: str | None = None, *, source: str = ""):
-    """Decorator adding a pair objective ``fn(pair, beta, *, params...)`` to the registry.
+# ----------------------------------------------------------------------------
+# Registering and listing
+# ----------------------------------------------------------------------------
+
+
+def _entry(key: str, fn: Callable[..., Tensor], source: str, *, convex: bool | None = None,
+           closed_form_optimum: Callable[[float], float] | None = None) -> MarginLoss | PairLoss:
+    """A registry entry for ``fn``, of the kind its signature says."""
+    if kind_of(fn, key) == "margin":
+        return MarginLoss(key, fn, {}, convex, source, closed_form_optimum)
+    if convex is not None or closed_form_optimum is not None:
+        raise TypeError(f"register: {key!r} is a pair loss; convex and closed_form_optimum describe margin "
+                        "losses f(x) only")
+    return PairLoss(key, fn, {}, source)
+
+
+def register(name: str | None = None, *, source: str = "", convex: bool | None = None,
+             closed_form_optimum: Callable[[float], float] | None = None):
+    """Decorator adding a margin loss ``f(x)`` or a pair loss ``ell(pair, beta)`` (told apart by the
+    signature; parameters keyword-only) to the registry under ``name``.
 
     Example::
 
-        @polopt.losses.registry.register("anchored_squared", source="ours")
+        @polopt.losses.register("softsquare", convex=True, source="ours")
+        def softsquare(x):
+            return torch.nn.functional.softplus(1 - x) ** 2
+
+        @polopt.losses.register("anchored_squared", source="ours")
         def anchored_squared(pair, beta, *, weight=1.0):
             rho = pair.logratio_winner - pair.logratio_loser
             return (beta * rho - 1) ** 2 + weight * torch.relu(-pair.logratio_winner)
     """
 
     def decorate(fn: Callable[..., Tensor]) -> Callable[..., Tensor]:
-        key = name or fn.__name__
-        if kind_of(fn, key) != "pair":
-            raise TypeError(f"register: pair objective {key!r} must take (pair, beta) and keyword-only "
-                            "parameters; an elementwise f(x) goes in polopt.losses.margin.register")
-        if key in losses.names():
-            raise ValueError(f"register: {key!r} is already a margin loss; choose another name")
-        _REGISTRY[key] = PairObjective(key, fn, {}, source)
+        key = name or getattr(fn, "__name__", None)
+        if not callable(fn):
+            raise TypeError(f"register: a loss must be callable, got {type(fn).__name__}")
+        if not key:
+            raise ValueError("register: give the loss a name, register('my_loss')")
+        entry = _entry(key, fn, source, convex=convex, closed_form_optimum=closed_form_optimum)
+        existing = _REGISTRY.get(key)
+        if existing is not None and type(existing) is not type(entry):
+            raise ValueError(f"register: {key!r} is already a {_kind(existing)} loss; choose another name")
+        _REGISTRY[key] = entry
         return fn
 
     return decorate
 
 
-def names() -> list[str]:
-    """The registered pair objectives, in registration order."""
-    return list(_REGISTRY)
+def unregister(name: str) -> None:
+    """Remove ``name`` from the registry (a test's or a notebook's own additions)."""
+    _REGISTRY.pop(name, None)
 
 
-def all_names() -> list[str]:
-    """Every name ``loss=`` takes: the margin losses, then the pair objectives."""
-    return losses.names() + names()
+def _kind(loss: MarginLoss | PairLoss) -> str:
+    return "margin" if isinstance(loss, MarginLoss) else "pair"
 
 
-def kind_of(fn: Callable, label: str) -> str:
-    """``"margin"`` for ``f(x)``, ``"pair"`` for ``ell(pair, beta)``, decided by the positional
-    parameters without defaults; a TypeError naming ``label`` for any other signature."""
-    try:
-        parameters = list(inspect.signature(fn).parameters.values())
-    except (TypeError, ValueError):  # a builtin without a signature (torch.exp): one tensor in
-        return "margin"
-    if any(p.kind is p.VAR_POSITIONAL for p in parameters):
-        raise TypeError(f"loss {label!r} takes *args: write f(x) for a margin loss or f(pair, beta) for a pair "
-                        "objective (extra parameters keyword-only, after *)")
-    positional = [p.name for p in parameters if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)
-                  and p.default is p.empty]
-    if len(positional) == 1:
-        return "margin"
-    if len(positional) == 2:
-        return "pair"
-    raise TypeError(f"loss {label!r} takes ({', '.join(positional)}): a loss takes one tensor, f(x) (a margin "
-                    "loss of x = beta * margin), or two arguments, f(pair, beta) (a pair objective returning one "
-                    "loss per pair); extra parameters go after * as keyword-only")
+def _check_kind(kind: str | None) -> None:
+    if kind is not None and kind not in KINDS:
+        raise ValueError(f"kind must be one of {', '.join(KINDS)} (or None for every loss), got {kind!r}")
 
 
-def resolve(name: str, **params) -> Loss | PairObjective:
-    """The margin loss or pair objective ``name`` (registered, or a dotted path
-    ``pkg.module:name`` told apart by its signature), with ``params`` bound.
-
-    Raises:
-        ValueError: unknown name (the message lists them all), an unknown parameter, or a pair
-            objective that does not return finite losses of shape (B,) on a probe batch.
-        TypeError: a function of neither signature.
-    """
-    if not isinstance(name, str) or not name:
-        raise ValueError(f"loss name must be a non-empty string, got {name!r}")
-    if name in _REGISTRY:
-        objective = _bind(_REGISTRY[name], params)
-    elif ":" in name:
-        fn = losses._import_dotted(name)
-        if kind_of(fn, name) == "margin":
-            return losses.get(name, **params)
-        registered = _REGISTRY.get(getattr(fn, "__name__", ""))
-        base = registered if registered is not None and registered.fn is fn else PairObjective(
-            name, fn, {}, "user-supplied")
-        objective = _bind(base, params)
-    elif name in losses.names():
-        return losses.get(name, **params)
-    else:
-        raise ValueError(f"unknown loss {name!r}; known losses: {', '.join(all_names())}; or give a dotted path "
-                         "'pkg.module:name' to f(x) or f(pair, beta)")
-    validate(objective)
-    return objective
+def names(kind: str | None = None) -> list[str]:
+    """Every registered name ``loss=`` takes, in registration order (margin losses first among the
+    built-ins); ``kind="margin"`` or ``"pair"`` for one kind."""
+    _check_kind(kind)
+    return [key for key, loss in _REGISTRY.items() if kind is None or _kind(loss) == kind]
 
 
-@functools.lru_cache(maxsize=64)
-def resolve_cached(name: str) -> Loss | PairObjective:
-    """:func:`resolve` at default parameters, once per name (for objectives built on others)."""
-    return resolve(name)
+def builtin_names(kind: str | None = None) -> list[str]:
+    """The built-in members (not users' additions), in registration order; ``kind`` as :func:`names`."""
+    return [key for key in names(kind) if _REGISTRY[key].fn is _BUILTIN_FNS.get(key)]
 
 
-def _bind(objective: PairObjective, params: dict) -> PairObjective:
-    if not params:
-        return objective
-    accepted = inspect.signature(objective.fn).parameters
-    unknown = [k for k in params if k not in accepted or accepted[k].kind is not inspect.Parameter.KEYWORD_ONLY]
-    if unknown:
-        takes = [k for k, p in accepted.items() if p.kind is p.KEYWORD_ONLY] or ["no parameters"]
-        raise ValueError(f"loss {objective.name!r} got unknown parameter(s) {', '.join(unknown)}; "
-                         f"it takes: {', '.join(takes)}")
-    return PairObjective(objective.name, objective.fn, {**objective.params, **params}, objective.source,
-                         objective.margin)
+def is_builtin(loss: MarginLoss | PairLoss) -> bool:
+    """A built-in member at its default parameters."""
+    return _BUILTIN_FNS.get(loss.name) is loss.fn and not loss.params
 
 
 # ----------------------------------------------------------------------------
-# Validation: one line for an objective that cannot work
+# Resolving: the one way to a loss
+# ----------------------------------------------------------------------------
+
+
+def resolve(loss: str | MarginLoss | PairLoss | Callable[..., Tensor], **params) -> MarginLoss | PairLoss:
+    """The loss ``loss`` names, with ``params`` bound: a registered name, a dotted path
+    ``pkg.module:name`` or a bare callable (told apart by the signature), or a loss (rebound to
+    ``params`` when given). A pair loss is validated on a probe batch.
+
+    Raises:
+        ValueError: unknown name (the message lists them all), an unknown parameter, or a pair loss
+            that does not return finite losses of shape (B,) on a probe batch.
+        TypeError: a function of neither signature.
+    """
+    if isinstance(loss, MarginLoss | PairLoss):
+        base = loss
+    elif isinstance(loss, str) and loss in _REGISTRY:
+        base = _REGISTRY[loss]
+    elif isinstance(loss, str) and ":" in loss:
+        fn = import_dotted(loss)
+        registered = _REGISTRY.get(getattr(fn, "__name__", ""))
+        base = registered if registered is not None and registered.fn is fn else _entry(loss, fn, "user-supplied")
+    elif isinstance(loss, str) and loss:
+        raise ValueError(f"unknown loss {loss!r}; known losses: {', '.join(names())}; or give a dotted path "
+                         "'pkg.module:name' to f(x) or f(pair, beta)")
+    elif callable(loss) and not isinstance(loss, str):
+        base = _entry(getattr(loss, "__name__", type(loss).__name__), loss, "user-supplied")
+    else:
+        raise ValueError(f"loss must be a registered name, a dotted path 'pkg.module:name', a callable or a "
+                         f"polopt loss, got {loss!r}")
+    bound = _bind(base, params)
+    if isinstance(bound, PairLoss):
+        validate(bound)
+    return bound
+
+
+def resolve_margin(loss: str | MarginLoss | Callable[[Tensor], Tensor], **params) -> MarginLoss:
+    """:func:`resolve` where only a margin loss will do (the methods' losses, the analytic checks):
+    a ValueError naming the pair loss otherwise."""
+    resolved = resolve(loss, **params)
+    if not isinstance(resolved, MarginLoss):
+        raise ValueError(f"{resolved.name!r} is a pair loss; a margin loss f(x) is needed here "
+                         f"(one of {', '.join(names('margin'))}, or a dotted path to f(x))")
+    return resolved
+
+
+@functools.lru_cache(maxsize=64)
+def _resolve_default(name: str) -> MarginLoss | PairLoss:
+    """:func:`resolve` at default parameters, once per name (for losses built on others)."""
+    return resolve(name)
+
+
+def _bind(loss: MarginLoss | PairLoss, params: dict) -> MarginLoss | PairLoss:
+    """``loss`` with ``params`` added to its bound parameters (keyword-only parameters of its function)."""
+    if not params:
+        return loss
+    accepted = inspect.signature(loss.fn).parameters
+    unknown = [k for k in params if k not in accepted or accepted[k].kind is not inspect.Parameter.KEYWORD_ONLY]
+    if unknown:
+        takes = [k for k, p in accepted.items() if p.kind is p.KEYWORD_ONLY] or ["no parameters"]
+        raise ValueError(f"loss {loss.name!r} got unknown parameter(s) {', '.join(unknown)}; "
+                         f"it takes: {', '.join(takes)}")
+    merged = {**loss.params, **params}
+    if isinstance(loss, PairLoss):
+        return PairLoss(loss.name, loss.fn, merged, loss.source, loss.margin)
+    # the closed form of a member holds at its default parameters only
+    defaults = all(accepted[k].default == v for k, v in merged.items())
+    return MarginLoss(loss.name, loss.fn, merged, loss.convex, loss.source,
+                      loss.closed_form_optimum if defaults else None)
+
+
+# ----------------------------------------------------------------------------
+# Validation: one line for a pair loss that cannot work
 # ----------------------------------------------------------------------------
 
 
 def probe_pair(dtype: torch.dtype = torch.float64) -> PairScores:
     """Four ordinary pairs (log-probabilities of probabilities 0.1..0.8, lengths 1..5) on which
-    every sound objective returns finite losses."""
+    every sound loss returns finite values."""
     t = functools.partial(torch.tensor, dtype=dtype)
     return PairScores(winner=t([-1.2, -0.7, -2.0, -0.3]), loser=t([-1.5, -1.1, -0.9, -2.2]),
                       ref_winner=t([-1.0, -1.0, -1.6, -0.5]), ref_loser=t([-1.4, -0.8, -1.2, -2.0]),
                       len_winner=t([1.0, 2.0, 3.0, 5.0]), len_loser=t([2.0, 1.0, 3.0, 4.0]))
 
 
-def check_values(name: str, values, n_pairs: int) -> None:
-    """A ValueError (one line) unless ``values`` is a tensor of shape (n_pairs,)."""
-    if not isinstance(values, torch.Tensor):
-        raise ValueError(f"loss {name!r} returned a {type(values).__name__}; a pair objective must return a "
-                         f"torch tensor of one loss per pair, shape ({n_pairs},)")
-    if tuple(values.shape) != (n_pairs,):
-        raise ValueError(f"loss {name!r} returned shape {tuple(values.shape)} for a batch of {n_pairs} pairs; a "
-                         f"pair objective must return one loss per pair, shape ({n_pairs},), unreduced "
-                         "(polopt averages over pairs)")
-
-
-def validate(objective: PairObjective, beta: float = 0.5) -> None:
-    """Call ``objective`` on :func:`probe_pair`, and on the same pairs at the reference (policy =
+def validate(loss: PairLoss, beta: float = 0.5) -> None:
+    """Call ``loss`` on :func:`probe_pair`, and on the same pairs at the reference (policy =
     reference, where training starts): a ValueError (one line) unless it returns finite losses of
     shape (4,) on both."""
     probe = probe_pair()
     at_reference = PairScores(probe.ref_winner, probe.ref_loser, probe.ref_winner, probe.ref_loser,
                               probe.len_winner, probe.len_loser)
-    for where, pair in (("a probe batch of 4 ordinary pairs", probe),
-                        ("the same 4 pairs at the reference (every log-ratio 0, where training starts)",
-                         at_reference)):
+    for where, scores in (("a probe batch of 4 ordinary pairs", probe),
+                          ("the same 4 pairs at the reference (every log-ratio 0, where training starts)",
+                           at_reference)):
         try:
-            values = objective(pair, beta)
+            values = loss(scores, beta)
         except (ValueError, TypeError):
             raise
         except Exception as err:  # a user's function can fail in any way; say which and where
-            raise ValueError(f"loss {objective.name!r} failed on {where}: {type(err).__name__}: {err}") from err
-        check_values(objective.name, values, len(pair.winner))
+            raise ValueError(f"loss {loss.name!r} failed on {where}: {type(err).__name__}: {err}") from err
+        check_values(loss.name, values, len(scores.winner))
         if not torch.isfinite(values.detach()).all():
-            raise ValueError(f"loss {objective.name!r} returned non-finite values {values.detach().tolist()} on "
+            raise ValueError(f"loss {loss.name!r} returned non-finite values {values.detach().tolist()} on "
                              f"{where}; it must be finite for any log-probabilities and lengths")
 
 
@@ -252,9 +263,9 @@ def plus_winner_nll(pair: PairScores, beta: float, *, base: str = "reference_fre
                     per_token: bool = False) -> Tensor:
     """Any loss plus a supervised term on the winner: ``loss_base(pair) + weight * NLL(y_w)``.
 
-    ``base`` is any registered loss or pair objective (or a dotted path); with the default
-    (the reference-free logistic loss), weight 1 and the whole-sequence NLL this is CPO.
-    ``per_token``: the NLL divided by the winner's length.
+    ``base`` is any registered loss (or a dotted path); with the default (the reference-free
+    logistic loss), weight 1 and the whole-sequence NLL this is CPO. ``per_token``: the NLL
+    divided by the winner's length.
 
     References:
         Xu et al., Contrastive Preference Optimization, 2024 (arXiv 2401.08417). Checked: the CPO
@@ -263,27 +274,33 @@ def plus_winner_nll(pair: PairScores, beta: float, *, base: str = "reference_fre
         and in a README by the paper's first author; see
         :func:`polopt.losses.pair.reference_free_logistic` for L_prefer.
     """
-    supervised = pair_objectives.winner_nll(pair, per_token=per_token)  # (B,)
-    return as_objective(resolve_cached(base))(pair, beta) + weight * supervised
+    supervised = winner_nll(pair, per_token=per_token)  # (B,)
+    return per_pair_losses(_resolve_default(base), pair, beta=beta) + weight * supervised
 
 
+
+# (function, source, convex, closed-form per-pair optimum); convexity and closed forms are margin losses' only
 _BUILTINS = [
-    (pair_objectives.divergence_reverse_kl, "Wang et al. 2023 (f-DPO, reverse KL = DPO)"),
-    (pair_objectives.divergence_forward_kl, "Wang et al. 2023 (f-DPO, forward KL)"),
-    (pair_objectives.divergence_jensen_shannon, "Wang et al. 2023 (f-DPO, Jensen-Shannon)"),
-    (pair_objectives.divergence_alpha, "Wang et al. 2023 (f-DPO, alpha-divergence)"),
-    (pair_objectives.chi_squared_link, "Huang et al. 2024 (chi-PO)"),
-    (pair_objectives.length_normalised_free, "Meng et al. 2024 (SimPO)"),
-    (pair_objectives.length_regularised, "Park et al. 2024 (R-DPO)"),
-    (pair_objectives.winner_anchored, "Pal et al. 2024 (DPO-Positive)"),
-    (pair_objectives.reference_free_logistic, "Xu et al. 2024 (CPO's preference term)"),
-    (plus_winner_nll, "Xu et al. 2024 (CPO: a loss plus the winner's NLL)"),
-    (pair_objectives.odds_ratio_with_nll, "Hong et al. 2024 (ORPO)"),
+    (margin.logistic, "Rafailov et al. 2023 (DPO)", True),
+    (margin.squared, "Azar et al. 2023 (IPO)", True),
+    (margin.hinge, "Zhao et al. 2023 (SLiC)", True),
+    (margin.huber, "Huber 1964, on the squared loss", True),
+    (margin.exponential, "Tang et al. 2024 (GPO)", True),
+    (margin.truncated_quadratic, "Tang et al. 2024 (GPO)", True),
+    (margin.savage, "Tang et al. 2024 (GPO)", False),
+    (pair.divergence_reverse_kl, "Wang et al. 2023 (f-DPO, reverse KL = DPO)", None),
+    (pair.divergence_forward_kl, "Wang et al. 2023 (f-DPO, forward KL)", None),
+    (pair.divergence_jensen_shannon, "Wang et al. 2023 (f-DPO, Jensen-Shannon)", None),
+    (pair.divergence_alpha, "Wang et al. 2023 (f-DPO, alpha-divergence)", None),
+    (pair.chi_squared_link, "Huang et al. 2024 (chi-PO)", None),
+    (pair.length_normalised_free, "Meng et al. 2024 (SimPO)", None),
+    (pair.length_regularised, "Park et al. 2024 (R-DPO)", None),
+    (pair.winner_anchored, "Pal et al. 2024 (DPO-Positive)", None),
+    (pair.reference_free_logistic, "Xu et al. 2024 (CPO's preference term)", None),
+    (plus_winner_nll, "Xu et al. 2024 (CPO: a loss plus the winner's NLL)", None),
+    (pair.odds_ratio_with_nll, "Hong et al. 2024 (ORPO)", None),
 ]
-for _fn, _source in _BUILTINS:
-    register(_fn.__name__, source=_source)(_fn)
-
-
-def builtin_names() -> list[str]:
-    """The built-in pair objectives (not users' additions), in registration order."""
-    return [fn.__name__ for fn, _ in _BUILTINS]
+_BUILTIN_FNS = {fn.__name__: fn for fn, _, _ in _BUILTINS}
+for _fn, _source, _convex in _BUILTINS:
+    register(_fn.__name__, source=_source, convex=_convex,
+             closed_form_optimum=margin.CLOSED_FORM_OPTIMA.get(_fn.__name__))(_fn)

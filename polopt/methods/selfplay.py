@@ -46,8 +46,9 @@ from collections.abc import Callable
 
 import torch
 
-from polopt.losses.margin import Loss
-from polopt.losses.reduce import margins, preference_loss
+from polopt.losses.margin import MarginLoss
+from polopt.losses.pair import PairScores
+from polopt.losses.reduce import margins, per_pair_losses, weighted_mean
 from polopt.methods.environment import FiniteEnvironment
 from polopt.methods.rl import check_estimator
 from polopt.pairs import score_pairs
@@ -71,7 +72,7 @@ def best_response_divergence(log_p: Tensor, log_reference: Tensor, preference: T
     return tau * ((log_p.exp() - best.exp()) * (log_p - best)).sum(-1)
 
 
-def resolve_update(update: str | None, estimator: str, loss: Loss) -> str:
+def resolve_update(update: str | None, estimator: str, loss: MarginLoss) -> str:
     """``method.update``: null picks fixed_point for the exact estimator, gradient for sampled pairs."""
     if update is None:
         return "fixed_point" if estimator == "exact" and loss.name == "squared" else "gradient"
@@ -86,7 +87,7 @@ def resolve_update(update: str | None, estimator: str, loss: Loss) -> str:
     return update
 
 
-def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Loss, *, beta: float,
+def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: MarginLoss, *, beta: float,
                        estimator: str = "exact", batch_size: int = 64, update: str | None = None,
                        generator: torch.Generator | None = None) -> Callable[[int], tuple[Tensor, dict]]:
     """The per-step objective of :func:`polopt.training.loop.optimise` for self-play."""
@@ -114,9 +115,10 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
         with torch.no_grad():
             mu = logp.exp()  # the opponent: a stop-gradient copy of the policy
             weight = env.prompt_weights[x] * mu[x, i] * mu[x, j] * env.preference[x, i, j]  # (E,)
-        rho = margins(logp[x, i], logp[x, j], env.reference[x, i], env.reference[x, j])  # (E,)
+        pair = _finite_pairs(logp[x, i], logp[x, j], env.reference[x, i], env.reference[x, j])  # (E,) each
+        rho = margins(pair.winner, pair.loser, pair.ref_winner, pair.ref_loser)  # (E,)
         margin_mean = float((weight * rho.detach()).sum() / weight.sum())
-        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": margin_mean}
+        return weighted_mean(per_pair_losses(loss, pair, beta=beta), weight), {"margin_mean": margin_mean}
 
     def sampled(step: int) -> tuple[Tensor, dict]:
         prompt, first = env.sample(policy, batch_size, generator)  # (X * B,)
@@ -126,10 +128,19 @@ def selfplay_objective(policy: torch.nn.Module, env: FiniteEnvironment, loss: Lo
                 prompt, first, second)
         winner, loser = torch.where(first_wins, first, second), torch.where(first_wins, second, first)
         logp_w, logp_l = score_pairs(policy.logprobs, prompt, winner, loser)  # (X B,) each
-        rho = margins(logp_w, logp_l, env.reference_logprobs(prompt, winner), env.reference_logprobs(prompt, loser))
+        pair = _finite_pairs(logp_w, logp_l, env.reference_logprobs(prompt, winner),
+                             env.reference_logprobs(prompt, loser))  # (X B,) each
+        rho = margins(pair.winner, pair.loser, pair.ref_winner, pair.ref_loser)  # (X B,)
         weight = env.prompt_weights[prompt]
-        return preference_loss(loss, rho, beta=beta, weights=weight), {"margin_mean": float(rho.detach().mean())}
+        value = weighted_mean(per_pair_losses(loss, pair, beta=beta), weight)
+        return value, {"margin_mean": float(rho.detach().mean())}
 
     if update == "fixed_point":
         return fixed_point
     return exact if estimator == "exact" else sampled
+
+
+def _finite_pairs(winner: Tensor, loser: Tensor, ref_winner: Tensor, ref_loser: Tensor) -> PairScores:
+    """The :class:`PairScores` of finite-task pairs: every response one token long. (B,) each."""
+    ones = torch.ones_like(winner)
+    return PairScores(winner, loser, ref_winner, ref_loser, ones, ones)

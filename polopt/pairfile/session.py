@@ -14,13 +14,14 @@ import torch
 
 from polopt.data import PairData
 from polopt.data.encoding import SequenceIds, encode_prompts, encode_responses
-from polopt.losses.margin import Loss
-from polopt.losses.reduce import batch_losses, batch_statistics, margins, reduce
+from polopt.losses.margin import MarginLoss
+from polopt.losses.reduce import margins, pair_scores, per_pair_losses, weighted_mean
 from polopt.models.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, lengths, real_tokens
 from polopt.models.reference_cache import reference_pair_logprobs
 from polopt.models.transformer import TinyTransformer
 from polopt.pairs import PairSet, score_pairs
 from polopt.training.contracts import TrainResult
+from polopt.training.step import batch_statistics
 
 Tensor = torch.Tensor
 INITS = ("reference", "random")
@@ -37,7 +38,7 @@ class PairSession:
     tokenizer: object
     file_tokenizer: str
     ids: SequenceIds
-    loss: Loss
+    loss: MarginLoss
     beta: float
     smoothing: float
     n_pairs: int | None
@@ -160,8 +161,9 @@ class PairSession:
                 policy.model, prompt, response, pad_id=self.ids.pad, batch_size=256), p.prompt, p.winner, p.loser)
         policy.train(training)
         rho = margins(logp_w, logp_l, p.reference_winner, p.reference_loser)  # (N,)
-        per_pair = batch_losses(self.loss, p, logp_w, logp_l, beta=self.beta, smoothing=self.smoothing)  # (N,)
-        value = reduce(per_pair, p.weight)
+        per_pair = per_pair_losses(self.loss, pair_scores(p, logp_w, logp_l), beta=self.beta,
+                                   smoothing=self.smoothing)  # (N,)
+        value = weighted_mean(per_pair, p.weight)
         return {"loss": float(value), **batch_statistics(rho, logp_w - p.reference_winner,
                                                          logp_l - p.reference_loser, p.weight)}
 

@@ -30,8 +30,8 @@ import torch
 from polopt.data.encoding import SequenceIds
 from polopt.data.stream_pass import StreamPass
 from polopt.data.tokenizer import load_tokenizer
-from polopt.losses.margin import Loss
-from polopt.losses.reduce import margins, pair_losses
+from polopt.losses.margin import MarginLoss
+from polopt.losses.reduce import margins, pair_scores, per_pair_losses
 from polopt.models.logprobs import batched_logprobs
 from polopt.pairfile.mapped import StreamedPairs, write_arrow
 from polopt.pairfile.session import REJECTS_FILE, PairSession
@@ -51,7 +51,7 @@ class StreamedData:
         return self.accounting["rows_written"]
 
 
-def prepare_streamed(task, loss: Loss, *, beta: float, smoothing: float, n_pairs: int | None,
+def prepare_streamed(task, loss: MarginLoss, *, beta: float, smoothing: float, n_pairs: int | None,
                      run_dir: str | Path | None) -> StreamSession:
     """The session of ``task`` (a :class:`polopt.pairfile.task.PairTask` with ``stream``) after the pass."""
     from polopt.training.sft import load_reference
@@ -117,12 +117,12 @@ class StreamSession(PairSession):
 
 
 @torch.no_grad()
-def streamed_statistics(policy, pairs: StreamedPairs, loss: Loss, *, beta: float, smoothing: float,
+def streamed_statistics(policy, pairs: StreamedPairs, loss: MarginLoss, *, beta: float, smoothing: float,
                         chunk: int | None = None, limit: int | None = None) -> dict:
     """Loss, margin, pair accuracy and log-ratios over every pair, ``chunk`` pairs at a time, eval mode:
     the weighted sums of each chunk added up, then divided by the total weight (the same weighted means
-    as :func:`polopt.losses.reduce.preference_loss` and
-    :func:`polopt.training.loop.batch_statistics` over all pairs)."""
+    as :func:`polopt.losses.reduce.weighted_mean` of :func:`polopt.losses.reduce.per_pair_losses` and
+    :func:`polopt.training.step.batch_statistics` over all pairs)."""
     chunk = chunk or STATISTICS_CHUNK
     training = policy.training
     policy.eval()
@@ -139,7 +139,7 @@ def streamed_statistics(policy, pairs: StreamedPairs, loss: Loss, *, beta: float
         logp_w, logp_l = logp.chunk(2)
         rho = margins(logp_w, logp_l, b.reference_winner, b.reference_loser)  # (B,)
         w = torch.ones_like(rho) if b.weight is None else b.weight.to(rho.dtype)  # (B,)
-        values = pair_losses(loss, rho, beta=beta, smoothing=smoothing)  # (B,)
+        values = per_pair_losses(loss, pair_scores(b, logp_w, logp_l), beta=beta, smoothing=smoothing)  # (B,)
         sums += torch.stack([(w * values).sum(), (w * rho).sum(), (w * (rho > 0).to(rho.dtype)).sum(),
                              (w * (logp_w - b.reference_winner)).sum(), (w * (logp_l - b.reference_loser)).sum(),
                              w.sum()]).double()

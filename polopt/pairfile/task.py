@@ -33,7 +33,7 @@ import torch
 from polopt.data import PairFileSpec, read_pair_file, write_rejects
 from polopt.data.encoding import SequenceIds
 from polopt.data.tokenizer import load_tokenizer
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
 from polopt.models.reference_cache import FILE_NAME
 from polopt.pairfile.session import REJECTS_FILE, PairSession
 from polopt.pairfile.streamed import prepare_streamed
@@ -52,7 +52,7 @@ class PairTask:
     stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairfile.streamed)
     summary_pairs: int | None = None  # task.summary_pairs (streamed): the summary's statistics over the first N
 
-    def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
+    def prepare(self, loss: MarginLoss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
                 n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
         del seed  # the pairs are the file's; the trainer's seed orders the batches
         if mode != "sampled":

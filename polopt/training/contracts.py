@@ -16,7 +16,8 @@ from typing import Any, Protocol, runtime_checkable
 
 import torch
 
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
+from polopt.losses.pair import PairLoss
 from polopt.pairs import PairSet
 
 
@@ -57,8 +58,8 @@ class Session(Protocol):
 class Task(Protocol):
     """The object a task's ``_target_`` builds."""
 
-    def prepare(self, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = ..., n_pairs: int | None = None,
-                seed: int = 0, run_dir: str | Path | None = None) -> Session: ...
+    def prepare(self, loss: MarginLoss | PairLoss, *, beta: float, smoothing: float = 0.0, mode: str = ...,
+                n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> Session: ...
 
 
 @runtime_checkable

@@ -1,22 +1,22 @@
 """The training loop: one loop for every path (offline losses on pairs, and the methods).
 
-The loop minimises a *batch objective* over a policy's parameters. An objective hands the
+The loop minimises a loss over a policy's parameters, step by step. A *batch source* hands the
 loop, for each step, a :class:`StepLoss` (the scalar to backpropagate, the loss to report,
-the batch's metrics); :class:`OfflineObjective` is the offline one (a loss of the family on
-a task's :class:`polopt.pairs.PairSet`), :class:`MethodObjective` wraps a method's
+the batch's metrics); :class:`PairBatches` is the offline one (a loss of the family on
+a task's :class:`polopt.pairs.PairSet`), :class:`MethodBatches` wraps a method's
 ``step(step) -> (scalar, metrics)`` (:mod:`polopt.methods`).
 
 One step reads top to bottom (:func:`optimise`):
     1. learning rate (the scheduler), 2. batch, 3. policy log-probs of winners and
-    losers, 4. loss (2-4: the objective), 5. backward, clip, step (or, on a non-finite
+    losers, 4. loss (2-4: the batch source), 5. backward, clip, step (or, on a non-finite
     loss or gradient, stop or skip: ``on_nonfinite``), 6. log, 7. checkpoint (every
     ``checkpoint_every`` steps and at the end; see :mod:`polopt.checkpoints.store`). ``resume``
     continues from a checkpoint's state so that the run ends bit-identical to an
     uninterrupted one.
 
 ``optim=lbfgs`` (torch.optim.LBFGS, strong-Wolfe line search) changes step 5 only: the step is up to
-``optim.iterations`` L-BFGS iterations, and the line search re-evaluates the objective (2-4) through a
-closure, so it takes a fixed objective: the full batch of an offline run on one process. The
+``optim.iterations`` L-BFGS iterations, and the line search re-evaluates the loss (2-4) through a
+closure, so it takes a fixed loss: the full batch of an offline run on one process. The
 evaluation at the step's start is the closure's first.
 """
 
@@ -35,15 +35,15 @@ from pathlib import Path
 import torch
 from tqdm.auto import tqdm
 
+from polopt import losses
 from polopt.checkpoints.store import restore_training_state, training_state
-from polopt.losses import registry as objectives
-from polopt.losses.margin import Loss
-from polopt.losses.reduce import batch_loss, batch_statistics
+from polopt.losses.margin import MarginLoss
 from polopt.pairs import PairSet, score_pairs
 from polopt.parallel import distributed
 from polopt.training.batching import Batcher
 from polopt.training.contracts import TrainResult
 from polopt.training.optim import OptimConfig, make_optimiser
+from polopt.training.step import batch_loss, batch_statistics
 from polopt.training.stopping import Convergence, validate_tol
 
 Tensor = torch.Tensor
@@ -112,9 +112,9 @@ class TrainSettings:
 
 @dataclass
 class StepLoss:
-    """What an objective hands the loop for one step."""
+    """What a batch source hands the loop for one step."""
 
-    objective: Tensor  # scalar to backpropagate (a rank's share under torchrun)
+    share: Tensor  # scalar to backpropagate (a rank's share under torchrun, else the loss itself)
     value: Tensor  # scalar loss to report and to guard against NaN/inf
     statistics: Callable[[], dict]  # the batch's metrics, called on logged steps under no_grad
     report: Callable[[int, str], str]  # (step, problem) -> one line naming the batch, for the guard
@@ -125,10 +125,10 @@ class StepLoss:
 # ----------------------------------------------------------------------------
 
 
-class OfflineObjective:
-    """The offline objective: a loss of the family on batches of ``pairs`` (full or drawn)."""
+class PairBatches:
+    """The offline batch source: a loss of the registry on batches of ``pairs`` (full or drawn)."""
 
-    def __init__(self, policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairObjective,
+    def __init__(self, policy: torch.nn.Module, pairs: PairSet, loss: MarginLoss | losses.PairLoss,
                  settings: TrainSettings,
                  context: distributed.Context = distributed.SINGLE):
         full = settings.batch_size is None or settings.batch_size >= len(pairs)
@@ -198,17 +198,17 @@ class OfflineObjective:
         def report(step: int, problem: str) -> str:
             return nonfinite_report(step, problem, index, batch, parts.per_pair.detach())
 
-        return StepLoss(parts.objective, parts.value, statistics, report)
+        return StepLoss(parts.share, parts.value, statistics, report)
 
 
-class MethodObjective:
-    """A method's ``step(step) -> (scalar, metrics)`` as a batch objective (the method draws
+class MethodBatches:
+    """A method's ``step(step) -> (scalar, metrics)`` as a batch source (the method draws
     its own batches; a method run does not resume)."""
 
     counts_tokens = False
 
-    def __init__(self, step_objective: Callable[[int], tuple[Tensor, dict]], name: str):
-        self.step_objective, self.name = step_objective, name
+    def __init__(self, method_step: Callable[[int], tuple[Tensor, dict]], name: str):
+        self.method_step, self.name = method_step, name
 
     def start(self, generator: torch.Generator) -> None:
         pass
@@ -220,7 +220,7 @@ class MethodObjective:
         raise ValueError(f"method={self.name} runs start over; they do not resume from a checkpoint")
 
     def __call__(self, step: int) -> StepLoss:
-        value, stats = self.step_objective(step)
+        value, stats = self.method_step(step)
         return StepLoss(value, value, lambda: stats, lambda s, problem: f"step {s}: {problem} (method {self.name})")
 
 
@@ -258,17 +258,17 @@ class _Loop:
     stopped: bool = False  # converged on train.tol
 
 
-def _begin(policy, objective, settings: TrainSettings, resume: dict | None) -> _Loop:
+def _begin(policy, batches, settings: TrainSettings, resume: dict | None) -> _Loop:
     """Seed, build the optimiser, draw the first order; restore every piece of state on resume."""
     torch.manual_seed(settings.seed)
     generator = torch.Generator().manual_seed(settings.seed)
     optimiser, scheduler = make_optimiser(policy.parameters(), settings.optim, settings.steps)
-    objective.start(generator)
+    batches.start(generator)
     loop, seconds = _Loop(optimiser, scheduler, generator, convergence=Convergence(settings.tol)), 0.0
     if resume is not None:  # every piece of state the next step reads comes back exactly
         restored = restore_training_state(resume, policy=policy, optimiser=optimiser, scheduler=scheduler,
                                           generator=generator)
-        objective.restore(restored["order"], restored["cursor"])
+        batches.restore(restored["order"], restored["cursor"])
         loop.done, loop.history, loop.skipped = restored["step"], restored["history"], restored["skipped"]
         seconds = restored["seconds"]
         loop.convergence.restore(restored["convergence"])
@@ -286,14 +286,14 @@ def _learning_rate(loop: _Loop) -> float:
 def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings,
             evaluate_again: Callable[[], StepLoss]) -> tuple[str | None, float]:
     """Backward, clip, step; a non-finite loss or gradient never reaches the parameters.
-    ``evaluate_again``: the objective at the current parameters, for L-BFGS's line search.
+    ``evaluate_again``: the loss at the current parameters, for L-BFGS's line search.
     Returns (the problem or None, the gradient norm)."""
     loop.optimiser.zero_grad(set_to_none=True)
     problem, grad_norm = None, math.nan
     if not torch.isfinite(out.value):
         problem = f"the loss is {float(out.value.detach())}"
     else:
-        out.objective.backward()
+        out.share.backward()
         clip = settings.optim.grad_clip if settings.optim.grad_clip else math.inf
         grad_norm = distributed.clip_grad_norm(policy, clip)
         if not math.isfinite(grad_norm):
@@ -311,7 +311,7 @@ def _update(policy, out: StepLoss, loop: _Loop, settings: TrainSettings,
 def _line_search_step(policy, out: StepLoss, optimiser: torch.optim.LBFGS,
                       evaluate_again: Callable[[], StepLoss]) -> str | None:
     """One L-BFGS step: up to ``optim.iterations`` iterations, each with a strong-Wolfe line search that
-    re-evaluates the objective. Its first evaluation is ``out``, whose gradient is already in place.
+    re-evaluates the loss. Its first evaluation is ``out``, whose gradient is already in place.
     Parameters the step left non-finite are put back and the curvature history dropped; the problem
     is returned (None: the step is good)."""
     params = [p for group in optimiser.param_groups for p in group["params"]]
@@ -324,7 +324,7 @@ def _line_search_step(policy, out: StepLoss, optimiser: torch.optim.LBFGS,
         optimiser.zero_grad(set_to_none=True)
         again = evaluate_again()
         if torch.isfinite(again.value):  # a non-finite trial point: the line search backs off from its value
-            again.objective.backward()
+            again.share.backward()
         return again.value.detach()
 
     optimiser.step(closure)
@@ -338,15 +338,15 @@ def _line_search_step(policy, out: StepLoss, optimiser: torch.optim.LBFGS,
 
 
 def line_search_counts(optimiser: torch.optim.Optimizer) -> dict:
-    """L-BFGS's cumulative ``iterations`` and objective ``evaluations`` (empty for other optimisers)."""
+    """L-BFGS's cumulative ``iterations`` and loss ``evaluations`` (empty for other optimisers)."""
     if not isinstance(optimiser, torch.optim.LBFGS):
         return {}
     state = optimiser.state.get(optimiser.param_groups[0]["params"][0], {})
     return {"iterations": int(state.get("n_iter", 0)), "evaluations": int(state.get("func_evals", 0))}
 
 
-def _check_line_search(objective, settings: TrainSettings, context: distributed.Context) -> None:
-    """Refuse optim=lbfgs where its line search would not see one fixed objective."""
+def _check_line_search(batches, settings: TrainSettings, context: distributed.Context) -> None:
+    """Refuse optim=lbfgs where its line search would not see one fixed loss."""
     if settings.optim.name != "lbfgs":
         return
     if settings.precision == "bf16":
@@ -355,12 +355,12 @@ def _check_line_search(objective, settings: TrainSettings, context: distributed.
     if context.active:
         raise ValueError("optim=lbfgs trains on one process: every evaluation of its line search would have "
                          "to run on all of torchrun's processes in step; use optim=adam under torchrun")
-    if isinstance(objective, MethodObjective):
-        raise ValueError(f"method={objective.name} draws new samples every step and optim=lbfgs's line search "
+    if isinstance(batches, MethodBatches):
+        raise ValueError(f"method={batches.name} draws new samples every step and optim=lbfgs's line search "
                          "needs one fixed objective: use optim=adam")
-    if not objective.full_batch:
+    if not batches.full_batch:
         raise ValueError(f"optim=lbfgs's line search needs one fixed objective: set train.batch_size=null "
-                         f"(all {len(objective.pairs)} pairs each step), or use optim=adam for minibatches")
+                         f"(all {len(batches.pairs)} pairs each step), or use optim=adam for minibatches")
 
 
 def _guard(step: int, problem: str, out: StepLoss, loop: _Loop, settings: TrainSettings,
@@ -377,7 +377,7 @@ def _guard(step: int, problem: str, out: StepLoss, loop: _Loop, settings: TrainS
         tqdm.write(f"polopt: warning: skipped {report}", file=sys.stderr)
 
 
-def _record(step: int, lr: float, grad_norm: float, out: StepLoss, loop: _Loop, policy, objective,
+def _record(step: int, lr: float, grad_norm: float, out: StepLoss, loop: _Loop, policy, batches,
             evaluate: Callable | None) -> dict:
     """The logged metrics of a step: loss, learning rate, gradient norm, the batch's statistics,
     the task's evaluation, seconds and token throughput."""
@@ -387,25 +387,25 @@ def _record(step: int, lr: float, grad_norm: float, out: StepLoss, loop: _Loop, 
         if evaluate is not None:
             record.update(evaluate(policy))
     record["seconds"] = time.perf_counter() - loop.start
-    if objective.counts_tokens:
-        record["tokens_per_s"] = objective.tokens_seen / (time.perf_counter() - loop.loop_start)
+    if batches.counts_tokens:
+        record["tokens_per_s"] = batches.tokens_seen / (time.perf_counter() - loop.loop_start)
     return record
 
 
-def _checkpoint(step: int, policy, objective, loop: _Loop, save: Callable[[dict], object], *,
+def _checkpoint(step: int, policy, batches, loop: _Loop, save: Callable[[dict], object], *,
                 sharded: bool = False) -> None:
-    order, cursor = objective.position()
+    order, cursor = batches.position()
     save(training_state(step=step, policy=policy, optimiser=loop.optimiser, scheduler=loop.scheduler,
                         generator=loop.generator, order=order, cursor=cursor, history=loop.history,
                         skipped=loop.skipped, seconds=time.perf_counter() - loop.start, sharded=sharded,
                         convergence={**loop.convergence.state(), **({"stopped": "tol"} if loop.stopped else {})}))
 
 
-def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
+def optimise(policy: torch.nn.Module, batches, settings: TrainSettings, *,
              evaluate: Callable[[torch.nn.Module], dict] | None = None, metrics_path: Path | None = None,
              save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
              context: distributed.Context = distributed.SINGLE) -> TrainResult:
-    """Minimise ``objective`` (an :class:`OfflineObjective` or :class:`MethodObjective`) over the
+    """Minimise the loss ``batches`` hands over (a :class:`PairBatches` or :class:`MethodBatches`) over the
     policy's parameters for ``settings.steps`` steps, or until the loss change and the gradient
     norm have stayed below ``settings.tol`` (:mod:`polopt.training.stopping`; the stopping step is logged
     and checkpointed like the last).
@@ -418,23 +418,23 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
     caller's policy is cast to float64 in place and stays so.
     """
     settings.check()
-    _check_line_search(objective, settings, context)
+    _check_line_search(batches, settings, context)
     if settings.dtype is not None:
         policy.to(settings.dtype)  # before sharding, resuming and building the optimiser
     caller, policy = policy, distributed.shard_for(policy, context, settings.device)  # fsdp: a sharded copy
     if policy is not caller:
-        objective.policy = policy
-    loop = _begin(policy, objective, settings, resume)
+        batches.policy = policy
+    loop = _begin(policy, batches, settings, resume)
     steps = settings.steps
     sink = metrics_path.open("a", encoding="utf-8") if metrics_path is not None else None
     last = loop.done if loop.stopped else steps  # a run that had converged before its checkpoint stays there
-    bar = tqdm(range(loop.done + 1, last + 1), desc=objective.name, disable=not settings.progress, leave=False,
+    bar = tqdm(range(loop.done + 1, last + 1), desc=batches.name, disable=not settings.progress, leave=False,
                initial=loop.done, total=steps)
     try:
         for step in bar:
             lr = _learning_rate(loop)  # 1
-            out = objective(step)  # 2-4
-            problem, grad_norm = _update(policy, out, loop, settings, functools.partial(objective, step))  # 5
+            out = batches(step)  # 2-4
+            problem, grad_norm = _update(policy, out, loop, settings, functools.partial(batches, step))  # 5
             if problem is not None:
                 loop.convergence.skip()
                 _guard(step, problem, out, loop, settings, context)
@@ -442,7 +442,7 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
                 loop.stopped = loop.convergence.update(float(out.value.detach()), grad_norm)
             if problem is None and (step % settings.log_every == 0 or step in (1, steps) or loop.stopped):  # 6
                 with distributed.gathered(policy, caller):  # evaluate reads the caller's policy
-                    record = _record(step, lr, grad_norm, out, loop, caller, objective, evaluate)
+                    record = _record(step, lr, grad_norm, out, loop, caller, batches, evaluate)
                 loop.history.append(record)
                 if sink is not None:
                     sink.write(json.dumps(record) + "\n")
@@ -453,7 +453,7 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
                 bar.set_postfix(postfix, refresh=False)
             if save_checkpoint is not None and (step == steps or loop.stopped or settings.checkpoint_every
                                                 and step % settings.checkpoint_every == 0):  # 7
-                _checkpoint(step, policy, objective, loop, save_checkpoint, sharded=context.sharded)
+                _checkpoint(step, policy, batches, loop, save_checkpoint, sharded=context.sharded)
             loop.done = step
             if loop.stopped:
                 break
@@ -467,14 +467,14 @@ def optimise(policy: torch.nn.Module, objective, settings: TrainSettings, *,
                        stopped="tol" if loop.stopped else "steps")
 
 
-def train(policy: torch.nn.Module, pairs: PairSet, loss: Loss | objectives.PairObjective, settings: TrainSettings, *,
+def train(policy: torch.nn.Module, pairs: PairSet, loss: MarginLoss | losses.PairLoss, settings: TrainSettings, *,
           evaluate: Callable[[torch.nn.Module], dict] | None = None, metrics_path: Path | None = None,
           save_checkpoint: Callable[[dict], object] | None = None, resume: dict | None = None,
           context: distributed.Context = distributed.SINGLE) -> TrainResult:
     """Minimise the preference loss of ``pairs`` over the policy's parameters (:func:`optimise` of
-    an :class:`OfflineObjective`). ``context`` (from :func:`polopt.parallel.distributed.setup`) with several
+    an :class:`PairBatches`). ``context`` (from :func:`polopt.parallel.distributed.setup`) with several
     processes: each rank takes its slice of every global batch and the gradients are averaged."""
     settings.check()
-    objective = OfflineObjective(policy, pairs, loss, settings, context)
-    return optimise(policy, objective, settings, evaluate=evaluate, metrics_path=metrics_path,
+    batches = PairBatches(policy, pairs, loss, settings, context)
+    return optimise(policy, batches, settings, evaluate=evaluate, metrics_path=metrics_path,
                     save_checkpoint=save_checkpoint, resume=resume, context=context)

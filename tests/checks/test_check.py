@@ -18,10 +18,10 @@ import scipy.special
 import torch
 import torch.nn.functional as F
 
+from polopt import losses
 from polopt.checks import margin as check
 from polopt.commands.main import main
-from polopt.losses import margin as losses
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
 from toy_tasks import families
 
 STEPS = 500  # exact mode reaches TV < 1e-3 for every built-in in 500 Adam steps (measured: hinge 3e-4, others < 1e-7)
@@ -91,7 +91,7 @@ def _static(fn, beta=0.5):
 
 
 # the registry's own members (users' registrations, e.g. from other test modules, are not built-ins)
-BUILTINS = check.builtin_names()
+BUILTINS = losses.builtin_names("margin")
 
 
 def test_the_registry_holds_the_published_members():
@@ -184,7 +184,7 @@ def test_non_convex_loss_warns_and_does_not_fail(tasks):
 
 
 def test_declared_convex_but_not_convex_fails():
-    liar = Loss("liar", losses.savage, {}, True, "test", None)
+    liar = MarginLoss("liar", losses.margin.savage, {}, True, "test", None)
     result = check.check_convexity(liar)
     assert result.status == "fail" and result.reason.startswith("declared convex, but not convex")
 
@@ -197,19 +197,19 @@ def test_non_elementwise_losses_fail_and_skip_the_rest(fn, text, tasks):
 
 
 def test_overflow_at_extreme_margins_fails_with_the_margin_and_dtype():
-    result = check.check_finite(check.as_loss(naive_logistic))
+    result = check.check_finite(losses.resolve(naive_logistic))
     assert result.status == "fail" and "not finite at extreme margins" in result.reason
     # e^{100} > 3.4e38, the float32 maximum (IEEE 754), so x = -100 overflows in float32
     assert "at x = -100 (float32)" in result.reason
 
 
 def test_bounded_loss_with_infinite_pair_optimum_fails():
-    result = check.check_pair_optimum(check.as_loss(saturating))
+    result = check.check_pair_optimum(losses.resolve(saturating))
     assert result.status == "fail" and "infinite already at p = 0.52" in result.reason
 
 
 def test_a_wrong_declared_closed_form_fails():
-    wrong = Loss("wrong_form", losses.logistic, {}, True, "test", lambda p: 2.0 * p - 1.0)
+    wrong = MarginLoss("wrong_form", losses.margin.logistic, {}, True, "test", lambda p: 2.0 * p - 1.0)
     result = check.check_pair_optimum(wrong)
     assert result.status == "fail" and "declared closed form" in result.reason
 
@@ -231,9 +231,9 @@ def test_a_new_sound_loss_passes_and_is_not_called_a_rescaled_builtin(tasks):
     ("exponential", lambda p: scipy.special.logit(p) / 2),  # Tang et al. 2024
 ])
 def test_closed_form_pair_optima_match_the_numerical_minimiser(name, formula):
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     for p in (0.1, 0.3, 0.6, 0.75, 0.9):
-        numeric = scipy.optimize.minimize_scalar(lambda x, p=p: float(loss.pair_objective(x, p)),
+        numeric = scipy.optimize.minimize_scalar(lambda x, p=p: float(loss.expected_pair_loss(x, p)),
                                                  bounds=(-20, 20), method="bounded", options={"xatol": 1e-10}).x
         assert numeric == pytest.approx(formula(p), abs=1e-5)
         assert loss.pair_optimum(p) == pytest.approx(formula(p), abs=1e-5)
@@ -241,7 +241,7 @@ def test_closed_form_pair_optima_match_the_numerical_minimiser(name, formula):
 
 def test_taylor_coefficients_and_gpo_ratio():
     # logistic: f'(0) = -sigmoid(0) = -1/2, f''(0) = sigmoid(0)^2 = 1/4 (derived by hand)
-    result = check.check_taylor(losses.get("logistic"), beta=0.5)
+    result = check.check_taylor(losses.resolve_margin("logistic"), beta=0.5)
     assert result.facts["f1"] == pytest.approx(-0.5) and result.facts["f2"] == pytest.approx(0.25)
     assert result.facts["ratio"] == pytest.approx(0.5)
     # squared: f' = 2(x - 1), f'' = 2, ratio 1; so logistic at beta regularises like squared at
@@ -251,8 +251,8 @@ def test_taylor_coefficients_and_gpo_ratio():
 
 
 def test_fit_rescaled_recovers_a_known_rescaling():
-    a, c, k, residual = check.fit_rescaled(check.as_loss(lambda x: 3.0 * F.softplus(-2.0 * x) + 1.0),
-                                           losses.get("logistic"))
+    a, c, k, residual = check.fit_rescaled(losses.resolve(lambda x: 3.0 * F.softplus(-2.0 * x) + 1.0),
+                                           losses.resolve_margin("logistic"))
     assert (a, c, k) == pytest.approx((2.0, 3.0, 1.0), rel=1e-6) and residual < 1e-9
 
 
@@ -343,13 +343,13 @@ def test_cli_user_errors_are_one_line_with_exit_code_2(argv, message, capsys):
 
 def test_a_double_well_loss_manufactures_a_margin_at_p_one_half():
     # (x^2 - 1)^2 - x/2: at p = 1/2 the pair objective is (x^2 - 1)^2, minimised at +-1 (by hand)
-    result = check.check_pair_optimum(check.as_loss(lambda x: (x**2 - 1) ** 2 - 0.5 * x))
+    result = check.check_pair_optimum(losses.resolve(lambda x: (x**2 - 1) ** 2 - 0.5 * x))
     assert result.status == "fail" and "!= 0: a pair with no preference still gets a non-zero margin" in result.reason
     assert abs(result.facts["x_half"]) == pytest.approx(1.0, abs=1e-4)
 
 
 def test_a_curve_that_decreases_in_p_fails():
-    bent = Loss("bent", losses.logistic, {}, True, "test",
+    bent = MarginLoss("bent", losses.margin.logistic, {}, True, "test",
                 lambda p: float(scipy.special.logit(p)) if p < 0.8 else 0.1 * float(scipy.special.logit(p)))
     result = check.check_pair_optimum(bent)
     assert result.status == "fail" and "x*(p) decreases in p (x*(0.78)" in result.reason

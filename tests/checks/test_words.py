@@ -8,7 +8,7 @@ import json
 import pytest
 import torch
 
-from polopt.losses.reduce import batch_statistics
+from polopt.training.step import batch_statistics
 
 
 def test_pair_accuracy_counts_an_exact_tie_as_half():
@@ -53,12 +53,13 @@ def test_the_flat_pair_objective_is_named_with_its_interval():
     """A hinge written by hand (no closed form): at p = 1/2 the pair objective
     (max(0, 1 - x) + max(0, 1 + x)) / 2 equals 1 for every x in [-1, 1] (by hand), so the check must say
     the objective is flat there, with that interval, not print one number twice."""
-    from polopt.checks.margin import as_loss, check_pair_optimum
+    from polopt import losses
+    from polopt.checks.margin import check_pair_optimum
 
     def hand_hinge(x):
         return torch.clamp(1 - x, min=0)
 
-    result = check_pair_optimum(as_loss(hand_hinge))
+    result = check_pair_optimum(losses.resolve(hand_hinge))
     assert result.status == "warn"
     assert result.reason.startswith("the pair objective is flat at p = 0.5: every scaled margin from -1 to 1 "
                                     "gives the same pair loss 1,")

@@ -7,15 +7,9 @@ import sys
 from pathlib import Path
 
 import pytest
+from helpers_cli import polopt
 
 ROOT = Path(__file__).resolve().parents[2]
-
-
-def polopt(*args, cwd=None):
-    env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    env.pop("POLOPT_DEBUG", None)
-    return subprocess.run([sys.executable, "-m", "polopt", *args], capture_output=True, text=True,
-                          cwd=cwd or ROOT, env=env, timeout=300)
 
 
 SUMMARY_FIELDS = {"loss", "beta", "policy", "optimum", "optimum_finite", "tv_to_optimum", "loss_gap", "steps",

@@ -215,23 +215,22 @@ def test_help_and_losses_import_no_torch():
 
 
 def test_the_losses_catalogue_is_the_registry():
-    from polopt.checks.margin import builtin_names
+    from polopt import losses
     from polopt.commands.losses import CATALOGUE
-    from polopt.losses import margin as losses
 
-    assert list(CATALOGUE) == builtin_names()
+    assert list(CATALOGUE) == losses.builtin_names("margin")
     for name, (d1, d2, convex, source) in CATALOGUE.items():
-        loss = losses.get(name)
+        loss = losses.resolve_margin(name)
         _, e1, e2 = loss.derivatives_at(0.0)  # autograd, float64
         assert (d1, d2) == pytest.approx((e1, e2), abs=1e-12) and (convex, source) == (loss.convex, loss.source)
     import inspect
 
+    from polopt import losses
     from polopt.commands.losses import PAIR_CATALOGUE
-    from polopt.losses import registry as objectives
 
     registry = []
-    for name in objectives.names():
-        objective = objectives.resolve(name)
+    for name in losses.names("pair"):
+        objective = losses.resolve(name)
         keys = {k: p.default for k, p in inspect.signature(objective.fn).parameters.items() if p.kind is p.KEYWORD_ONLY}
         registry.append((name, ", ".join(f"{k}={v}" for k, v in keys.items()) or "-", objective.source))
     assert PAIR_CATALOGUE == registry

@@ -22,11 +22,12 @@ import numpy as np
 import pytest
 import torch
 from helpers_fuzz import FUZZ, assert_loads_or_one_line_error, json_values, junk_bytes, scalars
+from helpers_losses import loss_of_margins
 from hypothesis import given
 from hypothesis import strategies as st
 
-from polopt.losses import margin as losses
-from polopt.losses.reduce import margins, preference_loss
+from polopt import losses
+from polopt.losses.reduce import margins
 from toy_tasks.finite.task import FiniteTask, load_task, task_from_dict
 
 DTYPES = [torch.float32, torch.bfloat16]
@@ -38,15 +39,15 @@ betas = st.floats(-4.0, 4.0).map(lambda e: 10.0**e)  # log-uniform over [1e-4, 1
 
 
 @pytest.mark.parametrize("dtype", DTYPES, ids=str)
-@pytest.mark.parametrize("name", losses.names())
+@pytest.mark.parametrize("name", losses.names("margin"))
 @FUZZ
 @given(rho=margin_values, beta=betas, smoothing=st.sampled_from([0.0, 0.1, 0.49]),
        weighted=st.booleans(), seed=st.integers(0, 2**16))
 def test_loss_and_gradient_are_finite_at_extreme_margins(name, dtype, rho, beta, smoothing, weighted, seed):
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     r = torch.tensor(rho, dtype=dtype, requires_grad=True)  # (B,)
     weights = torch.rand(len(rho), generator=torch.Generator().manual_seed(seed)) + 1e-3 if weighted else None
-    value = preference_loss(loss, r, beta=beta, smoothing=smoothing, weights=weights)
+    value = loss_of_margins(loss, r, beta=beta, smoothing=smoothing, weights=weights)
     (grad,) = torch.autograd.grad(value, r)
     assert torch.isfinite(value), (name, dtype, beta, rho)
     assert torch.isfinite(grad).all(), (name, dtype, beta, rho, grad)
@@ -56,7 +57,7 @@ logprob_values = st.lists(st.floats(-1e4, 0.0), min_size=4, max_size=4)
 
 
 @pytest.mark.parametrize("dtype", DTYPES, ids=str)
-@pytest.mark.parametrize("name", losses.names())
+@pytest.mark.parametrize("name", losses.names("margin"))
 @FUZZ
 @given(columns=st.lists(logprob_values, min_size=1, max_size=8), beta=betas)
 def test_objective_from_extreme_log_probabilities(name, dtype, columns, beta):
@@ -64,7 +65,7 @@ def test_objective_from_extreme_log_probabilities(name, dtype, columns, beta):
     pw, pl, rw, rl = (torch.tensor(c, dtype=dtype) for c in zip(*columns, strict=True))  # four (B,)
     pw.requires_grad_(True)
     pl.requires_grad_(True)
-    value = preference_loss(losses.get(name), margins(pw, pl, rw, rl), beta=beta)
+    value = loss_of_margins(losses.resolve_margin(name), margins(pw, pl, rw, rl), beta=beta)
     grads = torch.autograd.grad(value, [pw, pl])
     assert torch.isfinite(value) and all(torch.isfinite(g).all() for g in grads)
 

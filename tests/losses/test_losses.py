@@ -14,9 +14,9 @@ import scipy.special
 import torch
 import torch.nn.functional as F
 
-from polopt.losses import margin as losses
+from polopt import losses
 
-BUILTINS = losses.builtin_names()
+BUILTINS = losses.builtin_names("margin")
 
 # Independent float64 evaluations of each member's formula (DESIGN.md's table).
 REFERENCE = {
@@ -36,13 +36,13 @@ def test_every_builtin_has_an_independent_formula_and_the_table_is_complete():
     # the seven members of DESIGN.md's table, and nothing registered without a reference formula
     assert {"logistic", "squared", "hinge", "huber", "exponential", "truncated_quadratic", "savage"} <= set(BUILTINS)
     assert set(REFERENCE) == set(BUILTINS)
-    with_closed_form = {n for n in BUILTINS if losses.get(n).closed_form_optimum is not None}
+    with_closed_form = {n for n in BUILTINS if losses.resolve_margin(n).closed_form_optimum is not None}
     assert set(PAIR_OPTIMA) | {"hinge"} == with_closed_form  # hinge: test_hinge_pair_optimum_is_the_margin_one
 
 
 @pytest.mark.parametrize("name", BUILTINS)
 def test_values_match_an_independent_formula(name):
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     got = loss(torch.tensor(GRID, dtype=torch.float64)).numpy()
     np.testing.assert_allclose(got, REFERENCE[name](GRID), rtol=1e-6, atol=1e-6)
 
@@ -51,20 +51,20 @@ def test_values_match_an_independent_formula(name):
 def test_huber_matches_torch_huber_loss(delta):
     x = torch.tensor(GRID, dtype=torch.float64)
     expected = 2.0 * F.huber_loss(x, torch.ones_like(x), reduction="none", delta=delta)  # torch's 1/2 convention
-    torch.testing.assert_close(losses.get("huber", delta=delta)(x), expected, rtol=1e-6, atol=1e-6)
-    np.testing.assert_allclose(losses.get("huber", delta=delta)(x).numpy(),
+    torch.testing.assert_close(losses.resolve_margin("huber", delta=delta)(x), expected, rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(losses.resolve_margin("huber", delta=delta)(x).numpy(),
                                2.0 * scipy.special.huber(delta, GRID - 1.0), rtol=1e-6, atol=1e-6)
 
 
 def test_huber_becomes_squared_for_large_delta():
     # Huber 1964: inside |u| <= delta the loss is u^2, so a delta wider than the grid gives the squared loss
     x = torch.tensor(GRID, dtype=torch.float64)
-    torch.testing.assert_close(losses.get("huber", delta=100.0)(x), losses.get("squared")(x))
+    torch.testing.assert_close(losses.resolve_margin("huber", delta=100.0)(x), losses.resolve_margin("squared")(x))
 
 
 def test_truncated_quadratic_equals_squared_below_one():
     x = torch.tensor(GRID[GRID <= 1.0], dtype=torch.float64)
-    torch.testing.assert_close(losses.get("truncated_quadratic")(x), losses.get("squared")(x))
+    torch.testing.assert_close(losses.resolve_margin("truncated_quadratic")(x), losses.resolve_margin("squared")(x))
 
 
 # Kinks where the derivative jumps: finite differences are not meaningful there.
@@ -77,10 +77,10 @@ def test_gradient_matches_finite_differences(name):
     for kink in KINKS.get(name, []):
         x = x[(x - kink).abs() > 0.05]
     x.requires_grad_(True)
-    assert torch.autograd.gradcheck(losses.get(name), (x,), eps=1e-6, atol=1e-6)
+    assert torch.autograd.gradcheck(losses.resolve_margin(name), (x,), eps=1e-6, atol=1e-6)
 
 
-@pytest.mark.parametrize("name", [n for n in BUILTINS if losses.get(n).convex])
+@pytest.mark.parametrize("name", [n for n in BUILTINS if losses.resolve_margin(n).convex])
 def test_convex_members_are_convex_on_a_grid(name):
     # midpoint convexity f((a + b) / 2) <= (f(a) + f(b)) / 2 on neighbouring grid points
     f = REFERENCE[name]
@@ -91,7 +91,7 @@ def test_convex_members_are_convex_on_a_grid(name):
 def test_savage_is_flagged_not_convex_and_is_not():
     f = REFERENCE["savage"]
     a, b = np.array([-6.0]), np.array([-2.0])
-    assert losses.get("savage").convex is False
+    assert losses.resolve_margin("savage").convex is False
     assert f((a + b) / 2)[0] > (f(a)[0] + f(b)[0]) / 2  # concave on the far negative side
 
 
@@ -100,7 +100,7 @@ def test_savage_is_flagged_not_convex_and_is_not():
 def test_finite_values_and_gradients_at_extreme_margins(name, dtype):
     x = torch.tensor([-1e4, -1e3, -88.0, -50.0, -1.0, 0.0, 1.0, 50.0, 88.0, 1e3, 1e4], dtype=dtype,
                      requires_grad=True)
-    values = losses.get(name)(x)
+    values = losses.resolve_margin(name)(x)
     (grad,) = torch.autograd.grad(values.sum(), x)
     assert values.dtype == dtype and values.shape == x.shape
     assert torch.isfinite(values).all(), values
@@ -110,7 +110,7 @@ def test_finite_values_and_gradients_at_extreme_margins(name, dtype):
 @pytest.mark.parametrize("name", BUILTINS)
 def test_losses_are_elementwise_and_shape_preserving(name):
     x = torch.randn(3, 4, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     whole = loss(x)
     assert whole.shape == x.shape
     torch.testing.assert_close(whole[1, 2], loss(x[1, 2]))
@@ -132,7 +132,7 @@ TAYLOR = {
 
 @pytest.mark.parametrize("name", BUILTINS)
 def test_taylor_coefficients_at_zero(name):
-    np.testing.assert_allclose(losses.get(name).derivatives_at(0.0), TAYLOR[name], atol=1e-12)
+    np.testing.assert_allclose(losses.resolve_margin(name).derivatives_at(0.0), TAYLOR[name], atol=1e-12)
 
 
 P_GRID = [0.05, 0.2, 0.5, 0.73, 0.95]
@@ -152,25 +152,25 @@ PAIR_OPTIMA = {
 @pytest.mark.parametrize("name", sorted(PAIR_OPTIMA))
 @pytest.mark.parametrize("p", P_GRID)
 def test_pair_optimum_closed_forms(name, p):
-    assert losses.get(name).pair_optimum(p) == pytest.approx(PAIR_OPTIMA[name](p), abs=1e-9)
+    assert losses.resolve_margin(name).pair_optimum(p) == pytest.approx(PAIR_OPTIMA[name](p), abs=1e-9)
 
 
 @pytest.mark.parametrize("name", BUILTINS)
 @pytest.mark.parametrize("p", P_GRID)
 def test_closed_form_agrees_with_the_numerical_minimiser(name, p):
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     closed = loss.pair_optimum(p)
-    numeric = losses.numerical_pair_optimum(loss, p)
+    numeric = losses.margin.numerical_pair_optimum(loss, p)
     if name == "hinge" and p == 0.5:  # any x in [-1, 1] is optimal: compare objective values
-        assert loss.pair_objective(closed, p) == pytest.approx(loss.pair_objective(numeric, p), abs=1e-9)
+        assert loss.expected_pair_loss(closed, p) == pytest.approx(loss.expected_pair_loss(numeric, p), abs=1e-9)
     else:
         assert numeric == pytest.approx(closed, abs=1e-5)
 
 
 def test_hinge_pair_optimum_is_the_margin_one():
     # Zhao et al. 2023: the hinge pushes the preferred response ahead by the margin 1
-    assert losses.get("hinge").pair_optimum(0.8) == 1.0
-    assert losses.get("hinge").pair_optimum(0.2) == -1.0
+    assert losses.resolve_margin("hinge").pair_optimum(0.8) == 1.0
+    assert losses.resolve_margin("hinge").pair_optimum(0.2) == -1.0
 
 
 @pytest.mark.parametrize("name,finite", [("logistic", False), ("exponential", False), ("savage", False),
@@ -178,7 +178,7 @@ def test_hinge_pair_optimum_is_the_margin_one():
                                          ("truncated_quadratic", True)])
 def test_finite_pair_optimum_at_certainty(name, finite):
     # Azar et al. 2023, section 4.2: with p = 1 the logistic margin grows without bound; squared stops at 1
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     assert losses.has_finite_pair_optimum_at_certainty(loss) is finite
     assert math.isfinite(loss.pair_optimum(1.0)) is finite
     if not finite:
@@ -189,34 +189,34 @@ def test_a_bounded_loss_has_one_per_pair_optimum_everywhere():
     """f(x) = 1 - tanh(x) is bounded below by 0 and approaches it only as x -> inf (derived:
     f'(x) = -(1 - tanh^2 x) < 0), so at p = 1 the pair objective f(x) has no finite minimiser; in
     float64 tanh(x) == 1 from x ~ 19 on, which a grid search would take for a finite minimum. The
-    one definition (Loss.pair_optimum) reports inf, and the check's curve and the solver's
+    one definition (MarginLoss.pair_optimum) reports inf, and the check's curve and the solver's
     existence test read the same answer."""
     from polopt.checks import margin as check
 
-    loss = losses.Loss("one_minus_tanh", lambda x: 1 - torch.tanh(x), convex=False)
+    loss = losses.MarginLoss("one_minus_tanh", lambda x: 1 - torch.tanh(x), convex=False)
     assert loss.pair_optimum(1.0) == math.inf and loss.pair_optimum(0.0) == -math.inf
-    assert losses.numerical_pair_optimum(loss, 1.0) == math.inf
+    assert losses.margin.numerical_pair_optimum(loss, 1.0) == math.inf
     assert losses.has_finite_pair_optimum_at_certainty(loss) is False
     assert check.pair_optimum_curve(loss, [1.0])[0] == math.inf
     # and an objective flat in x has every margin optimal: nan, not a number picked by the grid
-    assert math.isnan(losses.Loss("constant", lambda x: 0 * x + 1).pair_optimum(0.7))
+    assert math.isnan(losses.MarginLoss("constant", lambda x: 0 * x + 1).pair_optimum(0.7))
 
 
 def test_unknown_loss_lists_the_known_ones():
     with pytest.raises(ValueError, match=r"unknown loss 'cross'; known losses: logistic, squared, hinge"):
-        losses.get("cross")
+        losses.resolve_margin("cross")
 
 
 def test_unknown_parameter_names_what_the_loss_takes():
     with pytest.raises(ValueError, match=r"loss 'huber' got unknown parameter\(s\) width; it takes: delta"):
-        losses.get("huber", width=2)
+        losses.resolve_margin("huber", width=2)
 
 
 def test_dotted_path_loads_a_user_loss(tmp_path, monkeypatch):
     (tmp_path / "my_losses.py").write_text(
         "import torch\ndef softsquare(x):\n    return torch.nn.functional.softplus(1 - x) ** 2\n")
     monkeypatch.syspath_prepend(str(tmp_path))
-    loss = losses.get("my_losses:softsquare")
+    loss = losses.resolve_margin("my_losses:softsquare")
     x = torch.tensor([0.0, 1.0], dtype=torch.float64)
     torch.testing.assert_close(loss(x), F.softplus(1 - x) ** 2)
     assert loss.convex is None and loss.closed_form_optimum is None
@@ -230,7 +230,7 @@ def test_dotted_path_loads_a_user_loss(tmp_path, monkeypatch):
 ])
 def test_dotted_path_errors(path, message):
     with pytest.raises((ValueError, TypeError), match=message):
-        losses.get(path)
+        losses.resolve_margin(path)
 
 
 def test_register_decorator_adds_a_member():
@@ -239,18 +239,18 @@ def test_register_decorator_adds_a_member():
         return F.relu(1 - x) ** 3
 
     try:
-        assert "test_only_cubic_hinge" in losses.names()
-        assert losses.get("test_only_cubic_hinge")(torch.tensor(0.0)).item() == 1.0
+        assert "test_only_cubic_hinge" in losses.names("margin")
+        assert losses.resolve_margin("test_only_cubic_hinge")(torch.tensor(0.0)).item() == 1.0
     finally:
-        losses._REGISTRY.pop("test_only_cubic_hinge")
+        losses.unregister("test_only_cubic_hinge")
 
 
 def test_parameters_at_non_default_values_drop_the_closed_form():
-    assert losses.get("huber").closed_form_optimum is not None
-    assert losses.get("huber", delta=0.5).closed_form_optimum is None
-    x_star = losses.get("huber", delta=0.5).pair_optimum(0.8)
+    assert losses.resolve_margin("huber").closed_form_optimum is not None
+    assert losses.resolve_margin("huber", delta=0.5).closed_form_optimum is None
+    x_star = losses.resolve_margin("huber", delta=0.5).pair_optimum(0.8)
     # the scalar solve is the only route now; check stationarity of p f(x) + (1 - p) f(-x)
     t = torch.tensor(x_star, dtype=torch.float64, requires_grad=True)
-    f = losses.get("huber", delta=0.5)
+    f = losses.resolve_margin("huber", delta=0.5)
     (g,) = torch.autograd.grad(0.8 * f(t) + 0.2 * f(-t), t)
     assert abs(float(g)) < 1e-6

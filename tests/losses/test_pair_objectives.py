@@ -13,12 +13,12 @@ import math
 import numpy as np
 import pytest
 import torch
+from helpers_losses import per_pair_of_margins
 from scipy.special import log_expit
 
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
-from polopt.losses.reduce import margins, objective_values, pair_losses
-from polopt.losses.scores import PairScores
+from polopt import losses
+from polopt.losses.pair import PairScores
+from polopt.losses.reduce import margins, per_pair_losses
 
 
 def nls(z):
@@ -67,9 +67,9 @@ REFERENCE = {
 def test_every_builtin_has_a_reference_formula_and_a_config():
     from pathlib import Path
 
-    assert set(objectives.builtin_names()) == set(REFERENCE)
+    assert set(losses.builtin_names("pair")) == set(REFERENCE)
     conf = Path(__file__).resolve().parents[2] / "conf" / "loss"
-    for name in objectives.builtin_names():
+    for name in losses.builtin_names("pair"):
         assert (conf / f"{name}.yaml").is_file(), name
 
 
@@ -85,7 +85,7 @@ def test_values_match_the_independent_float64_formula(name):
     params, formula = REFERENCE[name]
     w, lo, rw, rl, nw, nl = random_pairs()
     beta = 0.7
-    got = objectives.resolve(name, **params)(PairScores(w, lo, rw, rl, nw, nl), beta)
+    got = losses.resolve(name, **params)(PairScores(w, lo, rw, rl, nw, nl), beta)
     want = formula(*(t.numpy() for t in (w, lo, rw, rl, nw, nl)), beta)
     np.testing.assert_allclose(got.numpy(), want, rtol=1e-10, atol=1e-12)
 
@@ -94,7 +94,7 @@ def test_values_match_the_independent_float64_formula(name):
 def test_gradients_match_finite_differences(name):
     """torch.autograd.gradcheck (central differences, float64) in the four log-probabilities."""
     params, _ = REFERENCE[name]
-    objective = objectives.resolve(name, **params)
+    objective = losses.resolve(name, **params)
     w, lo, rw, rl, nw, nl = random_pairs(n=12, seed=1)
     inputs = tuple(t.clone().requires_grad_(True) for t in (w, lo, rw, rl))
     assert torch.autograd.gradcheck(lambda *x: objective(PairScores(*x, nw, nl), 0.7), inputs, eps=1e-6, atol=1e-6)
@@ -107,7 +107,7 @@ EXTREME_LOGP = (-1e4, -1e3, -50.0, -5.0, -1e-3, 0.0)  # log-probabilities are <=
 @pytest.mark.parametrize("name", sorted(REFERENCE))
 def test_finite_values_and_gradients_at_extremes(name, dtype):
     params, _ = REFERENCE[name]
-    objective = objectives.resolve(name, **params)
+    objective = losses.resolve(name, **params)
     grid = torch.tensor(np.array(np.meshgrid(*[EXTREME_LOGP] * 4)).reshape(4, -1), dtype=dtype)  # (4, 1296)
     for n in (1.0, 1000.0):
         inputs = [g.clone().requires_grad_(True) for g in grid]
@@ -187,7 +187,7 @@ HAND_COMPUTED = [
 @pytest.mark.parametrize(("name", "params", "beta", "pair", "want"), HAND_COMPUTED,
                          ids=[f"{c[0]}-{i}" for i, c in enumerate(HAND_COMPUTED)])
 def test_each_paper_equation_on_a_hand_computed_pair(name, params, beta, pair, want):
-    got = objectives.resolve(name, **params)(pair, beta)
+    got = losses.resolve(name, **params)(pair, beta)
     assert got.shape == (1,)
     assert float(got) == pytest.approx(want, rel=1e-12, abs=1e-12)
 
@@ -198,26 +198,26 @@ def test_each_paper_equation_on_a_hand_computed_pair(name, params, beta, pair, w
 def test_reverse_kl_member_is_the_logistic_margin_loss():
     """f-DPO with the reverse KL is DPO (Wang et al. 2023, section on the reverse KL)."""
     pair = PairScores(*random_pairs())
-    dpo = objective_values(losses.get("logistic"), pair, beta=0.4)
-    np.testing.assert_allclose(objectives.resolve("divergence_reverse_kl")(pair, 0.4).numpy(), dpo.numpy(),
+    dpo = per_pair_losses(losses.resolve_margin("logistic"), pair, beta=0.4)
+    np.testing.assert_allclose(losses.resolve("divergence_reverse_kl")(pair, 0.4).numpy(), dpo.numpy(),
                                rtol=1e-14)
 
 
 def test_alpha_divergence_tends_to_reverse_and_forward_kl():
     """(1 - u^-a) / a -> log u as a -> 0 and -> 1 - 1/u at a = 1 (derived: the limits of the link)."""
     pair = PairScores(*random_pairs())
-    near_zero = objectives.resolve("divergence_alpha", alpha=1e-7)(pair, 0.5)
-    near_one = objectives.resolve("divergence_alpha", alpha=1 - 1e-9)(pair, 0.5)
-    np.testing.assert_allclose(near_zero.numpy(), objectives.resolve("divergence_reverse_kl")(pair, 0.5).numpy(),
+    near_zero = losses.resolve("divergence_alpha", alpha=1e-7)(pair, 0.5)
+    near_one = losses.resolve("divergence_alpha", alpha=1 - 1e-9)(pair, 0.5)
+    np.testing.assert_allclose(near_zero.numpy(), losses.resolve("divergence_reverse_kl")(pair, 0.5).numpy(),
                                rtol=1e-5)
-    np.testing.assert_allclose(near_one.numpy(), objectives.resolve("divergence_forward_kl")(pair, 0.5).numpy(),
+    np.testing.assert_allclose(near_one.numpy(), losses.resolve("divergence_forward_kl")(pair, 0.5).numpy(),
                                rtol=1e-6)
 
 
 def test_plus_winner_nll_adds_the_nll_to_any_base():
     pair = PairScores(*random_pairs())
-    base = objective_values(losses.get("squared"), pair, beta=0.5)
-    got = objectives.resolve("plus_winner_nll", base="squared", weight=2.0)(pair, 0.5)
+    base = per_pair_losses(losses.resolve_margin("squared"), pair, beta=0.5)
+    got = losses.resolve("plus_winner_nll", base="squared", weight=2.0)(pair, 0.5)
     np.testing.assert_allclose(got.numpy(), (base - 2.0 * pair.winner).numpy(), rtol=1e-14)
 
 
@@ -226,28 +226,28 @@ def test_length_terms_vanish_at_equal_lengths():
     w, lo, rw, rl, _, _ = random_pairs()
     same = torch.full_like(w, 3.0)
     pair = PairScores(w, lo, rw, rl, same, same)
-    np.testing.assert_allclose(objectives.resolve("length_regularised", alpha=0.5)(pair, 0.5).numpy(),
-                               objectives.resolve("divergence_reverse_kl")(pair, 0.5).numpy(), rtol=1e-14)
+    np.testing.assert_allclose(losses.resolve("length_regularised", alpha=0.5)(pair, 0.5).numpy(),
+                               losses.resolve("divergence_reverse_kl")(pair, 0.5).numpy(), rtol=1e-14)
 
 
 # ---------------------------------------------------------------- the adapter: one objective path
 
 
 @pytest.mark.parametrize("smoothing", [0.0, 0.1])
-@pytest.mark.parametrize("name", losses.names())
+@pytest.mark.parametrize("name", losses.names("margin"))
 def test_every_margin_loss_through_the_adapter_equals_the_margin_path_bit_for_bit(name, smoothing):
     w, lo, rw, rl, nw, nl = random_pairs(dtype=torch.float32)
-    loss = losses.get(name)
-    old = pair_losses(loss, margins(w, lo, rw, rl), beta=0.3, smoothing=smoothing)
-    new = objective_values(loss, PairScores(w, lo, rw, rl, nw, nl), beta=0.3, smoothing=smoothing)
+    loss = losses.resolve_margin(name)
+    old = per_pair_of_margins(loss, margins(w, lo, rw, rl), beta=0.3, smoothing=smoothing)
+    new = per_pair_losses(loss, PairScores(w, lo, rw, rl, nw, nl), beta=0.3, smoothing=smoothing)
     assert torch.equal(old, new)
 
 
 def test_smoothing_of_a_pair_objective_swaps_winner_and_loser_lengths_included():
     pair = PairScores(*random_pairs())
-    ell = objectives.resolve("length_normalised_free")
+    ell = losses.resolve("length_normalised_free")
     swapped = PairScores(pair.loser, pair.winner, pair.ref_loser, pair.ref_winner, pair.len_loser, pair.len_winner)
-    got = objective_values(ell, pair, beta=0.5, smoothing=0.2)
+    got = per_pair_losses(ell, pair, beta=0.5, smoothing=0.2)
     np.testing.assert_allclose(got.numpy(), (0.8 * ell(pair, 0.5) + 0.2 * ell(swapped, 0.5)).numpy(), rtol=1e-14)
 
 
@@ -255,53 +255,57 @@ def test_smoothing_of_a_pair_objective_swaps_winner_and_loser_lengths_included()
 
 
 def test_a_dotted_path_is_a_margin_loss_or_a_pair_objective_by_its_signature():
-    assert isinstance(objectives.resolve("user_losses:sqrt_abs"), losses.Loss)
-    objective = objectives.resolve("user_losses:anchored_squared", weight=3.0)
-    assert isinstance(objective, objectives.PairObjective) and objective.params == {"weight": 3.0}
+    assert isinstance(losses.resolve("user_losses:sqrt_abs"), losses.MarginLoss)
+    objective = losses.resolve("user_losses:anchored_squared", weight=3.0)
+    assert isinstance(objective, losses.PairLoss) and objective.params == {"weight": 3.0}
     assert objective.source == "user-supplied"
 
 
 def test_loss_parameters_reach_a_builtin_and_unknown_ones_are_named():
-    assert objectives.resolve("divergence_alpha", alpha=0.2).params == {"alpha": 0.2}
+    assert losses.resolve("divergence_alpha", alpha=0.2).params == {"alpha": 0.2}
     with pytest.raises(ValueError, match=r"loss 'divergence_alpha' got unknown parameter\(s\) delta; it takes: alpha"):
-        objectives.resolve("divergence_alpha", delta=1.0)
+        losses.resolve("divergence_alpha", delta=1.0)
     with pytest.raises(ValueError, match=r"loss.alpha must lie in \(0, 1\)"):
-        objectives.resolve("divergence_alpha", alpha=1.5)
+        losses.resolve("divergence_alpha", alpha=1.5)
 
 
 def test_unknown_name_lists_margin_losses_and_pair_objectives():
     with pytest.raises(ValueError, match=r"unknown loss 'nope'; known losses: logistic, .*divergence_alpha"):
-        objectives.resolve("nope")
+        losses.resolve("nope")
 
 
 def test_one_line_errors_for_wrong_signature_shape_and_non_finite_values():
     with pytest.raises(TypeError, match=r"loss 'user_losses:three_arguments' takes \(pair, beta, gamma\): a loss "
                                         r"takes one tensor"):
-        objectives.resolve("user_losses:three_arguments")
+        losses.resolve("user_losses:three_arguments")
     with pytest.raises(ValueError, match=r"returned shape \(\) for a batch of 4 pairs; a pair objective must "
                                          r"return one loss per pair"):
-        objectives.resolve("user_losses:batch_mean")
+        losses.resolve("user_losses:batch_mean")
     with pytest.raises(ValueError, match=r"returned non-finite values \[nan"):
-        objectives.resolve("user_losses:log_of_logratio")
+        losses.resolve("user_losses:log_of_logratio")
 
 
 def test_registering_a_pair_objective_under_a_name():
-    @objectives.register("test_only_anchored", source="ours")
+    @losses.register("test_only_anchored", source="ours")
     def anchored(pair, beta, *, weight=1.0):
         return torch.relu(-pair.logratio_winner) * weight - beta * (pair.winner - pair.loser)
 
     try:
-        assert objectives.resolve("test_only_anchored", weight=2.0).params == {"weight": 2.0}
-        with pytest.raises(TypeError, match="must take \\(pair, beta\\)"):
-            objectives.register("test_only_bad")(lambda x: x)
+        assert losses.resolve("test_only_anchored", weight=2.0).params == {"weight": 2.0}
+        assert "test_only_anchored" in losses.names("pair") and "test_only_anchored" not in losses.names("margin")
+        with pytest.raises(TypeError, match=r"takes \(pair, beta, gamma\): a loss takes one tensor"):
+            losses.register("test_only_bad")(lambda pair, beta, gamma: pair.winner)
+        with pytest.raises(ValueError, match="'logistic' is already a margin loss; choose another name"):
+            losses.register("logistic")(anchored)
     finally:
-        objectives._REGISTRY.pop("test_only_anchored", None)
+        losses.unregister("test_only_anchored")
+    assert "test_only_anchored" not in losses.names()
 
 
 def test_probe_batch_is_ordinary():
     """The probe's log-probabilities are of probabilities in (0, 1) and its lengths positive, so a
     sound objective has no excuse there."""
-    pair = objectives.probe_pair()
+    pair = losses.registry.probe_pair()
     for t in (pair.winner, pair.loser, pair.ref_winner, pair.ref_loser):
         assert (t < 0).all() and (t > math.log(0.1)).all()
     assert (pair.len_winner >= 1).all() and (pair.len_loser >= 1).all()

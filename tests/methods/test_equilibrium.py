@@ -13,7 +13,7 @@ import pytest
 import scipy.optimize
 import scipy.special
 
-from polopt.losses import margin as losses
+from polopt import losses
 from toy_tasks.exact.margin import solve
 from toy_tasks.families import nontransitive
 from toy_tasks.finite.task import make_task
@@ -79,7 +79,7 @@ def test_tau_is_half_beta_for_the_squared_loss():
     k, beta = 5, 0.7
     reference, mu, preference = rng.dirichlet(np.ones(k)), rng.dirichlet(np.ones(k)), random_preference(rng, k)
     task = make_task(reference, preference, sampling=mu)
-    optimum = solve(losses.get("squared"), task.win_weights(), beta=beta, sampling=task.sampling,
+    optimum = solve(losses.resolve_margin("squared"), task.win_weights(), beta=beta, sampling=task.sampling,
                     preference=task.preference, population=True)
     ipo = task.policy_from_logratios(optimum.logratios)
     np.testing.assert_allclose(best_response(mu[None], reference[None], preference[None], tau_of_beta(beta)), ipo,

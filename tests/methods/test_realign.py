@@ -12,8 +12,8 @@ import pytest
 import torch
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import margin as losses
 from polopt.methods.realign import equivalent_beta, realign
 from toy_tasks.exact.margin import solve
 from toy_tasks.families import bradley_terry, contextual, noisy_labels, nontransitive
@@ -37,7 +37,7 @@ def test_lambda_zero_is_the_reference_and_one_the_trained_policy():
                                         (nontransitive(), "squared"), (noisy_labels(), "exponential")])
 @pytest.mark.parametrize("lam", [0.25, 0.5, 2.0, 3.0])
 def test_realigned_optimum_is_the_optimum_at_beta_over_lambda(task, loss, lam):
-    beta, f = 0.6, losses.get(loss)
+    beta, f = 0.6, losses.resolve_margin(loss)
     trained = torch.as_tensor(np.log(optimum_policy(task, f, beta)))
     pi = realign(torch.as_tensor(np.log(task.reference)), trained, lam).exp().numpy()
     target = optimum_policy(task, f, equivalent_beta(beta, lam))

@@ -20,7 +20,7 @@ import pytest
 import scipy.optimize
 import scipy.special
 import torch
-from tests.test_cli import polopt
+from helpers_cli import polopt
 
 from polopt.methods.reward_model import load_reward_model, pair_metrics, save_reward_model, split_heldout
 from toy_tasks.families import bradley_terry, contextual
@@ -112,12 +112,12 @@ def enumerate_best_of_n(reference, rewards, n):
 
 @pytest.mark.parametrize("n", [2, 3])
 def test_best_of_n_target_under_a_learned_reward_is_the_exact_distribution(tmp_path, n):
-    from polopt.losses import margin as losses
+    from polopt import losses
 
     task = bradley_terry(n_responses=5, seed=1)
     path, fitted = _saved(task, tmp_path)
     learned = np.asarray(fitted["summary"]["rewards"])[0]
-    view = task.prepare(losses.get("logistic"), beta=0.5).for_method("best_of_n", n=n, reward=str(path))
+    view = task.prepare(losses.resolve_margin("logistic"), beta=0.5).for_method("best_of_n", n=n, reward=str(path))
     np.testing.assert_allclose(view.rewards[0], learned, atol=0)
     np.testing.assert_allclose(view.target[0], enumerate_best_of_n(task.reference[0], learned, n), atol=1e-12)
     order = np.argsort(learned)  # DESIGN.md: P(y) = F(y)^n - F(y^-)^n, F the reference mass at or below r(y)
@@ -125,7 +125,7 @@ def test_best_of_n_target_under_a_learned_reward_is_the_exact_distribution(tmp_p
     formula = np.empty(5)
     formula[order] = upper**n - (upper - task.reference[0][order]) ** n
     np.testing.assert_allclose(view.target[0], formula, atol=1e-12)
-    rl = task.prepare(losses.get("logistic"), beta=0.5).for_method("rl", reward=str(path))
+    rl = task.prepare(losses.resolve_margin("logistic"), beta=0.5).for_method("rl", reward=str(path))
     np.testing.assert_allclose(rl.target[0], scipy.special.softmax(np.log(task.reference[0]) + learned / 0.5),
                                atol=1e-12)
 

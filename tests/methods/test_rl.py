@@ -12,7 +12,7 @@ import pytest
 import scipy.special
 import torch
 
-from polopt.losses import margin as losses
+from polopt import losses
 from polopt.methods.rl import regularised_objective, rl_objective
 from polopt.models.tabular import TabularPolicy
 from toy_tasks.families import bradley_terry, contextual, nontransitive
@@ -56,7 +56,7 @@ def test_win_rate_reward_on_a_task_without_rewards(run_method):
 
 def _setup(seed=0):
     task = contextual(n_prompts=2, n_responses=4, seed=seed)
-    view = task.prepare(losses.get("logistic"), beta=0.7).for_method("rl")
+    view = task.prepare(losses.resolve_margin("logistic"), beta=0.7).for_method("rl")
     policy = TabularPolicy(view.environment().reference)
     with torch.no_grad():
         policy.scores.normal_(generator=torch.Generator().manual_seed(seed))

@@ -15,8 +15,8 @@ import scipy.special
 import torch
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import margin as losses
 from polopt.methods.selfplay import best_response_divergence, selfplay_objective
 from toy_tasks.families import bradley_terry, nontransitive
 from toy_tasks.finite.task import make_task
@@ -118,8 +118,9 @@ def test_the_best_response_divergence_is_tau_times_the_jeffreys_divergence_and_z
 ])
 def test_update_errors_name_the_key(keys, message):
     task = nontransitive()
-    session = task.prepare(losses.get("squared"), beta=0.5)
+    session = task.prepare(losses.resolve_margin("squared"), beta=0.5)
     env = session.for_method("selfplay").environment()
     with pytest.raises(ValueError, match=message):
-        selfplay_objective(session.build_policy("tabular"), env, losses.get(keys.pop("loss", "squared")), beta=0.5,
+        loss = losses.resolve_margin(keys.pop("loss", "squared"))
+        selfplay_objective(session.build_policy("tabular"), env, loss, beta=0.5,
                            **keys)

@@ -20,9 +20,9 @@ import pytest
 import torch
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.commands.main import main
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import margin as losses
 from polopt.methods.realign import equivalent_beta, realign, realigned_sequence_logprobs
 from polopt.models.logprobs import sequence_logprobs
 from polopt.models.transformer import TinyTransformer
@@ -139,7 +139,7 @@ def test_hand_derived_three_response_tree():
 @pytest.mark.parametrize("lam", [0.25, 0.5, 2.0, 4.0])
 def test_geometric_mixture_of_the_optimum_is_the_optimum_at_beta_over_lambda(loss, preference, lam):
     finite = sequence_task(**{**TINY, "preference": preference}).finite_task()
-    beta, f = 0.5, losses.get(loss)
+    beta, f = 0.5, losses.resolve_margin(loss)
     trained = torch.as_tensor(np.log(optimum_policy(finite, f, beta)))
     pi = realign(torch.as_tensor(np.log(finite.reference)), trained, lam).exp().numpy()
     target = optimum_policy(finite, f, equivalent_beta(beta, lam))
@@ -148,7 +148,7 @@ def test_geometric_mixture_of_the_optimum_is_the_optimum_at_beta_over_lambda(los
 
 def test_per_token_mixing_of_the_optimum_is_not_the_optimum_at_beta_over_lambda(task):
     # exact at lambda = 1 only: the per-token normalisers differ from the sequence-level one
-    finite, f, beta = task.finite_task(), losses.get("logistic"), 0.5
+    finite, f, beta = task.finite_task(), losses.resolve_margin("logistic"), 0.5
     exact = np.log(optimum_policy(finite, f, beta))
     errors = {}
     for lam in (0.5, 1.0, 2.0):

@@ -22,9 +22,9 @@ tokenizers = pytest.importorskip("tokenizers")
 
 from hydra import compose, initialize_config_dir  # noqa: E402
 
+from polopt import losses  # noqa: E402
 from polopt.commands.train import CONFIG_DIR, run  # noqa: E402
 from polopt.data import load_pairs  # noqa: E402
-from polopt.losses import margin as losses  # noqa: E402
 from polopt.models import hf  # noqa: E402
 from polopt.training.loop import TrainSettings, train  # noqa: E402
 from polopt.training.optim import OptimConfig  # noqa: E402
@@ -100,7 +100,7 @@ def test_a_pairs_file_trains_a_few_steps(model_dir, tmp_path):
     pairs = hf.text_pairs(reference, tokenizer, data.prompt, data.winner, data.loser)
     policy = hf.causal_lm_policy(model_dir)
     assert not any(p.requires_grad for p in reference.parameters())
-    result = train(policy, pairs, losses.get("logistic"),
+    result = train(policy, pairs, losses.resolve_margin("logistic"),
                    TrainSettings(beta=0.5, steps=8, optim=OptimConfig("adam", 0.01), log_every=1, progress=False))
     first, last = result.history[0], result.history[-1]
     # the policy starts at the reference: every margin 0 and the logistic loss log 2 (Rafailov et al. 2023)

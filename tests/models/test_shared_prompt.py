@@ -10,7 +10,7 @@ same positions as in its own pass, so only floating-point rounding may differ.
 import pytest
 import torch
 
-from polopt.losses import margin as losses
+from polopt import losses
 from polopt.models.logprobs import (
     SequencePolicy,
     batched_logprobs,
@@ -131,7 +131,7 @@ def test_training_with_and_without_sharing_ends_at_the_same_loss():
     finals = []
     for shared in (True, False):
         policy = SequencePolicy(TinyTransformer(V, context=16, width=16, layers=2, heads=2, seed=1), pad_id=PAD)
-        result = train(policy, pairs, losses.get("logistic"),
+        result = train(policy, pairs, losses.resolve_margin("logistic"),
                        TrainSettings(beta=0.5, steps=20, batch_size=16, progress=False, optim=OptimConfig(lr=1e-2),
                                      log_every=1, share_prompt=shared))
         finals.append([r["loss"] for r in result.history])

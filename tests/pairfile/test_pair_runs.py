@@ -19,8 +19,8 @@ import pytest
 import torch
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import registry as objectives
 from polopt.testing import assert_reaches_optimum, assert_sound_loss
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
@@ -113,7 +113,7 @@ def test_token_lengths_of_task_pairs_are_the_responses_real_tokens(tmp_path):
     rows = [{"prompt": "q?", "winner": "ab", "loser": "abcde"}, {"prompt": "r?", "winner": "xyz", "loser": "x"}]
     path = tmp_path / "p.jsonl"
     path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
-    session = pair_task(path=str(path)).prepare(objectives.resolve("length_regularised"), beta=0.5,
+    session = pair_task(path=str(path)).prepare(losses.resolve("length_regularised"), beta=0.5,
                                                mode="sampled", n_pairs=None, seed=0, run_dir=tmp_path)
     session.build_policy(kind="transformer", width=16, layers=1, heads=2, context=16)
     # byte tokens: the text's bytes plus the end token the encoder appends to a response
@@ -135,7 +135,7 @@ def small_sequence_task():
 
 @pytest.mark.parametrize("name", ["length_normalised_free", "length_regularised", "odds_ratio_with_nll"])
 def test_sequence_task_transformer_reaches_the_exact_optimum(small_sequence_task, name):
-    objective = objectives.resolve(name)
+    objective = losses.resolve(name)
     session = small_sequence_task.prepare(objective, beta=0.5)
     assert session.finite.optimum.finite
     assert len(set(session.finite.task.lengths[0].tolist())) > 1  # responses of different token counts

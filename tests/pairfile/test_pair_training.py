@@ -14,10 +14,9 @@ import pytest
 import scipy.optimize
 import torch
 
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
-from polopt.losses.reduce import batch_losses, reduce
-from polopt.losses.scores import PairScores
+from polopt import losses
+from polopt.losses.pair import PairScores
+from polopt.losses.reduce import pair_scores, per_pair_losses, weighted_mean
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
 from toy_tasks.families import noisy_labels
@@ -38,7 +37,7 @@ def scipy_optimum(objective, task, beta: float) -> np.ndarray:
         logp = torch.log_softmax(z, dim=1)  # (X, K)
         pair = PairScores(logp[x, i], logp[x, j], log_ref[x, i], log_ref[x, j], lengths[x, i],
                                      lengths[x, j])
-        total = (weights[x, i, j] * objectives.as_objective(objective)(pair, beta)).sum()
+        total = (weights[x, i, j] * losses.as_pair_loss(objective)(pair, beta)).sum()
         (grad,) = torch.autograd.grad(total, z)
         return float(total.detach()), grad.numpy().reshape(-1)
 
@@ -59,7 +58,7 @@ def task_with_lengths(seed: int = 0):
 
 def trained_policy(objective, task, *, beta=0.5, steps=2000, kind="tabular", mode="exact", lr=0.05, **kwargs):
     """Train ``objective`` with the pairs of ``task`` (the pairs and weights do not depend on the loss)."""
-    session = prepare(task, losses.get("logistic"), beta=beta, mode=mode, n_pairs=300, seed=0)
+    session = prepare(task, losses.resolve_margin("logistic"), beta=beta, mode=mode, n_pairs=300, seed=0)
     policy = session.build_policy(kind=kind)
     result = train(policy, session.pairs, objective, TrainSettings(beta=beta, steps=steps, optim=OptimConfig(lr=lr),
                                                                  progress=False, log_every=max(steps // 10, 1),
@@ -68,10 +67,10 @@ def trained_policy(objective, task, *, beta=0.5, steps=2000, kind="tabular", mod
         return policy.log_distribution().exp().double().numpy(), result
 
 
-@pytest.mark.parametrize("name", objectives.builtin_names())
+@pytest.mark.parametrize("name", losses.builtin_names("pair"))
 def test_every_builtin_reaches_the_independent_optimum_with_lengths(name):
     task = task_with_lengths()
-    objective = objectives.resolve(name)
+    objective = losses.resolve(name)
     target = scipy_optimum(objective, task, beta=0.5)
     policy, _ = trained_policy(objective, task)
     assert total_variation(policy, target, task.prompt_weights) <= 1e-3, (policy, target)
@@ -83,7 +82,7 @@ def test_lengths_reach_the_objective():
     with_lengths = task_with_lengths()
     without = dataclasses.replace(with_lengths, lengths=np.ones((1, 4)))
     for name in ("length_normalised_free", "length_regularised"):
-        objective = objectives.resolve(name)
+        objective = losses.resolve(name)
         a = scipy_optimum(objective, with_lengths, beta=0.5)
         b = scipy_optimum(objective, without, beta=0.5)
         assert total_variation(a, b, with_lengths.prompt_weights) > 0.01, name
@@ -93,7 +92,7 @@ def test_lengths_reach_the_objective():
 
 def test_a_users_pair_objective_by_dotted_path_reaches_its_optimum():
     task = task_with_lengths(seed=1)
-    objective = objectives.resolve("user_losses:anchored_squared", weight=2.0)
+    objective = losses.resolve("user_losses:anchored_squared", weight=2.0)
     target = scipy_optimum(objective, task, beta=0.5)
     policy, _ = trained_policy(objective, task)
     assert total_variation(policy, target, task.prompt_weights) <= 1e-3
@@ -103,14 +102,14 @@ def test_margin_losses_train_bit_for_bit_as_before():
     """The adapter is the margin path: the logistic loss and f-DPO's reverse KL member give the
     same trained policy (up to float64 rounding), and smoothing trains through the swap."""
     task = task_with_lengths()
-    a, _ = trained_policy(losses.get("logistic"), task, steps=200, smoothing=0.1)
-    b, _ = trained_policy(objectives.resolve("divergence_reverse_kl"), task, steps=200, smoothing=0.1)
+    a, _ = trained_policy(losses.resolve_margin("logistic"), task, steps=200, smoothing=0.1)
+    b, _ = trained_policy(losses.resolve("divergence_reverse_kl"), task, steps=200, smoothing=0.1)
     np.testing.assert_allclose(a, b, rtol=1e-12)
 
 
 def test_loglinear_model_reaches_the_optimum_too():
     task = task_with_lengths()
-    objective = objectives.resolve("divergence_jensen_shannon")
+    objective = losses.resolve("divergence_jensen_shannon")
     policy, _ = trained_policy(objective, task, kind="loglinear")
     assert total_variation(policy, scipy_optimum(objective, task, beta=0.5), task.prompt_weights) <= 1e-3
 
@@ -119,15 +118,15 @@ def test_sampled_minibatches_lower_the_objective_over_all_pairs():
     """Minibatches of 32 from 300 sampled pairs: the objective over every pair (the empirical one)
     falls from its value at the reference."""
     task = task_with_lengths()
-    objective = objectives.resolve("length_normalised_free")
-    session = prepare(task, losses.get("logistic"), beta=0.5, mode="sampled", n_pairs=300, seed=0)
+    objective = losses.resolve("length_normalised_free")
+    session = prepare(task, losses.resolve_margin("logistic"), beta=0.5, mode="sampled", n_pairs=300, seed=0)
     policy = session.build_policy(kind="tabular")
 
     def full_objective():
         with torch.no_grad():
             p = session.pairs
             logp = policy.logprobs(torch.cat([p.prompt, p.prompt]), torch.cat([p.winner, p.loser]))
-            return float(reduce(batch_losses(objective, p, *logp.chunk(2), beta=0.5), p.weight))
+            return float(weighted_mean(per_pair_losses(objective, pair_scores(p, *logp.chunk(2)), beta=0.5), p.weight))
 
     before = full_objective()
     result = train(policy, session.pairs, objective, TrainSettings(beta=0.5, steps=300, batch_size=32,
@@ -137,7 +136,7 @@ def test_sampled_minibatches_lower_the_objective_over_all_pairs():
 
 def test_wrong_shape_at_run_time_is_one_line():
     """An objective built without the probe (e.g. by hand) is still checked on every batch."""
-    bad = objectives.PairObjective("sums", lambda pair, beta: (pair.winner - pair.loser).sum(), {}, "user-supplied")
+    bad = losses.PairLoss("sums", lambda pair, beta: (pair.winner - pair.loser).sum(), {}, "user-supplied")
     with pytest.raises(ValueError, match=r"loss 'sums' returned shape \(\) for a batch of \d+ pairs"):
         trained_policy(bad, task_with_lengths(), steps=2)
 
@@ -147,7 +146,7 @@ def test_non_finite_at_run_time_stops_with_one_line():
     trainer's own guard stops it with one line naming the step."""
     from user_losses import inverse_logratio
 
-    objective = objectives.PairObjective("inverse_logratio", inverse_logratio, {}, "user-supplied")
+    objective = losses.PairLoss("inverse_logratio", inverse_logratio, {}, "user-supplied")
     with pytest.raises(FloatingPointError, match=r"step 1: the loss is (nan|inf)"):
         trained_policy(objective, task_with_lengths(), steps=2)
 
@@ -156,9 +155,9 @@ def test_finite_pairs_carry_the_task_lengths_and_none_without():
     """Lengths travel with each pair (winner's and loser's, from the task's (X, K) lengths); a task
     without lengths (1 each) leaves them None, so its checkpoints' fingerprints are unchanged."""
     task = task_with_lengths()
-    pairs = prepare(task, losses.get("logistic"), beta=0.5).pairs
+    pairs = prepare(task, losses.resolve_margin("logistic"), beta=0.5).pairs
     lengths = torch.as_tensor(task.lengths[0])
     assert torch.equal(pairs.len_winner, lengths[pairs.winner]) and torch.equal(pairs.len_loser, lengths[pairs.loser])
-    assert prepare(noisy_labels(n_responses=4), losses.get("logistic"), beta=0.5).pairs.len_winner is None
+    assert prepare(noisy_labels(n_responses=4), losses.resolve_margin("logistic"), beta=0.5).pairs.len_winner is None
     batch = pairs.select(torch.tensor([2, 0]))
     assert batch.len_winner.tolist() == [pairs.len_winner[2].item(), pairs.len_winner[0].item()]

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 import torch
 
-from polopt.losses import margin as losses
+from polopt import losses
 from polopt.pairfile.mapped import MappedPairs, write_arrow
 from polopt.pairs import PairSet
 from polopt.training.loop import TrainSettings, train
@@ -19,7 +19,7 @@ from toy_tasks.sequence.task import sequence_task
 
 def sequence_setup():
     task = sequence_task(n_symbols=2, max_length=3, reference_width=16, reference_layers=1)
-    session = task.prepare(losses.get("logistic"), beta=0.5, mode="sampled", n_pairs=60, seed=1)
+    session = task.prepare(losses.resolve_margin("logistic"), beta=0.5, mode="sampled", n_pairs=60, seed=1)
     return task, session
 
 
@@ -48,7 +48,7 @@ def test_mapped_token_pairs_train_exactly_like_pairs_in_ram(tmp_path):
     results = []
     for data in (pairs, mapped):
         policy = session.build_policy("transformer", width=16, layers=1, heads=2, context=task.context_needed)
-        results.append((policy, train(policy, data, losses.get("logistic"),
+        results.append((policy, train(policy, data, losses.resolve_margin("logistic"),
                                       TrainSettings(beta=0.5, steps=8, optim=OptimConfig("adam", 0.003),
                                                     batch_size=16, seed=3, log_every=4, progress=False,
                                                     bucketing=False))))  # a mapped file is not bucketed
@@ -62,7 +62,7 @@ def test_mapped_token_pairs_train_exactly_like_pairs_in_ram(tmp_path):
 
 def test_mapped_index_pairs_with_weights(tmp_path):
     session = prepare(bradley_terry(n_responses=4, seed=3),
-                      losses.get("squared"), beta=0.5, mode="exact")
+                      losses.resolve_margin("squared"), beta=0.5, mode="exact")
     p = session.pairs
     path = write_arrow(tmp_path / "w.arrow", [{"prompt": p.prompt.numpy(), "winner": p.winner.numpy(),
                                               "loser": p.loser.numpy(), "reference_winner": p.reference_winner.numpy(),
@@ -82,7 +82,7 @@ def test_full_batch_and_bad_files_are_one_line(tmp_path):
     mapped = MappedPairs(path, pad_id=task.vocab.pad_id)
     policy = session.build_policy("bigram", context=task.context_needed, init="random")
     with pytest.raises(ValueError, match=r"read one batch at a time: set train.batch_size"):
-        train(policy, mapped, losses.get("logistic"),
+        train(policy, mapped, losses.resolve_margin("logistic"),
               TrainSettings(beta=0.5, steps=1, optim=OptimConfig(), progress=False))
     with pytest.raises(ValueError, match=r"pairs file '.*nothing.arrow' does not exist"):
         MappedPairs(tmp_path / "nothing.arrow")

@@ -30,9 +30,10 @@ import pytest
 import torch
 import torch.multiprocessing as mp
 from helpers_distributed import SETUPS, free_port, run, session_and_policy, worker
+from helpers_losses import loss_of_margins, per_pair_of_margins
 
 from polopt.checkpoints import store as checkpoint
-from polopt.losses.reduce import margins, pair_losses, preference_loss
+from polopt.losses.reduce import margins
 from polopt.parallel import distributed
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -94,11 +95,11 @@ def test_the_loss_scale_makes_the_averaged_gradient_the_global_one():
         return policy.scores.grad.clone()
 
     everything = torch.arange(len(pairs))
-    full = grad_of(lambda rho, b: preference_loss(loss, rho, beta=0.5, weights=b.weight), everything)
+    full = grad_of(lambda rho, b: loss_of_margins(loss, rho, beta=0.5, weights=b.weight), everything)
     shards = [everything[distributed.local_slice(len(pairs), distributed.Context(r, world))] for r in range(world)]
-    scaled = sum(grad_of(lambda rho, b: world * (b.weight * pair_losses(loss, rho, beta=0.5)).sum() / total, s)
+    scaled = sum(grad_of(lambda rho, b: world * (b.weight * per_pair_of_margins(loss, rho, beta=0.5)).sum() / total, s)
                  for s in shards) / world
-    naive = sum(grad_of(lambda rho, b: preference_loss(loss, rho, beta=0.5, weights=b.weight), s)
+    naive = sum(grad_of(lambda rho, b: loss_of_margins(loss, rho, beta=0.5, weights=b.weight), s)
                 for s in shards) / world
     torch.testing.assert_close(scaled, full, rtol=1e-12, atol=1e-15)
     assert float((naive - full).abs().max()) > 1e-3 * float(full.abs().max())

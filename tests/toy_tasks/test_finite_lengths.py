@@ -11,7 +11,7 @@ import json
 
 import numpy as np
 import pytest
-from tests.test_cli import polopt
+from helpers_cli import polopt
 
 from toy_tasks.finite.task import load_task, make_task, task_from_dict
 from toy_tasks.sequence.task import sequence_task

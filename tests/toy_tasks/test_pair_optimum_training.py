@@ -11,11 +11,11 @@ import json
 import numpy as np
 import pytest
 import torch
+from helpers_exact import independent_policy, random_task
 from hydra import compose, initialize_config_dir
-from test_pair_solve import independent_policy, random_task
 
+from polopt import losses
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import registry as objectives
 from polopt.training.loop import OptimConfig, TrainSettings, train
 from polopt.training.verdict import REACHED_TOLERANCE
 
@@ -28,12 +28,12 @@ def train_exact(objective, task, beta: float, steps: int = 2000):
     return session, session.summarise(policy, result)
 
 
-@pytest.mark.parametrize("index", range(len(objectives.names())))
+@pytest.mark.parametrize("index", range(len(losses.names("pair"))))
 def test_every_builtin_reaches_its_certified_optimum(index):
     # random tasks with lengths, K = 4..8, 1-3 prompts; Bradley–Terry and general preferences in turn
-    name = objectives.names()[index]
+    name = losses.names("pair")[index]
     task = random_task(20 + index, bradley_terry=index % 2 == 0)
-    _, summary = train_exact(objectives.resolve(name), task, beta=0.7)
+    _, summary = train_exact(losses.resolve(name), task, beta=0.7)
     assert summary["optimum_finite"] and summary["optimum_residual"] <= 1e-7
     assert summary["tv_to_optimum"] <= 1e-3
     assert summary["reached_optimum"] is True

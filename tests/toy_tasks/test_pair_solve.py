@@ -18,14 +18,13 @@ import scipy.optimize
 import scipy.special
 import torch
 import user_objectives as user
+from helpers_exact import independent_policy, random_task
 
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
-from polopt.losses.scores import PairScores
+from polopt import losses
+from polopt.losses.pair import PairScores
 from toy_tasks.exact.margin import solve
 from toy_tasks.exact.pairs import divergence_optimum, exact_optimum, margin_objective, solve_pairs
 from toy_tasks.families import deterministic
-from toy_tasks.finite.task import make_task
 
 OBJECTIVES = {
     "reverse_kl": user.reverse_kl,
@@ -35,48 +34,11 @@ OBJECTIVES = {
     "length_normalised_reference_free": user.length_normalised_reference_free,
     "winner_anchored": user.winner_anchored,
     "logistic_with_winner_likelihood": user.logistic_with_winner_likelihood,
-    "squared margin": margin_objective(losses.get("squared")),
-    "exponential margin": margin_objective(losses.get("exponential")),
+    "squared margin": margin_objective(losses.resolve_margin("squared")),
+    "exponential margin": margin_objective(losses.resolve_margin("exponential")),
 }
 DIVERGENCES = ["reverse_kl", "forward_kl", "jensen_shannon", "alpha_divergence"]
-SMOOTH_BUILTINS = [n for n in objectives.names() if n != "winner_anchored"]  # its max(0, .) kink: tested apart
-
-
-def random_task(seed: int, *, bradley_terry: bool = True):
-    """K = 4..8 responses, 1-3 prompts, lengths 1..6 tokens, all drawn from ``seed``."""
-    rng = np.random.default_rng(seed)
-    k, x = int(rng.integers(4, 9)), int(rng.integers(1, 4))
-    reference = rng.dirichlet(np.full(k, 2.0), size=x)
-    lengths = rng.integers(1, 7, size=(x, k))
-    if bradley_terry:
-        return make_task(reference, rewards=rng.normal(0.0, 1.0, (x, k)), lengths=lengths)
-    upper = rng.uniform(0.1, 0.9, (x, k, k))
-    preference = np.triu(upper, 1) + np.tril(1.0 - np.swapaxes(upper, 1, 2), -1) + 0.5 * np.eye(k)
-    return make_task(reference, preference, sampling=rng.dirichlet(np.full(k, 3.0), size=x), lengths=lengths)
-
-
-def independent_policy(objective, task, beta: float) -> np.ndarray:
-    """argmin of the population loss by L-BFGS-B on all logits (X K), the loss summed over a dense
-    (X, K, K) grid of pairs weighted by W (zero weight on i = j); torch gradients."""
-    w = torch.as_tensor(task.win_weights())  # (X, K, K)
-    log_ref = torch.as_tensor(np.log(task.reference))
-    n = torch.as_tensor(task.lengths)
-    shape = task.reference.shape
-
-    def loss(z_flat):
-        z = torch.as_tensor(z_flat, dtype=torch.float64).reshape(shape).requires_grad_(True)
-        log_pi = torch.log_softmax(z, dim=1)  # (X, K)
-        grid = lambda t: (t[:, :, None].expand(w.shape), t[:, None, :].expand(w.shape))  # noqa: E731
-        (pw, pl), (rw, rl), (nw, nl) = grid(log_pi), grid(log_ref), grid(n)
-        pair = PairScores(pw.reshape(-1), pl.reshape(-1), rw.reshape(-1), rl.reshape(-1), nw.reshape(-1),
-                          nl.reshape(-1))
-        value = (w.reshape(-1) * objective(pair, beta)).sum()
-        (g,) = torch.autograd.grad(value, z)
-        return float(value.detach()), g.numpy().ravel()
-
-    result = scipy.optimize.minimize(loss, np.log(task.reference).ravel(), jac=True, method="L-BFGS-B",
-                                     options={"gtol": 1e-14, "ftol": 1e-16, "maxiter": 20000, "maxcor": 50})
-    return scipy.special.softmax(result.x.reshape(shape), axis=1)
+SMOOTH_BUILTINS = [n for n in losses.names("pair") if n != "winner_anchored"]  # its max(0, .) kink: tested apart
 
 
 def reported_policy(optimum, task) -> np.ndarray:
@@ -87,7 +49,7 @@ def reported_policy(optimum, task) -> np.ndarray:
 @pytest.mark.parametrize("name", list(OBJECTIVES) + SMOOTH_BUILTINS)
 def test_reported_optimum_matches_an_independent_solve(name, seed):
     task = random_task(seed, bradley_terry=seed % 2 == 0)
-    objective = OBJECTIVES[name] if name in OBJECTIVES else objectives.resolve(name)
+    objective = OBJECTIVES[name] if name in OBJECTIVES else losses.resolve(name)
     optimum = solve_pairs(objective, task.win_weights(), task.reference, task.lengths, beta=0.7,
                           rewards=task.rewards, population=True)
     assert optimum.finite and optimum.unique
@@ -149,8 +111,9 @@ def test_reverse_kl_closed_form_is_dpo():
 @pytest.mark.parametrize("loss", ["logistic", "squared", "exponential"])
 def test_margin_losses_as_pair_objectives_agree_with_the_margin_solver(loss):
     task = random_task(3, bradley_terry=False)
-    margin = solve(losses.get(loss), task.win_weights(), beta=0.7)
-    paired = solve_pairs(margin_objective(losses.get(loss)), task.win_weights(), task.reference, task.lengths,
+    margin = solve(losses.resolve_margin(loss), task.win_weights(), beta=0.7)
+    objective = margin_objective(losses.resolve_margin(loss))
+    paired = solve_pairs(objective, task.win_weights(), task.reference, task.lengths,
                          beta=0.7)
     np.testing.assert_allclose(reported_policy(paired, task), reported_policy(margin, task), atol=1e-8)
     assert paired.value == pytest.approx(margin.value, rel=1e-10)
@@ -158,8 +121,8 @@ def test_margin_losses_as_pair_objectives_agree_with_the_margin_solver(loss):
 
 def test_exact_optimum_hands_margin_losses_to_the_margin_solver_unchanged():
     task = random_task(2)
-    via = exact_optimum(losses.get("logistic"), task.win_weights(), task=task, beta=0.5, population=True)
-    direct = solve(losses.get("logistic"), task.win_weights(), beta=0.5, rewards=task.rewards,
+    via = exact_optimum(losses.resolve_margin("logistic"), task.win_weights(), task=task, beta=0.5, population=True)
+    direct = solve(losses.resolve_margin("logistic"), task.win_weights(), beta=0.5, rewards=task.rewards,
                    sampling=task.sampling, preference=task.preference, population=True)
     assert via.method == direct.method and "Rafailov" in via.method
     np.testing.assert_array_equal(via.logratios, direct.logratios)
@@ -190,7 +153,7 @@ def test_a_supervised_term_keeps_the_winners_but_not_the_never_winning_reply():
 
 def test_dpo_as_a_pair_objective_finds_fords_limit_support():
     task = deterministic(n_responses=5, seed=2)
-    margin = solve(losses.get("logistic"), task.win_weights(), beta=0.5)
+    margin = solve(losses.resolve_margin("logistic"), task.win_weights(), beta=0.5)
     paired = solve_pairs(user.reverse_kl, task.win_weights(), task.reference, task.lengths, beta=0.5)
     assert not margin.finite and not paired.finite
     assert paired.limit_support == margin.limit_support == [[0]]
@@ -201,7 +164,7 @@ def test_starts_reveal_a_non_unique_minimiser():
     # the two pairs does not enter the loss, so seeded starts end at different policies
     w = np.zeros((1, 4, 4))
     w[0, 0, 1], w[0, 1, 0], w[0, 2, 3], w[0, 3, 2] = 0.3, 0.2, 0.3, 0.2
-    optimum = solve_pairs(margin_objective(losses.get("squared")), w, np.full((1, 4), 0.25), np.ones((1, 4)),
+    optimum = solve_pairs(margin_objective(losses.resolve_margin("squared")), w, np.full((1, 4), 0.25), np.ones((1, 4)),
                           beta=1.0)
     assert optimum.finite and not optimum.unique
     assert any("not unique" in note for note in optimum.notes)
@@ -209,8 +172,8 @@ def test_starts_reveal_a_non_unique_minimiser():
 
 def test_an_objective_of_the_wrong_shape_gets_one_line():
     task = random_task(0)
-    with pytest.raises(ValueError, match=r"pair objective wrong_shape must return one loss per pair, a tensor of "
-                                         r"shape \(\d+,\) for \d+ pairs; got \(\)"):
+    with pytest.raises(ValueError, match=r"loss 'wrong_shape' returned shape \(\) for a batch of \d+ pairs; a pair "
+                                         r"objective must return one loss per pair, shape \(\d+,\)"):
         solve_pairs(user.wrong_shape, task.win_weights(), task.reference, task.lengths, beta=0.5)
 
 
@@ -224,7 +187,7 @@ def test_length_regularised_dpo_closed_form():
     # -log sigma(beta h_w + alpha n_w - (beta h_l + alpha n_l)), minimised on Bradley–Terry pairs at
     # beta h_i + alpha n_i = r_i + c (the logit of P), so pi* ∝ pi_ref e^{(r - alpha n) / beta}
     task, beta = random_task(6), 0.6
-    optimum = solve_pairs(objectives.resolve("length_regularised", alpha=0.2), task.win_weights(), task.reference,
+    optimum = solve_pairs(losses.resolve("length_regularised", alpha=0.2), task.win_weights(), task.reference,
                           task.lengths, beta=beta)
     expected = bradley_terry_exponential(task, np.log(task.reference) * beta + task.rewards - 0.2 * task.lengths,
                                          beta)
@@ -236,7 +199,7 @@ def test_reference_free_logistic_closed_form():
     # beta log pi_i = r_i + c, so pi* ∝ e^{r / beta}: the reference plays no part (CPO's preference term,
     # Xu et al. 2024)
     task, beta = random_task(8), 0.9
-    optimum = solve_pairs(objectives.resolve("reference_free_logistic"), task.win_weights(), task.reference,
+    optimum = solve_pairs(losses.resolve("reference_free_logistic"), task.win_weights(), task.reference,
                           task.lengths, beta=beta)
     np.testing.assert_allclose(reported_policy(optimum, task), bradley_terry_exponential(task, task.rewards, beta),
                                atol=1e-8)
@@ -251,7 +214,7 @@ def test_registered_divergences_use_their_closed_form(name):
              "divergence_jensen_shannon": lambda u: np.log(2 * u / (1 + u)),
              "divergence_alpha": lambda u: (1.0 - u**-0.5) / 0.5, "chi_squared_link": lambda u: u + np.log(u)}
     task, beta = random_task(4), 0.8
-    optimum = solve_pairs(objectives.resolve(name), task.win_weights(), task.reference, task.lengths, beta=beta,
+    optimum = solve_pairs(losses.resolve(name), task.win_weights(), task.reference, task.lengths, beta=beta,
                           rewards=task.rewards, population=True)
     assert optimum.method.startswith("closed form") and optimum.residual <= 1e-9
     offset = links[name](reported_policy(optimum, task) / task.reference) - task.rewards / beta
@@ -293,34 +256,34 @@ def test_winner_anchored_optimum_at_its_kink(penalty, seed):
     # optimum often sits; no gradient vanishes there, so the certificate is the steepest descent over
     # every transfer of mass between two responses (one-sided slopes), checked against SLSQP here
     task, beta = random_task(seed, bradley_terry=seed % 2 == 0), 0.7
-    objective = objectives.resolve("winner_anchored", penalty=penalty)
+    objective = losses.resolve("winner_anchored", penalty=penalty)
     optimum = solve_pairs(objective, task.win_weights(), task.reference, task.lengths, beta=beta)
     assert optimum.finite and optimum.residual <= 1e-7
     np.testing.assert_allclose(reported_policy(optimum, task), dpop_by_slsqp(task, beta, penalty), atol=1e-6)
 
 
-@pytest.mark.parametrize("name", objectives.names())
+@pytest.mark.parametrize("name", losses.names("pair"))
 def test_the_assembled_hessian_is_autograds(name):
     # the solver's Hessian in the logits, assembled pair by pair with the chain rule through log-softmax,
     # against torch.autograd.functional.hessian of the same loss (K backward passes)
     from toy_tasks.exact.pairs import _Prompt
 
     task = random_task(3, bradley_terry=False)
-    problem = _Prompt(objectives.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
+    problem = _Prompt(losses.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
                       0.7)
     z = np.random.default_rng(0).normal(size=task.n_responses)
     full = torch.autograd.functional.hessian(problem.loss, torch.as_tensor(z)).numpy()
     np.testing.assert_allclose(problem.hessian(z), full, atol=1e-12)
 
 
-@pytest.mark.parametrize("name", objectives.names())
+@pytest.mark.parametrize("name", losses.names("pair"))
 def test_the_pinned_hessian_is_autograds(name):
     # the active-set problem with some responses pinned at the reference (DPO-Positive's kink): the free
     # responses form a softmax chart of their own, so the same chain rule holds on the free block
     from toy_tasks.exact.pairs import _Pinned, _Prompt
 
     task = random_task(4, bradley_terry=True)
-    problem = _Prompt(objectives.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
+    problem = _Prompt(losses.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
                       0.7)
     pinned = np.zeros(task.n_responses, dtype=bool)
     pinned[[0, 2]] = True
@@ -338,7 +301,7 @@ def test_an_answer_the_solver_cannot_certify_says_so(monkeypatch):
 
     monkeypatch.setattr(pair_solve, "_kinked", lambda problem, z: None)
     task = random_task(0, bradley_terry=True)
-    optimum = solve_pairs(objectives.resolve("winner_anchored", penalty=50.0), task.win_weights(), task.reference,
+    optimum = solve_pairs(losses.resolve("winner_anchored", penalty=50.0), task.win_weights(), task.reference,
                           task.lengths, beta=0.7)
     assert optimum.residual > 1e-7 and optimum.certified is False
     assert any("not certified" in n and "kink search did not certify" in n for n in optimum.notes)
@@ -351,7 +314,7 @@ def test_transfer_slopes_from_one_sided_partials_equal_measured_ones():
     from toy_tasks.exact.pairs import _measured_slope, _Prompt, _transfer_slopes
 
     task = random_task(1, bradley_terry=False)
-    problem = _Prompt(objectives.resolve("winner_anchored", penalty=2.0), task.win_weights()[0],
+    problem = _Prompt(losses.resolve("winner_anchored", penalty=2.0), task.win_weights()[0],
                       np.log(task.reference[0]), task.lengths[0], 0.7)
     log_pi = np.log(task.reference[0])
     predicted = _transfer_slopes(problem, log_pi)

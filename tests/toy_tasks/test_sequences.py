@@ -14,22 +14,17 @@ import pytest
 import scipy.optimize
 import scipy.special
 import torch
+from helpers_exact import MODEL, SMALL, SMALL_OVERRIDES
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.commands.main import main
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import margin as losses
 from polopt.models.reference_cache import FILE_NAME
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
 from toy_tasks.finite.task import load_task
 from toy_tasks.sequence.task import count_responses, enumerate_responses, sequence_task
-
-SMALL = dict(n_symbols=3, max_length=3, n_prompts=2, reference_width=16, reference_layers=1, reference_heads=2,
-             reference_sharpness=10.0, seed=0)
-MODEL = dict(kind="transformer", width=16, layers=1, heads=2, context=8, seed=0)
-SMALL_OVERRIDES = [f"task.{k}={v}" for k, v in SMALL.items()] + [f"model.{k}={v}" for k, v in MODEL.items()]
-
 
 
 @pytest.fixture(scope="module")
@@ -55,7 +50,7 @@ def test_reference_sums_to_one(task):
 
 @pytest.mark.parametrize("kind", ["transformer", "bigram"])
 def test_any_policy_sums_to_one(task, kind):
-    session = task.prepare(losses.get("squared"), beta=0.5)
+    session = task.prepare(losses.resolve_margin("squared"), beta=0.5)
     policy = session.build_policy(**{**MODEL, "kind": kind, "init": "random"})
     if kind == "bigram":
         with torch.no_grad():
@@ -74,7 +69,7 @@ def test_labels_and_export(task, tmp_path):
 
 
 def test_policy_starts_at_reference(task):
-    session = task.prepare(losses.get("logistic"), beta=0.5)
+    session = task.prepare(losses.resolve_margin("logistic"), beta=0.5)
     policy = session.build_policy(**MODEL, init="reference")
     with torch.no_grad():
         diff = policy.log_distribution().double() - policy.reference_logprobs
@@ -84,7 +79,7 @@ def test_policy_starts_at_reference(task):
 def test_exact_optimum_is_the_closed_form(task):
     # logistic on Bradley–Terry: pi* ∝ pi_ref e^{r / beta} (Rafailov et al. 2023)
     beta = 0.5
-    session = task.prepare(losses.get("logistic"), beta=beta)
+    session = task.prepare(losses.resolve_margin("logistic"), beta=beta)
     opt = session.finite.optimum
     pi = scipy.special.softmax(task.reference_logprobs + opt.logratios, axis=1)
     expected = scipy.special.softmax(task.reference_logprobs + task.rewards / beta, axis=1)
@@ -139,10 +134,10 @@ def test_exported_task_solved_independently_matches_the_run(tmp_path, loss, pref
 
 @pytest.mark.parametrize("loss", ["logistic", "squared"])
 def test_short_exact_training_approaches_optimum(task, loss):
-    session = task.prepare(losses.get(loss), beta=0.5)
+    session = task.prepare(losses.resolve_margin(loss), beta=0.5)
     policy = session.build_policy(**MODEL, init="reference")
     start = session.evaluate(policy)["tv_to_optimum"]
-    result = train(policy, session.pairs, losses.get(loss),
+    result = train(policy, session.pairs, losses.resolve_margin(loss),
                    TrainSettings(beta=0.5, steps=150, optim=OptimConfig(lr=0.01), log_every=50, progress=False),
                    evaluate=session.evaluate)
     assert start > 0.1  # it starts well away from the optimum
@@ -164,7 +159,7 @@ def test_sampled_mode_reference_cache(tmp_path):
     task = sequence_task(**SMALL)
     _ = task.reference_logprobs  # the enumerated table: computed once when the task is first used
     counter = CountingForward(task.reference_model)
-    loss = losses.get("squared")
+    loss = losses.resolve_margin("squared")
     session = task.prepare(loss, beta=0.5, mode="sampled", n_pairs=300, seed=1, run_dir=tmp_path)
     assert counter.calls == 1  # one pass over the dataset: winners and losers together
     pairs = session.pairs
@@ -197,9 +192,9 @@ def test_sampled_mode_reference_cache(tmp_path):
 
 
 def test_bf16_training_runs(task):
-    session = task.prepare(losses.get("squared"), beta=0.5)
+    session = task.prepare(losses.resolve_margin("squared"), beta=0.5)
     policy = session.build_policy(**MODEL)
-    result = train(policy, session.pairs, losses.get("squared"),
+    result = train(policy, session.pairs, losses.resolve_margin("squared"),
                    TrainSettings(beta=0.5, steps=20, optim=OptimConfig(lr=0.01), log_every=10, progress=False,
                                  precision="bf16"),
                    evaluate=session.evaluate)
@@ -225,16 +220,16 @@ def test_errors(task):
         sequence_task(cycle_strength=0.7)
     with pytest.raises(ValueError, match="task.max_length must be an integer >= 1, got 0"):
         sequence_task(max_length=0)
-    session = task.prepare(losses.get("squared"), beta=0.5)
+    session = task.prepare(losses.resolve_margin("squared"), beta=0.5)
     with pytest.raises(ValueError, match="model.init must be one of reference, random, got 'zeros'"):
         session.build_policy(**MODEL, init="zeros")
     with pytest.raises(ValueError, match="model.context must be at least 3 for this task"):
         session.build_policy(**{**MODEL, "context": 2})
     from toy_tasks.families import bradley_terry
 
-    finite = bradley_terry().prepare(losses.get("squared"), beta=0.5)
+    finite = bradley_terry().prepare(losses.resolve_margin("squared"), beta=0.5)
     with pytest.raises(ValueError, match=r"model=transformer is a sequence model and needs a sequence task"):
         finite.build_policy(**MODEL)
-    sampled = task.prepare(losses.get("squared"), beta=0.5, mode="sampled", n_pairs=50)
+    sampled = task.prepare(losses.resolve_margin("squared"), beta=0.5, mode="sampled", n_pairs=50)
     with pytest.raises(ValueError, match="model=tabular scores enumerated responses, not tokens"):
         sampled.build_policy(kind="tabular")

@@ -5,7 +5,7 @@ import pytest
 import scipy.optimize
 import scipy.special
 
-from polopt.losses import margin as losses
+from polopt import losses
 from toy_tasks import families
 from toy_tasks.exact.margin import GRADIENT_TOLERANCE, population_loss, smoothed_weights, solve
 from toy_tasks.finite.task import make_task
@@ -34,7 +34,7 @@ def newton(loss, task, beta):
 def test_logistic_on_bradley_terry_is_r_over_beta(seed, beta):
     # Rafailov et al. 2023: the KL-regularised optimum pi* ∝ pi_ref e^{r / beta}
     task = random_task(seed, 8, "bt")
-    opt = newton(losses.get("logistic"), task, beta)
+    opt = newton(losses.resolve_margin("logistic"), task, beta)
     np.testing.assert_allclose(opt.logratios, centred(task.rewards / beta), atol=1e-7)
     assert opt.residual < 1e-9
 
@@ -44,7 +44,7 @@ def test_logistic_on_bradley_terry_is_r_over_beta(seed, beta):
 @pytest.mark.parametrize("beta", [0.2, 2.0])
 def test_squared_is_the_ipo_optimum_on_any_preference(task, beta):
     # Azar et al. 2023: h_i = (2 / beta) p(i > mu) + c, with p(i > mu) = sum_j mu_j P[i, j]
-    opt = newton(losses.get("squared"), task, beta)
+    opt = newton(losses.resolve_margin("squared"), task, beta)
     ipo = (2.0 / beta) * np.einsum("xj,xij->xi", task.sampling, task.preference)
     np.testing.assert_allclose(opt.logratios, centred(ipo), atol=1e-7)
 
@@ -53,7 +53,7 @@ def test_exponential_on_bradley_terry_is_r_over_two_beta():
     # Tang et al. 2024: the exponential loss's per-pair optimum is logit(p) / 2, so on Bradley–Terry
     # every pair is at its optimum with h = r / (2 beta)
     task = random_task(7, 6, "bt")
-    opt = newton(losses.get("exponential"), task, 0.5)
+    opt = newton(losses.resolve_margin("exponential"), task, 0.5)
     np.testing.assert_allclose(opt.logratios, centred(task.rewards / 1.0), atol=1e-7)
 
 
@@ -61,16 +61,17 @@ def test_closed_forms_are_used_and_agree_with_newton():
     task = families.bradley_terry()
     extras = dict(rewards=task.rewards, sampling=task.sampling, preference=task.preference, population=True)
     for name in ("logistic", "squared"):
-        closed = solve(losses.get(name), task.win_weights(), beta=0.3, **extras)
+        closed = solve(losses.resolve_margin(name), task.win_weights(), beta=0.3, **extras)
         assert closed.method.startswith("closed form")
-        np.testing.assert_allclose(closed.logratios, newton(losses.get(name), task, 0.3).logratios, atol=1e-7)
+        by_newton = newton(losses.resolve_margin(name), task, 0.3)
+        np.testing.assert_allclose(closed.logratios, by_newton.logratios, atol=1e-7)
 
 
 @pytest.mark.parametrize("name", ["huber", "truncated_quadratic", "exponential", "savage"])
 def test_newton_agrees_with_scipy_bfgs(name):
     # an independent minimiser on the same population loss, gauge fixed by h_0 = 0
     task = random_task(11, 5, "P")
-    loss, beta, w = losses.get(name), 0.7, task.win_weights()
+    loss, beta, w = losses.resolve_margin(name), 0.7, task.win_weights()
     opt = newton(loss, task, beta)
 
     def objective(free):
@@ -85,10 +86,10 @@ def test_newton_agrees_with_scipy_bfgs(name):
 def test_truncated_quadratic_equals_ipo_when_margins_stay_below_one():
     # DESIGN.md: truncated quadratic = squared wherever every IPO margin beta * d is at most 1
     task = families.noisy_labels(flip_rate=0.3)
-    sq = newton(losses.get("squared"), task, 1.0)
+    sq = newton(losses.resolve_margin("squared"), task, 1.0)
     margins = sq.logratios[0][:, None] - sq.logratios[0][None, :]
     assert margins.max() <= 1.0
-    np.testing.assert_allclose(newton(losses.get("truncated_quadratic"), task, 1.0).logratios, sq.logratios,
+    np.testing.assert_allclose(newton(losses.resolve_margin("truncated_quadratic"), task, 1.0).logratios, sq.logratios,
                                atol=1e-7)
 
 
@@ -96,7 +97,7 @@ def test_hinge_two_responses_by_hand():
     # K = 2, W = (w, 1 - w) with w > 1/2: L(d) = w max(0, 1 - beta d) + (1 - w) max(0, 1 + beta d),
     # minimised at beta d = 1 with value 2 (1 - w)
     w = np.array([[[0.0, 0.7], [0.3, 0.0]]])
-    opt = solve(losses.get("hinge"), w, beta=0.5)
+    opt = solve(losses.resolve_margin("hinge"), w, beta=0.5)
     assert opt.value == pytest.approx(0.6)
     assert 0.5 * (opt.logratios[0, 0] - opt.logratios[0, 1]) == pytest.approx(1.0)
     assert opt.unique is False
@@ -108,7 +109,7 @@ def test_hinge_lp_matches_a_subgradient_free_reference(seed):
     # by scipy's interior-point HiGHS variant: two solvers, one convex programme
     task = random_task(seed, 5, "P")
     w = task.win_weights()[0]
-    opt = solve(losses.get("hinge"), w[None], beta=1.0)
+    opt = solve(losses.resolve_margin("hinge"), w[None], beta=1.0)
     pairs = np.argwhere(w > 0)
     k, e = 5, len(pairs)
     a = np.zeros((e, k + e))
@@ -123,7 +124,7 @@ def test_hinge_lp_matches_a_subgradient_free_reference(seed):
 def test_logistic_on_deterministic_preferences_has_no_finite_optimum():
     # Azar et al. 2023, section 4.2; Ford 1957: the win graph of a total order is not strongly connected
     task = families.deterministic(n_responses=4)
-    opt = newton(losses.get("logistic"), task, 0.5)
+    opt = newton(losses.resolve_margin("logistic"), task, 0.5)
     assert opt.finite is False and opt.logratios is None
     assert opt.value == pytest.approx(0.0)  # every pair's loss can be driven to 0
     assert opt.limit_support == [[0]]  # the response that is never beaten takes all the mass
@@ -131,13 +132,13 @@ def test_logistic_on_deterministic_preferences_has_no_finite_optimum():
 
 @pytest.mark.parametrize("name", ["squared", "hinge", "huber", "truncated_quadratic"])
 def test_losses_with_a_finite_pair_optimum_stay_finite_on_deterministic_preferences(name):
-    assert newton(losses.get(name), families.deterministic(n_responses=4), 0.5).finite
+    assert newton(losses.resolve_margin(name), families.deterministic(n_responses=4), 0.5).finite
 
 
 def test_deterministic_cycle_is_strongly_connected_and_has_a_finite_optimum():
     # DESIGN.md: a deterministic but cyclic P is strongly connected, so logistic has a finite optimum
     cycle = [[0.5, 1.0, 0.0], [0.0, 0.5, 1.0], [1.0, 0.0, 0.5]]
-    opt = newton(losses.get("logistic"), make_task([1 / 3, 1 / 3, 1 / 3], cycle), 1.0)
+    opt = newton(losses.resolve_margin("logistic"), make_task([1 / 3, 1 / 3, 1 / 3], cycle), 1.0)
     assert opt.finite
     np.testing.assert_allclose(opt.logratios, 0.0, atol=1e-8)  # by symmetry the uniform policy
 
@@ -146,7 +147,7 @@ def test_partial_order_infimum_keeps_the_finite_part():
     # responses {0, 1} beat each other at random, both always beat 2: the infimum is the {0, 1} subproblem
     pref = [[0.5, 0.6, 1.0], [0.4, 0.5, 1.0], [0.0, 0.0, 0.5]]
     task = make_task([0.4, 0.4, 0.2], pref)
-    loss, w = losses.get("logistic"), task.win_weights()
+    loss, w = losses.resolve_margin("logistic"), task.win_weights()
     opt = newton(loss, task, 1.0)
     assert opt.finite is False and opt.limit_support == [[0, 1]]
     sub = w[:, :2, :2]
@@ -159,7 +160,7 @@ def test_smoothing_is_a_change_of_weights():
     task = families.deterministic(n_responses=3)
     w = smoothed_weights(task.win_weights(), 0.1)
     h = np.array([[0.4, -0.2, 0.1]])
-    f = losses.get("logistic")
+    f = losses.resolve_margin("logistic")
     import torch
 
     d = 2.0 * (h[0][:, None] - h[0][None, :])
@@ -174,7 +175,7 @@ def test_smoothing_is_a_change_of_weights():
 def test_disconnected_responses_are_reported_and_aligned():
     w = np.zeros((1, 4, 4))
     w[0, 0, 1], w[0, 1, 0], w[0, 2, 3], w[0, 3, 2] = 0.3, 0.2, 0.3, 0.2  # two separate pairs
-    opt = solve(losses.get("squared"), w, beta=1.0)
+    opt = solve(losses.resolve_margin("squared"), w, beta=1.0)
     assert any("not connected" in n for n in opt.notes)
     h = np.array([[5.0, 4.0, -1.0, 3.0]])
     aligned = opt.aligned_to(h)

@@ -14,9 +14,10 @@ from __future__ import annotations
 
 import pytest
 import torch
+from helpers_losses import loss_of_margins
 
-from polopt.losses import margin as losses
-from polopt.losses.reduce import margins, preference_loss
+from polopt import losses
+from polopt.losses.reduce import margins
 from polopt.models.logprobs import SequencePolicy, length_split, sequence_logprobs
 from polopt.models.transformer import TinyTransformer
 from polopt.pairs import PairSet
@@ -52,7 +53,8 @@ def loss_and_grad(pol: SequencePolicy, batch: PairSet):
     pol.zero_grad()
     logp = pol.logprobs(torch.cat([batch.prompt] * 2), torch.cat([batch.winner, batch.loser]))
     lw, ll = logp.chunk(2)
-    value = preference_loss(losses.get("logistic"), margins(lw, ll, batch.reference_winner, batch.reference_loser),
+    rho = margins(lw, ll, batch.reference_winner, batch.reference_loser)
+    value = loss_of_margins(losses.resolve_margin("logistic"), rho,
                             beta=0.5)
     value.backward()
     return value.detach(), [p.grad.clone() for p in pol.parameters()]
@@ -135,7 +137,7 @@ class TestEpochOrder:
 
 def _run(pairs: PairSet, steps: int, checkpoint_every: int = 0, **kwargs):
     pol = policy(dtype=torch.float32)
-    result = train(pol, pairs, losses.get("logistic"),
+    result = train(pol, pairs, losses.resolve_margin("logistic"),
                    TrainSettings(beta=0.5, steps=steps, optim=OptimConfig("adam", 1e-3), batch_size=8, seed=3,
                                  log_every=2, progress=False, checkpoint_every=checkpoint_every),
                    **kwargs)

@@ -14,10 +14,9 @@ import json
 import pytest
 import torch
 
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
+from polopt import losses
 from polopt.parallel import distributed
-from polopt.training.loop import OfflineObjective, TrainSettings, line_search_counts, train
+from polopt.training.loop import PairBatches, TrainSettings, line_search_counts, train
 from polopt.training.optim import LBFGS_TOLERANCE_CHANGE, OptimConfig, make_optimiser
 from toy_tasks import families
 
@@ -31,7 +30,7 @@ def settings(**kwargs) -> TrainSettings:
 @pytest.mark.parametrize("name", ["logistic", "squared", "exponential"])
 def test_reaches_the_exact_optimum_of_a_finite_task(name):
     task = families.noisy_labels()
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     session = task.prepare(loss, beta=0.5)
     policy = session.build_policy()
     result = train(policy, session.pairs, loss, settings(), evaluate=session.evaluate)
@@ -42,10 +41,10 @@ def test_reaches_the_exact_optimum_of_a_finite_task(name):
 
 @pytest.mark.parametrize("name", ["divergence_forward_kl", "divergence_alpha", "length_normalised_free"])
 def test_reaches_the_certified_optimum_of_a_pair_objective(name):
-    from test_pair_solve import random_task
+    from helpers_exact import random_task
 
     task = random_task(7, bradley_terry=True)
-    objective = objectives.resolve(name)
+    objective = losses.resolve(name)
     session = task.prepare(objective, beta=0.7)
     policy = session.build_policy()
     result = train(policy, session.pairs, objective, settings(beta=0.7), evaluate=session.evaluate)
@@ -59,7 +58,7 @@ def test_reaches_the_certified_optimum_of_a_pair_objective(name):
 def test_one_loop_step_is_one_call_of_torch_lbfgs():
     """Twelve loop steps equal twelve ``LBFGS.step(closure)`` calls on the same full-batch loss."""
     task = families.bradley_terry()
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = task.prepare(loss, beta=0.5)
     trained = session.build_policy()
     train(trained, session.pairs, loss, settings(steps=12, optim=dataclasses.replace(LBFGS, iterations=3)))
@@ -68,11 +67,11 @@ def test_one_loop_step_is_one_call_of_torch_lbfgs():
     optimiser = torch.optim.LBFGS(direct.parameters(), lr=1.0, max_iter=3, history_size=50,
                                   line_search_fn="strong_wolfe", tolerance_grad=0.0,
                                   tolerance_change=LBFGS_TOLERANCE_CHANGE)
-    objective = OfflineObjective(direct, session.pairs, loss, settings())
+    batches = PairBatches(direct, session.pairs, loss, settings())
 
     def closure():
         optimiser.zero_grad()
-        value = objective(0).objective
+        value = batches(0).share
         value.backward()
         return value
 
@@ -87,7 +86,7 @@ def test_fp64_trains_a_float32_model_in_float64():
 
     task = sequence_task(n_symbols=2, max_length=2, n_prompts=1, reference_width=8, reference_layers=1,
                          reference_heads=2, seed=0)
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = task.prepare(loss, beta=0.5)
     policy = session.build_policy(width=8, layers=1, heads=2, context=4)
     assert next(policy.parameters()).dtype == torch.float32
@@ -99,7 +98,7 @@ def test_fp64_trains_a_float32_model_in_float64():
 
 def test_refusals_say_what_to_do():
     task = families.bradley_terry()
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = task.prepare(loss, beta=0.5, mode="sampled", n_pairs=40, seed=0)
     policy = session.build_policy()
     with pytest.raises(ValueError, match=r"set train.batch_size=null \(all 40 pairs each step\)"):
@@ -120,10 +119,10 @@ def test_refusals_say_what_to_do():
 
 
 def test_a_method_run_is_refused():
-    from polopt.training.loop import MethodObjective, optimise
+    from polopt.training.loop import MethodBatches, optimise
 
-    policy = families.bradley_terry().prepare(losses.get("logistic"), beta=0.5).build_policy()
-    objective = MethodObjective(lambda step: (torch.zeros(()), {}), "selfplay")
+    policy = families.bradley_terry().prepare(losses.resolve_margin("logistic"), beta=0.5).build_policy()
+    objective = MethodBatches(lambda step: (torch.zeros(()), {}), "selfplay")
     with pytest.raises(ValueError, match=r"method=selfplay draws new samples every step"):
         optimise(policy, objective, settings())
 
@@ -136,7 +135,7 @@ def test_counts_are_empty_for_other_optimisers():
 @pytest.mark.parametrize("on_nonfinite", ["stop", "skip"])
 def test_a_step_that_leaves_nan_parameters_is_undone(monkeypatch, on_nonfinite):
     task = families.bradley_terry()
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = task.prepare(loss, beta=0.5)
     policy = session.build_policy()
     real_step = torch.optim.LBFGS.step
@@ -166,8 +165,8 @@ def test_a_sequence_run_with_lbfgs_reaches_its_exact_optimum(tmp_path):
     """``optim=lbfgs`` on the command line brings its defaults (float64, the transformer's step budget) and a
     sequence-task run through the one trainer ends at the forward-KL link's exact optimum (Wang et al. 2023's
     closed form f'(pi/pi_ref) = r/beta + c, solved by the pair solver)."""
+    from helpers_exact import SMALL_OVERRIDES
     from hydra import compose, initialize_config_dir
-    from test_sequences import SMALL_OVERRIDES
 
     from polopt.commands.train import CONFIG_DIR, run
 

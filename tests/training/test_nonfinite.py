@@ -6,9 +6,9 @@ from __future__ import annotations
 import pytest
 import torch
 
+from polopt import losses
 from polopt.checkpoints import store as checkpoint
 from polopt.commands.main import main
-from polopt.losses import margin as losses
 from polopt.pairs import PairSet
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
@@ -19,7 +19,7 @@ BAD = 5  # the pair whose cached reference log-probability is NaN (a broken data
 
 
 def _setup(bad: int | None = BAD):
-    session = prepare(bradley_terry(n_responses=4, seed=0), losses.get("logistic"), beta=0.5, mode="sampled",
+    session = prepare(bradley_terry(n_responses=4, seed=0), losses.resolve_margin("logistic"), beta=0.5, mode="sampled",
                       n_pairs=12, seed=0)
     p = session.pairs
     ref_w = p.reference_winner.clone()
@@ -50,7 +50,7 @@ def test_stop_names_the_step_the_batch_and_the_pair():
     with pytest.raises(FloatingPointError, match=rf"^step {first}: the loss is nan on a batch of 4 pairs \[.*\] "
                                                  rf"\(prompts \[0, 0, 0, 0\]\); non-finite at pairs \[{BAD}\]; "
                                                  r"lower optim.lr or beta, .* or set train.on_nonfinite=skip$"):
-        train(policy, pairs, losses.get("logistic"),
+        train(policy, pairs, losses.resolve_margin("logistic"),
               TrainSettings(beta=0.5, steps=30, optim=OptimConfig(), batch_size=4, seed=3, progress=False))
 
 
@@ -60,7 +60,7 @@ def test_skip_skips_exactly_the_batches_with_the_bad_pair(capsys):
     assert 0 < len(want) < 30
     saved = []
     policy = session.build_policy()
-    result = train(policy, pairs, losses.get("logistic"),
+    result = train(policy, pairs, losses.resolve_margin("logistic"),
                    TrainSettings(beta=0.5, steps=30, optim=OptimConfig(), batch_size=4, seed=3, progress=False,
                                  on_nonfinite="skip", checkpoint_every=5),
                    save_checkpoint=lambda s: saved.append(checkpoint.nonfinite_entries(s)))
@@ -76,7 +76,7 @@ def test_skipped_steps_leave_the_parameters_alone():
     session, pairs = _setup()
     policy = session.build_policy()
     before = policy.scores.detach().clone()
-    result = train(policy, pairs, losses.get("logistic"),
+    result = train(policy, pairs, losses.resolve_margin("logistic"),
                    TrainSettings(beta=0.5, steps=3, optim=OptimConfig("sgd", 1.0), progress=False, on_nonfinite="skip"))
     assert result.skipped == [1, 2, 3] and result.history == [] and result.final == {}
     assert torch.equal(policy.scores, before)
@@ -84,7 +84,7 @@ def test_skipped_steps_leave_the_parameters_alone():
 
 def test_a_non_finite_gradient_with_a_finite_loss_is_caught():
     session, pairs = _setup(bad=None)
-    loss = losses.get("user_losses:sqrt_abs")
+    loss = losses.resolve_margin("user_losses:sqrt_abs")
     with pytest.raises(FloatingPointError, match=r"^step 1: the gradient norm is nan on a batch of 12 pairs "):
         train(session.build_policy(), pairs, loss,
               TrainSettings(beta=0.5, steps=3, optim=OptimConfig(), progress=False))
@@ -93,7 +93,7 @@ def test_a_non_finite_gradient_with_a_finite_loss_is_caught():
 def test_on_nonfinite_is_checked():
     session, pairs = _setup(bad=None)
     with pytest.raises(ValueError, match=r"train.on_nonfinite must be stop or skip, got 'ignore'"):
-        train(session.build_policy(), pairs, losses.get("logistic"),
+        train(session.build_policy(), pairs, losses.resolve_margin("logistic"),
               TrainSettings(beta=0.5, steps=1, optim=OptimConfig(), progress=False, on_nonfinite="ignore"))
 
 

@@ -17,9 +17,9 @@ import torch
 from helpers_resume import assert_same_state, without_seconds
 from hydra import compose, initialize_config_dir
 
+from polopt import losses
 from polopt.checkpoints import store as checkpoint
 from polopt.commands.train import CONFIG_DIR, run
-from polopt.losses import margin as losses
 from polopt.training.loop import TrainSettings, train
 from polopt.training.optim import OptimConfig
 from polopt.training.stopping import FINITE_TASK_TOL, WINDOW, Convergence, validate_tol
@@ -61,7 +61,7 @@ def test_a_bad_tol_is_one_line(tol):
 @pytest.mark.parametrize(("task", "loss_name", "beta"), [(bradley_terry(), "logistic", 0.5),
                                                          (nontransitive(), "squared", 0.3)])
 def test_early_stopping_ends_within_the_tolerance_of_the_optimum(task, loss_name, beta):
-    loss = losses.get(loss_name)
+    loss = losses.resolve_margin(loss_name)
     session = task.prepare(loss, beta=beta, mode="exact")
     policy = session.build_policy()
     result = train(policy, session.pairs, loss, TrainSettings(beta=beta, steps=2000, optim=OptimConfig(),
@@ -76,7 +76,7 @@ def test_early_stopping_ends_within_the_tolerance_of_the_optimum(task, loss_name
 
 
 def test_a_run_that_does_not_converge_in_time_runs_every_step():
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = bradley_terry().prepare(loss, beta=0.5, mode="exact")
     result = train(session.build_policy(), session.pairs, loss,
                    TrainSettings(beta=0.5, steps=30, optim=OptimConfig(), progress=False, tol=FINITE_TASK_TOL))
@@ -84,7 +84,7 @@ def test_a_run_that_does_not_converge_in_time_runs_every_step():
 
 
 def _exact_run(steps, **kwargs):
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = bradley_terry(n_responses=4, seed=3).prepare(loss, beta=0.5, mode="exact")
     policy = session.build_policy()
     result = train(policy, session.pairs, loss, TrainSettings(beta=0.5, steps=steps, optim=OptimConfig(),

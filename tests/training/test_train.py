@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 import torch
 
-from polopt.losses import margin as losses
-from polopt.training.loop import OfflineObjective, TrainSettings, train
+from polopt import losses
+from polopt.training.loop import PairBatches, TrainSettings, train
 from polopt.training.optim import OptimConfig
 from toy_tasks import families
 from toy_tasks.finite.task import make_task
@@ -29,7 +29,7 @@ def random_task(seed, k):
 
 
 def run(task, name, beta=0.5, mode="exact", batch_size=None, **kwargs):
-    loss = losses.get(name)
+    loss = losses.resolve_margin(name)
     session = task.prepare(loss, beta=beta, mode=mode, **kwargs)
     policy = session.build_policy()
     result = train(policy, session.pairs, loss,
@@ -82,7 +82,7 @@ def test_squared_reaches_the_ipo_policy_on_a_cycle():
 
 def test_loglinear_policy_with_enough_features_reaches_the_optimum():
     task = families.bradley_terry(n_responses=5)
-    loss = losses.get("squared")
+    loss = losses.resolve_margin("squared")
     session = task.prepare(loss, beta=0.5, mode="exact")
     policy = session.build_policy(kind="loglinear", width=16)
     result = train(policy, session.pairs, loss,
@@ -102,13 +102,14 @@ def test_sampled_mode_reaches_the_empirical_optimum(name):
 def test_sampled_mode_with_minibatches_uses_every_pair():
     """Minibatches of 64 from 500 sampled pairs: each epoch (7 batches) visits 448 distinct pairs in a
     fresh order, so over the run every pair is drawn, and training still reaches the empirical optimum
-    (the trainer's own batch step, OfflineObjective.batch, replayed with the run's seed)."""
+    (the trainer's own batch step, PairBatches.batch, replayed with the run's seed)."""
     summary, result = run(families.bradley_terry(), "squared", mode="sampled", n_pairs=500, seed=2, batch_size=64)
     assert summary["n_pairs"] == 500 and result.steps == STEPS
     assert summary["tv_to_optimum"] <= 0.05  # minibatch noise: looser than the full-batch 1e-3
-    session = families.bradley_terry().prepare(losses.get("squared"), beta=0.5, mode="sampled", n_pairs=500, seed=2)
+    session = families.bradley_terry().prepare(losses.resolve_margin("squared"), beta=0.5, mode="sampled",
+                                               n_pairs=500, seed=2)
     settings = TrainSettings(beta=0.5, steps=STEPS, batch_size=64)
-    objective = OfflineObjective(session.build_policy(), session.pairs, losses.get("squared"), settings)
+    objective = PairBatches(session.build_policy(), session.pairs, losses.resolve_margin("squared"), settings)
     objective.start(torch.Generator().manual_seed(settings.seed))
     seen, epoch = [], []
     for _ in range(3 * 7):
@@ -150,7 +151,7 @@ def test_training_is_reproducible():
 
 def test_train_rejects_bad_settings():
     task = families.bradley_terry()
-    loss = losses.get("logistic")
+    loss = losses.resolve_margin("logistic")
     session = task.prepare(loss, beta=0.5)
     policy = session.build_policy()
     with pytest.raises(ValueError, match=r"train.steps must be a positive integer, got 0"):
@@ -178,6 +179,6 @@ def test_optim_betas_reach_torch_adam():
 
 def test_reference_log_probs_are_cached_in_the_pairs():
     task = families.bradley_terry()
-    session = task.prepare(losses.get("logistic"), beta=0.5)
+    session = task.prepare(losses.resolve_margin("logistic"), beta=0.5)
     log_ref = torch.log(torch.as_tensor(task.reference))
     torch.testing.assert_close(session.pairs.reference_winner, log_ref[session.pairs.prompt, session.pairs.winner])

@@ -35,7 +35,7 @@ import scipy.sparse
 import scipy.sparse.csgraph
 import torch
 
-from polopt.losses.margin import Loss, has_finite_pair_optimum_at_certainty
+from polopt.losses.margin import MarginLoss, has_finite_pair_optimum_at_certainty
 
 GRADIENT_TOLERANCE = 1e-10  # stop the Newton solve when max |grad L| falls below this
 
@@ -86,7 +86,7 @@ class Optimum:
 # ------------------------------------------------------------------ population loss
 
 
-def population_loss(loss: Loss, weights: np.ndarray, h: np.ndarray, *, beta: float) -> float:
+def population_loss(loss: MarginLoss, weights: np.ndarray, h: np.ndarray, *, beta: float) -> float:
     """``sum_{x,i,j} W[x,i,j] f(beta (h_xi - h_xj))`` in float64."""
     value, _, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h, dtype=torch.float64), beta, order=0)
     return value
@@ -97,7 +97,7 @@ def smoothed_weights(weights: np.ndarray, smoothing: float) -> np.ndarray:
     return (1.0 - smoothing) * weights + smoothing * np.swapaxes(weights, 1, 2)
 
 
-def _elementwise_derivatives(loss: Loss, x: torch.Tensor, order: int):
+def _elementwise_derivatives(loss: MarginLoss, x: torch.Tensor, order: int):
     """f(x), f'(x), f''(x) elementwise by autograd (f is elementwise, so the
     gradient of sum f is f')."""
     if order == 0:
@@ -111,7 +111,7 @@ def _elementwise_derivatives(loss: Loss, x: torch.Tensor, order: int):
     return value.detach(), d1.detach(), d2
 
 
-def _loss_grad_hess(loss: Loss, weights: np.ndarray, h: torch.Tensor, beta: float, order: int):
+def _loss_grad_hess(loss: MarginLoss, weights: np.ndarray, h: torch.Tensor, beta: float, order: int):
     w = torch.as_tensor(weights, dtype=torch.float64)  # (X, K, K)
     d = h[:, :, None] - h[:, None, :]  # (X, K, K): h_i - h_j
     mask = w > 0
@@ -160,7 +160,8 @@ def _limit_support(w: np.ndarray, strong: np.ndarray, active: np.ndarray) -> lis
 # ------------------------------------------------------------------ solvers
 
 
-def _newton(loss: Loss, w: np.ndarray, beta: float, h0: np.ndarray, labels: np.ndarray) -> tuple[np.ndarray, float]:
+def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray,
+            labels: np.ndarray) -> tuple[np.ndarray, float]:
     """Minimise one prompt's L(h) with a gauge term 0.5 * (sum of h over each component)^2,
     which fixes the free shift without moving the minimiser of L."""
     groups = [labels == c for c in np.unique(labels[labels >= 0])]
@@ -222,7 +223,7 @@ def _centre(h: np.ndarray, labels: np.ndarray) -> np.ndarray:
     return h
 
 
-def solve(loss: Loss, weights: np.ndarray, *, beta: float, rewards: np.ndarray | None = None,
+def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.ndarray | None = None,
           sampling: np.ndarray | None = None, preference: np.ndarray | None = None,
           population: bool = False) -> Optimum:
     """The exact optimum of ``sum W f(beta (h_i - h_j))`` over h (see the module docstring).
@@ -296,7 +297,7 @@ def _closed(loss, weights, beta, h, labels, method) -> Optimum:
                    float(np.abs(grad).max()), True, None, labels)
 
 
-def _infimum(loss: Loss, weights: np.ndarray, beta: float, labels, support) -> Optimum:
+def _infimum(loss: MarginLoss, weights: np.ndarray, beta: float, labels, support) -> Optimum:
     """No finite minimiser: the infimum of L, reached as the strongly connected
     components separate without bound. Pairs across components contribute
     lim_{x -> inf} f(x); pairs inside a component keep their finite optimum."""

@@ -1,7 +1,7 @@
 """The exact optimum of any pair objective on a finite task, with a certificate.
 
 A *pair objective* is a callable ``objective(pair, beta) -> Tensor`` of per-pair losses, shape (B,),
-where ``pair`` is a :class:`polopt.losses.scores.PairScores` (winner and loser log-probabilities under
+where ``pair`` is a :class:`polopt.losses.pair.PairScores` (winner and loser log-probabilities under
 the policy and the reference, and their lengths). On a finite task with win weights W (X, K, K),
 reference pi_ref and lengths n, its population loss over the simplex is
 
@@ -9,7 +9,7 @@ reference pi_ref and lengths n, its population loss over the simplex is
 
 This module minimises L in float64:
 
-- a margin loss f (a :class:`polopt.losses.margin.Loss`) keeps the solver of :mod:`toy_tasks.exact.margin` (closed
+- a margin loss f (a :class:`polopt.losses.margin.MarginLoss`) keeps the solver of :mod:`toy_tasks.exact.margin` (closed
   forms, linear programme, Newton in the log-ratios, Ford's existence test): it is the special case
   ``ell = f(beta ((w - ref_w) - (l - ref_l)))``, and :func:`exact_optimum` hands it over unchanged.
 - any other objective: pi = softmax(z) per prompt, a trust-region Newton solve in the logits z
@@ -43,12 +43,12 @@ import scipy.special
 import torch
 from tqdm.auto import tqdm
 
-from polopt.losses.margin import Loss
-from polopt.losses.scores import PairScores
+from polopt.losses.margin import MarginLoss
+from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
+from polopt.losses.reduce import per_pair_losses
 from toy_tasks.exact.margin import Optimum, population_loss, solve
 
 Tensor = torch.Tensor
-PairObjective = Callable[[PairScores, float], Tensor]
 
 GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
 CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
@@ -69,13 +69,13 @@ BOUNDARY_ROUNDS = 4  # continuations along the ray before the infimum is reporte
 VANISHED_DROP = 2.0  # a response whose log-probability fell by more than this while continuing has no mass in the limit
 
 
-def margin_of(objective) -> Loss | None:
-    """The margin loss f behind ``objective`` (a :class:`polopt.losses.margin.Loss`, or a pair objective
-    made from one by :func:`polopt.losses.registry.from_margin`), else None."""
-    if isinstance(objective, Loss):
+def margin_of(objective) -> MarginLoss | None:
+    """The margin loss f behind ``objective`` (a :class:`polopt.losses.margin.MarginLoss`, or a pair objective
+    made from one by :func:`polopt.losses.pair.as_pair_loss`), else None."""
+    if isinstance(objective, MarginLoss):
         return objective
     margin = getattr(objective, "margin", None)
-    return margin if isinstance(margin, Loss) else None
+    return margin if isinstance(margin, MarginLoss) else None
 
 
 def is_margin_loss(objective) -> bool:
@@ -83,20 +83,18 @@ def is_margin_loss(objective) -> bool:
     return margin_of(objective) is not None
 
 
-def margin_objective(loss: Loss | Callable[[Tensor], Tensor]) -> PairObjective:
-    """A margin loss f as a pair objective: ``ell = f(beta ((w - ref_w) - (l - ref_l)))`` (DESIGN.md)."""
-
-    def objective(pair: PairScores, beta: float) -> Tensor:
-        return loss(beta * (pair.logratio_winner - pair.logratio_loser))  # (B,)
-
-    objective.__name__ = getattr(loss, "name", getattr(loss, "__name__", "margin"))
-    return objective
+def margin_objective(loss: MarginLoss | Callable[[Tensor], Tensor]) -> PairLoss:
+    """A margin loss f as an opaque pair loss ``ell = f(beta ((w - ref_w) - (l - ref_l)))`` (DESIGN.md):
+    :func:`polopt.losses.pair.as_pair_loss` with the margin forgotten, so that the solver takes the
+    Newton path of any pair loss instead of the margin solver (the tests compare the two)."""
+    pair_loss = as_pair_loss(loss)
+    return PairLoss(pair_loss.name, pair_loss.fn, pair_loss.params, pair_loss.source)
 
 
 # ------------------------------------------------------------------ the population loss
 
 
-def _pair_terms(objective: PairObjective, w: Tensor, log_pi: Tensor, log_ref: Tensor, lengths: Tensor,
+def _pair_terms(objective: PairLoss, w: Tensor, log_pi: Tensor, log_ref: Tensor, lengths: Tensor,
                 beta: float) -> Tensor:
     """``sum_{i != j} W[i,j] ell(...)`` of one prompt (or all prompts: leading dimension X), a scalar."""
     index = torch.nonzero(w > 0, as_tuple=True)  # the weighted ordered pairs, each (E,)
@@ -104,15 +102,10 @@ def _pair_terms(objective: PairObjective, w: Tensor, log_pi: Tensor, log_ref: Te
     pair = PairScores(winner=log_pi[(*lead, i)], loser=log_pi[(*lead, j)],
                       ref_winner=log_ref[(*lead, i)], ref_loser=log_ref[(*lead, j)],
                       len_winner=lengths[(*lead, i)], len_loser=lengths[(*lead, j)])  # each (E,)
-    values = objective(pair, beta)
-    if not isinstance(values, Tensor) or values.shape != w[index].shape:
-        shape = tuple(values.shape) if isinstance(values, Tensor) else type(values).__name__
-        raise ValueError(f"pair objective {_name(objective)} must return one loss per pair, a tensor of shape "
-                         f"({len(i)},) for {len(i)} pairs; got {shape}")
-    return (w[index] * values).sum()
+    return (w[index] * per_pair_losses(objective, pair, beta=beta)).sum()  # (E,) weights times (E,) losses
 
 
-def pair_population_loss(objective: PairObjective, weights: np.ndarray, policy: np.ndarray,
+def pair_population_loss(objective: PairLoss, weights: np.ndarray, policy: np.ndarray,
                          reference: np.ndarray, lengths: np.ndarray, *, beta: float) -> float:
     """L(pi) of the module docstring in float64, for policies pi (X, K) on the simplex."""
     t = lambda a: torch.tensor(np.asarray(a, dtype=np.float64))  # noqa: E731  (a copy: a may be a read-only view)
@@ -139,7 +132,7 @@ class _Prompt:
     """L of one prompt as a function of its logits z (K,), with exact derivatives by autograd.
     A gauge term ``0.5 (sum z)^2`` fixes the free shift of z without moving pi."""
 
-    def __init__(self, objective: PairObjective, w: np.ndarray, log_ref: np.ndarray, lengths: np.ndarray,
+    def __init__(self, objective: PairLoss, w: np.ndarray, log_ref: np.ndarray, lengths: np.ndarray,
                  beta: float):
         self.objective, self.beta = objective, beta
         # torch.tensor copies: the task's arrays may be read-only views (np.broadcast_to)
@@ -191,8 +184,8 @@ class _Prompt:
         i, j = torch.nonzero(self.w > 0, as_tuple=True)  # (E,) each
         w = self.w[i, j]
         a, b = log_pi[i].detach().clone().requires_grad_(True), log_pi[j].detach().clone().requires_grad_(True)
-        values = self.objective(PairScores(a, b, self.log_ref[i], self.log_ref[j], self.lengths[i],
-                                           self.lengths[j]), self.beta)  # (E,)
+        values = per_pair_losses(self.objective, PairScores(a, b, self.log_ref[i], self.log_ref[j], self.lengths[i],
+                                                            self.lengths[j]), beta=self.beta)  # (E,)
         ga, gb = torch.autograd.grad(values.sum(), (a, b), create_graph=True)
 
         def second(g, wrt):  # elementwise d g_e / d wrt_e; zeros where g does not depend on it
@@ -522,7 +515,7 @@ def _closed_form(objective, weights, reference, rewards, beta, population) -> np
 # ------------------------------------------------------------------ the solver
 
 
-def solve_pairs(objective: PairObjective, weights: np.ndarray, reference: np.ndarray, lengths: np.ndarray, *,
+def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray, lengths: np.ndarray, *,
                 beta: float, rewards: np.ndarray | None = None, population: bool = False, starts: int = STARTS,
                 seed: int = 0) -> Optimum:
     """The exact optimum of a pair objective's population loss (see the module docstring).

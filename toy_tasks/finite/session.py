@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
 from polopt.models.tabular import build_policy
 from polopt.pairs import PairSet
 from polopt.training.contracts import TrainResult
@@ -35,7 +35,7 @@ DTYPE = torch.float64  # finite tasks are small: train them in double precision
 @dataclass
 class FiniteSession:
     task: object  # toy_tasks.finite.task.FiniteTask (imports this module to prepare itself)
-    loss: Loss
+    loss: MarginLoss
     beta: float
     smoothing: float
     mode: str
@@ -188,7 +188,7 @@ def pair_lengths(task, x: np.ndarray, i: np.ndarray, j: np.ndarray):
     return torch.as_tensor(lengths[x, i], dtype=DTYPE), torch.as_tensor(lengths[x, j], dtype=DTYPE)
 
 
-def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
+def prepare(task, loss: MarginLoss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
             n_pairs: int = 2000, seed: int = 0, run_dir=None) -> FiniteSession:
     """Pairs and exact optima of ``task`` for training ``loss`` at ``beta``. ``run_dir`` is
     unused: a finite task's reference log-probabilities are its table."""

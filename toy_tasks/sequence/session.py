@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
 from polopt.models.logprobs import lengths, real_tokens
 from polopt.models.reference_cache import FILE_NAME, reference_pair_logprobs
 from polopt.models.transformer import build_model, copy_weights
@@ -149,7 +149,7 @@ def token_pairs(task, index_pairs: PairSet, *, cache: Path | None) -> tuple[Pair
                    len_winner=lengths(winner, pad_id=pad), len_loser=lengths(loser, pad_id=pad)), reused[0]
 
 
-def prepare(task, loss: Loss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
+def prepare(task, loss: MarginLoss, *, beta: float, smoothing: float = 0.0, mode: str = "exact",
             n_pairs: int = 2000, seed: int = 0, run_dir: str | Path | None = None) -> SequenceSession:
     """Pairs and the exact optimum of the sequence task for ``loss`` at ``beta``."""
     finite = prepare_finite(task.finite_task(), loss, beta=beta, smoothing=smoothing, mode=mode, n_pairs=n_pairs,
