@@ -30,7 +30,6 @@ import csv
 import io
 import itertools
 import json
-import time
 from pathlib import Path
 
 from polopt.methods import overoptimisation
@@ -283,17 +282,18 @@ def main(argv: list[str]) -> int:
                     "and to the Nash equilibrium, steps, seconds. Writes comparison.txt/.csv/.json/.png.",
         epilog="example: polopt compare task=nontransitive loss=logistic,squared,hinge "
                "method=offline,selfplay beta=0.5")
-    parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train'; comma lists sweep")
-    parser.add_argument("--out", default=None, help="the comparison folder (default runs/compare/DATE-TIME)")
+    parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train'; comma lists sweep; "
+                                                     "hydra.run.dir=DIR: the comparison folder (default "
+                                                     "runs/compare/DATE/TIME)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_intermixed_args(argv)
     from polopt.commands import config  # after parsing: --help loads no torch
     from polopt.commands.train import precheck
 
-    out = Path(args.out) if args.out else Path("runs") / "compare" / time.strftime("%Y-%m-%d/%H-%M-%S")
-    for cfg in config.compose_all(args.overrides, sweep=True, command="polopt compare"):
+    out, overrides = config.output_folder(args.overrides, "polopt compare", "compare")
+    for cfg in config.compose_all(overrides, sweep=True, command="polopt compare"):
         precheck(cfg)  # every combination checked before any folder is made
-    result = compare(args.overrides, out, progress=not args.quiet)
+    result = compare(overrides, out, progress=not args.quiet)
     print(result["table"])
     print(f"comparison folder: {out}")
     return 0

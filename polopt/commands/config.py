@@ -63,6 +63,31 @@ def rewrite_overrides(args: list[str]) -> list[str]:
     return out
 
 
+OUTPUT_KEY = "hydra.run.dir"  # where every command that writes a folder writes it, as polopt train takes it
+
+
+def output_folder(overrides: list[str], command: str, default: str) -> tuple[Path, list[str]]:
+    """The folder ``command`` writes: ``hydra.run.dir=DIR`` (the key polopt train takes), else ``default``
+    under runs/ with the date and time (``runs/DEFAULT/DATE/TIME``); and the other overrides. Any other
+    ``hydra`` key is refused in one line: only polopt train runs under Hydra's own launcher."""
+    import time
+
+    folder, rest = None, []
+    for arg in overrides:
+        key, eq, value = arg.partition("=")
+        bare = key.lstrip("+~")
+        if bare == OUTPUT_KEY:
+            if not eq or not value.strip():
+                raise ValueError(f"{command}: {OUTPUT_KEY} needs a folder, e.g. {OUTPUT_KEY}=runs/mine")
+            folder = Path(value)
+        elif bare.startswith(("hydra.", "hydra/")):
+            raise ValueError(f"{command} takes {OUTPUT_KEY}=DIR (its output folder) and no other hydra key; "
+                             f"{arg!r} would change nothing here")
+        else:
+            rest.append(arg)
+    return folder or Path("runs") / default / time.strftime("%Y-%m-%d/%H-%M-%S"), rest
+
+
 def only_keys(overrides: list[str], prefixes: tuple[str, ...], command: str) -> None:
     """Refuse a ``key=value`` that ``command`` would not read (its keys start with one of ``prefixes``,
     or equal one without the trailing dot)."""

@@ -2,22 +2,22 @@
 
     polopt data pairs.jsonl
     polopt data answers.csv 'task.columns={prompt: question, winner: good_reply, loser: other_reply}'
-    polopt data pairs.parquet task.max_length=512 task.truncation=truncate_response --plot lengths.png
-    polopt data pairs_folder --json
+    polopt data pairs.parquet task.max_length=512 task.truncation=truncate_response --plot
+    polopt data pairs_folder --json hydra.run.dir=runs/check-pairs
 
 The keys are those of ``polopt train task=pairs`` (task.columns, task.format, task.max_length,
 task.truncation, task.duplicates, task.tokenizer, task.hub), so a file checked here reads the same in
 training. Prints rows in / accepted / rejected by reason / truncated / duplicates, a text histogram of
-pair lengths, and the first rejects; writes every reject to a JSON Lines file (``--rejects``). A
-problem with the file as a whole is one line ``polopt data: error: ...`` and exit code 2; bad rows are
-never an error.
+pair lengths, and the first rejects. Writes into its folder (``hydra.run.dir=DIR``, as every command;
+default ``runs/data/DATE/TIME``): ``report.json`` (the accounting), ``rejects.jsonl`` (every reject) and,
+with ``--plot``, ``lengths.png``; never beside the input or in the working folder. A problem with the
+file as a whole is one line ``polopt data: error: ...`` and exit code 2; bad rows are never an error.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
-from pathlib import Path
 
 KEYS = ("task.columns", "task.format", "task.max_length", "task.truncation", "task.duplicates", "task.tokenizer",
         "task.hub")  # the task=pairs keys that say how a pair file is read
@@ -37,10 +37,10 @@ def build_parser() -> argparse.ArgumentParser:
                "bad_weight, identical, too_long, duplicate.")
     parser.add_argument("file", help="a .jsonl/.csv/.tsv/.parquet file or a folder written by datasets' save_to_disk")
     parser.add_argument("overrides", nargs="*", metavar="task.KEY=VALUE",
-                        help=f"how to read the file, as for polopt train task=pairs: {', '.join(KEYS)}")
-    parser.add_argument("--rejects", default=None, type=Path,
-                        help="where to write the rejects (JSON Lines); default NAME.rejects.jsonl here")
-    parser.add_argument("--plot", default=None, type=Path, help="also write the length histogram as a PNG")
+                        help=f"how to read the file, as for polopt train task=pairs: {', '.join(KEYS)}; "
+                             "hydra.run.dir=DIR: the folder of report.json and rejects.jsonl (default "
+                             "runs/data/DATE/TIME)")
+    parser.add_argument("--plot", action="store_true", help="also write the length histogram, lengths.png")
     parser.add_argument("--json", action="store_true", help="print the accounting as JSON instead of the text report")
     return parser
 
@@ -51,21 +51,25 @@ def main(argv: list[str]) -> int:
 
     from polopt.commands import config
     from polopt.data import load_pairs, plot_lengths, summary_text, write_rejects
+    from polopt.training.run_folder import write_json
 
     args = build_parser().parse_intermixed_args(argv)
-    cfg = config.compose(["task=pairs", *args.overrides], command="polopt data")
-    config.only_keys(args.overrides, KEYS, "polopt data")
+    out, overrides = config.output_folder(args.overrides, "polopt data", "data")
+    cfg = config.compose(["task=pairs", *overrides], command="polopt data")
+    config.only_keys(overrides, KEYS, "polopt data")
     task = OmegaConf.to_container(cfg.task, resolve=True)
     data = load_pairs(args.file, columns=task["columns"], format=task["format"], max_length=task["max_length"],
                       truncation=task["truncation"], duplicates=task["duplicates"], tokenizer=task["tokenizer"],
                       hub=task["hub"])
-    rejects = args.rejects or Path(f"{Path(args.file).name or 'pairs'}.rejects.jsonl")
-    write_rejects(data.rejects, rejects)
-    plot = plot_lengths(data, args.plot) if args.plot is not None else None
+    rejects = write_rejects(data.rejects, out / "rejects.jsonl")
+    plot = plot_lengths(data, out / "lengths.png") if args.plot else None
+    report = data.accounting | {"rejects_file": str(rejects), "plot": plot and str(plot)}
+    write_json(out / "report.json", report)
     if args.json:
-        print(json.dumps(data.accounting | {"rejects_file": str(rejects), "plot": plot and str(plot)}, indent=1))
+        print(json.dumps(report, indent=1))
     else:
         print(summary_text(data, rejects))
         if plot is not None:
             print(f"  length plot: {plot}")
+        print(f"  report: {out / 'report.json'}")
     return 0

@@ -1,14 +1,12 @@
 """``polopt demo [KEY=VALUE ...]``: the command line of the end-to-end walk-through
 (:mod:`polopt.demo.pipeline` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`);
-flags only for what is not one (``--out``, ``--betas``, ``--bias``, ``--quick``, ...). Imports no torch
-until it runs."""
+``hydra.run.dir=DIR`` chooses the folder, as for every command; flags only for what is not a key
+(``--betas``, ``--bias``, ``--quick``, ...). Imports no torch until it runs."""
 
 from __future__ import annotations
 
 import argparse
 import dataclasses
-import time
-from pathlib import Path
 
 # polopt train's config keys the demo reads -> the DemoConfig field each sets
 KEYS = {"loss": "loss", "beta": "beta", "train.steps": "steps", "train.batch_size": "batch_size", "train.seed": "seed",
@@ -24,7 +22,7 @@ def build_parser() -> argparse.ArgumentParser:
                     "(ground truth, with a Wilson interval), judge win-rate without and with order swapping, KL, "
                     "and a KL vs win-rate frontier across beta. Config keys as for polopt train: "
                     + ", ".join(KEYS) + ".",
-        epilog="examples:\n  polopt demo\n  polopt demo loss=squared --out runs/demo-squared\n"
+        epilog="examples:\n  polopt demo\n  polopt demo loss=squared hydra.run.dir=runs/demo-squared\n"
                "  polopt demo loss=hinge train.steps=100 --betas 0.1,0.3\n  polopt demo --quick   # seconds, "
                "checks the mechanics only", formatter_class=argparse.RawDescriptionHelpFormatter)
     from polopt.demo.settings import DemoConfig
@@ -32,8 +30,8 @@ def build_parser() -> argparse.ArgumentParser:
     d = DemoConfig()
     parser.add_argument("overrides", nargs="*", metavar="KEY=VALUE",
                         help=f"config keys as for polopt train (defaults: loss={d.loss} beta={d.beta} "
-                             f"train.steps={d.steps} optim.lr={d.lr} task.n_pairs={d.n_pairs} train.threads=1)")
-    parser.add_argument("--out", default=None, help="output folder (default runs/demo/<time>-<loss>)")
+                             f"train.steps={d.steps} optim.lr={d.lr} task.n_pairs={d.n_pairs} train.threads=1); "
+                             "hydra.run.dir=DIR: the output folder (default runs/demo/DATE/TIME)")
     parser.add_argument("--betas", default=",".join(f"{b:g}" for b in d.betas),
                         help="comma-separated betas of the frontier (default %(default)s)")
     parser.add_argument("--bias", type=float, default=d.bias, help="the judge's position bias (default %(default)s)")
@@ -87,13 +85,14 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_intermixed_args(argv)  # before the imports below: --help loads no torch
     import torch
 
+    from polopt.commands.config import output_folder
     from polopt.demo.pipeline import check_config, run_demo
 
+    out, args.overrides = output_folder(args.overrides, "polopt demo", "demo")
     cfg, run_keys = config_from_args(args)
     check_config(cfg)
     if run_keys["threads"]:
         torch.set_num_threads(int(run_keys["threads"]))
-    out = Path(args.out or f"runs/demo/{time.strftime('%Y-%m-%d/%H-%M-%S')}-{cfg.loss.replace(':', '_')}")
     summary = run_demo(cfg, out, progress=bool(run_keys["progress"]))
     lo, hi = summary["win_rate_ci"]
     print(f"win_rate {summary['win_rate']:.3f} [{lo:.3f}, {hi:.3f}] over the reference (ground truth, "

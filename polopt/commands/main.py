@@ -5,15 +5,16 @@
     polopt export TASK OUT.json [KEY=VALUE ...]        write a built-in task out as a task file
     polopt data FILE [task.KEY=VALUE ...]              check and summarise a preference-pair file
     polopt compare [GROUP=A,B ...] [KEY=VALUE ...]     several losses / methods side by side
-    polopt reward [KEY=VALUE ...] [--out DIR]        fit a Bradley–Terry reward model to a task's pairs
-    polopt reward [KEY=VALUE ...] [--out DIR]          fit a Bradley–Terry reward model to a task's pairs
+    polopt reward [KEY=VALUE ...]                      fit a Bradley–Terry reward model to a task's pairs
     polopt realign [KEY=VALUE ...] [--lambdas L,...]   realignment by lambda against retraining at beta / lambda
     polopt checkpoints RUN_DIR                         verify a run folder's checkpoints (sizes, SHA-256, loading)
     polopt check LOSS [KEY=VALUE ...] [--json]         unit-test a loss against the analytic optimum
     polopt demo [KEY=VALUE ...] [--quick]              the end-to-end walk-through
-    polopt sft FILE --out REF.pt [KEY=VALUE ...]       supervised fine-tuning of a reference model
+    polopt sft FILE [KEY=VALUE ...]                    supervised fine-tuning of a reference model
 
 Every command takes polopt train's config keys as KEY=VALUE; flags only for what is not a config key.
+Every command that writes a folder (train, reward, compare, sft, realign, demo, data) takes it as
+hydra.run.dir=DIR (default under runs/).
 
 ``polopt train --help`` lists the config groups and every key.
 """

@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import io
-import time
 from pathlib import Path
 
 import numpy as np
@@ -179,19 +178,19 @@ def main(argv: list[str]) -> int:
                     "per-token mixing of the logits), retrain at beta / lambda, and tabulate and plot each one's "
                     "TV to the exact optimum at beta / lambda. Writes realign.txt/.csv/.json/.png.",
         epilog="example: polopt realign +experiment=sequence loss=logistic --lambdas 0.25,0.5,1,2,4")
-    parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train' (no sweeps)")
+    parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train' (no sweeps); "
+                                                     "hydra.run.dir=DIR: the folder (default runs/realign/DATE/TIME)")
     parser.add_argument("--lambdas", default="0.25,0.5,1,2,4", help="comma list of lambdas (default %(default)s)")
     parser.add_argument("--no-retrain", action="store_true", help="only the mixtures, no retrained runs")
-    parser.add_argument("--out", default=None, help="the folder (default runs/realign/DATE-TIME)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_intermixed_args(argv)
     from polopt.commands import config  # after parsing: --help loads no torch
     from polopt.commands.train import precheck
 
-    out = Path(args.out) if args.out else Path("runs") / "realign" / time.strftime("%Y-%m-%d/%H-%M-%S")
+    out, overrides = config.output_folder(args.overrides, "polopt realign", "realign")
     lambdas = parse_lambdas(args.lambdas)
-    precheck(config.compose_all(args.overrides, command="polopt realign")[0])  # before any folder is made
-    result = realign_sweep(args.overrides, lambdas, out, retrain=not args.no_retrain, progress=not args.quiet)
+    precheck(config.compose_all(overrides, command="polopt realign")[0])  # before any folder is made
+    result = realign_sweep(overrides, lambdas, out, retrain=not args.no_retrain, progress=not args.quiet)
     print(result["table"])
     print(f"realign folder: {out}")
     return 0

@@ -1,6 +1,6 @@
 """``polopt reward``: fit a Bradley–Terry reward model to a task's pairs and write it out.
 
-    polopt reward task=bradley_terry task.mode=sampled task.n_pairs=2000 train.seed=0 --out runs/rm
+    polopt reward task=bradley_terry task.mode=sampled task.n_pairs=2000 train.seed=0 hydra.run.dir=runs/rm
 
 The same ``key=value`` overrides as ``polopt train`` (Hydra's compose API on
 conf/config.yaml), plus the ``reward`` block (``reward.l2``, ``reward.heldout``,
@@ -63,13 +63,16 @@ def main(argv: list[str]) -> int:
                     "reward.pt (give it to method.reward=PATH) and summary.json (rewards, pair_counts, "
                     "heldout_accuracy, calibration_error, the distance to the true rewards).",
         epilog="example: polopt reward task=bradley_terry task.mode=sampled task.n_pairs=2000 train.seed=0 "
-               "--out runs/rm")
+               "hydra.run.dir=runs/rm")
     parser.add_argument("overrides", nargs="*", help="key=value overrides as for 'polopt train' (and reward.l2, "
-                                                     "reward.heldout, reward.bins, reward.steps, reward.lr)")
-    parser.add_argument("--out", default=None, help="the output folder (default runs/reward/DATE/TIME)")
+                                                     "reward.heldout, reward.bins, reward.steps, reward.lr); "
+                                                     "hydra.run.dir=DIR: the output folder (default "
+                                                     "runs/reward/DATE/TIME)")
     args = parser.parse_intermixed_args(argv)
-    out = Path(args.out) if args.out else Path("runs") / "reward" / time.strftime("%Y-%m-%d/%H-%M-%S")
-    summary = fit(args.overrides, out)  # a user error: one line by polopt.commands.errors
+    from polopt.commands.config import output_folder
+
+    out, overrides = output_folder(args.overrides, "polopt reward", "reward")
+    summary = fit(overrides, out)  # a user error: one line by polopt.commands.errors
     print(summary["screen"])
     hint = "  (give it to method.reward=PATH)" if summary.get("rewards") is not None else ""
     print(f"reward model: {summary['reward_model']}{hint}")

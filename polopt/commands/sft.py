@@ -1,6 +1,7 @@
-"""``polopt sft FILE --out REF.pt [KEY=VALUE ...]``: train the tiny transformer on plain text and save it as a
-reference model (:mod:`polopt.training.sft` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`), over
-the defaults of :data:`DEFAULTS`; ``--out`` is the one flag."""
+"""``polopt sft FILE [KEY=VALUE ...]``: train the tiny transformer on plain text and save it as a reference
+model (:mod:`polopt.training.sft` does the work). Its config keys are ``polopt train``'s (:data:`KEYS`), over
+the defaults of :data:`DEFAULTS`; ``hydra.run.dir=DIR`` chooses the folder of ``reference.pt``, as for every
+command (default ``runs/sft/DATE/TIME``)."""
 
 from __future__ import annotations
 
@@ -18,17 +19,17 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="polopt sft",
         description="Train the tiny transformer on plain text by next-token cross-entropy and save it as the "
-                    "reference model of a preference run (task=pairs task.reference_checkpoint=OUT). Config keys "
+                    "reference model of a preference run (task=pairs task.reference_checkpoint=DIR/reference.pt). "
+                    "hydra.run.dir=DIR chooses its folder (default runs/sft/DATE/TIME). Config keys "
                     "as for "
                     "polopt train: " + ", ".join(f"{k} (default {DEFAULTS[v]})" for k, v in KEYS.items()) +
                     "; model.context defaults to the longest example (give more to leave room for longer pairs).",
-        epilog="examples:\n  polopt sft notes.txt --out runs/ref.pt\n"
-               "  polopt sft dialogues.jsonl --out runs/ref.pt train.steps=600 model.width=64 model.context=128",
+        epilog="examples:\n  polopt sft notes.txt hydra.run.dir=runs/ref\n"
+               "  polopt sft dialogues.jsonl hydra.run.dir=runs/ref train.steps=600 model.width=64 model.context=128",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("file", help="a text file (one example per line) or a .jsonl file of "
                                      "{\"prompt\": ..., \"response\": ...} objects")
     parser.add_argument("overrides", nargs="*", metavar="KEY=VALUE", help="config keys as for polopt train")
-    parser.add_argument("--out", required=True, help="the reference checkpoint to write (e.g. runs/ref.pt)")
     return parser
 
 
@@ -49,6 +50,7 @@ def settings(overrides: list[str]) -> dict:
 def main(argv: list[str] | None = None) -> int:
     """The ``polopt sft`` subcommand."""
     args = build_parser().parse_intermixed_args(argv)  # before the imports below: --help loads no torch
+    from polopt.commands.config import output_folder
     from polopt.data.encoding import SequenceIds
     from polopt.data.tokenizer import load_tokenizer
     from polopt.training.sft import (
@@ -60,7 +62,8 @@ def main(argv: list[str] | None = None) -> int:
         train_sft,
     )
 
-    s = settings(args.overrides)
+    out, overrides = output_folder(args.overrides, "polopt sft", "sft")
+    s = settings(overrides)
     tokenizer = load_tokenizer(s["tokenizer"])
     ids = SequenceIds.for_tokenizer(tokenizer)
     examples = read_examples(args.file)
@@ -74,7 +77,7 @@ def main(argv: list[str] | None = None) -> int:
     model = build_model(ids, context=context, width=s["width"], layers=s["layers"], heads=s["heads"], seed=s["seed"])
     result = train_sft(model, prompt, response, pad_id=ids.pad, steps=s["steps"], lr=s["lr"],
                        batch_size=s["batch_size"], seed=s["seed"], progress=bool(s["progress"]))
-    path = save_reference(args.out, model, ids=ids, tokenizer=s["tokenizer"], architecture=arch,
+    path = save_reference(out / "reference.pt", model, ids=ids, tokenizer=s["tokenizer"], architecture=arch,
                           history=result.history, source=str(args.file))
     first, last = result.history[0]["loss"], result.final_loss
     print(f"{len(examples)} examples, {result.steps} steps in {result.seconds:.1f} s: next-token loss "

@@ -46,13 +46,13 @@ def test_every_command_refuses_a_target_outside_the_task_packages_and_creates_no
     argv = {"train": ["train", *keys, f"hydra.run.dir={out}"],
             "train -m": ["train", "-m", *keys, f"hydra.sweep.dir={out}"],
             "export": ["export", "bradley_terry", str(work / "task.json"), *keys],
-            "compare": ["compare", *keys, "--out", out, "--quiet"],
-            "realign": ["realign", *keys, "--out", out, "--quiet"],
+            "compare": ["compare", *keys, f"hydra.run.dir={out}", "--quiet"],
+            "realign": ["realign", *keys, f"hydra.run.dir={out}", "--quiet"],
             "check": ["check", "logistic", *keys, "--quick"],
-            "demo": ["demo", *keys, "--quick", "--out", out],
+            "demo": ["demo", *keys, "--quick", f"hydra.run.dir={out}"],
             "data": ["data", *keys],
-            "sft": ["sft", *keys, "--out", str(work / "ref.pt")],
-            "reward": ["reward", *keys, "--out", out]}[command]
+            "sft": ["sft", *keys, f"hydra.run.dir={out}"],
+            "reward": ["reward", *keys, f"hydra.run.dir={out}"]}[command]
     assert main(argv) == 2
     line = _one_line(capsys)
     assert line.startswith(f"polopt {command.split()[0]}: error: ")
@@ -125,11 +125,11 @@ def test_export_takes_task_keys(tmp_path, capsys):
 
 def test_compare_and_realign_check_every_combination_before_any_folder(tmp_path, capsys):
     out = tmp_path / "cmp"
-    assert main(["compare", "loss=logistic,squaredd", "--out", str(out), "--quiet"]) == 2
+    assert main(["compare", "loss=logistic,squaredd", f"hydra.run.dir={out}", "--quiet"]) == 2
     assert _one_line(capsys).startswith("polopt compare: error: unknown loss 'squaredd'; choose one of: ")
-    assert main(["compare", "beta=0.5,0", "--out", str(out), "--quiet"]) == 2
+    assert main(["compare", "beta=0.5,0", f"hydra.run.dir={out}", "--quiet"]) == 2
     assert _one_line(capsys) == "polopt compare: error: beta must be a number > 0 (e.g. beta=0.1), got 0"
-    assert main(["realign", "train.stepz=3", "--out", str(out), "--quiet"]) == 2
+    assert main(["realign", "train.stepz=3", f"hydra.run.dir={out}", "--quiet"]) == 2
     assert _one_line(capsys) == "polopt realign: error: unknown key 'train.stepz'; did you mean train.steps or " \
                                 "train.seed?"
     assert not out.exists()

@@ -37,7 +37,7 @@ def test_methods_that_ignore_the_loss_run_once():
 
 def test_nontransitive_comparison_names_the_equilibrium(tmp_path, capsys):
     code = main(["compare", "task=nontransitive", "loss=logistic,squared", "method=offline,selfplay", "beta=0.5",
-                 "train.steps=600", "--out", str(tmp_path), "--quiet"])
+                 "train.steps=600", f"hydra.run.dir={tmp_path}", "--quiet"])
     assert code == 0
     result = json.loads((tmp_path / "comparison.json").read_text())
     rows = {r["run"]: r for r in result["rows"]}
@@ -58,7 +58,7 @@ def test_nontransitive_comparison_names_the_equilibrium(tmp_path, capsys):
 
 
 def test_unknown_method_is_one_line_and_exit_code_2(tmp_path, capsys):
-    assert main(["compare", "method=offline,annealing", "--out", str(tmp_path)]) == 2
+    assert main(["compare", "method=offline,annealing", f"hydra.run.dir={tmp_path}"]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1
     assert err.startswith("polopt compare: error: unknown method 'annealing'; choose one of: best_of_n, offline, "
@@ -66,7 +66,7 @@ def test_unknown_method_is_one_line_and_exit_code_2(tmp_path, capsys):
 
 
 def test_method_without_rewards_is_one_line(tmp_path, capsys):
-    assert main(["compare", "task=nontransitive", "method=rl", "--out", str(tmp_path), "--quiet"]) == 2
+    assert main(["compare", "task=nontransitive", "method=rl", f"hydra.run.dir={tmp_path}", "--quiet"]) == 2
     assert capsys.readouterr().err == ("polopt compare: error: method=rl needs rewards and task 'nontransitive' "
                                        "has none; use a task with rewards (bradley_terry, contextual) or "
                                        "method.reward=win_rate\n")

@@ -23,7 +23,7 @@ def test_compare_pair_objectives_shows_displacement_and_length(tmp_path, capsys)
     path = task.save(tmp_path / "long.json")
     code = main(["compare", "task=file", f"task.path={path}",
                  "loss=divergence_reverse_kl,length_regularised,length_normalised_free", "beta=0.5",
-                 "train.steps=1500", "--out", str(tmp_path / "cmp"), "--quiet"])
+                 "train.steps=1500", f"hydra.run.dir={tmp_path / 'cmp'}", "--quiet"])
     assert code == 0, capsys.readouterr().err
     out = capsys.readouterr().out
     for key in ("tv_to_optimum", "kl_to_reference", "optimum_logratio_winner", "optimum_mean_length",

@@ -21,9 +21,10 @@ def files(tmp_path_factory):
 
 def test_text_report_rejects_file_and_plot(files, tmp_path, capsys):
     out, manifest = files
-    rejects, plot = tmp_path / "r.jsonl", tmp_path / "len.png"
-    code = main(["data", str(out / "pairs.jsonl"), f"task.max_length={MAX_LENGTH}", "--rejects", str(rejects),
-                 "--plot", str(plot)])
+    folder = tmp_path / "report"
+    rejects, plot = folder / "rejects.jsonl", folder / "lengths.png"
+    code = main(["data", str(out / "pairs.jsonl"), f"task.max_length={MAX_LENGTH}", f"hydra.run.dir={folder}",
+                 "--plot"])
     text = capsys.readouterr().out
     n_bad, n_good = len(manifest["expected"]["jsonl"]), len(manifest["good"])
     assert code == 0
@@ -31,26 +32,43 @@ def test_text_report_rejects_file_and_plot(files, tmp_path, capsys):
     assert "pair length (bytes: prompt + longer response)" in text and "first rejects (1-based line" in text
     assert len(rejects.read_text(encoding="utf-8").splitlines()) == n_bad
     assert plot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
+    report = json.loads((folder / "report.json").read_text(encoding="utf-8"))
+    assert report["rows_rejected"] == n_bad and report["rejects_file"] == str(rejects)
 
 
 def test_json_accounting(files, tmp_path, capsys):
     out, manifest = files
     code = main(["data", str(out / "pairs.csv"), "task.max_length=200", "task.truncation=truncate_response",
-                 "--rejects", str(tmp_path / "r.jsonl"), "--json"])
+                 f"hydra.run.dir={tmp_path / 'r'}", "--json"])
     report = json.loads(capsys.readouterr().out)
     assert code == 0
     assert report["rows_in"] == report["rows_accepted"] + report["rows_rejected"]
     assert report["rows_in"] == len(manifest["good"]) + len(manifest["expected"]["csv"])
     assert report["truncation"] == "truncate_response" and report["rows_truncated"] > 0
-    assert report["rejects_file"] == str(tmp_path / "r.jsonl")
+    assert report["rejects_file"] == str(tmp_path / "r" / "rejects.jsonl")
 
 
-def test_default_rejects_file_is_written_in_the_current_folder(files, tmp_path, monkeypatch, capsys):
+def test_by_default_the_report_goes_under_runs_never_beside_the_input_or_loose(files, tmp_path, monkeypatch,
+                                                                             capsys):
     out, _ = files
     monkeypatch.chdir(tmp_path)
+    before = sorted(p.name for p in out.iterdir())
     assert main(["data", str(out / "pairs_folder")]) == 0
-    assert (tmp_path / "pairs_folder.rejects.jsonl").is_file()
-    assert "rejects file: pairs_folder.rejects.jsonl" in capsys.readouterr().out
+    (folder,) = (tmp_path / "runs" / "data").glob("*/*")  # runs/data/DATE/TIME, as polopt train's runs/DATE/TIME
+    assert sorted(p.name for p in folder.iterdir()) == ["rejects.jsonl", "report.json"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["runs"] and sorted(p.name for p in out.iterdir()) == before
+    assert f"rejects file: {folder.relative_to(tmp_path) / 'rejects.jsonl'}" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("command", ["data", "reward", "compare", "realign", "sft", "demo"])
+def test_a_hydra_key_other_than_the_output_folder_is_refused_in_one_line(command, tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    first = {"data": ["pairs.jsonl"], "sft": ["notes.txt"]}.get(command, [])
+    assert main([command, *first, f"hydra.sweep.dir={tmp_path / 'x'}"]) == 2
+    assert capsys.readouterr().err == (f"polopt {command}: error: polopt {command} takes hydra.run.dir=DIR (its output "
+                                       f"folder) and no other hydra key; 'hydra.sweep.dir={tmp_path / 'x'}' would "
+                                       "change nothing here\n")
+    assert list(tmp_path.iterdir()) == []
 
 
 @pytest.mark.parametrize(("args", "message"), [

@@ -64,7 +64,7 @@ def test_run_folder(quick):
     (["--bias", "1.5"], r"^polopt demo: error: --bias must lie in \[0, 1\)"),
 ])
 def test_errors_are_one_line(args, message, capsys, tmp_path):
-    assert main(["demo", "--out", str(tmp_path), *args]) == 2
+    assert main(["demo", f"hydra.run.dir={tmp_path}", *args]) == 2
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1
     import re

@@ -166,7 +166,7 @@ def test_a_reward_model_file_knows_its_task(tmp_path):
 
 def test_the_reward_command_writes_counts_that_anyone_can_refit(tmp_path):
     out = polopt("reward", "task=bradley_terry", "task.mode=sampled", "task.n_pairs=2000", "train.seed=0",
-                 "--out", str(tmp_path / "rm"))
+                 f"hydra.run.dir={tmp_path / 'rm'}")
     assert out.returncode == 0, out.stderr
     summary = json.loads((tmp_path / "rm" / "summary.json").read_text())
     task = bradley_terry()  # conf/task/bradley_terry.yaml's defaults
@@ -194,11 +194,11 @@ def test_bad_reward_input_is_one_line_and_exit_2(tmp_path):
         (("train", "method=rl", "task=contextual", f"method.reward={path}"), r"fitted for task 'bradley_terry'"),
         (("train", "method=rl", "task.n_responses=8", f"method.reward={path}"), r"fitted for responses 6"),
         (("train", "method=best_of_n", f"method.reward={tmp_path / 'none.pt'}"), r"none.pt' does not exist"),
-        (("reward", "task.mode=sampled", "task.n_pairs=20", "--out", str(tmp_path / "x")),
+        (("reward", "task.mode=sampled", "task.n_pairs=20", f"hydra.run.dir={tmp_path / 'x'}"),
          r"polopt reward: error: the Bradley–Terry maximum-likelihood fit does not exist.*reward.l2"),
-        (("reward", "reward.nosuch=1", "--out", str(tmp_path / "z")),
+        (("reward", "reward.nosuch=1", f"hydra.run.dir={tmp_path / 'z'}"),
          r"unknown key 'reward.nosuch'; did you mean reward\."),
-        (("reward", "task.mode=sampled", "reward.heldout=1.5", "--out", str(tmp_path / "y")),
+        (("reward", "task.mode=sampled", "reward.heldout=1.5", f"hydra.run.dir={tmp_path / 'y'}"),
          r"reward.heldout .* must lie in \[0, 1\)"),
     ]
     for args, message in cases:

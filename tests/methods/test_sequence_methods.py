@@ -197,7 +197,7 @@ def test_each_method_trains_the_transformer_towards_its_target(tmp_path, method,
 def test_realign_command_writes_table_and_plot(tmp_path, capsys):
     out = tmp_path / "sweep"
     code = main(["realign", *TINY_OVERRIDES, "loss=logistic", "train.steps=100", "--lambdas", "0.5,1,2",
-                 "--out", str(out), "--quiet"])
+                 f"hydra.run.dir={out}", "--quiet"])
     assert code == 0
     result = json.loads((out / "realign.json").read_text())
     rows = {r["lambda"]: r for r in result["rows"]}
@@ -216,7 +216,7 @@ def test_realign_command_refuses_bad_lambdas(capsys):
 
 def test_compare_runs_methods_on_the_sequence_task(tmp_path):
     out = tmp_path / "cmp"
-    assert main(["compare", *TINY_OVERRIDES, "train.steps=30", "method=offline,rl,best_of_n", "--out", str(out),
+    assert main(["compare", *TINY_OVERRIDES, "train.steps=30", "method=offline,rl,best_of_n", f"hydra.run.dir={out}",
                  "--quiet"]) == 0
     result = json.loads((out / "comparison.json").read_text())
     assert [r["method"] for r in result["rows"]] == ["offline", "rl", "best_of_n"]
@@ -229,7 +229,7 @@ def test_realign_command_on_a_finite_task_has_no_per_token_rows(tmp_path):
     # finite tasks: the sequence-level mixture is exact (Liu et al. 2024), per-token mixing does not apply
     out = tmp_path / "finite"
     assert main(["realign", "task=contextual", "train.steps=600", "train.progress=false", "--lambdas", "0.5,2",
-                 "--out", str(out), "--quiet"]) == 0
+                 f"hydra.run.dir={out}", "--quiet"]) == 0
     rows = json.loads((out / "realign.json").read_text())["rows"]
     assert all(r["tv_geometric"] < 1e-3 and r["tv_per_token"] is None for r in rows)
     assert all(r["tv_retrained"] < 1e-3 and r["tv_geometric_to_retrained"] < 2e-3 for r in rows)

@@ -86,19 +86,20 @@ def test_read_examples(tmp_path):
 def test_polopt_sft_command(tmp_path, capsys):
     data = tmp_path / "notes.txt"
     data.write_text("wind 12 knots\nrain 3 mm\n", encoding="utf-8")
-    out = tmp_path / "ref.pt"
-    code = main(["sft", str(data), "--out", str(out), "train.steps=3", "model.width=16", "model.layers=1",
+    folder = tmp_path / "ref"
+    code = main(["sft", str(data), f"hydra.run.dir={folder}", "train.steps=3", "model.width=16", "model.layers=1",
                  "model.heads=2", "train.progress=false"])
+    out = folder / "reference.pt"
     assert code == 0 and out.is_file()
     assert f"use it as task.reference_checkpoint={out}" in capsys.readouterr().out
     assert load_reference(out)[1]["architecture"]["context"] == len("wind 12 knots") + 1  # bos + text + eos - 1
 
 
 def test_polopt_sft_errors_are_one_line(tmp_path, capsys):
-    assert main(["sft", str(tmp_path / "none.txt"), "--out", str(tmp_path / "r.pt")]) == 2
+    assert main(["sft", str(tmp_path / "none.txt"), f"hydra.run.dir={tmp_path / 'r'}"]) == 2
     assert capsys.readouterr().err.strip() == f"polopt sft: error: SFT data file not found: '{tmp_path / 'none.txt'}'"
     (tmp_path / "a.txt").write_text("some text\n", encoding="utf-8")
-    assert main(["sft", str(tmp_path / "a.txt"), "--out", str(tmp_path / "r.pt"), "model.context=3"]) == 2
+    assert main(["sft", str(tmp_path / "a.txt"), f"hydra.run.dir={tmp_path / 'r'}", "model.context=3"]) == 2
     assert "polopt sft: error: model.context must be at least 10 for this file" in capsys.readouterr().err
-    assert main(["sft", str(tmp_path / "a.txt"), "--out", str(tmp_path / "r.pt"), "optim.lrr=3"]) == 2
+    assert main(["sft", str(tmp_path / "a.txt"), f"hydra.run.dir={tmp_path / 'r'}", "optim.lrr=3"]) == 2
     assert capsys.readouterr().err == "polopt sft: error: unknown key 'optim.lrr'; did you mean optim.lr?\n"
