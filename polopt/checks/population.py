@@ -60,7 +60,7 @@ def check_population(loss: MarginLoss, task, *, beta: float, steps: int = 2000, 
 
     ``task.prepare(loss, beta=, mode="exact")`` must return a session with ``pairs``,
     ``build_policy()`` and ``summarise(policy, result)`` whose summary has the
-    finite-task fields of DESIGN.md (``tv_to_optimum``, ``loss_gap``, ...).
+    finite-task fields of docs/reference/run-folder.md (``tv_to_optimum``, ``loss_gap``, ...).
 
     Reached: TV to the optimum <= tol where the optimum is unique, else a relative
     loss gap <= tol (hinge, non-convex losses); where no finite optimum exists, the

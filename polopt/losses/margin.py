@@ -280,7 +280,7 @@ def has_finite_pair_optimum_at_certainty(loss: MarginLoss) -> bool:
     return math.isfinite(loss.pair_optimum(1.0))
 
 
-# the closed-form per-pair optimum of each built-in member (DESIGN.md's table), read by the registry
+# the closed-form per-pair optimum of each built-in member (docs/maths.md's table), read by the registry
 CLOSED_FORM_OPTIMA = {
     "logistic": _logit_optimum, "squared": _linear_optimum, "hinge": _hinge_optimum,
     "huber": lambda p: (2.0 * p - 1.0) / max(p, 1.0 - p), "exponential": _half_logit_optimum,

@@ -3,7 +3,7 @@
 Both start at the reference: ``log pi(y|x) = log_softmax(log pi_ref(.|x) + s(x, .))[y]``
 with a score ``s`` that is 0 at initialisation, so the log-ratio
 ``h(x, y) = s(x, y) - logsumexp_y' (log pi_ref(y'|x) + s(x, y'))`` matches
-DESIGN.md's ``pi ∝ pi_ref e^h``.
+docs/maths.md's ``pi ∝ pi_ref e^h``.
 
 - :class:`TabularPolicy`: one free score per (prompt, response); can represent
   every policy, so it reaches any finite optimum.

@@ -1,6 +1,6 @@
 """Whether a run reached its exact target: the ``reached_optimum`` verdict of summary.json.
 
-DESIGN.md: every run with an exact target reports ``reached_optimum`` (true | false | null) against
+docs/reference/run-folder.md: every run with an exact target reports ``reached_optimum`` (true | false | null) against
 a stated tolerance, and says it on screen. This module owns that one decision, as a pure function of
 figures every finite-task summary already holds, so that every command (train, compare, check) and
 every screen line gives the same answer; and, when the answer is no, the most likely fix read from

@@ -3,7 +3,7 @@ task-file loader over malformed input.
 
 Losses: every registered member, margins in [-1e4, 1e4], beta from 1e-4 to 1e4, float32 and
 bfloat16, with and without label smoothing and weights: the reduced loss and its gradient with
-respect to the margins are finite (the contract of DESIGN.md's loss table: finite at extremes).
+respect to the margins are finite (the contract of docs/maths.md's loss table: finite at extremes).
 
 Task files (toy_tasks.finite.task.load_task / task_from_dict): any bytes, any JSON value, and valid
 tasks with one field broken either load or raise ValueError with a one-line message; nothing

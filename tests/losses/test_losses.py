@@ -18,7 +18,7 @@ from polopt import losses
 
 BUILTINS = losses.builtin_names("margin")
 
-# Independent float64 evaluations of each member's formula (DESIGN.md's table).
+# Independent float64 evaluations of each member's formula (docs/maths.md's table).
 REFERENCE = {
     "logistic": lambda x: -scipy.special.log_expit(x),  # log(1 + e^-x) = -log sigmoid(x)
     "squared": lambda x: (x - 1.0) ** 2,
@@ -33,7 +33,7 @@ GRID = np.linspace(-30.0, 30.0, 1201)
 
 
 def test_every_builtin_has_an_independent_formula_and_the_table_is_complete():
-    # the seven members of DESIGN.md's table, and nothing registered without a reference formula
+    # the seven members of docs/maths.md's table, and nothing registered without a reference formula
     assert {"logistic", "squared", "hinge", "huber", "exponential", "truncated_quadratic", "savage"} <= set(BUILTINS)
     assert set(REFERENCE) == set(BUILTINS)
     with_closed_form = {n for n in BUILTINS if losses.resolve_margin(n).closed_form_optimum is not None}

@@ -5,7 +5,7 @@ Checks against: an independent maximum-likelihood solve written here (scipy.opti
 BFGS, on the Bradley–Terry log-likelihood of the recorded counts, one reward pinned to 0,
 the gradient by torch autograd); the consistency of the maximum-likelihood estimate (on the
 population win weights it returns the true rewards; Bradley & Terry 1952); Ford 1957's
-existence condition; brute-force enumeration of every draw of best-of-n and DESIGN.md's
+existence condition; brute-force enumeration of every draw of best-of-n and docs/maths.md's
 P(y) = F(y)^n - F(y^-)^n; the closed form pi_ref e^{r / beta} (Rafailov et al. 2023); the
 winner's curse (Smith & Winkler, The optimizer's curse, 2006): the estimate of the option
 chosen for its high estimate is biased upwards.
@@ -120,7 +120,7 @@ def test_best_of_n_target_under_a_learned_reward_is_the_exact_distribution(tmp_p
     view = task.prepare(losses.resolve_margin("logistic"), beta=0.5).for_method("best_of_n", n=n, reward=str(path))
     np.testing.assert_allclose(view.rewards[0], learned, atol=0)
     np.testing.assert_allclose(view.target[0], enumerate_best_of_n(task.reference[0], learned, n), atol=1e-12)
-    order = np.argsort(learned)  # DESIGN.md: P(y) = F(y)^n - F(y^-)^n, F the reference mass at or below r(y)
+    order = np.argsort(learned)  # docs/maths.md: P(y) = F(y)^n - F(y^-)^n, F the reference mass at or below r(y)
     upper = np.cumsum(task.reference[0][order])
     formula = np.empty(5)
     formula[order] = upper**n - (upper - task.reference[0][order]) ** n

@@ -40,8 +40,9 @@ def polopt(*args, extra_path: Path | None = None):
 
 
 def readme_example(tmp_path: Path) -> Path:
-    """The README's team_objectives.py, taken from the README itself (so the README stays true)."""
-    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    """The worked example's team_objectives.py, taken from docs/guides/pair-objectives.md itself (so the page
+    stays true)."""
+    text = (ROOT / "docs" / "guides" / "pair-objectives.md").read_text(encoding="utf-8")
     code = re.search(r"```python\n(# team_objectives\.py\n.*?)```", text, re.S).group(1)
     (tmp_path / "team_objectives.py").write_text(code, encoding="utf-8")
     return tmp_path

@@ -1,6 +1,6 @@
 """Response lengths in finite tasks: the optional ``"lengths"`` field of a task file.
 
-What is checked and against what: the default (1 token per response, DESIGN.md's contract), a
+What is checked and against what: the default (1 token per response, docs/maths.md's contract), a
 round trip through the JSON file, one-line errors naming the file, the field, what was given and what
 to do, ``polopt export`` writing the field, and the sequence task's lengths against a count of the
 non-padding tokens of each enumerated response (counted here from the token tensor, not from the code

@@ -1,5 +1,5 @@
 """Training reaches the certified optimum of every pair objective (issue 12's acceptance), and the
-``reached_optimum`` verdict of summary.json (DESIGN.md: every run with an exact target reports it).
+``reached_optimum`` verdict of summary.json (docs/reference/run-folder.md: every run with an exact target reports it).
 
 Held against: the exact solver's certified optimum (itself checked against independent solves and
 closed forms in test_pair_solve.py), an independent L-BFGS solve written in that file, and the

@@ -84,7 +84,7 @@ def test_newton_agrees_with_scipy_bfgs(name):
 
 
 def test_truncated_quadratic_equals_ipo_when_margins_stay_below_one():
-    # DESIGN.md: truncated quadratic = squared wherever every IPO margin beta * d is at most 1
+    # docs/maths.md: truncated quadratic = squared wherever every IPO margin beta * d is at most 1
     task = families.noisy_labels(flip_rate=0.3)
     sq = newton(losses.resolve_margin("squared"), task, 1.0)
     margins = sq.logratios[0][:, None] - sq.logratios[0][None, :]
@@ -136,7 +136,7 @@ def test_losses_with_a_finite_pair_optimum_stay_finite_on_deterministic_preferen
 
 
 def test_deterministic_cycle_is_strongly_connected_and_has_a_finite_optimum():
-    # DESIGN.md: a deterministic but cyclic P is strongly connected, so logistic has a finite optimum
+    # docs/maths.md: a deterministic but cyclic P is strongly connected, so logistic has a finite optimum
     cycle = [[0.5, 1.0, 0.0], [0.0, 0.5, 1.0], [1.0, 0.0, 0.5]]
     opt = newton(losses.resolve_margin("logistic"), make_task([1 / 3, 1 / 3, 1 / 3], cycle), 1.0)
     assert opt.finite

@@ -2,7 +2,7 @@
 
 What is checked against what:
 - a trimmed or bucketed batch gives the loss and gradient of the same pairs padded to the
-  dataset's maximum (the chain rule of DESIGN.md: log pi(y|x) is a sum over real tokens only, so
+  dataset's maximum (the chain rule of docs/maths.md: log pi(y|x) is a sum over real tokens only, so
   padding that no real token sees cannot change it), in float64 to 1e-10;
 - the epoch order is a permutation of the pairs (each visited once per epoch), reproducible from
   the seed, and groups lengths (sorted spans, common practice "sortish" sampling);

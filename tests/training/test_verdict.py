@@ -107,7 +107,7 @@ def test_a_converged_run_says_so_last(tmp_path):
 
 
 def test_no_finite_optimum_reports_null(tmp_path):
-    summary, last = train(tmp_path, "task=deterministic", "train.steps=50")  # logistic, p = 1: none (DESIGN.md)
+    summary, last = train(tmp_path, "task=deterministic", "train.steps=50")  # logistic, p = 1: none (docs/maths.md)
     assert summary["reached_optimum"] is None and last.startswith("reached_optimum: null")
 
 

@@ -84,7 +84,7 @@ def is_margin_loss(objective) -> bool:
 
 
 def margin_objective(loss: MarginLoss | Callable[[Tensor], Tensor]) -> PairLoss:
-    """A margin loss f as an opaque pair loss ``ell = f(beta ((w - ref_w) - (l - ref_l)))`` (DESIGN.md):
+    """A margin loss f as an opaque pair loss ``ell = f(beta ((w - ref_w) - (l - ref_l)))`` (docs/maths.md):
     :func:`polopt.losses.pair.as_pair_loss` with the margin forgotten, so that the solver takes the
     Newton path of any pair loss instead of the margin solver (the tests compare the two)."""
     pair_loss = as_pair_loss(loss)

@@ -85,7 +85,7 @@ class FiniteSession:
         return out
 
     def summarise(self, policy, result: TrainResult) -> dict:
-        """The finite-task fields of summary.json (DESIGN.md's contract, plus diagnostics)."""
+        """The finite-task fields of summary.json (docs/reference/run-folder.md, plus diagnostics)."""
         h = self.logratios(policy)
         pi = self.task.policy_from_logratios(h)
         value = self.objective_value(self.weights, h)

@@ -153,7 +153,7 @@ class FiniteTask:
     # ------------------------------------------------------------------ files
 
     def to_dict(self) -> dict:
-        """The task as DESIGN.md's JSON contract (one prompt flat, several under 'prompts')."""
+        """The task as the task-file contract of docs/guides/check-a-loss.md (several prompts under 'prompts')."""
         entries = []
         for x in range(self.n_prompts):
             entry: dict = {}
@@ -372,7 +372,7 @@ def _check_preference(pref: np.ndarray, where: str, single: bool) -> None:
 
 
 def load_task(path: str | Path) -> FiniteTask:
-    """Read and validate a task file (DESIGN.md's JSON contract)."""
+    """Read and validate a task file (the contract of docs/guides/check-a-loss.md)."""
     path = Path(path)
     where = f"task file {path}"
     if not path.is_file():

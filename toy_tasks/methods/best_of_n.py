@@ -12,7 +12,7 @@ restricted to the level set G_v, and so is the kept one. Hence::
 
     P_n(y) = pi_ref(y) / pi_ref(G_v) * (F(v)^n - F(v^-)^n),   v = r(y).
 
-With no ties this is DESIGN.md's ``F(y)^n - F(y^-)^n``. n = 1 gives pi_ref.
+With no ties this is docs/maths.md's ``F(y)^n - F(y^-)^n``. n = 1 gives pi_ref.
 
 KL to the reference. For continuous rewards F(Y) ~ Beta(n, 1) under best-of-n,
 so ``KL = E log(n F^{n-1}) = log n - (n-1)/n`` (the widely quoted formula).

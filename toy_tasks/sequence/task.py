@@ -25,7 +25,7 @@ Preferences (invented):
 :class:`toy_tasks.finite.task.FiniteTask` over the enumerated responses (pairs drawn
 from the reference, as real preference data are drawn from the starting model),
 so :func:`toy_tasks.exact.margin.solve` gives the exact optimum, and ``polopt export``
-writes it out as DESIGN.md's task file.
+writes it out as the finite-task file of docs/guides/check-a-loss.md.
 """
 
 from __future__ import annotations
