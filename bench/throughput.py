@@ -32,7 +32,7 @@ at the maximum length) and prints a table, then writes the same figures as JSON:
   recomputes its log-probabilities every step, over several epochs); and the
   hand-written loop of bench/baseline_loop.py (no polopt, every batch padded to the
   maximum) for a side-by-side ratio;
-- the loss's share of a step: the time of ``margins`` + ``preference_loss``
+- the loss's share of a step: the time of ``per_pair_losses`` + ``weighted_mean``
   forward and its backward (from the margins), over the step time.
 
 Figures only; nothing passes or fails. The machine may be shared: the load
@@ -58,7 +58,7 @@ if __package__ in (None, ""):
 from bench import baseline_loop  # noqa: E402
 from bench.skewed_data import PAD_ID, VOCAB_SIZE, real_token_count, skewed_pairs  # noqa: E402
 from polopt import losses  # noqa: E402
-from polopt.losses.reduce import margins, preference_loss  # noqa: E402
+from polopt.losses.reduce import pair_scores, per_pair_losses, weighted_mean  # noqa: E402
 from polopt.models.logprobs import SequencePolicy, batched_logprobs, length_split  # noqa: E402
 from polopt.models.transformer import TinyTransformer  # noqa: E402
 from polopt.pairs import PairSet  # noqa: E402
@@ -229,8 +229,7 @@ def loss_share(batches: list[PairSet], policy, loss, cfg: dict, step_s: float) -
     for batch, (lw, ll) in zip(batches, logp, strict=True):
         lw, ll = lw.clone().requires_grad_(), ll.clone().requires_grad_()
         start = time.perf_counter()
-        rho = margins(lw, ll, batch.reference_winner, batch.reference_loser)  # (B,)
-        preference_loss(loss, rho, beta=BETA).backward()
+        weighted_mean(per_pair_losses(loss, pair_scores(batch, lw, ll), beta=BETA)).backward()  # the trainer's path
         seconds += time.perf_counter() - start
     return seconds / len(batches) / step_s
 

@@ -9,7 +9,7 @@ import pytest
 import torch
 
 from polopt import losses
-from polopt.methods import train_method
+from polopt.methods.dispatch import train_method
 from polopt.training.optim import OptimConfig
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # helpers_*.py and user_*.py, from every tests/ folder

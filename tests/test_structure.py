@@ -17,7 +17,7 @@ PACKAGES = ("polopt", "toy_tasks")
 MAX_FUNCTION_LINES = 80
 # the modules that run training (the composition root, `polopt check`, the walk-through, the methods)
 TRAIN_IMPORTERS = {"polopt.commands.train", "polopt.checks.population", "polopt.demo.pipeline",
-                   "polopt.methods"}
+                   "polopt.methods.dispatch"}
 
 
 def module_files() -> dict[str, Path]:

@@ -74,7 +74,7 @@ def _value(combo: list[str], key: str) -> str | None:
 def plan(overrides: list[str]) -> list[list[str]]:
     """The runs of a comparison: the expanded combinations, without the ``loss`` override for
     methods that do not use it, duplicates removed (order kept)."""
-    from polopt.methods import METHODS
+    from polopt.methods.dispatch import METHODS
 
     runs, seen = [], set()
     for combo in expand(overrides):

@@ -47,13 +47,13 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str]) -> int:
     """The ``polopt data`` subcommand."""
+    args = build_parser().parse_intermixed_args(argv)  # before the imports below: --help loads no torch
     from omegaconf import OmegaConf
 
     from polopt.commands import config
     from polopt.data import load_pairs, plot_lengths, summary_text, write_rejects
     from polopt.training.run_folder import write_json
 
-    args = build_parser().parse_intermixed_args(argv)
     out, overrides = config.output_folder(args.overrides, "polopt data", "data")
     cfg = config.compose(["task=pairs", *overrides], command="polopt data")
     config.only_keys(overrides, KEYS, "polopt data")

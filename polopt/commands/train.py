@@ -35,7 +35,7 @@ from polopt.commands import runs
 from polopt.commands.config import CONFIG_DIR, build_task
 from polopt.commands.errors import Escape
 from polopt.losses.reduce import validate_hyperparameters
-from polopt.methods import method_objective
+from polopt.methods.dispatch import method_objective
 from polopt.models.compiling import compile_policy
 from polopt.parallel import devices, distributed
 from polopt.training.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu

@@ -32,7 +32,7 @@ import numpy as np
 import scipy.special
 import torch
 
-from polopt.methods import METHODS
+from polopt.methods.dispatch import METHODS
 from polopt.methods.environment import FiniteEnvironment
 from polopt.methods.realign import equivalent_beta, realign
 from polopt.training.contracts import TrainResult
