@@ -13,9 +13,10 @@ log-probs computed once before the clock starts, its backward and an AdamW step.
 Four configurations: ``full`` (every weight trains) or ``lora`` (peft ``LoraConfig(r=8,
 lora_alpha=16)`` on peft's default targets for Llama, the attention's query and value
 projections), each scoring a pair ``separate`` ([x, y_w] and [x, y_l] as two rows of one pass,
-:func:`polopt.models.prefix_scoring.separate_pair_logprobs`, the ``CausalLM`` path) or
-``shared`` (the prompt once through the key/value cache,
-:func:`polopt.models.prefix_scoring.prompt_cached_pair_logprobs`).
+:func:`polopt.models.prefix_scoring.separate_pair_logprobs`: packed and masked as the trainer's
+``SequencePolicy`` does, logits at every position) or ``shared`` (the prompt once through the
+key/value cache, :func:`polopt.models.prefix_scoring.prompt_cached_pair_logprobs`, which also
+computes the output layer only where a logit is scored: the prompt's last position and the responses).
 
 - tokens/s: real tokens per step as the trainer counts them (prompt with winner plus prompt with
   loser, padding excluded; the same count for both scorings, so the ratio is the time ratio),

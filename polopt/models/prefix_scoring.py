@@ -28,9 +28,9 @@ How the layout is kept right with right-padded prompts of different lengths:
 This is the transformers counterpart of :func:`polopt.models.logprobs.shared_pair_logprobs`
 (the tiny transformer's one-row layout with a custom attention mask) and has the same call:
 right-padded token tensors and a pad id that may lie outside the vocabulary (the text path pads
-with -1, :data:`polopt.models.hf.PAD`); pad positions are fed as id 0 and masked. ``model`` is the
-transformers model itself (``AutoModelForCausalLM``, or a peft model wrapping one), not the
-``CausalLM`` wrapper of :mod:`polopt.models.hf`. ``bench/local_lm.py`` measures the gain.
+with -1); pad positions are fed as id 0 and masked. ``model`` is the
+transformers model itself (``AutoModelForCausalLM``, or a peft model wrapping one), not polopt's
+``CausalLM`` wrapper around it. ``bench/local_lm.py`` measures the gain.
 """
 
 from __future__ import annotations
@@ -40,7 +40,7 @@ import inspect
 import torch
 from torch import nn
 
-from polopt.models.logprobs import lengths
+from polopt.models.logprobs import lengths, pack, token_logprobs
 
 Tensor = torch.Tensor
 
@@ -138,15 +138,18 @@ def prompt_cached_pair_logprobs(model: nn.Module, prompt: Tensor, winner: Tensor
 
 def separate_pair_logprobs(model: nn.Module, prompt: Tensor, winner: Tensor, loser: Tensor, *,
                            pad_id: int) -> tuple[Tensor, Tensor]:
-    """The baseline: ``[prompt, winner]`` and ``[prompt, loser]`` as separate rows of one forward pass
-    (:func:`polopt.models.logprobs.sequence_logprobs` through :class:`polopt.models.hf.CausalLM`). (B,) each."""
-    from polopt.models.hf import CausalLM
-    from polopt.models.logprobs import sequence_logprobs
-
+    """The baseline: ``[prompt, winner]`` and ``[prompt, loser]`` as separate rows of one forward pass, packed
+    and masked by :func:`polopt.models.logprobs.pack` (the path of the trainer's ``SequencePolicy``). (B,) each."""
     width = max(winner.shape[1], loser.shape[1], 1)
     responses = torch.cat([nn.functional.pad(t, (0, width - t.shape[1]), value=pad_id)
                            for t in (winner, loser)])  # (2B, T_r): winners, then losers
-    both = sequence_logprobs(CausalLM(model, pad_id=pad_id), torch.cat([prompt, prompt]), responses, pad_id=pad_id)
+    tokens, in_response = pack(torch.cat([prompt, prompt]), responses, pad_id=pad_id)  # (2B, T) each
+    real = tokens != pad_id  # (2B, T)
+
+    def logits(rows: Tensor) -> Tensor:  # (2B, T - 1) -> (2B, T - 1, V); pads fed as id 0 and masked
+        return model(input_ids=torch.where(real[:, :-1], rows, 0), attention_mask=real[:, :-1].long()).logits
+
+    both = token_logprobs(logits, tokens, in_response).sum(dim=1)  # (2B,)
     return both[: len(prompt)], both[len(prompt):]
 
 
