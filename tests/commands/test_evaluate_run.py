@@ -267,3 +267,59 @@ def test_a_target_outside_the_task_packages_is_refused_and_nothing_made(full_run
                  "task._target_=os.makedirs", f"+task.name={marker}", "--out", str(out)]) == 2
     assert one_line(capsys).startswith("polopt evaluate: error: task._target_ must name a task builder")
     assert not marker.exists() and not out.exists()
+
+
+# ---------------------------------------------------------------- a reward model of polopt reward as the scorer
+
+
+@pytest.fixture(scope="module")
+def pair_reward(tmp_path_factory) -> Path:
+    """``polopt reward task=pairs`` on an invented pair file: a scalar head over the byte tokenizer."""
+    folder = tmp_path_factory.mktemp("reward")
+    rows = [{"prompt": f"the amber brook {i} ?", "winner": "cedar grove" * (1 + i % 2), "loser": "dune"}
+            for i in range(12)]
+    (folder / "pairs.jsonl").write_text("".join(json.dumps(r) + "\n" for r in rows))
+    assert main(["reward", "task=pairs", f"task.path={folder / 'pairs.jsonl'}", "reward.steps=5",
+                 "train.progress=false", "--out", str(folder / "rm")]) == 0
+    return folder / "rm" / "reward.pt"
+
+
+def test_a_pair_file_reward_model_scores_the_responses(pair_reward, full_run, tmp_path):
+    from polopt.data.encoding import SequenceIds, encode_prompts, encode_responses
+    from polopt.data.tokenizer import load_tokenizer
+    from polopt.methods.reward_model import ScalarRewardModel
+
+    prompts = write_prompts(tmp_path / "prompts.jsonl", [p for p in PROMPTS if isinstance(p, str)])
+    out = tmp_path / "out"
+    assert main(["evaluate", str(full_run), f"evaluate.prompts={prompts}", f"evaluate.reward={pair_reward}",
+                 "evaluate.max_new_tokens=4", "--out", str(out)]) == 0
+    rows = read_rows(out)
+    # the head rebuilt from the file by hand, the text encoded as its pair file was (bos + prompt, response + eos)
+    data = torch.load(pair_reward, weights_only=True)
+    shape = {k: data["identity"][k] for k in ("context", "width", "layers", "heads")}
+    head = ScalarRewardModel(data["identity"]["vocab_size"], pad_id=data["identity"]["pad"], **shape)
+    head.load_state_dict(data["state"]["model"])
+    byte = load_tokenizer("byte")
+    ids = SequenceIds.for_tokenizer(byte)
+    for which in ("policy", "reference"):
+        with torch.no_grad():
+            want = head.eval()(encode_prompts(byte, [r["prompt"] for r in rows], ids),
+                               encode_responses(byte, [r[which] for r in rows], ids))
+        assert [r[f"{which}_score"] for r in rows] == pytest.approx(want.tolist(), abs=1e-6)
+    figures = json.loads((out / "evaluation.json").read_text())
+    assert figures["scorer"] == f"reward model {pair_reward}" and figures["rows_cut_for_the_reward_model"] == []
+
+
+def test_a_reward_model_refuses_what_it_cannot_score(pair_reward, full_run, tmp_path, capsys):
+    prompts = write_prompts(tmp_path / "prompts.jsonl")  # the third prompt is a list of messages
+    assert main(["evaluate", str(full_run), f"evaluate.prompts={prompts}", f"evaluate.reward={pair_reward}",
+                 "evaluate.max_new_tokens=2", "--out", str(tmp_path / "out")]) == 2
+    assert one_line(capsys) == ("polopt evaluate: error: evaluate.reward scores plain-text prompts (a pair-file reward "
+                                "model reads text); prompt 2 is a list of messages: give evaluate.scorer=pkg.module:fn "
+                                "instead")
+    table = tmp_path / "table"
+    assert main(["reward", "task=bradley_terry", "--out", str(table)]) == 0
+    capsys.readouterr()
+    argv = ["evaluate", str(full_run), f"evaluate.prompts={prompts}", f"evaluate.reward={table / 'reward.pt'}"]
+    assert main(argv) == 2
+    assert "which scores that task's responses, not text" in one_line(capsys)
