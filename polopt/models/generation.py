@@ -1,13 +1,14 @@
 """Responses sampled from a local causal LM: prompts as token ids, transformers' ``generate`` with a seed.
 
-Prompt ids follow the token convention of ``model=local_lm`` (the README's "Your own model"):
+Prompt ids follow the token convention of ``model=local_lm`` (docs/guides/own-model.md):
 
 - a list of messages ``{"role", "content"}``: ``apply_chat_template(prompt,
   add_generation_prompt=True, tokenize=False)``, then ``tokenizer(text, add_special_tokens=False)``;
 - a string: ``tokenizer(prompt)``, with the tokenizer's own special tokens.
 
 Sampling is ancestral from the model's own next-token distribution (``do_sample=True``, temperature
-1, no top-k or top-p cut: the generation settings saved with the model are not used), batched with
+1, no top-k or top-p cut; the settings saved with the model in generation_config.json are set aside,
+as transformers would otherwise fill every unset setting from them), batched with
 left padding (common practice for decoder-only generation), on the CPU. ``torch.manual_seed(seed)``
 runs right before each model's first batch, so the same prompts, seed and batch size give the same
 responses, and a policy and its reference draw from the same random stream.
@@ -19,6 +20,8 @@ and its length is its number of ids.
 
 from __future__ import annotations
 
+import contextlib
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import torch
@@ -81,6 +84,22 @@ def cut_at_end(new: list[int], eos_id: int) -> tuple[list[int], bool]:
     return new, False
 
 
+@contextlib.contextmanager
+def saved_settings_off(model: nn.Module) -> Iterator[None]:
+    """The model's own ``generation_config`` (from its generation_config.json) replaced by transformers'
+    defaults for the ``with`` block: ``generate`` fills every setting left unset from it (a repetition
+    penalty, a minimum length, suppressed tokens), which would change what "sampling from the model" means."""
+    from transformers import GenerationConfig
+
+    owner = model.get_base_model() if hasattr(model, "get_base_model") else model  # peft: the wrapped model's
+    saved = owner.generation_config
+    owner.generation_config = GenerationConfig()
+    try:
+        yield
+    finally:
+        owner.generation_config = saved
+
+
 @torch.no_grad()
 def sample_responses(model: nn.Module, tokenizer, prompts: list[list[int]], *, max_new_tokens: int, seed: int,
                      batch_size: int = 16) -> list[Sample]:
@@ -92,7 +111,8 @@ def sample_responses(model: nn.Module, tokenizer, prompts: list[list[int]], *, m
     out = []
     for start in range(0, len(prompts), batch_size):
         ids, mask = left_padded(tokenizer, prompts[start:start + batch_size], settings.pad_token_id)  # (b, T)
-        drawn = model.generate(input_ids=ids, attention_mask=mask, generation_config=settings)  # (b, T + L)
+        with saved_settings_off(model):
+            drawn = model.generate(input_ids=ids, attention_mask=mask, generation_config=settings)  # (b, T + L)
         for row in drawn[:, ids.shape[1]:].tolist():  # the new ids only
             kept, ended = cut_at_end(row, settings.eos_token_id)
             out.append(Sample(tokenizer.decode(kept, skip_special_tokens=True), tuple(kept), ended))

@@ -132,11 +132,13 @@ def test_wilson_interval_worked_by_hand():
 def test_a_scorer_that_prefers_longer_text_gives_the_expected_sign(tmp_path, base):
     # hidden states made constant, so the next-token distribution is the same at every step: the
     # reference puts nearly all mass on the end token (every response is just it, length 1), the policy
-    # none on it or on any special token (every response runs to max_new_tokens words)
+    # none on it or on any special token (every response runs to max_new_tokens words); the reference's own
+    # generation settings, which ask for at least 4 new tokens, are not what sampling from it means
     reference, policy = chat.llama(2), chat.llama(2)
     for model, end in ((reference, 8.0), (policy, -8.0)):
         state = chat.constant_state(model)
         chat.set_logits(model, state, [0, 1, 2, 3] if end < 0 else [3], end)
+    reference.generation_config.min_new_tokens = 4  # saved in generation_config.json: evaluate sets it aside
     folder = chat.save(reference, tmp_path / "reference")
     run = fake_run(tmp_path / "run", folder, policy)
     prompts = write_prompts(tmp_path / "prompts.jsonl")
