@@ -325,3 +325,15 @@ def test_a_reward_model_refuses_what_it_cannot_score(pair_reward, full_run, tmp_
     argv = ["evaluate", str(full_run), f"evaluate.prompts={prompts}", f"evaluate.reward={table / 'reward.pt'}"]
     assert main(argv) == 2
     assert "which scores that task's responses, not text" in one_line(capsys)
+
+
+def test_prompts_from_csv_and_parquet(tmp_path):
+    import datasets
+
+    from polopt.commands.evaluate import read_prompts
+
+    (tmp_path / "p.csv").write_text("prompt,other\nthe amber brook ?,x\nkestrel,y\n")
+    assert read_prompts(str(tmp_path / "p.csv"), None) == (["the amber brook ?", "kestrel"], [2, 3], "line")
+    messages = [{"role": "user", "content": "fern"}]
+    datasets.Dataset.from_list([{"prompt": messages}, {"prompt": messages}]).to_parquet(tmp_path / "m.parquet")
+    assert read_prompts(str(tmp_path / "m.parquet"), 1) == ([messages], [0], "index")
