@@ -52,11 +52,11 @@ def test_no_code_from_data(forbidden):
 
 
 def test_imports_by_name_only_for_the_dotted_loss_path():
-    """Only polopt.losses.margin.import_dotted (loss.name=, evaluate.scorer=) imports by a name read at run
+    """Only polopt.losses.registry.import_dotted (loss=, evaluate.scorer=) imports by a name read at run
     time; the dispatcher imports each command by a plain import statement (polopt/commands/main.py, _command)."""
     found = [p.relative_to(ROOT).as_posix() for p in SOURCES for node, name in _calls(p)
              if name in ("importlib.import_module", "import_module")]
-    assert found == ["polopt/losses/margin.py"]
+    assert found == ["polopt/losses/registry.py"]
 
 
 def test_the_dispatcher_imports_only_its_own_command_modules():
