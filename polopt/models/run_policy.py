@@ -90,6 +90,17 @@ def reference_folder(config: dict) -> Path:
     return Path(str(config["model"].get("path")))
 
 
+def policy_tokenizer(folder: Path):
+    """The tokenizer saved in ``policy/`` (None: there is none). An adapter's folder has no config.json, so it is
+    read with ``AutoTokenizer`` directly: local files only, and ``trust_remote_code`` left off, so a tokenizer
+    that names custom code is refused by transformers itself."""
+    if not (folder / "tokenizer_config.json").is_file():
+        return None
+    from transformers import AutoTokenizer
+
+    return AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
+
+
 @contextlib.contextmanager
 def _no_progress_bars() -> Iterator[None]:
     """transformers' loading bars off (its global switch, restored after): stderr keeps to polopt's lines."""
@@ -115,7 +126,7 @@ def _load_run(run: Path) -> RunModels:
     folder = policy_folder(run, config)
     base = Path(str(config["model"].get("path")))
     os.environ.setdefault("HF_HUB_OFFLINE", "1")  # nothing is downloaded: every path below is a local folder
-    tokenizer = hf.load_tokenizer(folder if (folder / "tokenizer_config.json").is_file() else base)
+    tokenizer = policy_tokenizer(folder) or hf.load_tokenizer(base)
     if (folder / ADAPTER_CONFIG).is_file():
         if not (folder / ADAPTER_WEIGHTS).is_file():
             raise ValueError(f"{str(folder)!r} holds a peft adapter without {ADAPTER_WEIGHTS}; polopt reads weights "

@@ -82,7 +82,7 @@ def lora_run(tmp_path_factory, base) -> Path:
     torch.manual_seed(1)
     config = peft.LoraConfig(r=4, lora_alpha=8, target_modules=["q_proj", "v_proj"], init_lora_weights=False)
     adapted = peft.get_peft_model(transformers.AutoModelForCausalLM.from_pretrained(base), config)
-    return fake_run(tmp_path_factory.mktemp("lora") / "run", base, adapted, with_tokenizer=False)
+    return fake_run(tmp_path_factory.mktemp("lora") / "run", base, adapted)  # the tokenizer beside the adapter
 
 
 def read_rows(folder: Path) -> list[dict]:
@@ -140,7 +140,7 @@ def test_a_scorer_that_prefers_longer_text_gives_the_expected_sign(tmp_path, bas
         chat.set_logits(model, state, [0, 1, 2, 3] if end < 0 else [3], end)
     reference.generation_config.min_new_tokens = 4  # saved in generation_config.json: evaluate sets it aside
     folder = chat.save(reference, tmp_path / "reference")
-    run = fake_run(tmp_path / "run", folder, policy)
+    run = fake_run(tmp_path / "run", folder, policy, with_tokenizer=False)  # the base model's tokenizer then
     prompts = write_prompts(tmp_path / "prompts.jsonl")
     for scorer, rate in (("longer", 1.0), ("shorter", 0.0)):
         out = tmp_path / scorer
