@@ -125,6 +125,10 @@ def _load_run(run: Path) -> RunModels:
     config = run_config(run)
     folder = policy_folder(run, config)
     base = Path(str(config["model"].get("path")))
+    if not base.is_dir():
+        raise ValueError(f"{str(run / 'config.yaml')!r} names model.path {str(base)!r}, which is not a folder here "
+                         "(a relative path is read from the folder polopt evaluate runs in): run it from the folder "
+                         "the run was trained in")
     os.environ.setdefault("HF_HUB_OFFLINE", "1")  # nothing is downloaded: every path below is a local folder
     tokenizer = policy_tokenizer(folder) or hf.load_tokenizer(base)
     if (folder / ADAPTER_CONFIG).is_file():

@@ -198,6 +198,18 @@ def test_a_run_without_policy_is_one_line(tmp_path, capsys):
                                 "interrupted?")
 
 
+def test_a_base_model_that_is_not_there_is_one_line(full_run, tmp_path, capsys):
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "policy").symlink_to(full_run / "policy")
+    (run / "config.yaml").write_text("model:\n  kind: local_lm\n  path: elsewhere/model\n")
+    prompts = write_prompts(tmp_path / "prompts.jsonl")
+    assert main(["evaluate", str(run), f"evaluate.prompts={prompts}", "evaluate.scorer=user_scorers:longer"]) == 2
+    assert one_line(capsys) == (f"polopt evaluate: error: '{run / 'config.yaml'}' names model.path 'elsewhere/model', "
+                                "which is not a folder here (a relative path is read from the folder polopt evaluate "
+                                "runs in): run it from the folder the run was trained in")
+
+
 @pytest.mark.parametrize("args, message", [
     (["evaluate.nn=3"], "unknown key 'evaluate.nn'; did you mean evaluate.n?"),
     (["train.steps=5"], "polopt evaluate reads train.seed, evaluate.KEY only; 'train.steps=5' would change nothing "
