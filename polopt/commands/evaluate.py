@@ -173,7 +173,11 @@ def evaluate_run(run: Path, keys: dict, seed: int | None) -> tuple[dict, list[di
     seed = int(config.get("train", {}).get("seed", 0)) if seed is None else seed
     models = load_run(run)
     samples = sample_both(models, prompts, where, unit, keys, seed)
-    scores = {which: score_rows(scorer, prompts, [s.text for s in samples[which]]) for which in samples}
+    scores, cut = {}, {}
+    for which in samples:
+        before = len(scorer.cut)
+        scores[which] = score_rows(scorer, prompts, [s.text for s in samples[which]])
+        cut[which] = scorer.cut[before:]  # prompts whose response was cut to fit the reward model
     # the scores stand in for the responses: the reward of a response is its score
     figures = ground_truth_win_rate(lambda _prompt, value: value, prompts, scores["policy"], scores["reference"])
     n = len(prompts)
@@ -182,7 +186,7 @@ def evaluate_run(run: Path, keys: dict, seed: int | None) -> tuple[dict, list[di
         figures[f"ended_share_{which}"] = sum(s.ended for s in samples[which]) / n
     figures.update({"run": str(run), "adapter": models.adapter, "base_model": str(models.base),
                     "prompts": keys["evaluate.prompts"], "n": n, "max_new_tokens": keys["evaluate.max_new_tokens"],
-                    "seed": seed, "scorer": scorer.name, "rows_cut_for_the_reward_model": scorer.cut,
+                    "seed": seed, "scorer": scorer.name, "responses_cut_for_the_reward_model": cut,
                     "length_unit": "tokens of the model's tokenizer, the end token included where drawn"})
     return figures, table_rows(prompts, where, samples, scores)
 

@@ -321,7 +321,26 @@ def test_a_pair_file_reward_model_scores_the_responses(pair_reward, full_run, tm
                                encode_responses(byte, [r[which] for r in rows], ids))
         assert [r[f"{which}_score"] for r in rows] == pytest.approx(want.tolist(), abs=1e-6)
     figures = json.loads((out / "evaluation.json").read_text())
-    assert figures["scorer"] == f"reward model {pair_reward}" and figures["rows_cut_for_the_reward_model"] == []
+    assert figures["scorer"] == f"reward model {pair_reward}"
+    assert figures["responses_cut_for_the_reward_model"] == {"policy": [], "reference": []}
+
+
+def test_responses_too_long_for_the_reward_model_are_cut_to_its_context(pair_reward, full_run, tmp_path):
+    from polopt.data.tokenizer import load_tokenizer
+
+    prompts = write_prompts(tmp_path / "prompts.jsonl", [p for p in PROMPTS if isinstance(p, str)])
+    out = tmp_path / "out"
+    assert main(["evaluate", str(full_run), f"evaluate.prompts={prompts}", f"evaluate.reward={pair_reward}",
+                 "evaluate.max_new_tokens=24", "--out", str(out)]) == 0
+    context = torch.load(pair_reward, weights_only=True)["identity"]["context"]
+    byte = load_tokenizer("byte")
+    cut = json.loads((out / "evaluation.json").read_text())["responses_cut_for_the_reward_model"]
+    for which in ("policy", "reference"):
+        # bos + prompt + response + eos must fit: exactly the responses longer than that are listed
+        over = [i for i, r in enumerate(read_rows(out))
+                if 2 + len(byte.encode(r["prompt"])) + len(byte.encode(r[which])) > context]
+        assert cut[which] == over
+    assert cut["policy"] or cut["reference"]  # 24 words of bytes overflow the head's context
 
 
 def test_a_reward_model_refuses_what_it_cannot_score(pair_reward, full_run, tmp_path, capsys):
