@@ -79,9 +79,10 @@ def settings(overrides: list[str]) -> tuple[dict, int | None]:
     for arg in overrides:
         key = arg.partition("=")[0].lstrip("+~")
         if key.startswith("evaluate.") or key == "evaluate":
-            if key not in KEYS or "=" not in arg:
-                raise ValueError(config.unknown_key_message(key, [*KEYS, *TRAIN_KEYS]) if key not in KEYS else
-                                 f"{key} needs a value: {key}=VALUE")
+            if key not in KEYS:
+                raise ValueError(config.unknown_key_message(key, [*KEYS, *TRAIN_KEYS]))
+            if "=" not in arg:
+                raise ValueError(f"{key} needs a value: {key}=VALUE")
             given[key] = _value(arg)
         else:
             others.append(arg)
