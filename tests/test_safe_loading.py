@@ -52,8 +52,8 @@ def test_no_code_from_data(forbidden):
 
 
 def test_imports_by_name_only_for_the_dotted_loss_path():
-    """Only the loss path imports by a name read at run time; the dispatcher imports each command
-    by a plain import statement (polopt/commands/main.py, _command)."""
+    """Only polopt.losses.registry.import_dotted (loss=, evaluate.scorer=) imports by a name read at run
+    time; the dispatcher imports each command by a plain import statement (polopt/commands/main.py, _command)."""
     found = [p.relative_to(ROOT).as_posix() for p in SOURCES for node, name in _calls(p)
              if name in ("importlib.import_module", "import_module")]
     assert found == ["polopt/losses/registry.py"]

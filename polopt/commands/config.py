@@ -66,10 +66,11 @@ def rewrite_overrides(args: list[str]) -> list[str]:
 OUTPUT_KEY = "hydra.run.dir"  # where every command that writes a folder writes it, as polopt train takes it
 
 
-def output_folder(overrides: list[str], command: str, default: str) -> tuple[Path, list[str]]:
+def output_folder(overrides: list[str], command: str, default: str | None) -> tuple[Path | None, list[str]]:
     """The folder ``command`` writes: ``hydra.run.dir=DIR`` (the key polopt train takes), else ``default``
-    under runs/ with the date and time (``runs/DEFAULT/DATE/TIME``); and the other overrides. Any other
-    ``hydra`` key is refused in one line: only polopt train runs under Hydra's own launcher."""
+    under runs/ with the date and time (``runs/DEFAULT/DATE/TIME``; None: no folder given, the caller's
+    own choice); and the other overrides. Any other ``hydra`` key is refused in one line: only polopt
+    train runs under Hydra's own launcher."""
     import time
 
     folder, rest = None, []
@@ -85,7 +86,9 @@ def output_folder(overrides: list[str], command: str, default: str) -> tuple[Pat
                              f"{arg!r} would change nothing here")
         else:
             rest.append(arg)
-    return folder or Path("runs") / default / time.strftime("%Y-%m-%d/%H-%M-%S"), rest
+    if folder is None and default is not None:
+        folder = Path("runs") / default / time.strftime("%Y-%m-%d/%H-%M-%S")
+    return folder, rest
 
 
 def only_keys(overrides: list[str], prefixes: tuple[str, ...], command: str) -> None:

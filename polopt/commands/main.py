@@ -11,10 +11,11 @@
     polopt check LOSS [KEY=VALUE ...] [--json]         unit-test a loss against the analytic optimum
     polopt demo [KEY=VALUE ...] [--quick]              the end-to-end walk-through
     polopt sft FILE [KEY=VALUE ...]                    supervised fine-tuning of a reference model
+    polopt evaluate RUN [KEY=VALUE ...]                a local_lm run's policy against its reference on held-out prompts
 
 Every command takes polopt train's config keys as KEY=VALUE; flags only for what is not a config key.
-Every command that writes a folder (train, reward, compare, sft, realign, demo, data) takes it as
-hydra.run.dir=DIR (default under runs/).
+Every command that writes a folder (train, reward, compare, sft, realign, demo, data, evaluate) takes it
+as hydra.run.dir=DIR (default under runs/; evaluate: the run folder).
 
 ``polopt train --help`` lists the config groups and every key.
 """
@@ -35,6 +36,7 @@ COMMANDS = {  # name: what it does (its module is polopt/commands/NAME.py, see _
     "realign": "decoding-time realignment against retraining over a grid of lambda: table and plot",
     "checkpoints": "verify a run folder's checkpoints and show the resume point",
     "check": "unit-test a loss against the analytic optimum; exit code 1 on any failure",
+    "evaluate": "a model=local_lm run's policy against its reference on held-out prompts: win-rate, lengths, examples",
 }
 
 
@@ -61,6 +63,8 @@ def _command(name: str):
         from polopt.commands.realign import main
     elif name == "checkpoints":
         from polopt.commands.checkpoints import main
+    elif name == "evaluate":
+        from polopt.commands.evaluate import main
     else:
         from polopt.commands.check import main
     return main

@@ -47,22 +47,24 @@ _REGISTRY: dict[str, MarginLoss | PairLoss] = {}
 # ----------------------------------------------------------------------------
 
 
-def import_dotted(path: str) -> Callable[..., Tensor]:
-    """The callable a dotted path ``pkg.module:name`` names (imported only when named)."""
+def import_dotted(path: str, *, field: str = "loss path", takes: str = "f(x) or f(pair, beta)") -> Callable:
+    """The callable a dotted path ``pkg.module:name`` names (imported only when named): the one place polopt
+    imports by a name read at run time (``loss=``, and ``evaluate.scorer=`` through :mod:`polopt.methods.scorers`);
+    ``field`` and ``takes`` word its errors."""
     module_name, _, attr = path.partition(":")
     if not module_name or not attr:
-        raise ValueError(f"loss path {path!r} must look like 'pkg.module:name'")
+        raise ValueError(f"{field} {path!r} must look like 'pkg.module:name'")
     try:
         module = importlib.import_module(module_name)
     except ImportError as err:
-        raise ValueError(f"loss path {path!r}: cannot import module {module_name!r} ({err}); "
+        raise ValueError(f"{field} {path!r}: cannot import module {module_name!r} ({err}); "
                          "is it on PYTHONPATH?") from err
     try:
         fn = getattr(module, attr)
     except AttributeError as err:
-        raise ValueError(f"loss path {path!r}: module {module_name!r} has no attribute {attr!r}") from err
+        raise ValueError(f"{field} {path!r}: module {module_name!r} has no attribute {attr!r}") from err
     if not callable(fn):
-        raise TypeError(f"loss path {path!r} names a {type(fn).__name__}, not a callable f(x) or f(pair, beta)")
+        raise TypeError(f"{field} {path!r} names a {type(fn).__name__}, not a callable {takes}")
     return fn
 
 
