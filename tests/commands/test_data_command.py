@@ -60,10 +60,10 @@ def test_by_default_the_report_goes_under_runs_never_beside_the_input_or_loose(f
     assert f"rejects file: {folder.relative_to(tmp_path) / 'rejects.jsonl'}" in capsys.readouterr().out
 
 
-@pytest.mark.parametrize("command", ["data", "reward", "compare", "realign", "sft", "demo"])
+@pytest.mark.parametrize("command", ["data", "reward", "compare", "realign", "sft", "demo", "evaluate"])
 def test_a_hydra_key_other_than_the_output_folder_is_refused_in_one_line(command, tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
-    first = {"data": ["pairs.jsonl"], "sft": ["notes.txt"]}.get(command, [])
+    first = {"data": ["pairs.jsonl"], "sft": ["notes.txt"], "evaluate": ["runs/mine"]}.get(command, [])
     assert main([command, *first, f"hydra.sweep.dir={tmp_path / 'x'}"]) == 2
     assert capsys.readouterr().err == (f"polopt {command}: error: polopt {command} takes hydra.run.dir=DIR (its output "
                                        f"folder) and no other hydra key; 'hydra.sweep.dir={tmp_path / 'x'}' would "
