@@ -9,6 +9,8 @@ from pathlib import Path
 import pytest
 from helpers_cli import polopt
 
+from polopt.commands.main import main
+
 ROOT = Path(__file__).resolve().parents[2]
 
 
@@ -68,14 +70,15 @@ BAD_TASKS = {
 
 
 @pytest.mark.parametrize("case", sorted(BAD_TASKS))
-def test_bad_task_file_is_one_clear_line(tmp_path, case):
+def test_bad_task_file_is_one_clear_line(tmp_path, case, capsys):
+    """In process (the same error boundary as ``python -m polopt``, tested in a subprocess below)."""
     data, message = BAD_TASKS[case]
     path = tmp_path / "task.json"
     path.write_text(json.dumps(data))
-    out = polopt("train", "task=file", f"task.path={path}", f"hydra.run.dir={tmp_path / 'run'}")
-    assert out.returncode == 2
-    assert message in out.stderr
-    assert "Traceback" not in out.stderr and len(out.stderr.strip().splitlines()) == 1
+    assert main(["train", "task=file", f"task.path={path}", f"hydra.run.dir={tmp_path / 'run'}"]) == 2
+    err = capsys.readouterr().err
+    assert message in err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
 
 
 @pytest.mark.parametrize("args,message", [
@@ -89,11 +92,17 @@ def test_bad_task_file_is_one_clear_line(tmp_path, case):
     (["optim=lbfgs", "task.mode=sampled", "train.batch_size=8"],
      "polopt train: error: optim=lbfgs's line search needs one fixed objective: set train.batch_size=null"),
 ])
-def test_bad_options_are_one_clear_line(tmp_path, args, message):
-    out = polopt("train", *args, f"hydra.run.dir={tmp_path}")
-    assert out.returncode == 2, out.stdout
-    assert message in out.stderr
-    assert "Traceback" not in out.stderr and len(out.stderr.strip().splitlines()) == 1
+def test_bad_options_are_one_clear_line(tmp_path, args, message, capsys):
+    assert main(["train", *args, f"hydra.run.dir={tmp_path}"]) == 2
+    err = capsys.readouterr().err
+    assert message in err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+
+
+def test_a_mistake_through_python_m_polopt_is_one_line_and_exit_2(tmp_path):
+    out = polopt("train", "beta=0", f"hydra.run.dir={tmp_path}")
+    assert out.returncode == 2
+    assert out.stderr == "polopt train: error: beta must be a number > 0 (e.g. beta=0.1), got 0\n"
 
 
 def test_help_explains_the_commands():

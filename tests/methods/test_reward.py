@@ -164,6 +164,7 @@ def test_a_reward_model_file_knows_its_task(tmp_path):
         load_reward_model(tmp_path / "junk.pt", task_identity(task))
 
 
+@pytest.mark.slow
 def test_the_reward_command_writes_counts_that_anyone_can_refit(tmp_path):
     out = polopt("reward", "task=bradley_terry", "task.mode=sampled", "task.n_pairs=2000", "train.seed=0",
                  f"hydra.run.dir={tmp_path / 'rm'}")
@@ -188,7 +189,11 @@ def test_the_reward_command_writes_counts_that_anyone_can_refit(tmp_path):
     assert bon["target_kl_to_reference"] == pytest.approx(bon["best_of_n_kl_to_reference"])
 
 
-def test_bad_reward_input_is_one_line_and_exit_2(tmp_path):
+def test_bad_reward_input_is_one_line_and_exit_2(tmp_path, capsys):
+    """In process (polopt.commands.main.main returns the exit code, as DEVELOPERS.md says): the same
+    error boundary as the command line, without a torch import per case."""
+    from polopt.commands.main import main
+
     path, _ = _saved(bradley_terry(), tmp_path)
     cases = [
         (("train", "method=rl", "task=contextual", f"method.reward={path}"), r"fitted for task 'bradley_terry'"),
@@ -203,11 +208,11 @@ def test_bad_reward_input_is_one_line_and_exit_2(tmp_path):
     ]
     for args, message in cases:
         extra = ("train.progress=false", f"hydra.run.dir={tmp_path / 'run'}") if args[0] == "train" else ()
-        out = polopt(*args, *extra)
-        assert out.returncode == 2, out.stderr
-        assert len(out.stderr.strip().splitlines()) == 1, out.stderr
-        assert "Traceback" not in out.stderr
-        assert re.search(message, out.stderr), out.stderr
+        assert main([*args, *extra]) == 2
+        err = capsys.readouterr().err
+        assert len(err.strip().splitlines()) == 1, err
+        assert "Traceback" not in err
+        assert re.search(message, err), err
 
 
 def test_the_overoptimisation_bench_writes_its_table_and_plot(tmp_path, capsys):
@@ -223,6 +228,7 @@ def test_the_overoptimisation_bench_writes_its_table_and_plot(tmp_path, capsys):
     assert (tmp_path / "overoptimisation.png").stat().st_size > 0
 
 
+@pytest.mark.slow
 def test_sequence_task_scalar_head_approaches_the_true_rewards_accuracy(tmp_path):
     """The scalar head on the tiny transformer, fitted to 3000 sampled token pairs: its held-out accuracy
     is compared with that of the true rewards on the same held-out pairs (the Bayes rule: no model does

@@ -157,6 +157,7 @@ def assert_close_runs(got: dict, want: dict) -> None:
         torch.testing.assert_close(torch.tensor(a), torch.tensor(b), rtol=0, atol=1e-5)
 
 
+@pytest.mark.slow
 def test_torchrun_matches_one_process_and_its_checkpoint_resumes_on_one(tmp_path):
     two = polopt_train(tmp_path / "two", 2)
     one = polopt_train(tmp_path / "one", 1)
@@ -180,6 +181,7 @@ def test_torchrun_matches_one_process_and_its_checkpoint_resumes_on_one(tmp_path
 
 
 
+@pytest.mark.slow
 def test_torchrun_trains_a_pair_objective_as_one_process_does(tmp_path):
     """SimPO (reference-free, per-token lengths of the sampled token pairs) under torchrun: each rank
     scores its shard with the shard's own lengths, and the run ends where the one-process run does."""

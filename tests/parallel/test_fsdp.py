@@ -87,6 +87,7 @@ def only_checkpoint(source: Path, step: int, target: Path) -> None:
                                                                ("file", "step", "sha256", "bytes", "sharded")}])
 
 
+@pytest.mark.slow
 def test_fsdp_matches_one_process_and_its_checkpoint_resumes_on_one_and_on_two(tmp_path):
     polopt_train(tmp_path / "fsdp", 2, "train.strategy=fsdp")
     polopt_train(tmp_path / "one", 1)
@@ -139,6 +140,7 @@ def _newest_step(ckpt_dir: Path) -> int:
     return max((e["step"] for e in manifest["checkpoints"]), default=0) if manifest else 0
 
 
+@pytest.mark.slow
 def test_a_killed_fsdp_run_resumes_to_the_same_end_state(tmp_path):
     args = ("train.strategy=fsdp", "train.steps=24", "train.checkpoint_every=2")
     polopt_train(tmp_path / "whole", 2, *args)

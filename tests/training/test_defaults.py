@@ -102,6 +102,7 @@ def test_the_sequence_defaults_reach_the_exact_optimum(tmp_path):
     assert screen.rstrip().splitlines()[-1].startswith("reached_optimum: true")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("loss, beta", [("divergence_jensen_shannon", 0.5), ("divergence_forward_kl", 2.0)])
 def test_the_sequence_defaults_reach_the_optimum_of_a_levelling_link(tmp_path, loss, beta):
     """A pair objective whose link levels off above the reference, with every default of task=sequence

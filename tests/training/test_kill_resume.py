@@ -86,6 +86,7 @@ def _uninterrupted(run_dir: Path) -> None:
     run(cfg, run_dir)
 
 
+@pytest.mark.slow
 def test_sigkill_and_rerun_ends_identical(tmp_path):
     reference = tmp_path / "uninterrupted"
     _uninterrupted(reference)

@@ -93,6 +93,7 @@ def _exact_run(steps, **kwargs):
     return policy, result
 
 
+@pytest.mark.slow
 def test_resume_inside_the_window_stops_at_the_same_step_bit_identical(tmp_path):
     saved = {}
     policy_full, full = _exact_run(2000, save_checkpoint=lambda s: saved.update(full=copy.deepcopy(s)))
