@@ -18,6 +18,7 @@ import sys
 import time
 from pathlib import Path
 
+import pytest
 from helpers_resume import assert_same_state
 from hydra import compose, initialize_config_dir
 
