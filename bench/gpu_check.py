@@ -4,7 +4,7 @@
 
 Where torch sees no GPU it prints one line saying so and exits 0 (nothing to check). Otherwise:
 
-1. ``pytest tests/test_devices.py``: the tests' GPU parts (skipped on a CPU-only machine).
+1. ``pytest tests/parallel/test_devices.py``: the tests' GPU parts (skipped on a CPU-only machine).
 2. ``polopt train task=pairs`` on a generated file of ``--pairs`` invented word pairs, fp32 and SGD
    (a constant learning rate: differences stay at rounding size, where Adam's normalised first steps
    can amplify a rounding difference to the step size), ``train.device=cpu`` against ``cuda``, and
@@ -44,6 +44,11 @@ BASE = ["task=pairs", "model=transformer", "model.context=48", "train.batch_size
         "train.bucketing=false", "optim=sgd", "optim.lr=0.5", "optim.schedule=constant", "train.log_every=5"]
 
 
+def _path() -> str:
+    """The checkout first, then whatever PYTHONPATH already holds (packages carried to a bare machine)."""
+    return os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH", "")) if p)
+
+
 def write_pairs(path: Path, n: int, seed: int = 0) -> Path:
     rng = random.Random(seed)
 
@@ -64,7 +69,7 @@ def free_port() -> int:
 
 
 def polopt_train(run_dir: Path, args: list[str], *, processes: int = 1, timeout: float) -> dict:
-    env = {**os.environ, "PYTHONPATH": str(ROOT), "HF_HUB_OFFLINE": "1"}
+    env = {**os.environ, "PYTHONPATH": _path(), "HF_HUB_OFFLINE": "1"}
     launcher = [] if processes == 1 else ["-m", "torch.distributed.run", f"--nproc_per_node={processes}",
                                           "--master_addr=127.0.0.1", f"--master_port={free_port()}"]
     cmd = [sys.executable, *launcher, "-m", "polopt", "train", *args, f"hydra.run.dir={run_dir}"]
@@ -109,12 +114,12 @@ def main(argv: list[str] | None = None) -> int:
     name = "none, a rehearsal on the CPU" if args.rehearse_on_cpu else torch.cuda.get_device_name(0)
     print(f"gpu_check: {gpus} GPU(s): {name}; torch {torch.__version__}, CUDA {torch.version.cuda}")
     failures: list[str] = []
-    print("1. the tests' GPU parts: pytest tests/test_devices.py")
-    done = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "tests/test_devices.py"],
-                          cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)}, capture_output=True, text=True)
+    print("1. the tests' GPU parts: pytest tests/parallel/test_devices.py")
+    done = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "tests/parallel/test_devices.py"],
+                          cwd=ROOT, env={**os.environ, "PYTHONPATH": _path()}, capture_output=True, text=True)
     print("  " + (done.stdout.strip().splitlines() or ["(no output)"])[-1])
     if done.returncode != 0:
-        failures.append(f"tests/test_devices.py: {done.stdout[-1500:]}")
+        failures.append(f"tests/parallel/test_devices.py: {done.stdout[-1500:]}")
     with tempfile.TemporaryDirectory(prefix="polopt-gpu-") as tmp:
         tmp = Path(tmp)
         data = write_pairs(tmp / "pairs.jsonl", args.pairs)
