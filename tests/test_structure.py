@@ -5,6 +5,8 @@
 - No function in polopt/ or toy_tasks/ is longer than 80 lines (``end_lineno - lineno + 1``).
 - The training loop's module (polopt.training.loop) is imported by a handful of modules that run
   training; everything else takes its types from the contract modules.
+- Dependencies point one way down the stages of DEVELOPERS.md's layout (:data:`STAGES`); at most five
+  modules sit directly in polopt/, and every package's docstring says what it owns.
 """
 
 from __future__ import annotations
