@@ -38,7 +38,16 @@ from polopt.losses.reduce import validate_hyperparameters
 from polopt.methods.dispatch import method_objective
 from polopt.models.compiling import compile_policy
 from polopt.parallel import devices, distributed
-from polopt.training.contracts import MethodView, Session, method_view, session_threads, session_tol, trains_on_gpu
+from polopt.training.contracts import (
+    MethodView,
+    Session,
+    method_view,
+    pretrained_saver,
+    session_threads,
+    session_tol,
+    task_for_model,
+    trains_on_gpu,
+)
 from polopt.training.loop import MethodBatches, PairBatches, TrainSettings, optimise
 from polopt.training.optim import OptimConfig
 from polopt.training.run_folder import RunFolder, run_summary
@@ -121,7 +130,7 @@ def prepare_session(cfg: DictConfig, run_dir: Path, context: distributed.Context
     """The loss and the task's session for this run (rank 0 first: it may write caches in the run folder)."""
     loss = build_loss(cfg.loss)
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
-    task = build_task(cfg.task)
+    task = task_for_model(build_task(cfg.task), OmegaConf.to_container(cfg.model, resolve=True))
     with distributed.main_first(context):  # rank 0 writes any cache in the run folder before the others read it
         session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
                                mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
@@ -215,7 +224,8 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
     summary = run_summary(session, view, policy, result, method=method["name"], context=context)
     summary.setdefault("reached_optimum", None)  # no exact optimum known (e.g. task=pairs)
     if context.is_main:
-        folder.write_summary(summary)
+        folder.write_summary(summary)  # first: a failure to save the policy below never loses the summary
+        folder.write_pretrained(pretrained_saver(session), policy)  # model=local_lm: RUN/policy/
         print((session if offline else view).table(summary))
         print(f"run folder: {run_dir}")
         print(reached_line(summary))  # the verdict last, where the eye lands

@@ -39,11 +39,12 @@ __all__ = ["DUPLICATES", "FIELDS", "FORMATS", "PAIR_FILE_KEYS", "REASONS", "TRUN
 PAIR_FILE_KEYS = DEFAULTS
 
 
-def read_pair_file(spec: PairFileSpec, *, tokenizer=None) -> PairData:
+def read_pair_file(spec: PairFileSpec, *, tokenizer=None, messages: bool = False) -> PairData:
     """Read and check the preference-pair file ``spec`` names; every row ends up accepted or rejected.
 
     ``tokenizer``: a tokenizer object to measure lengths with (default: ``spec.tokenizer`` loaded,
-    ``"byte"`` or a local directory). A problem with the file as a whole is one ValueError;
+    ``"byte"`` or a local directory). ``messages``: prompts and responses may be chat message lists
+    (:mod:`polopt.data.chat`). A problem with the file as a whole is one ValueError;
     ``hub=True`` lets a name that is not a local path be read from the hub (never in tests).
     """
     if spec.path is None:
@@ -54,7 +55,7 @@ def read_pair_file(spec: PairFileSpec, *, tokenizer=None) -> PairData:
     check_policies(spec.max_length, spec.truncation, spec.duplicates)  # before reading a large file
     table = read_table(spec.path, cols, format=spec.format, hub=bool(spec.hub), split=spec.split)
     return validate(table, tokenizer, max_length=spec.max_length, truncation=spec.truncation,
-                    duplicates=spec.duplicates)
+                    duplicates=spec.duplicates, messages=messages)
 
 
 def load_pairs(path: str | Path, *, columns: Mapping | str | Columns | None = None, format: str = "auto",

@@ -23,12 +23,15 @@ REASONS = {
     "not_an_object": "the line is valid JSON but not an object",
     "wrong_field_count": "the CSV record has a different number of fields than the header",
     "missing": "a required field is absent or null",
-    "not_a_string": "a text field holds a number, list, object or boolean",
+    "not_a_string": "a text field holds a number, list, object or boolean (message lists: model=local_lm only)",
+    "bad_messages": "a message list is empty, holds an item without a string role and content, or a response "
+                    "holds a message that is not the assistant's",
     "empty": "a text field is empty or only whitespace",
     "bad_weight": "the weight is not a finite number > 0",
     "identical": "winner and loser are the same text",
     "too_long": "the pair is longer than max_length and the truncation policy does not cut it",
     "duplicate": "the same (prompt, winner, loser, weight) as an earlier accepted row",
+    "template_mismatch": "the chat template's rendering of prompt + response does not start with that of the prompt",
 }
 
 

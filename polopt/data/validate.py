@@ -23,12 +23,14 @@ The accounting dict says ``rows_in == rows_accepted + rows_rejected``, and
 
 from __future__ import annotations
 
+import json
 import math
 from collections import Counter
 from dataclasses import dataclass, field
 
+from polopt.data.chat import is_messages, message_problem
 from polopt.data.read import RawTable
-from polopt.data.rows import REASONS, TEXT_FIELDS, Reject, describe_bad_bytes
+from polopt.data.rows import REASONS, TEXT_FIELDS, Reject, describe_bad_bytes, representable
 
 TRUNCATION = {
     "reject": "reject pairs longer than max_length",
@@ -85,8 +87,13 @@ def check_policies(max_length, truncation: str, duplicates: str) -> None:
 
 
 def validate(table: RawTable, tokenizer, *, max_length: int | None = None, truncation: str = "reject",
-             duplicates: str = "reject") -> PairData:
-    """Check every row of ``table`` (see the module docstring); return the accepted pairs."""
+             duplicates: str = "reject", messages: bool = False) -> PairData:
+    """Check every row of ``table`` (see the module docstring); return the accepted pairs. ``messages``: a
+    text field may also be a list of chat messages (:mod:`polopt.data.chat`; ``bad_messages`` where it is
+    not a valid one); lengths are then not measured here (``max_length`` must be None)."""
+    if messages and max_length is not None:
+        raise ValueError("message rows are measured in the model's tokens after the chat template, not here: "
+                         "validate them with max_length=None")
     check_policies(max_length, truncation, duplicates)
     out = PairData(rejects=list(table.early_rejects))
     seen: dict[tuple, int] = {}
@@ -99,7 +106,7 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
             out.rejects.append(Reject(_location, table.unit, field_name, reason, detail, table.content[_i],
                                       list(others)))
 
-        problems = _field_problems(raw, table.present[i], table.text_values)
+        problems = _field_problems(raw, table.present[i], table.text_values, messages)
         if problems:
             first, *others = problems
             reject(first["field"], first["reason"], first["detail"], others)
@@ -109,7 +116,7 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
         if winner == loser:
             reject("loser", "identical", "winner and loser are the same text")
             continue
-        key = (prompt, winner, loser, weight)
+        key = tuple(json.dumps(v) if is_messages(v) else v for v in (prompt, winner, loser)) + (weight,)
         fitted = _fit(prompt, winner, loser, tokenizer, max_length, truncation)
         if isinstance(fitted, Reject):
             reject(fitted.field, fitted.reason, fitted.detail)
@@ -136,12 +143,16 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
     return out
 
 
-def _field_problems(raw: dict, present: set, text_values: bool) -> list[dict]:
+def _field_problems(raw: dict, present: set, text_values: bool, messages: bool = False) -> list[dict]:
     """Every problem of the single fields of one row, in field order."""
     problems = []
     for name in TEXT_FIELDS:
         value = raw[name]
-        if value is None:
+        if messages and is_messages(value):
+            detail = message_problem(value, field=name)
+            if detail is not None:
+                problems.append({"field": name, "reason": "bad_messages", "detail": detail})
+        elif value is None:
             problems.append({"field": name, "reason": "missing",
                              "detail": f"{name} is null" if name in present else f"{name} is absent"})
         elif isinstance(value, bytes):
@@ -190,6 +201,8 @@ def _as_float(value) -> float:
 def _fit(prompt: str, winner: str, loser: str, tokenizer, max_length: int | None, truncation: str):
     """((prompt, winner, loser), {field: tokens removed}, length) within ``max_length`` by the
     policy, or a Reject (its location is filled in by the caller)."""
+    if not all(isinstance(t, str) for t in (prompt, winner, loser)):
+        return (prompt, winner, loser), {}, None  # a message row: measured in the model's tokens later
     n_p, n_w, n_l = (tokenizer.count(t) for t in (prompt, winner, loser))
     length = n_p + max(n_w, n_l)
     if max_length is None or length <= max_length:
@@ -251,6 +264,42 @@ def _accounting(table: RawTable, out: PairData, tokenizer, *, max_length, trunca
         "duplicates": duplicates,
         "duplicate_rows": n_duplicates,
     }
+
+
+def reject_later(data: PairData, rejected: dict[int, Reject], cuts: dict[int, dict[str, int]], lengths: list[int], *,
+                 tokenizer: str, max_length: int | None) -> PairData:
+    """``data`` after checks that need the model (its tokens, its context): accepted row i moves to the
+    rejects where ``rejected`` has it (its location and row filled in here), ``cuts[i]`` counts the tokens
+    truncation removed from its fields, ``lengths[i]`` is its measured length. The accounting is updated so
+    that ``rows_in = rows_accepted + rows_rejected`` still holds; ``tokenizer`` and ``max_length`` say what
+    the lengths were measured with and against."""
+    out = PairData(rejects=list(data.rejects))
+    truncated: Counter = Counter()
+    for i, row in enumerate(data.rows()):
+        if i in rejected:
+            r = rejected[i]
+            out.rejects.append(Reject(data.location[i], data.accounting["row_unit"], r.field, r.reason, r.detail,
+                                      representable(row)))
+            continue
+        truncated.update(cuts.get(i, {}).keys())
+        for name in ("prompt", "winner", "loser", "weight"):
+            getattr(out, name).append(row[name])
+        out.location.append(data.location[i])
+        out.length.append(lengths[i])
+    out.rejects.sort(key=lambda r: r.location)
+    by_reason = Counter(r.reason for r in out.rejects)
+    a = dict(data.accounting)
+    a.update(rows_accepted=len(out), rows_rejected=len(out.rejects),
+             rejected_by_reason={k: by_reason[k] for k in REASONS if by_reason[k]},
+             balance=f"rows_in {a['rows_in']} = rows_accepted {len(out)} + rows_rejected {len(out.rejects)}",
+             tokenizer=tokenizer, max_length=max_length,
+             rows_truncated=sum(1 for i, c in cuts.items() if c and i not in rejected),
+             truncated_fields={f: truncated[f] for f in TEXT_FIELDS if truncated[f]},
+             tokens_removed=sum(sum(c.values()) for i, c in cuts.items() if i not in rejected))
+    if a["rows_in"] != a["rows_accepted"] + a["rows_rejected"]:  # never: each row moves exactly once
+        raise RuntimeError(f"row accounting broke: {a['balance']}")
+    out.accounting = a
+    return out
 
 
 def _surrogate_detail(name: str, text: str) -> str:

@@ -21,10 +21,15 @@ data:
 Without a reference checkpoint the reference log-probabilities depend on the
 policy's architecture, so they are computed in :meth:`PairSession.build_policy`
 (which ``polopt train`` calls before it reads ``pairs``).
+
+With ``model=local_lm`` (the composition root hands the task the model config through
+:meth:`PairTask.for_model`) the file is read and encoded with the model's own tokenizer, chat rows
+included: :mod:`polopt.pairfile.local_lm`.
 """
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,6 +40,7 @@ from polopt.data.encoding import SequenceIds
 from polopt.data.tokenizer import load_tokenizer
 from polopt.losses.margin import MarginLoss
 from polopt.models.reference_cache import FILE_NAME
+from polopt.pairfile.local_lm import prepare_local_lm
 from polopt.pairfile.session import REJECTS_FILE, PairSession
 from polopt.pairfile.streamed import prepare_streamed
 from polopt.training.sft import load_reference
@@ -51,6 +57,13 @@ class PairTask:
     cache_reference: bool = True
     stream: bool = False  # task.stream: one streaming pass into a memory-mapped file (polopt.pairfile.streamed)
     summary_pairs: int | None = None  # task.summary_pairs (streamed): the summary's statistics over the first N
+    chat_template: str | None = None  # task.chat_template: a Jinja template file for a local LM's message rows
+    model: dict | None = None  # the run's model config (for_model); kind local_lm reads the file with its tokenizer
+
+    def for_model(self, model: dict) -> PairTask:
+        """This task for a run of ``model`` (the ``model`` config): ``model=local_lm`` reads and encodes the
+        file with the model's own tokenizer (:mod:`polopt.pairfile.local_lm`)."""
+        return dataclasses.replace(self, model=dict(model))
 
     def prepare(self, loss: MarginLoss, *, beta: float, smoothing: float = 0.0, mode: str = "sampled",
                 n_pairs: int | None = None, seed: int = 0, run_dir: str | Path | None = None) -> PairSession:
@@ -58,6 +71,14 @@ class PairTask:
         if mode != "sampled":
             raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs, there is no "
                              f"population to weigh exactly), got {mode!r}")
+        if n_pairs is not None and (not isinstance(n_pairs, int) or isinstance(n_pairs, bool) or n_pairs < 1):
+            raise ValueError(f"task.n_pairs must be a positive integer or null (every accepted pair), got {n_pairs!r}")
+        if (self.model or {}).get("kind") == "local_lm":
+            return prepare_local_lm(self, loss, model=self.model, beta=beta, smoothing=smoothing, n_pairs=n_pairs,
+                                    run_dir=run_dir)
+        if self.chat_template is not None:
+            raise ValueError(f"task.chat_template is read with model=local_lm only (the built-in transformer reads "
+                             f"plain rows), got task.chat_template={self.chat_template!r}")
         if self.stream:
             return prepare_streamed(self, loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs, run_dir=run_dir)
         tokenizer = load_tokenizer(self.file.tokenizer or "byte")
@@ -65,10 +86,6 @@ class PairTask:
         rejects = None
         if run_dir is not None:
             rejects = write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
-        if n_pairs is not None:
-            if not isinstance(n_pairs, int) or isinstance(n_pairs, bool) or n_pairs < 1:
-                raise ValueError(f"task.n_pairs must be a positive integer or null (every accepted pair), "
-                                 f"got {n_pairs!r}")
         if len(data) == 0:
             raise ValueError(f"task.path {self.file.path!r}: no pair was accepted "
                              f"({data.accounting['rows_rejected']} rejected; see {rejects or 'polopt data FILE'})")
@@ -94,7 +111,8 @@ class PairTask:
 def pair_task(path: str | None = None, format: str = "auto", columns: dict | str | None = None,
               max_length: int | None = None, truncation: str = "reject", duplicates: str = "reject",
               tokenizer: str = "byte", hub: bool = False, split: str = "train", reference_checkpoint: str | None = None,
-              cache_reference: bool = True, stream: bool = False, summary_pairs: int | None = None) -> PairTask:
+              cache_reference: bool = True, stream: bool = False, summary_pairs: int | None = None,
+              chat_template: str | None = None) -> PairTask:
     """Build ``task=pairs`` (every key of conf/task/pairs.yaml but mode and n_pairs)."""
     if path is None:
         raise ValueError("task=pairs needs task.path=FILE (JSONL, CSV, Parquet or a saved dataset folder)")
@@ -107,4 +125,5 @@ def pair_task(path: str | None = None, format: str = "auto", columns: dict | str
         raise ValueError(f"task.summary_pairs must be null (every pair) or a positive integer, with task.stream=true, "
                          f"got {summary_pairs!r} (task.stream={stream})")
     return PairTask(file, reference=None if reference_checkpoint in (None, "") else str(reference_checkpoint),
-                    cache_reference=bool(cache_reference), stream=stream, summary_pairs=summary_pairs)
+                    cache_reference=bool(cache_reference), stream=stream, summary_pairs=summary_pairs,
+                    chat_template=None if chat_template in (None, "") else str(chat_template))

@@ -98,3 +98,16 @@ def method_view(session: Session, method: dict) -> MethodView | None:
     """``session.for_method(**method)`` where the session offers it, else None."""
     for_method = getattr(session, "for_method", None)
     return None if for_method is None else for_method(**method)
+
+
+def task_for_model(task: Task, model: dict) -> Task:
+    """``task.for_model(model)`` where the task reads its data with the model's own tokenizer (task=pairs with
+    model=local_lm), else the task as it is."""
+    for_model = getattr(task, "for_model", None)
+    return task if for_model is None else for_model(model)
+
+
+def pretrained_saver(session: Session):
+    """``session.save_pretrained(policy, directory)`` where the session's policy is saved for the ecosystem
+    (model=local_lm: transformers' / peft's ``save_pretrained``), else None."""
+    return getattr(session, "save_pretrained", None)

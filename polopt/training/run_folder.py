@@ -3,8 +3,9 @@
 A run folder holds ``config.yaml`` (the resolved config), ``metrics.jsonl`` (one JSON line per
 logged step), ``summary.json`` (what the run found), and either ``checkpoints/`` (offline
 runs: resumable, see :mod:`polopt.checkpoints.store`) or ``policy.pt`` (method runs, which start
-over). Every command that writes a run folder goes through :class:`RunFolder`; with several
-processes only rank 0 writes (``main``), the other ranks' calls do nothing.
+over); a local causal LM's run also ``policy/``, written by ``save_pretrained``. Every command
+that writes a run folder goes through :class:`RunFolder`; with several processes only rank 0 writes
+(``main``), the other ranks' calls do nothing.
 """
 
 from __future__ import annotations
@@ -12,6 +13,7 @@ from __future__ import annotations
 import io
 import json
 import os
+import shutil
 from collections.abc import Callable
 from pathlib import Path
 
@@ -20,6 +22,8 @@ import torch
 from polopt.checkpoints import store as checkpoint
 from polopt.parallel import distributed
 from polopt.training.contracts import TrainResult
+
+POLICY_DIR = "policy"  # a run's policy saved for the ecosystem (save_pretrained), beside the checkpoints
 
 
 def json_ready(value):
@@ -91,6 +95,17 @@ class RunFolder:
             buffer = io.BytesIO()
             torch.save({"policy": policy.state_dict(), "step": step, "config": config}, buffer)
             checkpoint.atomic_write(self.policy_path, buffer.getvalue())
+
+    def write_pretrained(self, save: Callable[[torch.nn.Module, Path], None] | None, policy: torch.nn.Module) -> None:
+        """``policy/``: ``save(policy, directory)`` (a session's ``save_pretrained``; None: nothing to write) into
+        a temporary folder, then renamed over any earlier one, so a reader never sees half a policy."""
+        if not self.main or save is None:
+            return
+        target, tmp = self.path / POLICY_DIR, self.path / f".{POLICY_DIR}.tmp"
+        shutil.rmtree(tmp, ignore_errors=True)
+        save(policy, tmp)
+        shutil.rmtree(target, ignore_errors=True)
+        os.replace(tmp, target)
 
     def write_summary(self, summary: dict) -> None:
         if self.main:

@@ -155,7 +155,7 @@ def test_reference_cache_keeps_the_method_apart(tmp_path):
 
 
 def test_a_model_without_the_layout_refuses_a_shared_pass():
-    class Plain(torch.nn.Module):  # a forward of tokens only, as a transformers model behind polopt.models.hf
+    class Plain(torch.nn.Module):  # a forward of tokens only, as a transformers model behind polopt.models.local_lm
         def __init__(self):
             super().__init__()
             self.inner = random_model(0)

@@ -56,18 +56,23 @@ class SequenceSession:
     # model's matrices are too small to share, and on busy cores two threads ran ten times slower than one
 
     def build_policy(self, kind: str = "transformer", width: int = 32, layers: int = 2, heads: int = 2,
-                     context: int = 16, seed: int = 0, init: str = "reference",
-                     path: str | None = None) -> torch.nn.Module:
+                     context: int | None = None, seed: int = 0, init: str = "reference",
+                     path: str | None = None, adapter: str | None = None, lora: dict | None = None) -> torch.nn.Module:
         """A sequence model over the task's vocabulary, wrapped to score enumerated responses
-        (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights)."""
+        (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights, fully fine-tuned).
+        ``context`` None: what the task needs."""
+        if kind not in ("tabular", "loglinear"):  # a sequence model fits the enumerated distribution approximately
+            self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE
         if kind == "local_lm":
-            from polopt.models.hf import causal_lm_policy  # the optional extra: imported only when asked for
+            from polopt.models.local_lm import causal_lm_policy  # the optional extra: imported only when asked for
 
+            del lora  # its defaults come with model=local_lm; they are read only with an adapter
+            if adapter is not None:
+                raise ValueError(f"model.adapter=lora trains task=pairs; task=sequence fine-tunes the whole local "
+                                 f"model: leave model.adapter null, got {adapter!r}")
             lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
                                   vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
             return EnumeratedSequencePolicy(lm.model, self.task)
-        if kind not in ("tabular", "loglinear"):  # a sequence model fits the enumerated distribution approximately
-            self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE
         if kind in ("tabular", "loglinear"):
             if self.finite.mode != "exact":
                 raise ValueError(f"model={kind} scores enumerated responses, not tokens: on task=sequence it "
@@ -76,6 +81,7 @@ class SequenceSession:
         if init not in INITS:
             raise ValueError(f"model.init must be one of {', '.join(INITS)}, got {init!r}")
         need = self.task.context_needed
+        context = need if context is None else context
         if context < need:
             raise ValueError(f"model.context must be at least {need} for this task (prompt plus response "
                              f"tokens), got {context}")
