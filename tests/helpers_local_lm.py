@@ -116,9 +116,14 @@ def as_messages(value, role: str) -> list[dict]:
     return value if isinstance(value, list) else [{"role": role, "content": value}]
 
 
-def convention_ids(tokenizer, prompt, response) -> tuple[list[int], list[int]]:
+def is_chat(row: dict) -> bool:
+    """A chat row: any of its fields a message list (then its strings count as single messages)."""
+    return any(isinstance(row[k], list) for k in ("prompt", "winner", "loser"))
+
+
+def convention_ids(tokenizer, prompt, response, *, chat: bool) -> tuple[list[int], list[int]]:
     """The token convention of the issue, written out independently of polopt.data.chat."""
-    if isinstance(prompt, list) or isinstance(response, list):
+    if chat:
         messages = as_messages(prompt, "user")
         prompt_text = tokenizer.apply_chat_template(messages, add_generation_prompt=True, tokenize=False)
         full_text = tokenizer.apply_chat_template(messages + as_messages(response, "assistant"), tokenize=False)
@@ -130,9 +135,9 @@ def convention_ids(tokenizer, prompt, response) -> tuple[list[int], list[int]]:
 
 
 @torch.no_grad()
-def direct_logprob(model, tokenizer, prompt, response) -> float:
-    """log pi(response | prompt): one unpadded row, ``model(ids).logits`` log-softmaxed and gathered."""
-    p, r = convention_ids(tokenizer, prompt, response)
+def direct_logprob(model, tokenizer, row: dict, side: str) -> float:
+    """log pi(row[side] | row["prompt"]): one unpadded row, ``model(ids).logits`` log-softmaxed and gathered."""
+    p, r = convention_ids(tokenizer, row["prompt"], row[side], chat=is_chat(row))
     ids = torch.tensor([p + r])  # (1, T)
     logp = torch.log_softmax(model(ids).logits[0].double(), dim=-1)  # (T, V)
     scoring = torch.arange(len(p) - 1, len(p) + len(r) - 1)  # position t scores token t + 1

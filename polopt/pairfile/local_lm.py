@@ -200,18 +200,18 @@ def prepare_local_lm(task, loss: Loss, *, model: dict, beta: float, smoothing: f
     limit = context_of(path, model.get("context"))
     limit = limit if spec.max_length is None else min(limit, spec.max_length)
     measured_later = type(spec)(**{**spec.as_dict(), "max_length": None})  # lengths in the model's tokens, below
-    data, ids = encode_rows(tokenizer, read_pair_file(measured_later, messages=True), limit=limit,
+    data, token_ids = encode_rows(tokenizer, read_pair_file(measured_later, messages=True), limit=limit,
                             truncation=spec.truncation)
     rejects = None if run_dir is None else write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
     if len(data) == 0:
         raise ValueError(f"task.path {spec.path!r}: no pair was accepted "
                          f"({data.accounting['rows_rejected']} rejected; see {rejects or 'the rejects'})")
     cache = Path(run_dir) / FILE_NAME if run_dir is not None and task.cache_reference else None
-    ids = SequenceIds(PAD, tokenizer.bos_token_id, tokenizer.eos_token_id, len(tokenizer))
-    session = LocalLMSession(data=data, tokenizer=tokenizer, file_tokenizer=path, ids=ids, loss=loss,
+    special = SequenceIds(PAD, tokenizer.bos_token_id, tokenizer.eos_token_id, len(tokenizer))
+    session = LocalLMSession(data=data, tokenizer=tokenizer, file_tokenizer=path, ids=special, loss=loss,
                              beta=beta, smoothing=smoothing, n_pairs=n_pairs, reference_path=task.reference,
                              reference_model=None, reference_meta=None, cache=cache, rejects_path=rejects,
-                             model_path=path, token_ids=ids, run_dir=None if run_dir is None else Path(run_dir))
+                             model_path=path, token_ids=token_ids, run_dir=None if run_dir is None else Path(run_dir))
     session.encode()
     return session
 
