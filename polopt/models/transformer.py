@@ -28,6 +28,17 @@ from torch import nn
 Tensor = torch.Tensor
 
 KINDS = ("transformer", "bigram")
+CONTEXT_FLOOR = 16  # model.context=null gives at least this many positions (the earlier fixed default)
+CONTEXT_CAP = 4096  # ... and at most this many; a task needing more names model.context in an error
+
+
+def default_context(need: int, *, floor: int = CONTEXT_FLOOR) -> int:
+    """``model.context=null``: the ``need`` input positions of a task's longest row, at least ``floor``; a
+    ValueError beyond :data:`CONTEXT_CAP` (the position table and attention grow with it: ask for it openly)."""
+    if need > CONTEXT_CAP:
+        raise ValueError(f"the longest row needs {need} input positions, more than model.context=null gives "
+                         f"(at most {CONTEXT_CAP}); give model.context={need}, or cut rows with task.max_length")
+    return max(need, floor)
 
 
 def check_positions(tokens: Tensor, positions: Tensor | None, context: int) -> Tensor:

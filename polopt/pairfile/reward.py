@@ -27,6 +27,7 @@ from polopt.methods.reward_model import (
     split_heldout,
 )
 from polopt.models.logprobs import real_tokens
+from polopt.models.transformer import CONTEXT_FLOOR
 
 
 def pair_identity(file: PairFileSpec, ids: SequenceIds, shape: dict) -> dict:
@@ -54,7 +55,7 @@ def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed:
     winner, loser = both[:n], both[n:]  # (N, T_r) each
     longest = int(torch.maximum(real_tokens(prompt, winner, pad_id=ids.pad),
                                 real_tokens(prompt, loser, pad_id=ids.pad)).max())
-    shape = {"context": max(int(model.get("context", 16)), longest),
+    shape = {"context": max(int(model.get("context") or CONTEXT_FLOOR), longest),
              **{k: int(model.get(k, d)) for k, d in (("width", 32), ("layers", 2), ("heads", 2))}}
     net = ScalarRewardModel(ids.vocab_size, pad_id=ids.pad, seed=int(model.get("seed", 0)), **shape)
     fit, out = (torch.as_tensor(i) for i in split_heldout(n, heldout, seed))

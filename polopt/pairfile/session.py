@@ -18,7 +18,7 @@ from polopt.losses.margin import MarginLoss
 from polopt.losses.reduce import margins, pair_scores, per_pair_losses, weighted_mean
 from polopt.models.logprobs import SequencePolicy, batched_logprobs, batched_pair_logprobs, lengths, real_tokens
 from polopt.models.reference_cache import reference_pair_logprobs
-from polopt.models.transformer import TinyTransformer
+from polopt.models.transformer import TinyTransformer, default_context
 from polopt.pairs import PairSet, score_pairs
 from polopt.training.contracts import TrainResult
 from polopt.training.step import batch_statistics
@@ -82,8 +82,8 @@ class PairSession:
         if context < self.context_needed:
             raise ValueError(f"task.reference_checkpoint has context {context} but the longest pair needs "
                              f"{self.context_needed} input tokens; set task.max_length={context + 1} "
-                             f"(with task.truncation=truncate_response) or train the reference with a longer "
-                             "--context")
+                             f"(with task.truncation=truncate_response) or train the reference with room for "
+                             f"them: polopt sft FILE --out REF model.context={self.context_needed}")
 
     def attach_reference(self, model: torch.nn.Module) -> None:
         """The reference's log-probs of every winner and loser, computed once (one pass) and cached."""
@@ -103,8 +103,9 @@ class PairSession:
     # ------------------------------------------------------------ model
 
     def build_policy(self, kind: str = "transformer", width: int = 32, layers: int = 2, heads: int = 2,
-                     context: int = 16, seed: int = 0, init: str = "reference") -> SequencePolicy:
-        """The tiny transformer as a policy, started at the reference (``model.init=reference``).
+                     context: int | None = None, seed: int = 0, init: str = "reference") -> SequencePolicy:
+        """The tiny transformer as a policy, started at the reference (``model.init=reference``);
+        ``context`` None: the file's longest prompt + response (:func:`polopt.models.transformer.default_context`).
 
         With ``task.reference_checkpoint`` its architecture is the reference's (model.width, layers, heads and
         context are then read from the checkpoint); without one the reference is a frozen copy of
@@ -123,7 +124,9 @@ class PairSession:
                                   f"{arch['layers']}, heads {arch['heads']}, context {arch['context']}); "
                                   f"model.{'/'.join(differ)} were not used")
                 width, layers, heads = arch["width"], arch["layers"], arch["heads"]
-            context = max(context, arch["context"]) if init == "reference" else context
+            if init == "reference":
+                context = arch["context"] if context is None else max(context, arch["context"])
+        context = default_context(self.context_needed) if context is None else context
         if context < self.context_needed:
             raise ValueError(f"model.context must be at least {self.context_needed} for this file (its longest "
                              f"prompt + response in tokens, with bos and eos), got {context}; or set "

@@ -15,12 +15,18 @@ tokenizer and the special ids, read back with ``torch.load(weights_only=True)``.
 Examples come from a text file (one example per line: the whole line is the
 response to an empty prompt) or a JSON Lines file of ``{"prompt": ..., "response": ...}``
 objects (``{"text": ...}`` also works). Run ``polopt sft --help``.
+
+``model=local_lm`` (:func:`sft_local_lm`): the same loss on a local causal LM, its examples tokenised by the
+plain-row convention of :mod:`polopt.data.chat`, the result saved with ``save_pretrained`` in a folder that
+is the next run's ``model.path`` or ``task.reference_checkpoint``.
 """
 
 from __future__ import annotations
 
 import io
 import json
+import os
+import shutil
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -38,6 +44,7 @@ from polopt.training.optim import OptimConfig, make_optimiser
 Tensor = torch.Tensor
 
 CHECKPOINT_KIND = "polopt-reference-model"
+SFT_CONTEXT = 512  # model.context=null in polopt sft: at least this many positions, room for the pairs that follow
 ARCHITECTURE_KEYS = ("vocab_size", "context", "width", "layers", "heads")
 
 
@@ -186,6 +193,59 @@ def load_reference(path: str | Path) -> tuple[TinyTransformer, dict]:
     model.load_state_dict(state["state_dict"])
     model.requires_grad_(False).eval()
     return model, state
+
+
+# ------------------------------------------------------------ a local causal LM (model=local_lm)
+
+
+def encode_lm_examples(tokenizer, examples: list[tuple[str, str]]) -> tuple[Tensor, Tensor]:
+    """(prompt (N, T_p), response (N, T_r)) ids of (prompt, response) texts by the plain-row convention of
+    :mod:`polopt.data.chat`, padded with :data:`polopt.models.local_lm.PAD`; an empty prompt (a line of a text
+    file) that the tokenizer gives no token is its beginning-of-sequence token, which scores the first token."""
+    from polopt.data.chat import plain_ids
+    from polopt.models.local_lm import PAD
+
+    if tokenizer.eos_token_id is None:
+        raise ValueError("the tokenizer has no end-of-sequence token (eos_token); a response must end with one")
+    rows = [plain_ids(tokenizer, p, r) for p, r in examples]
+    if any(not p for p, _ in rows) and tokenizer.bos_token_id is None:
+        raise ValueError("an example has an empty prompt and the tokenizer has no bos_token to start it with")
+    rows = [(p or [tokenizer.bos_token_id], r) for p, r in rows]
+    width_p, width_r = (max(len(row[k]) for row in rows) for k in (0, 1))
+    prompt = torch.full((len(rows), width_p), PAD, dtype=torch.long)  # (N, T_p)
+    response = torch.full((len(rows), width_r), PAD, dtype=torch.long)  # (N, T_r)
+    for i, (p, r) in enumerate(rows):
+        prompt[i, : len(p)], response[i, : len(r)] = torch.tensor(p), torch.tensor(r)
+    return prompt, response
+
+
+def sft_local_lm(path, examples: list[tuple[str, str]], out, *, steps: int = 300, lr: float = 3e-3,
+                 batch_size: int = 64, seed: int = 0, progress: bool = True) -> tuple[SFTResult, Path]:
+    """The local causal LM of ``path`` fine-tuned on ``examples`` (:func:`train_sft`, every weight) and saved with
+    ``save_pretrained`` (model and tokenizer) in the folder ``out``: (the result, the folder). ``out`` may be a
+    model folder of an earlier run (replaced) but no other existing path."""
+    from polopt.models.local_lm import PAD, CausalLM, load_model, load_tokenizer, positions, quiet_transformers
+
+    out = Path(out)
+    if out.exists() and not (out / "config.json").is_file():
+        raise ValueError(f"--out {str(out)!r} exists and is not a model folder; give a new folder to save the model in")
+    model, tokenizer = load_model(path), load_tokenizer(path)
+    prompt, response = encode_lm_examples(tokenizer, examples)
+    need, most = context_needed(prompt, response, pad_id=PAD), positions(model.config)
+    if most is not None and need > most:
+        raise ValueError(f"the longest example needs {need} input positions but the model at model.path holds {most}")
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)  # the model's own dropout while it trains
+        result = train_sft(CausalLM(model), prompt, response, pad_id=PAD, steps=steps, lr=lr, batch_size=batch_size,
+                           seed=seed, progress=progress)
+    tmp = out.with_name(f".{out.name}.tmp")
+    shutil.rmtree(tmp, ignore_errors=True)
+    with quiet_transformers():
+        model.save_pretrained(tmp)
+        tokenizer.save_pretrained(tmp)
+    shutil.rmtree(out, ignore_errors=True)
+    os.replace(tmp, out)
+    return result, out
 
 
 # ------------------------------------------------------------ polopt sft

@@ -1,5 +1,5 @@
-"""The ``local-lm`` extra (``model=local_lm``): a local transformers causal LM as policy and reference
-(polopt/models/hf.py).
+"""``task=sequence model=local_lm``: a local transformers causal LM on the enumerable sequence task
+(polopt/models/local_lm.py's ``causal_lm_policy``; pair files on local LMs: tests/pairfile/test_local_lm_pairs.py).
 
 Every model here is a tiny randomly initialised GPT-2 (1 layer, 2 heads, width 32) that
 the test builds and saves into a temporary folder, with a word-level tokenizer built by
@@ -22,12 +22,9 @@ tokenizers = pytest.importorskip("tokenizers")
 
 from hydra import compose, initialize_config_dir  # noqa: E402
 
-from polopt import losses  # noqa: E402
 from polopt.commands.train import CONFIG_DIR, run  # noqa: E402
-from polopt.data import load_pairs  # noqa: E402
-from polopt.models import hf  # noqa: E402
-from polopt.training.loop import TrainSettings, train  # noqa: E402
-from polopt.training.optim import OptimConfig  # noqa: E402
+from polopt.models import local_lm as hf  # noqa: E402
+from polopt.training.verdict import SEQUENCE_MODEL_TOLERANCE  # noqa: E402
 
 WORDS = ["blue", "green", "kettle", "lantern", "river", "stone", "quiet", "bright", "the", "a", "is", "near",
          "why", "where", "?", "."]
@@ -52,63 +49,6 @@ def save_tiny_model(directory, *, vocab_size: int, n_positions: int = 32, seed: 
     return directory
 
 
-@pytest.fixture(scope="module")
-def model_dir(tmp_path_factory):
-    return save_tiny_model(tmp_path_factory.mktemp("tiny-gpt2"), vocab_size=len(SPECIALS) + len(WORDS))
-
-
-PROMPTS = ["where is the kettle ?", "why is the river quiet ?", "the stone", "a lantern is"]
-RESPONSES = ["near the river .", "blue", "bright and quiet .", "green stone near a kettle"]  # "and" is <unk>
-
-
-def loop_logprob(model, tokenizer, prompt: str, response: str) -> float:
-    """log pi(response | prompt) of one example without padding: the chain rule, token by token."""
-    p = tokenizer(prompt)["input_ids"]
-    r = tokenizer(response, add_special_tokens=False)["input_ids"] + [tokenizer.eos_token_id]
-    ids = torch.tensor([p + r])
-    with torch.no_grad():
-        logp = torch.log_softmax(model(input_ids=ids).logits[0].double(), dim=-1)  # (T, V)
-    return sum(float(logp[len(p) - 1 + t, token]) for t, token in enumerate(r))
-
-
-def test_batched_logprobs_match_a_plain_loop(model_dir):
-    policy = hf.causal_lm_policy(model_dir)
-    tokenizer = hf.load_tokenizer(model_dir)
-    plain = hf.load_model(model_dir)
-    prompt = hf.encode(tokenizer, PROMPTS, response=False)
-    response = hf.encode(tokenizer, RESPONSES, response=True)
-    assert prompt[0, 0] == tokenizer.bos_token_id and (response == tokenizer.eos_token_id).sum() == len(RESPONSES)
-    with torch.no_grad():
-        got = policy.logprobs(prompt, response)
-    want = torch.tensor([loop_logprob(plain, tokenizer, p, r) for p, r in zip(PROMPTS, RESPONSES, strict=True)],
-                        dtype=torch.float64)
-    torch.testing.assert_close(got.double(), want, rtol=1e-5, atol=1e-5)  # float32 model, float64 sums
-    # batch order changes nothing: the same rows reversed (each row's padding changes with the batch)
-    with torch.no_grad():
-        again = policy.logprobs(torch.flip(prompt, [0]), torch.flip(response, [0]))
-    torch.testing.assert_close(torch.flip(again, [0]), got, rtol=1e-5, atol=1e-5)
-
-
-def test_a_pairs_file_trains_a_few_steps(model_dir, tmp_path):
-    rows = [{"prompt": p, "winner": r, "loser": RESPONSES[(k + 1) % 4]} for k, (p, r) in
-            enumerate(zip(PROMPTS, RESPONSES, strict=True))]
-    path = tmp_path / "pairs.jsonl"
-    path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
-    data = load_pairs(path)
-    tokenizer = hf.load_tokenizer(model_dir)
-    reference = hf.causal_lm_policy(model_dir, frozen=True)
-    pairs = hf.text_pairs(reference, tokenizer, data.prompt, data.winner, data.loser)
-    policy = hf.causal_lm_policy(model_dir)
-    assert not any(p.requires_grad for p in reference.parameters())
-    result = train(policy, pairs, losses.resolve_margin("logistic"),
-                   TrainSettings(beta=0.5, steps=8, optim=OptimConfig("adam", 0.01), log_every=1, progress=False))
-    first, last = result.history[0], result.history[-1]
-    # the policy starts at the reference: every margin 0 and the logistic loss log 2 (Rafailov et al. 2023)
-    assert math.isclose(first["loss"], math.log(2), rel_tol=1e-5) and abs(first["margin_mean"]) < 1e-5
-    assert last["loss"] < first["loss"] - 0.1 and last["pair_accuracy"] == 1.0
-    assert last["tokens_per_s"] > 0
-
-
 def test_the_sequence_task_takes_a_causal_lm(tmp_path):
     """``task=sequence model=local_lm``: the sequence-level policy is a distribution over the enumerated
     responses (sums to 1 per prompt: the output restriction to the task's tokens) and training runs."""
@@ -124,11 +64,13 @@ def test_the_sequence_task_takes_a_causal_lm(tmp_path):
         assert math.isclose(sum(row), 1.0, rel_tol=1e-6)
     logged = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
     assert [r["step"] for r in logged] == [1, 5] and logged[1]["loss"] < logged[0]["loss"]
+    # judged as a sequence model: the tolerance of polopt.training.verdict for sequence models, not the tables'
+    assert summary["reached_optimum_tolerance"] == SEQUENCE_MODEL_TOLERANCE == 0.05
 
 
 def test_errors_name_the_field(tmp_path):
-    with pytest.raises(ValueError, match=r"model.path must be a local directory holding a transformers causal LM "
-                                         r".*got '.*nowhere'; nothing is downloaded"):
+    with pytest.raises(ValueError, match=r"model.path must be a local folder holding a transformers causal LM "
+                                         r".*got '.*nowhere' \(no config.json\); nothing is downloaded"):
         hf.load_model(tmp_path / "nowhere")
     small = save_tiny_model(tmp_path / "small", vocab_size=5, tokenizer=False)
     with pytest.raises(ValueError, match=r"the model's vocab_size is 5 but this task uses 6 token ids"):

@@ -92,7 +92,8 @@ def test_polopt_sft_command(tmp_path, capsys):
     out = folder / "reference.pt"
     assert code == 0 and out.is_file()
     assert f"use it as task.reference_checkpoint={out}" in capsys.readouterr().out
-    assert load_reference(out)[1]["architecture"]["context"] == len("wind 12 knots") + 1  # bos + text + eos - 1
+    # model.context=null: the longest example (bos + text + eos - 1 = 14) but at least 512, room for pairs
+    assert load_reference(out)[1]["architecture"]["context"] == 512
 
 
 def test_polopt_sft_errors_are_one_line(tmp_path, capsys):
@@ -103,3 +104,74 @@ def test_polopt_sft_errors_are_one_line(tmp_path, capsys):
     assert "polopt sft: error: model.context must be at least 10 for this file" in capsys.readouterr().err
     assert main(["sft", str(tmp_path / "a.txt"), f"hydra.run.dir={tmp_path / 'r'}", "optim.lrr=3"]) == 2
     assert capsys.readouterr().err == "polopt sft: error: unknown key 'optim.lrr'; did you mean optim.lr?\n"
+
+
+def test_a_reference_from_polopt_sft_leaves_room_for_the_pairs(tmp_path, capsys):
+    """polopt sft on short notes, then pairs longer than any note with task.reference_checkpoint and every
+    other default: the run trains (the reference's default context holds them) instead of stopping on context."""
+    notes = tmp_path / "notes.txt"
+    notes.write_text("wind 12 knots\nrain 3 mm\n", encoding="utf-8")
+    ref = tmp_path / "ref.pt"
+    assert main(["sft", str(notes), "--out", str(ref), "train.steps=2", "model.width=16", "model.layers=1",
+                 "model.heads=2", "train.progress=false"]) == 0
+    pairs = tmp_path / "pairs.jsonl"
+    rows = [{"prompt": "what is the forecast for the harbour tomorrow?", "winner": "wind 12 knots from the west",
+             "loser": "rain"}, {"prompt": "and the day after?", "winner": "rain 3 mm", "loser": "no idea at all"}]
+    pairs.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+    assert len(rows[0]["prompt"]) + len(rows[0]["winner"]) > len("wind 12 knots") + 1  # longer than the notes
+    code = main(["train", "task=pairs", f"task.path={pairs}", f"task.reference_checkpoint={ref}", "train.steps=2",
+                 "train.progress=false", f"hydra.run.dir={tmp_path / 'run'}"])
+    assert code == 0, capsys.readouterr().err
+    assert json.loads((tmp_path / "run" / "summary.json").read_text())["n_pairs"] == 2
+
+
+def test_the_default_context_fits_the_pair_file(tmp_path, capsys):
+    """task=pairs with every default on the built-in transformer: model.context=null takes what the file needs
+    (here 80 input positions: bos + 60-byte prompt + 20-byte response + eos, less the last token)."""
+    pairs = tmp_path / "pairs.jsonl"
+    rows = [{"prompt": "p" * 60, "winner": "w" * 20, "loser": "l"}, {"prompt": "q", "winner": "a", "loser": "b"}]
+    pairs.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+    code = main(["train", "task=pairs", f"task.path={pairs}", "train.steps=1", "train.progress=false",
+                 "model.width=16", "model.layers=1", f"hydra.run.dir={tmp_path / 'run'}"])
+    assert code == 0, capsys.readouterr().err
+    state = torch.load(next((tmp_path / "run" / "checkpoints").glob("*.pt")), weights_only=True)
+    positions = [v for k, v in state["policy"].items() if k.endswith("position_embedding.weight")][0]
+    assert positions.shape[0] == 1 + 60 + 20 + 1 - 1
+
+
+def test_polopt_sft_fine_tunes_a_local_lm_into_the_next_runs_model(tmp_path, capsys):
+    """model=local_lm: the model is fine-tuned (its next-token loss falls), saved with save_pretrained, reloads
+    with transformers, and is the next run's model.path."""
+    transformers = pytest.importorskip("transformers")
+    from helpers_local_lm import PLAIN_ROWS, save_gpt2, write_pairs
+
+    base = save_gpt2(tmp_path / "base")
+    notes = tmp_path / "notes.jsonl"
+    notes.write_text("".join(json.dumps({"prompt": r["prompt"], "response": r["winner"]}) + "\n" for r in PLAIN_ROWS)
+                     + json.dumps({"text": "moss hums near the tide ."}) + "\n", encoding="utf-8")
+    out = tmp_path / "tuned"
+    code = main(["sft", str(notes), "--out", str(out), "model=local_lm", f"model.path={base}", "train.steps=20",
+                 "optim.lr=0.01", "train.progress=false"])
+    printed = capsys.readouterr()
+    assert code == 0, printed.err
+    first, last = (float(x) for x in printed.out.split("next-token loss ")[1].split(" nats")[0].split(" -> "))
+    assert last < first - 0.5
+    tuned = transformers.AutoModelForCausalLM.from_pretrained(out)
+    assert not torch.equal(tuned.lm_head.weight, transformers.AutoModelForCausalLM.from_pretrained(base).lm_head.weight)
+    pairs = write_pairs(tmp_path / "pairs.jsonl", PLAIN_ROWS)
+    code = main(["train", "task=pairs", f"task.path={pairs}", "model=local_lm", f"model.path={out}", "train.steps=1",
+                 "train.progress=false", f"hydra.run.dir={tmp_path / 'run'}"])
+    assert code == 0, capsys.readouterr().err
+    assert (tmp_path / "run" / "policy" / "model.safetensors").is_file()
+
+
+def test_polopt_sft_with_a_local_lm_refuses_the_transformers_keys(tmp_path, capsys):
+    (tmp_path / "a.txt").write_text("some text\n", encoding="utf-8")
+    assert main(["sft", str(tmp_path / "a.txt"), "--out", str(tmp_path / "m"), "model=local_lm", "model.path=x",
+                 "model.width=16"]) == 2
+    assert "polopt sft: error: model=local_lm has no key 'width'" in capsys.readouterr().err
+    assert main(["sft", str(tmp_path / "a.txt"), "--out", str(tmp_path / "m"), "model=local_lm", "model.path=x",
+                 "model.adapter=lora"]) == 2
+    assert ("polopt sft: error: polopt sft model=local_lm reads train.steps, train.batch_size, optim.lr, train.seed, "
+            "train.progress, model.path only; 'model.adapter=lora' would change nothing here") in \
+        capsys.readouterr().err

@@ -25,6 +25,7 @@ from polopt.methods.reward_model import (
     score,
     split_heldout,
 )
+from polopt.models.transformer import CONTEXT_FLOOR
 from toy_tasks.methods.reward_fit import GAUGE, format_summary, task_identity, to_gauge, true_reward_distance
 
 
@@ -33,7 +34,8 @@ def model_identity(task, model: dict) -> dict:
     if model.get("kind") != "transformer":
         raise ValueError(f"task=sequence fits a scalar head on the tiny transformer; model={model.get('kind')} "
                          "cannot: give +experiment=sequence (or model=transformer)")
-    shape = {"vocab_size": task.vocab.size, "context": max(int(model["context"]), task.context_needed + 1),
+    context = max(int(model.get("context") or CONTEXT_FLOOR), task.context_needed + 1)
+    shape = {"vocab_size": task.vocab.size, "context": context,
              **{k: int(model[k]) for k in ("width", "layers", "heads")}}
     return {**task_identity(task.finite), **shape}
 

@@ -30,7 +30,7 @@ import torch
 from polopt.losses.margin import MarginLoss
 from polopt.models.logprobs import lengths, real_tokens
 from polopt.models.reference_cache import FILE_NAME, reference_pair_logprobs
-from polopt.models.transformer import build_model, copy_weights
+from polopt.models.transformer import build_model, copy_weights, default_context
 from polopt.pairs import PairSet, score_pairs
 from polopt.training.verdict import SEQUENCE_MODEL_TOLERANCE
 from toy_tasks.finite.session import FiniteSession
@@ -81,7 +81,7 @@ class SequenceSession:
         if init not in INITS:
             raise ValueError(f"model.init must be one of {', '.join(INITS)}, got {init!r}")
         need = self.task.context_needed
-        context = need if context is None else context
+        context = default_context(need) if context is None else context
         if context < need:
             raise ValueError(f"model.context must be at least {need} for this task (prompt plus response "
                              f"tokens), got {context}")
