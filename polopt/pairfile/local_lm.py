@@ -32,7 +32,7 @@ from polopt.data.chat import RowProblem, check_tokenizer, fit_ids, is_chat_row, 
 from polopt.data.encoding import SequenceIds
 from polopt.data.rows import Reject
 from polopt.data.validate import reject_later
-from polopt.losses.margin import Loss
+from polopt.losses.margin import MarginLoss
 from polopt.models.local_lm import (
     PAD,
     CausalLM,
@@ -180,7 +180,7 @@ class LocalLMSession(PairSession):
         return summary
 
 
-def prepare_local_lm(task, loss: Loss, *, model: dict, beta: float, smoothing: float, n_pairs: int | None,
+def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smoothing: float, n_pairs: int | None,
                      run_dir: str | Path | None) -> LocalLMSession:
     """The session of ``task`` (a :class:`polopt.pairfile.task.PairTask`) on ``model`` (the ``model`` config,
     ``kind: local_lm``): the file read and encoded with the model's tokenizer (see the module docstring)."""
