@@ -179,6 +179,15 @@ class LocalLMSession(PairSession):
         summary["saved_policy"] = None if self.run_dir is None else str(self.run_dir / POLICY_DIR)
         return summary
 
+    def table(self, summary: dict) -> str:
+        m = summary["model"]
+        how = "LoRA" if m["adapter"] == "lora" else "full fine-tuning"
+        lines = [super().table(summary), f"model: {m['path']} ({how}: {m['trainable_parameters']:,} of "
+                                         f"{m['parameters']:,} parameters trained)"]
+        if summary["saved_policy"] is not None:
+            lines.append(f"policy saved with save_pretrained: {summary['saved_policy']}")
+        return "\n".join(lines)
+
 
 def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smoothing: float, n_pairs: int | None,
                      run_dir: str | Path | None) -> LocalLMSession:
