@@ -70,12 +70,23 @@ def _ids(tokenizer, text: str, *, special: bool) -> list[int]:
     return list(tokenizer(text, add_special_tokens=special)["input_ids"])
 
 
+def _render(tokenizer, messages: list[dict], **keys) -> str:
+    """``apply_chat_template(messages, tokenize=False, **keys)``; a template that refuses the conversation
+    (``raise_exception`` in the template, e.g. roles that do not alternate) makes a :class:`RowProblem`."""
+    from jinja2 import TemplateError  # transformers renders chat templates with jinja2
+
+    try:
+        return tokenizer.apply_chat_template(messages, tokenize=False, **keys)
+    except TemplateError as err:
+        raise RowProblem("template_error", None, f"the chat template refused this conversation: {err}") from None
+
+
 def chat_ids(tokenizer, prompt, response) -> tuple[list[int], list[int]]:
     """(prompt ids, response ids) of a chat row by the module's convention; a :class:`RowProblem` where the
     rendering of the whole conversation does not start with the prompt's."""
     messages = as_messages(prompt, "user")
-    prompt_text = tokenizer.apply_chat_template(messages, add_generation_prompt=True, tokenize=False)
-    full_text = tokenizer.apply_chat_template(messages + as_messages(response, RESPONSE_ROLE), tokenize=False)
+    prompt_text = _render(tokenizer, messages, add_generation_prompt=True)
+    full_text = _render(tokenizer, messages + as_messages(response, RESPONSE_ROLE))
     if not full_text.startswith(prompt_text):
         raise RowProblem("template_mismatch", None, "the chat template's rendering of prompt + response does not "
                                                     "start with its rendering of the prompt with the generation "

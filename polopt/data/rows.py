@@ -32,6 +32,7 @@ REASONS = {
     "too_long": "the pair is longer than max_length and the truncation policy does not cut it",
     "duplicate": "the same (prompt, winner, loser, weight) as an earlier accepted row",
     "template_mismatch": "the chat template's rendering of prompt + response does not start with that of the prompt",
+    "template_error": "the chat template refused the conversation (its raise_exception, e.g. roles out of order)",
 }
 
 

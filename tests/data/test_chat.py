@@ -54,6 +54,17 @@ def test_a_template_whose_turn_does_not_extend_the_prompt_is_a_row_problem():
     assert caught.value.reason == "template_mismatch"
 
 
+def test_a_template_that_refuses_a_conversation_is_a_row_problem():
+    """A template's raise_exception (transformers' way for a template to refuse, e.g. a system message it does not
+    take) rejects that row only."""
+    tok = word_tokenizer()
+    tok.chat_template = ("{% for m in messages %}{% if m['role'] == 'system' %}{{ raise_exception('no system "
+                         "messages') }}{% endif %}{{ m['content'] }} {% endfor %}")
+    with pytest.raises(RowProblem) as caught:
+        pair_ids(tok, [{"role": "system", "content": "be brief"}, {"role": "user", "content": "where ?"}], "a", "b")
+    assert caught.value.reason == "template_error" and "no system messages" in caught.value.detail
+
+
 def test_truncation_in_tokens():
     p, w, lo = [1, 2, 3, 4], [5, 6, 7, 8, 9], [5, 6, 10]
     assert fit_ids(p, w, lo, limit=9, truncation="reject") == (p, w, lo, {})  # 4 + 5 = 9 fits
