@@ -4,6 +4,12 @@
     polopt data answers.csv 'task.columns={prompt: question, winner: good_reply, loser: other_reply}'
     polopt data pairs.parquet task.max_length=512 task.truncation=truncate_response --plot
     polopt data pairs_folder --json hydra.run.dir=runs/check-pairs
+    polopt data chats.jsonl model=local_lm model.path=my-model
+
+With ``model=local_lm model.path=DIR`` the file is read as ``polopt train ... model=local_lm`` reads it:
+message rows allowed, every row turned into the model's tokens by the token convention (its chat
+template, or ``task.chat_template``), lengths in those tokens against ``model.context`` (default the
+model's own maximum) and ``task.max_length``.
 
 The keys are those of ``polopt train task=pairs`` (task.columns, task.format, task.max_length,
 task.truncation, task.duplicates, task.tokenizer, task.hub), so a file checked here reads the same in
@@ -21,6 +27,8 @@ import json
 
 KEYS = ("task.columns", "task.format", "task.max_length", "task.truncation", "task.duplicates", "task.tokenizer",
         "task.hub")  # the task=pairs keys that say how a pair file is read
+# with model=local_lm the file is read as training reads it for that model: its tokenizer, chat template, context
+LOCAL_LM_KEYS = ("model.path", "model.context", "task.chat_template")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -34,7 +42,8 @@ def build_parser() -> argparse.ArgumentParser:
                "Row numbers: 1-based line (where the record starts) for JSONL and CSV, 0-based row index for "
                "Parquet and saved folders. Lengths are bytes of UTF-8 with the built-in tokenizer. Reasons: "
                "invalid_utf8, invalid_json, not_an_object, wrong_field_count, missing, not_a_string, empty, "
-               "bad_weight, identical, too_long, duplicate.")
+               "bad_weight, identical, too_long, duplicate; with model=local_lm model.path=DIR (keys "
+               "model.context, task.chat_template) also bad_messages, template_mismatch, template_error.")
     parser.add_argument("file", help="a .jsonl/.csv/.tsv/.parquet file or a folder written by datasets' save_to_disk")
     parser.add_argument("overrides", nargs="*", metavar="task.KEY=VALUE",
                         help=f"how to read the file, as for polopt train task=pairs: {', '.join(KEYS)}; "
@@ -51,16 +60,28 @@ def main(argv: list[str]) -> int:
     from omegaconf import OmegaConf
 
     from polopt.commands import config
-    from polopt.data import load_pairs, plot_lengths, summary_text, write_rejects
+    from polopt.data import PairFileSpec, plot_lengths, read_pair_file, summary_text, write_rejects
     from polopt.training.run_folder import write_json
 
     out, overrides = config.output_folder(args.overrides, "polopt data", "data")
-    cfg = config.compose(["task=pairs", *overrides], command="polopt data")
-    config.only_keys(overrides, KEYS, "polopt data")
+    groups = [o for o in overrides if o.partition("=")[0] == "model"]
+    overrides = [o for o in overrides if o not in groups]
+    local = bool(groups) and groups[-1].partition("=")[2] == "local_lm"
+    if groups and not local:
+        raise ValueError(f"polopt data reads a file for model=local_lm or for task.tokenizer, got {groups[-1]}")
+    cfg = config.compose(["task=pairs", *groups, *overrides], command="polopt data")
+    config.only_keys(overrides, KEYS + LOCAL_LM_KEYS if local else KEYS,
+                     "polopt data model=local_lm" if local else "polopt data")
     task = OmegaConf.to_container(cfg.task, resolve=True)
-    data = load_pairs(args.file, columns=task["columns"], format=task["format"], max_length=task["max_length"],
-                      truncation=task["truncation"], duplicates=task["duplicates"], tokenizer=task["tokenizer"],
-                      hub=task["hub"])
+    spec = PairFileSpec(args.file, **{k: task[k] for k in ("columns", "format", "max_length", "truncation",
+                                                           "duplicates", "tokenizer", "hub")})
+    if local:  # measured in the model's tokens, by the token convention of training (polopt.data.chat)
+        from polopt.pairfile.local_lm import read_for_model
+
+        data = read_for_model(spec, path=cfg.model.path, context=cfg.model.context,
+                              chat_template=task["chat_template"])[0]
+    else:
+        data = read_pair_file(spec, tokenizer=task["tokenizer"])
     rejects = write_rejects(data.rejects, out / "rejects.jsonl")
     plot = plot_lengths(data, out / "lengths.png") if args.plot else None
     report = data.accounting | {"rejects_file": str(rejects), "plot": plot and str(plot)}

@@ -141,7 +141,7 @@ class LocalLMSession(PairSession):
         """The model of ``model.path`` as the policy (with a LoRA adapter if ``model.adapter=lora``), and the
         reference's log-probabilities of every pair (see the module docstring)."""
         del context  # read when the rows were encoded
-        if kind != "local_lm" or str(path) != self.model_path:
+        if kind != "local_lm" or Path(str(path)) != Path(self.model_path):
             raise ValueError(f"this session was prepared for model=local_lm model.path={self.model_path}, got "
                              f"model.kind={kind!r} model.path={path!r}")
         if adapter is not None and adapter not in ADAPTERS:
@@ -197,20 +197,11 @@ def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smooth
     if task.stream:
         raise ValueError("task.stream=true streams pairs for model=transformer; model=local_lm reads the file in "
                          "memory: set task.stream=false")
-    if str(spec.tokenizer) != "byte":
-        raise ValueError(f"task.tokenizer is not read with model=local_lm (the tokenizer of model.path is), got "
-                         f"task.tokenizer={spec.tokenizer!r}: leave it out")
-    path = str(model_folder(model.get("path")))
     if task.reference is not None:
         model_folder(task.reference, field="task.reference_checkpoint")
-    tokenizer = load_tokenizer(path)
-    if task.chat_template is not None:
-        tokenizer.chat_template = read_chat_template(task.chat_template)
-    limit = context_of(path, model.get("context"))
-    limit = limit if spec.max_length is None else min(limit, spec.max_length)
-    measured_later = type(spec)(**{**spec.as_dict(), "max_length": None})  # lengths in the model's tokens, below
-    data, token_ids = encode_rows(tokenizer, read_pair_file(measured_later, messages=True), limit=limit,
-                            truncation=spec.truncation)
+    data, token_ids, tokenizer = read_for_model(spec, path=model.get("path"), context=model.get("context"),
+                                                chat_template=task.chat_template)
+    path = str(model_folder(model.get("path")))
     rejects = None if run_dir is None else write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
     if len(data) == 0:
         raise ValueError(f"task.path {spec.path!r}: no pair was accepted "
@@ -223,6 +214,27 @@ def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smooth
                              model_path=path, token_ids=token_ids, run_dir=None if run_dir is None else Path(run_dir))
     session.encode()
     return session
+
+
+def read_for_model(spec, *, path, context: int | None = None,
+                   chat_template: str | None = None) -> tuple[PairData, list[tuple], object]:
+    """The pair file of ``spec`` (a :class:`polopt.data.PairFileSpec`) read for the local model in ``path``:
+    the checked rows, their ids by the token convention within the context (``context``, default the model's
+    own maximum, and ``spec.max_length``), and the model's tokenizer (with ``chat_template`` read from that
+    file where given). ``polopt train`` and ``polopt data`` read a file for a model alike."""
+    if str(spec.tokenizer) != "byte":
+        raise ValueError(f"task.tokenizer is not read with model=local_lm (the tokenizer of model.path is), got "
+                         f"task.tokenizer={spec.tokenizer!r}: leave it out")
+    path = str(model_folder(path))
+    tokenizer = load_tokenizer(path)
+    if chat_template is not None:
+        tokenizer.chat_template = read_chat_template(chat_template)
+    limit = context_of(path, context)
+    limit = limit if spec.max_length is None else min(limit, spec.max_length)
+    measured_later = type(spec)(**{**spec.as_dict(), "max_length": None})  # lengths in the model's tokens, below
+    data, token_ids = encode_rows(tokenizer, read_pair_file(measured_later, messages=True), limit=limit,
+                                  truncation=spec.truncation)
+    return data, token_ids, tokenizer
 
 
 def read_chat_template(path) -> str:

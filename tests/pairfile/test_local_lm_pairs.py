@@ -219,3 +219,26 @@ def test_the_built_in_transformer_refuses_a_chat_template(tmp_path):
     plain = write_pairs(tmp_path / "plain.jsonl", PLAIN_ROWS)
     with pytest.raises(ValueError, match="task.chat_template is read with model=local_lm only"):
         session_and_policy(["task=pairs", f"task.path={plain}", "task.chat_template=x.jinja"], tmp_path / "run")
+
+
+def test_polopt_data_reads_a_file_as_training_does_for_the_model(models, tmp_path, capsys):
+    """polopt data FILE model=local_lm model.path=DIR: message rows accepted, lengths in the model's tokens by the
+    token convention (the longest pair here: the first chat row, 10 prompt + 5 response tokens), the same
+    accounting a run gets; without the model, message rows are not_a_string as before."""
+    pairs = write_pairs(tmp_path / "pairs.jsonl", ROWS)
+    code = main(["data", str(pairs), "model=local_lm", f"model.path={models['llama']}", "model.context=14", "--json",
+                 "--rejects", str(tmp_path / "rejects.jsonl")])
+    printed = capsys.readouterr()
+    assert code == 0, printed.err
+    a = json.loads(printed.out)
+    assert (a["rows_in"], a["rows_accepted"], a["rows_rejected"]) == (7, 6, 1)
+    assert a["rejected_by_reason"] == {"too_long": 1} and a["max_length"] == 14
+    session, _ = session_and_policy(overrides(models["llama"], pairs, "model.context=14"), tmp_path / "run")
+    assert session.data.accounting == {k: v for k, v in a.items() if k not in ("rejects_file", "plot")}
+    assert main(["data", str(pairs), "--json", "--rejects", str(tmp_path / "r2.jsonl")]) == 0
+    plain = json.loads(capsys.readouterr().out)
+    assert plain["rejected_by_reason"] == {"not_a_string": 3}
+    assert main(["data", str(pairs), "model=local_lm", f"model.path={models['llama']}", "model.adapter=lora"]) == 2
+    assert ("polopt data: error: polopt data model=local_lm reads task.columns, task.format, task.max_length, "
+            "task.truncation, task.duplicates, task.tokenizer, task.hub, model.path, model.context, "
+            "task.chat_template only; 'model.adapter=lora' would change nothing here") in capsys.readouterr().err
