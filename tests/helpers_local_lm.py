@@ -1,6 +1,7 @@
 """Tiny local causal LMs built in the test, for the ``model=local_lm`` tests: nothing is downloaded.
 
-Two architectures, each randomly initialised from a seed and saved with ``save_pretrained`` into a
+Two architectures (and Qwen2- and Mistral-shaped ones with the word tokenizer, :func:`save_shaped`), each
+randomly initialised from a seed and saved with ``save_pretrained`` into a
 temporary folder with its tokenizer:
 
 - Llama-shaped (``LlamaForCausalLM``: rotary positions, grouped key/value heads, q/k/v/o projections), with
@@ -76,6 +77,20 @@ def save_llama(directory, *, seed: int = 0, positions: int = 64, tokenizer=True,
     transformers.LlamaForCausalLM(config).save_pretrained(directory)
     if tokenizer:
         tok.save_pretrained(directory)
+    return directory
+
+
+def save_shaped(directory, kind: str, *, seed: int = 0):
+    """A 2-layer Qwen2- or Mistral-shaped model (``kind``: qwen2 | mistral) with the word tokenizer."""
+    tok = word_tokenizer()
+    shape = dict(vocab_size=len(tok), hidden_size=32, intermediate_size=64, num_hidden_layers=2,
+                 num_attention_heads=4, num_key_value_heads=2, max_position_embeddings=64, bos_token_id=2,
+                 eos_token_id=3, pad_token_id=1)
+    config, model = {"qwen2": (transformers.Qwen2Config, transformers.Qwen2ForCausalLM),
+                     "mistral": (transformers.MistralConfig, transformers.MistralForCausalLM)}[kind]
+    torch.manual_seed(seed)
+    model(config(**shape)).save_pretrained(directory)
+    tok.save_pretrained(directory)
     return directory
 
 

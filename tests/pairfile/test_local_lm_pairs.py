@@ -26,6 +26,7 @@ from helpers_local_lm import (  # noqa: E402
     direct_logprob,
     save_gpt2,
     save_llama,
+    save_shaped,
     write_pairs,
 )
 from hydra import compose, initialize_config_dir  # noqa: E402
@@ -42,7 +43,8 @@ def models(tmp_path_factory):
     root = tmp_path_factory.mktemp("models")
     template = root / "template.jinja"
     template.write_text(TEMPLATE)
-    return {"llama": save_llama(root / "llama"), "gpt2": save_gpt2(root / "gpt2"), "template": template}
+    return {"llama": save_llama(root / "llama"), "gpt2": save_gpt2(root / "gpt2"), "template": template,
+            "qwen2": save_shaped(root / "qwen2", "qwen2"), "mistral": save_shaped(root / "mistral", "mistral")}
 
 
 def overrides(model_dir, pairs, *extra, template=None):
@@ -70,10 +72,10 @@ def chat_template_of(arch, models):
     return models["template"] if arch == "gpt2" else None  # the GPT-2 tokenizer has no template of its own
 
 
-@pytest.mark.parametrize("arch", ["llama", "gpt2"])
+@pytest.mark.parametrize("arch", ["llama", "gpt2", "qwen2", "mistral"])
 def test_logprobs_equal_a_direct_transformers_computation(arch, models, tmp_path):
     """Plain and chat rows alike: the policy's log-probs (padded batch) and the cached reference's equal
-    ``direct_logprob`` of each row alone, by the stated token convention."""
+    ``direct_logprob`` of each row alone, by the stated token convention (Qwen2- and Mistral-shaped models too)."""
     pairs = write_pairs(tmp_path / "pairs.jsonl", ROWS)
     session, policy = session_and_policy(overrides(models[arch], pairs, template=chat_template_of(arch, models)),
                                          tmp_path / "run")
