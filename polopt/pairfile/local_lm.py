@@ -122,7 +122,6 @@ class LocalLMSession(PairSession):
     token_ids: list | None = None  # (prompt, winner, loser) id lists of the accepted rows
     run_dir: Path | None = None
     adapter: str | None = None
-    saved_policy: Path | None = None
 
     def encode(self) -> None:
         n = len(self.token_ids) if self.n_pairs is None else min(self.n_pairs, len(self.token_ids))
@@ -148,6 +147,9 @@ class LocalLMSession(PairSession):
             raise ValueError(f"model.adapter must be null (full fine-tuning) or one of {', '.join(ADAPTERS)}, "
                              f"got {adapter!r}")
         settings = LoraSettings.from_config(lora)
+        if adapter is None and settings != LoraSettings():
+            raise ValueError("model.lora.* is read with model.adapter=lora only; without an adapter every weight "
+                             "trains: give model.adapter=lora or leave model.lora at its defaults")
         model = load_model(path)
         if self.reference_path is not None:
             check_same_vocabulary(self.reference_path, self.tokenizer, model.config)

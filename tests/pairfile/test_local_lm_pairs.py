@@ -210,6 +210,7 @@ def test_bad_inputs_are_one_line(models, tmp_path, capsys):
     (["task.stream=true", "train.batch_size=2"], "task.stream=true streams pairs for model=transformer"),
     (["model.context=1000"], "model.context must be at most the model's own maximum of 64 positions, got 1000"),
     (["model.adapter=dora"], "model.adapter must be null .* or one of lora, got 'dora'"),
+    (["model.lora.r=4"], r"model.lora.\* is read with model.adapter=lora only"),
 ])
 def test_keys_that_do_not_apply_are_refused(models, tmp_path, args, message):
     plain = write_pairs(tmp_path / "plain.jsonl", PLAIN_ROWS)
