@@ -1,5 +1,5 @@
-"""``polopt train task=pairs model=local_lm`` as whole processes: two processes under torchrun end where one
-does, and a run killed with SIGKILL and rerun ends in the state of an uninterrupted one.
+"""``polopt train task=pairs model=local_lm`` as whole processes: two processes under torchrun (DDP, FSDP2) end
+where one does, and a run killed with SIGKILL and rerun ends in the state of an uninterrupted one.
 
 The model is the tiny Llama-shaped one of tests/helpers_local_lm.py with a LoRA adapter whose dropout draws
 from torch's random stream every step (so the resumed run must restore it), built in the test.
@@ -36,11 +36,11 @@ STEPS = 16
 pytestmark = pytest.mark.slow  # fresh interpreters that import torch and transformers
 
 
-def arguments(model_dir: Path, pairs: Path, *extra: str) -> list[str]:
-    return ["task=pairs", f"task.path={pairs}", "model=local_lm", f"model.path={model_dir}", "model.adapter=lora",
-            "model.lora.dropout=0.1", "model.lora.r=4", f"train.steps={STEPS}", "train.batch_size=4",
-            "train.checkpoint_every=1", "train.log_every=4", "train.progress=false", "optim.lr=0.02",
-            "optim.warmup_steps=2", *extra]
+def arguments(model_dir: Path, pairs: Path, *extra: str, adapter: str = "lora", dropout: float = 0.1) -> list[str]:
+    lora = ["model.adapter=lora", f"model.lora.dropout={dropout}", "model.lora.r=4"] if adapter == "lora" else []
+    return ["task=pairs", f"task.path={pairs}", "model=local_lm", f"model.path={model_dir}", *lora,
+            f"train.steps={STEPS}", "train.batch_size=4", "train.checkpoint_every=1", "train.log_every=4",
+            "train.progress=false", "optim.lr=0.02", "optim.warmup_steps=2", *extra]
 
 
 def environment() -> dict:
@@ -68,24 +68,27 @@ def in_process(args: list[str], run_dir: Path) -> dict:
     return run(cfg, run_dir)
 
 
-def adapter_weights(run_dir: Path) -> dict:
+def saved_weights(run_dir: Path, adapter: bool) -> dict:
     from safetensors.torch import load_file
 
-    return load_file(run_dir / "policy" / "adapter_model.safetensors")
+    return load_file(run_dir / "policy" / ("adapter_model.safetensors" if adapter else "model.safetensors"))
 
 
-def test_two_processes_end_where_one_does(setup, tmp_path):
+@pytest.mark.parametrize("strategy,adapter", [("ddp", "lora"), ("fsdp", "null")])
+def test_two_processes_end_where_one_does(setup, tmp_path, strategy, adapter):
+    """DDP with a LoRA adapter, FSDP2 (a unit per decoder layer: polopt/parallel/fsdp.py shards each element
+    of the model's layer list) with every weight training: the saved policy and the summary of one process."""
     model_dir, pairs = setup
-    args = arguments(model_dir, pairs, "model.lora.dropout=0.0", "train.checkpoint_every=0")
-    done = subprocess.run(command(args, tmp_path / "two", processes=2), cwd=ROOT, env=environment(),
-                          capture_output=True, text=True, timeout=600)
+    args = arguments(model_dir, pairs, "train.checkpoint_every=0", adapter=adapter, dropout=0.0)
+    done = subprocess.run(command([*args, f"train.strategy={strategy}"], tmp_path / "two", processes=2), cwd=ROOT,
+                          env=environment(), capture_output=True, text=True, timeout=600)
     assert done.returncode == 0, done.stderr[-3000:]
     two = json.loads((tmp_path / "two" / "summary.json").read_text())
     one = in_process(args, tmp_path / "one")
     assert two["processes"] == 2 and two["steps"] == one["steps"] == STEPS
     for key in ("loss", "margin_mean", "logratio_winner", "logratio_loser", "pair_accuracy"):
         assert two[key] == pytest.approx(one[key], rel=1e-4, abs=1e-5), key
-    got, want = adapter_weights(tmp_path / "two"), adapter_weights(tmp_path / "one")
+    got, want = (saved_weights(tmp_path / run, adapter == "lora") for run in ("two", "one"))
     assert got.keys() == want.keys()
     for name in want:
         torch.testing.assert_close(got[name], want[name], rtol=1e-4, atol=1e-5)
@@ -123,5 +126,5 @@ def test_a_killed_run_resumes_to_the_same_end_state(setup, tmp_path):
         for key in ("seconds", "reference_cache_reused", "saved_policy", "rejects_file", "reference_cache"):
             record.pop(key, None)
     assert summary == json.loads(json.dumps(want_summary))  # JSON's view of the uninterrupted summary
-    got_adapter, want_adapter = adapter_weights(run_dir), adapter_weights(tmp_path / "uninterrupted")
+    got_adapter, want_adapter = saved_weights(run_dir, True), saved_weights(tmp_path / "uninterrupted", True)
     assert all(torch.equal(got_adapter[k], want_adapter[k]) for k in want_adapter)
