@@ -81,3 +81,8 @@ def test_errors_name_the_field(tmp_path):
         cfg = compose("config", overrides=["+experiment=sequence", "model=local_lm"])
     with pytest.raises(ValueError, match=r"model=local_lm needs model.path=DIR"):
         run(cfg, tmp_path / "run")
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        cfg = compose("config", overrides=["+experiment=sequence", "model=local_lm", f"model.path={small}",
+                                           "model.adapter=lora", "train.progress=false"])
+    with pytest.raises(ValueError, match=r"model.adapter and model.context are read with task=pairs"):
+        run(cfg, tmp_path / "run2")

@@ -67,9 +67,10 @@ class SequenceSession:
             from polopt.models.local_lm import causal_lm_policy  # the optional extra: imported only when asked for
 
             del lora  # its defaults come with model=local_lm; they are read only with an adapter
-            if adapter is not None:
-                raise ValueError(f"model.adapter=lora trains task=pairs; task=sequence fine-tunes the whole local "
-                                 f"model: leave model.adapter null, got {adapter!r}")
+            if adapter is not None or context is not None:
+                raise ValueError(f"model.adapter and model.context are read with task=pairs; task=sequence fine-tunes "
+                                 f"the whole local model on the task's own tokens: leave them null, got "
+                                 f"model.adapter={adapter}, model.context={context}")
             lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
                                   vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
             return EnumeratedSequencePolicy(lm.model, self.task)
