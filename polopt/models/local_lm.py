@@ -12,7 +12,9 @@ can run code) is refused.
 
 The model is wrapped (:class:`CausalLM`) to polopt's sequence-model interface, tokens (B, T) ->
 logits (B, T, V), so that :class:`polopt.models.logprobs.SequencePolicy` packs, masks and sums
-its log-probabilities as for the built-in models.
+its log-probabilities as for the built-in models; a pair's winner and loser are scored over one
+pass of their prompt through the model's key/value cache (``pair_logprobs``,
+:mod:`polopt.models.prefix_scoring`; ``train.share_prompt=true``, the default).
 
 Padding. Many causal-LM tokenizers have no pad token, or reuse the end token as one;
 :func:`polopt.models.logprobs.pack` finds lengths by comparing with the pad id, so an end token inside
@@ -164,11 +166,28 @@ class CausalLM(nn.Module):
         self.output_size = output_size
         self.adapter_off = adapter_off
 
+    @property
+    def scores_pairs(self) -> bool:
+        """Whether :meth:`pair_logprobs` applies: the full vocabulary is scored (no ``output_size``)."""
+        return self.output_size is None
+
+    def adapter_switch(self):
+        """The context in which the model computes as this view says: its adapter off, or as it is."""
+        return self.model.disable_adapter() if self.adapter_off else contextlib.nullcontext()
+
+    def pair_logprobs(self, prompt: Tensor, winner: Tensor, loser: Tensor) -> tuple[Tensor, Tensor]:
+        """``log pi(winner | prompt)`` and ``log pi(loser | prompt)`` (B,) each, every prompt computed once through
+        the key/value cache (:func:`polopt.models.prefix_scoring.prompt_cached_pair_logprobs`; the values of
+        separate scoring up to float rounding). Token tensors (B, T) right-padded with ``pad_id``."""
+        from polopt.models.prefix_scoring import prompt_cached_pair_logprobs
+
+        with self.adapter_switch():
+            return prompt_cached_pair_logprobs(self.model, prompt, winner, loser, pad_id=self.pad_id)
+
     def forward(self, tokens: Tensor) -> Tensor:
         real = tokens != self.pad_id  # (B, T)
         ids = torch.where(real, tokens, 0)  # (B, T)
-        switch = self.model.disable_adapter() if self.adapter_off else contextlib.nullcontext()
-        with switch:
+        with self.adapter_switch():
             logits = self.model(input_ids=ids, attention_mask=real.long()).logits  # (B, T, V)
         return logits if self.output_size is None else logits[..., : self.output_size]  # (B, T, V_out)
 

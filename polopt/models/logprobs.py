@@ -211,7 +211,10 @@ class SequencePolicy(nn.Module):
     (:func:`length_split`); rows are independent, so the values are those of one pass.
     ``split_lengths=False`` keeps one pass (the bench's padding baseline).
     ``logprobs(prompt, winner, loser)`` scores a pair's two responses with one pass over
-    their prompt (:func:`shared_pair_logprobs`) when the model allows it (``shares_prompt``).
+    their prompt when the model allows it (``shares_prompt``): :func:`shared_pair_logprobs` for a model
+    that takes the one-row layout (``takes_layout``), or the model's own ``pair_logprobs`` where it
+    scores pairs itself (``scores_pairs``: a transformers model through its key/value cache,
+    :class:`polopt.models.local_lm.CausalLM`).
     """
 
     def __init__(self, model: nn.Module, *, pad_id: int, split_lengths: bool = True):
@@ -222,8 +225,9 @@ class SequencePolicy(nn.Module):
 
     @property
     def shares_prompt(self) -> bool:
-        """Whether the model takes the shared-prompt layout (positions and an attention mask)."""
-        return bool(getattr(self.model, "takes_layout", False))
+        """Whether the model takes the shared-prompt layout (positions and an attention mask) or scores a
+        pair over one prompt pass itself."""
+        return bool(getattr(self.model, "takes_layout", False) or getattr(self.model, "scores_pairs", False))
 
     def logprobs(self, prompt: Tensor, response: Tensor, loser: Tensor | None = None) -> Tensor:
         """(B, T_p), (B, T_r) right-padded -> (B,). With ``loser`` (B, T_l): ``response`` holds the
@@ -242,6 +246,8 @@ class SequencePolicy(nn.Module):
             n = lengths(prompt, pad_id=pad) + lengths(response, pad_id=pad) + lengths(loser, pad_id=pad)  # (B,)
 
             def run(rows: Tensor | slice) -> Tensor:  # (2, b)
+                if getattr(self.model, "scores_pairs", False):
+                    return torch.stack(self.model.pair_logprobs(prompt[rows], response[rows], loser[rows]))
                 return torch.stack(shared_pair_logprobs(self.model, prompt[rows], response[rows], loser[rows],
                                                         pad_id=pad))
         order, k = length_split(n) if self.split_lengths else (None, 0)

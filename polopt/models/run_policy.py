@@ -26,7 +26,7 @@ from pathlib import Path
 
 from torch import nn
 
-from polopt.models import hf
+from polopt.models import local_lm
 
 POLICY_DIR = "policy"
 ADAPTER_CONFIG = "adapter_config.json"  # what peft's save_pretrained writes beside the adapter's weights
@@ -130,7 +130,7 @@ def _load_run(run: Path) -> RunModels:
                          "(a relative path is read from the folder polopt evaluate runs in): run it from the folder "
                          "the run was trained in")
     os.environ.setdefault("HF_HUB_OFFLINE", "1")  # nothing is downloaded: every path below is a local folder
-    tokenizer = policy_tokenizer(folder) or hf.load_tokenizer(base)
+    tokenizer = policy_tokenizer(folder) or local_lm.load_tokenizer(base)
     if (folder / ADAPTER_CONFIG).is_file():
         if not (folder / ADAPTER_WEIGHTS).is_file():
             raise ValueError(f"{str(folder)!r} holds a peft adapter without {ADAPTER_WEIGHTS}; polopt reads weights "
@@ -139,6 +139,7 @@ def _load_run(run: Path) -> RunModels:
 
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=".*is_gradient_checkpointing.*")  # peft asks an old name
-            policy = peft.PeftModel.from_pretrained(hf.load_model(base), str(folder), is_trainable=False)
+            policy = peft.PeftModel.from_pretrained(local_lm.load_model(base), str(folder), is_trainable=False)
         return RunModels(policy.eval(), None, tokenizer, base, adapter=True)
-    return RunModels(hf.load_model(folder), hf.load_model(reference_folder(config)), tokenizer, base, adapter=False)
+    return RunModels(local_lm.load_model(folder), local_lm.load_model(reference_folder(config)), tokenizer, base,
+                     adapter=False)

@@ -74,8 +74,9 @@ def chat_template_of(arch, models):
 
 @pytest.mark.parametrize("arch", ["llama", "gpt2", "qwen2", "mistral"])
 def test_logprobs_equal_a_direct_transformers_computation(arch, models, tmp_path):
-    """Plain and chat rows alike: the policy's log-probs (padded batch) and the cached reference's equal
-    ``direct_logprob`` of each row alone, by the stated token convention (Qwen2- and Mistral-shaped models too)."""
+    """Plain and chat rows alike: the policy's log-probs (padded batch; scored separately and with each prompt
+    computed once, the trainer's default) and the cached reference's equal ``direct_logprob`` of each row alone,
+    by the stated token convention (Qwen2- and Mistral-shaped models too)."""
     pairs = write_pairs(tmp_path / "pairs.jsonl", ROWS)
     session, policy = session_and_policy(overrides(models[arch], pairs, template=chat_template_of(arch, models)),
                                          tmp_path / "run")
@@ -89,7 +90,11 @@ def test_logprobs_equal_a_direct_transformers_computation(arch, models, tmp_path
     assert len(p) == len(ROWS) and session.data.accounting["rows_accepted"] == len(ROWS)
     with torch.no_grad():
         got = policy.logprobs(torch.cat([p.prompt, p.prompt]), torch.cat([p.winner, p.loser])).double()
+        # the trainer's default (train.share_prompt=true): each prompt once, through the key/value cache
+        shared = policy.logprobs(p.prompt, p.winner, p.loser).double()
     torch.testing.assert_close(got, torch.cat([want_w, want_l]), rtol=1e-5, atol=1e-4)
+    assert policy.shares_prompt
+    torch.testing.assert_close(shared, torch.cat([want_w, want_l]), rtol=1e-5, atol=1e-4)
     torch.testing.assert_close(p.reference_winner.double(), want_w, rtol=1e-5, atol=1e-4)
     torch.testing.assert_close(p.reference_loser.double(), want_l, rtol=1e-5, atol=1e-4)
 
@@ -230,7 +235,7 @@ def test_polopt_data_reads_a_file_as_training_does_for_the_model(models, tmp_pat
     accounting a run gets; without the model, message rows are not_a_string as before."""
     pairs = write_pairs(tmp_path / "pairs.jsonl", ROWS)
     code = main(["data", str(pairs), "model=local_lm", f"model.path={models['llama']}", "model.context=14", "--json",
-                 "--rejects", str(tmp_path / "rejects.jsonl")])
+                 f"hydra.run.dir={tmp_path / 'check'}"])
     printed = capsys.readouterr()
     assert code == 0, printed.err
     a = json.loads(printed.out)
@@ -238,7 +243,7 @@ def test_polopt_data_reads_a_file_as_training_does_for_the_model(models, tmp_pat
     assert a["rejected_by_reason"] == {"too_long": 1} and a["max_length"] == 14
     session, _ = session_and_policy(overrides(models["llama"], pairs, "model.context=14"), tmp_path / "run")
     assert session.data.accounting == {k: v for k, v in a.items() if k not in ("rejects_file", "plot")}
-    assert main(["data", str(pairs), "--json", "--rejects", str(tmp_path / "r2.jsonl")]) == 0
+    assert main(["data", str(pairs), "--json", f"hydra.run.dir={tmp_path / 'check2'}"]) == 0
     plain = json.loads(capsys.readouterr().out)
     assert plain["rejected_by_reason"] == {"not_a_string": 3}
     assert main(["data", str(pairs), "model=local_lm", f"model.path={models['llama']}", "model.adapter=lora"]) == 2

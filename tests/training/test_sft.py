@@ -111,9 +111,9 @@ def test_a_reference_from_polopt_sft_leaves_room_for_the_pairs(tmp_path, capsys)
     other default: the run trains (the reference's default context holds them) instead of stopping on context."""
     notes = tmp_path / "notes.txt"
     notes.write_text("wind 12 knots\nrain 3 mm\n", encoding="utf-8")
-    ref = tmp_path / "ref.pt"
-    assert main(["sft", str(notes), "--out", str(ref), "train.steps=2", "model.width=16", "model.layers=1",
-                 "model.heads=2", "train.progress=false"]) == 0
+    ref = tmp_path / "sft" / "reference.pt"
+    assert main(["sft", str(notes), f"hydra.run.dir={tmp_path / 'sft'}", "train.steps=2", "model.width=16",
+                 "model.layers=1", "model.heads=2", "train.progress=false"]) == 0
     pairs = tmp_path / "pairs.jsonl"
     rows = [{"prompt": "what is the forecast for the harbour tomorrow?", "winner": "wind 12 knots from the west",
              "loser": "rain"}, {"prompt": "and the day after?", "winner": "rain 3 mm", "loser": "no idea at all"}]
@@ -149,9 +149,9 @@ def test_polopt_sft_fine_tunes_a_local_lm_into_the_next_runs_model(tmp_path, cap
     notes = tmp_path / "notes.jsonl"
     notes.write_text("".join(json.dumps({"prompt": r["prompt"], "response": r["winner"]}) + "\n" for r in PLAIN_ROWS)
                      + json.dumps({"text": "moss hums near the tide ."}) + "\n", encoding="utf-8")
-    out = tmp_path / "tuned"
-    code = main(["sft", str(notes), "--out", str(out), "model=local_lm", f"model.path={base}", "train.steps=20",
-                 "optim.lr=0.01", "train.progress=false"])
+    out = tmp_path / "tuned" / "model"
+    code = main(["sft", str(notes), f"hydra.run.dir={tmp_path / 'tuned'}", "model=local_lm", f"model.path={base}",
+                 "train.steps=20", "optim.lr=0.01", "train.progress=false"])
     printed = capsys.readouterr()
     assert code == 0, printed.err
     first, last = (float(x) for x in printed.out.split("next-token loss ")[1].split(" nats")[0].split(" -> "))
@@ -167,10 +167,10 @@ def test_polopt_sft_fine_tunes_a_local_lm_into_the_next_runs_model(tmp_path, cap
 
 def test_polopt_sft_with_a_local_lm_refuses_the_transformers_keys(tmp_path, capsys):
     (tmp_path / "a.txt").write_text("some text\n", encoding="utf-8")
-    assert main(["sft", str(tmp_path / "a.txt"), "--out", str(tmp_path / "m"), "model=local_lm", "model.path=x",
+    assert main(["sft", str(tmp_path / "a.txt"), f"hydra.run.dir={tmp_path / 'm'}", "model=local_lm", "model.path=x",
                  "model.width=16"]) == 2
     assert "polopt sft: error: model=local_lm has no key 'width'" in capsys.readouterr().err
-    assert main(["sft", str(tmp_path / "a.txt"), "--out", str(tmp_path / "m"), "model=local_lm", "model.path=x",
+    assert main(["sft", str(tmp_path / "a.txt"), f"hydra.run.dir={tmp_path / 'm'}", "model=local_lm", "model.path=x",
                  "model.adapter=lora"]) == 2
     assert ("polopt sft: error: polopt sft model=local_lm reads train.steps, train.batch_size, optim.lr, train.seed, "
             "train.progress, model.path only; 'model.adapter=lora' would change nothing here") in \
