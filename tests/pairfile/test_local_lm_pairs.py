@@ -250,3 +250,17 @@ def test_polopt_data_reads_a_file_as_training_does_for_the_model(models, tmp_pat
     assert ("polopt data: error: polopt data model=local_lm reads task.columns, task.format, task.max_length, "
             "task.truncation, task.duplicates, task.tokenizer, task.hub, model.path, model.context, "
             "task.chat_template only; 'model.adapter=lora' would change nothing here") in capsys.readouterr().err
+
+
+def test_shared_prompt_training_ends_where_separate_scoring_does(models, tmp_path):
+    """train.share_prompt=true (the prompt once through the key/value cache) and false (each response with its
+    prompt) give the same gradients up to float rounding, so the same run ends in the same place."""
+    pairs = write_pairs(tmp_path / "pairs.jsonl", ROWS)
+    ends = {}
+    for share in ("true", "false"):
+        args = overrides(models["llama"], pairs, "model.adapter=lora", "train.steps=4", "optim.lr=0.05",
+                         "optim.warmup_steps=0", f"train.share_prompt={share}")
+        ends[share] = run(config(args), tmp_path / f"run-{share}")
+    assert ends["true"]["margin_mean"] > 0.01
+    for key in ("loss", "margin_mean", "logratio_winner", "logratio_loser"):
+        assert ends["true"][key] == pytest.approx(ends["false"][key], rel=1e-4, abs=1e-6), key
