@@ -4,10 +4,11 @@
   cautions the project promises (a toy-task result certifies maths, not a deployed model; a model
   judge is biased; defer to the deploying organisation).
 - Every relative link of README.md and docs/ names a file that exists.
-- Every command of a ```bash block in README.md and docs/ runs as written from a fresh folder that holds
-  the repository's examples/ (the ```python blocks that start with ``# NAME.py`` written beside it, as
-  a reader would save them), one block after the other, and exits 0; the long ones (minutes of
-  training, several processes, an install) are listed in :data:`LONG` with the test that covers them.
+- Every ```bash block in README.md and docs/ runs as written, as one script, from a fresh folder that
+  holds the repository's examples/ (the ```python blocks that start with ``# NAME.py`` written beside
+  it, as a reader would save them), one block after the other, and exits 0; the long lines (several
+  processes, an install) are listed in :data:`LONG` with the test that covers them. ``python`` and
+  ``polopt`` are the ones beside the interpreter running the tests.
 - Every config key of conf/ is in docs/reference/configuration.md.
 """
 
@@ -34,17 +35,6 @@ def blocks(page: Path, language: str) -> list[str]:
     return re.findall(rf"```{language}\n(.*?)```", page.read_text(encoding="utf-8"), re.S)
 
 
-def commands(page: Path) -> list[str]:
-    """The commands of ``page``'s bash blocks, comments stripped, in order."""
-    found = []
-    for block in blocks(page, "bash"):
-        for line in block.strip().splitlines():
-            line = re.sub(r"\s+#.*$", "", line).strip()
-            if line:
-                found.append(line)
-    return found
-
-
 def test_the_readme_is_a_front_door():
     text = (ROOT / "README.md").read_text(encoding="utf-8")
     assert len(text.splitlines()) < 250
@@ -62,27 +52,44 @@ def test_every_relative_link_names_a_file(page):
     assert missing == []
 
 
-def _runnable(page: Path) -> list[str]:
-    return [c for c in commands(page) if not any(c.startswith(prefix) for prefix in LONG)]
+# a page whose commands continue another's (the evaluation reads the runs the training page made)
+FOLLOWS = {"evaluate-your-model.md": "your-own-model.md"}
 
 
-@pytest.mark.slow
-@pytest.mark.parametrize("page", [p for p in PAGES if _runnable(p)], ids=lambda p: p.relative_to(ROOT).as_posix())
-def test_every_short_command_runs_as_written(page, tmp_path):
-    (tmp_path / "examples").symlink_to(ROOT / "examples")
+def scripts(page: Path) -> list[str]:
+    """``page``'s bash blocks as scripts, without the lines of :data:`LONG`."""
+    out = []
+    for block in blocks(page, "bash"):
+        lines = [line for line in block.splitlines() if not any(line.startswith(prefix) for prefix in LONG)]
+        if any(line.strip() for line in lines):
+            out.append("\n".join(lines))
+    return out
+
+
+def _run_page(page: Path, folder: Path, env: dict) -> None:
+    """Save the page's ``# NAME.py`` blocks beside its commands, then run each bash block, stopping at the
+    first command that fails (``set -e``)."""
     for block in blocks(page, "python"):
         name = re.match(r"# (\w+\.py)\n", block)
         if name:
-            (tmp_path / name.group(1)).write_text(block, encoding="utf-8")
-    bin_dir = Path(sys.executable).parent  # polopt's console script beside this interpreter
+            (folder / name.group(1)).write_text(block, encoding="utf-8")
+    for script in scripts(page):
+        done = subprocess.run(["bash", "-e", "-c", script], cwd=folder, env=env, capture_output=True, text=True,
+                              timeout=900)
+        assert done.returncode == 0, f"{page.name}:\n{script}\n{done.stdout[-2000:]}\n{done.stderr[-2000:]}"
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("page", [p for p in PAGES if scripts(p)], ids=lambda p: p.relative_to(ROOT).as_posix())
+def test_every_short_command_runs_as_written(page, tmp_path):
+    (tmp_path / "examples").symlink_to(ROOT / "examples")
+    bin_dir = Path(sys.executable).parent  # polopt's console script and python beside this interpreter
     env = {**os.environ, "PATH": f"{bin_dir}{os.pathsep}{os.environ['PATH']}", "TQDM_DISABLE": "1",
            "PYTHONPATH": str(ROOT)}
     env.pop("POLOPT_DEBUG", None)
-    for command in _runnable(page):
-        shell = command.replace("python ", f"{sys.executable} ", 1) if command.startswith("python ") else command
-        done = subprocess.run(["bash", "-c", shell], cwd=tmp_path, env=env, capture_output=True, text=True,
-                              timeout=900)
-        assert done.returncode == 0, f"{page.name}: {command}\n{done.stdout[-2000:]}\n{done.stderr[-2000:]}"
+    if page.name in FOLLOWS:
+        _run_page(page.parent / FOLLOWS[page.name], tmp_path, env)
+    _run_page(page, tmp_path, env)
 
 
 def test_every_config_key_is_in_the_configuration_reference():

@@ -1,6 +1,6 @@
 """Responses sampled from a local causal LM: prompts as token ids, transformers' ``generate`` with a seed.
 
-Prompt ids follow the token convention of ``model=local_lm`` (docs/guides/your-model.md):
+Prompt ids follow the token convention of ``model=local_lm`` (docs/guides/evaluate-your-model.md):
 
 - a list of messages ``{"role", "content"}``: ``apply_chat_template(prompt,
   add_generation_prompt=True, tokenize=False)``, then ``tokenizer(text, add_special_tokens=False)``;
