@@ -116,7 +116,8 @@ def main(argv: list[str] | None = None) -> int:
     failures: list[str] = []
     print("1. the tests' GPU parts: pytest tests/parallel/test_devices.py")
     done = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider",
-                           "tests/parallel/test_devices.py"], cwd=ROOT, env={**os.environ, "PYTHONPATH": _path()}, capture_output=True, text=True)
+                           "tests/parallel/test_devices.py"], cwd=ROOT, env={**os.environ, "PYTHONPATH": _path()},
+                          capture_output=True, text=True)
     print("  " + (done.stdout.strip().splitlines() or ["(no output)"])[-1])
     if done.returncode != 0:
         failures.append(f"tests/parallel/test_devices.py: {done.stdout[-1500:]}")
