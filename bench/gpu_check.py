@@ -12,6 +12,8 @@ Where torch sees no GPU it prints one line saying so and exits 0 (nothing to che
    1e-4 relative (plus 1e-6 absolute) of the CPU run. Why: the GPU's matrix products and attention
    kernels sum in another order than the CPU's (float32 rounding ~6e-8 per operation, over 20 steps
    of a 2-layer transformer), and TF32 stays off (torch's default for matrix products).
+   2b. the same for ``model=local_lm`` (examples/tiny_local_lm.py's random Llama-shaped model with a chat
+   template), fully and with LoRA, and its ``policy/`` written on the device.
 3. With 2 or more GPUs: the same run under torchrun on 2 processes (NCCL), train.strategy=ddp and
    fsdp, against the one-process CPU run, same tolerance.
 4. Throughput: tokens/s and steps/s (the trainer's own ``tokens_per_s`` metric, and steps over the
@@ -94,6 +96,25 @@ def compare(name: str, got: dict, want: dict, failures: list[str]) -> None:
         failures.append(f"{name}: " + ", ".join(f"{k} {got[k]!r} vs cpu {want[k]!r}" for k in KEYS))
 
 
+def local_lm_on_the_device(tmp: Path, args, failures: list[str]) -> None:
+    """A local transformers causal LM (examples/tiny_local_lm.py: a random Llama-shaped model with a chat
+    template, plain and chat rows), fully and with LoRA: the device against the CPU, same tolerance."""
+    subprocess.run([sys.executable, str(ROOT / "examples" / "tiny_local_lm.py"), str(tmp / "lm")], check=True,
+                   capture_output=True, env={**os.environ, "PYTHONPATH": _path()})
+    lm = ["task=pairs", f"task.path={tmp / 'lm' / 'pairs.jsonl'}", "model=local_lm",
+          f"model.path={tmp / 'lm' / 'model'}", f"train.steps={args.steps}", "train.progress=false",
+          "optim=sgd", "optim.lr=0.1", "optim.schedule=constant", "train.log_every=5"]
+    print(f"2b. model=local_lm (a tiny Llama-shaped model), cpu against {CUDA}, {args.steps} SGD steps")
+    for adapter in ("null", "lora"):
+        cpu = polopt_train(tmp / f"lm-cpu-{adapter}", [*lm, f"model.adapter={adapter}", "train.device=cpu"],
+                           timeout=args.timeout)
+        got = polopt_train(tmp / f"lm-dev-{adapter}", [*lm, f"model.adapter={adapter}", f"train.device={CUDA}"],
+                           timeout=args.timeout)
+        compare(f"local_lm, model.adapter={adapter}", got, cpu, failures)
+        if not (tmp / f"lm-dev-{adapter}" / "policy").is_dir():
+            failures.append(f"local_lm, model.adapter={adapter}: no policy/ written on {CUDA}")
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--pairs", type=int, default=2000)
@@ -132,6 +153,7 @@ def main(argv: list[str] | None = None) -> int:
         compare("cuda, task.stream=true", polopt_train(tmp / "stream", [*common, f"train.device={CUDA}",
                                                                        "task.stream=true"], timeout=args.timeout),
                 cpu, failures)
+        local_lm_on_the_device(tmp, args, failures)
         if gpus >= 2:
             print("3. torchrun on 2 GPUs (NCCL) against one CPU process")
             for strategy in ("ddp", "fsdp"):
