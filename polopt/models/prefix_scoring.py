@@ -90,12 +90,15 @@ def _prompt_pass(model: nn.Module, prompt: Tensor, keywords: set[str], *, pad_id
     cache = _new_cache(model)
     last = (n_p - 1)[:, None]  # (B, 1) index of the last real prompt token
     positions = torch.arange(prompt.shape[1], device=prompt.device).expand(len(prompt), -1)  # (B, T_p)
-    keep = {"logits_to_keep": last} if "logits_to_keep" in keywords else {}
+    # the last k positions hold every row's last prompt token; an integer keeps the same meaning in every
+    # transformers release that takes logits_to_keep (a tensor of indices is read differently across them)
+    k = int(prompt.shape[1] - int(last.min()))
+    keep = {"logits_to_keep": k} if "logits_to_keep" in keywords else {}
     out = model(input_ids=torch.where(real, prompt, 0), attention_mask=real.long(), position_ids=positions,
                 use_cache=True, **{_cache_keyword(keywords): cache}, **keep)
-    logits = out.logits  # (B, 1, V) with logits_to_keep, else (B, T_p, V)
-    if not keep:
-        logits = logits.gather(1, last[..., None].expand(-1, -1, logits.shape[-1]))  # (B, 1, V)
+    logits = out.logits  # (B, k, V) with logits_to_keep, else (B, T_p, V)
+    offset = prompt.shape[1] - logits.shape[1]  # the position of the first kept column
+    logits = logits.gather(1, (last - offset)[..., None].expand(-1, -1, logits.shape[-1]))  # (B, 1, V)
     return cache, logits, real, n_p
 
 
