@@ -28,6 +28,8 @@ PAGES = [ROOT / "README.md", *sorted((ROOT / "docs").rglob("*.md"))]
 LONG = {
     "python3.11 -m venv": "the quick start's installs: .ci/run runs the second in a fresh environment",
     "torchrun": "several processes: tests/parallel/test_distributed.py and test_fsdp.py",
+    "python bench/": "a benchmark (minutes of measuring): tests/test_bench*.py run the benches on small sizes",
+    "PYTHONPATH=. python bench/": "a benchmark, as above",
 }
 
 
