@@ -82,15 +82,16 @@ def test_bad_input_is_one_line_and_exit_2(tmp_path, monkeypatch, capsys, overrid
     assert line.startswith("polopt train: error: ") and message in line
 
 
-def test_the_guides_thumbs_example_runs_as_written(tmp_path):
+def test_the_guides_thumbs_example_runs_as_written(tmp_path, monkeypatch):
     """docs/guides/feedback-beyond-pairs.md: its task file and command give the table it prints."""
     import re
     from pathlib import Path
 
     guide = (Path(__file__).resolve().parents[2] / "docs" / "guides" / "feedback-beyond-pairs.md").read_text()
-    block = guide.split("cat > library-thumbs.json <<'EOF'\n", 1)[1]
-    (tmp_path / "library-thumbs.json").write_text(block.split("\nEOF\n", 1)[0])
-    command = block.split("\nEOF\n", 1)[1].splitlines()[0].split()
+    script = guide.split("```python\n# thumbs_task.py\n", 1)[1].split("```", 1)[0]
+    monkeypatch.chdir(tmp_path)
+    exec(compile(script, "thumbs_task.py", "exec"), {})  # writes library-thumbs.json, as `python thumbs_task.py`
+    command = guide.split("python thumbs_task.py\n", 1)[1].splitlines()[0].split()
     assert command[:2] == ["polopt", "train"]
     overrides = [a.replace("library-thumbs.json", str(tmp_path / "library-thumbs.json")) for a in command[2:]
                  if not a.startswith("hydra.")]
