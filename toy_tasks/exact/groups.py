@@ -143,9 +143,11 @@ def _minimum(objective, groups, reference, lengths, beta, starts, seed) -> tuple
     return best_runs, notes, unique
 
 
-def _stationary_run(problem: _Population, z: np.ndarray) -> dict:
-    """Damped Newton on the semi-gradient (plus the gauge) from z: each step solves with the Jacobian
-    (least squares where singular) and is halved until the residual's norm falls."""
+def newton_on_field(problem, z: np.ndarray) -> dict:
+    """Damped Newton on a field (``problem.grad``: the semi-gradient here, the expected update of
+    ``method=group`` in :mod:`toy_tasks.methods.group_target`; plus the gauge) from z: each step solves
+    with the Jacobian ``problem.hess`` (least squares where singular) and is halved until the residual's
+    norm falls. Returns z, the value and the residual max |field|."""
     def residual(v):
         return problem.grad(v) + problem._gauge(v)
 
@@ -173,7 +175,7 @@ def _stationary(objective, groups, reference, lengths, beta, starts, seed) -> tu
     problem = _Population(objective, groups, log_ref, lengths, beta)
     rng = np.random.default_rng(seed)
     inits = [log_ref] + [log_ref + rng.standard_normal(log_ref.shape) for _ in range(starts - 1)]
-    runs = [_stationary_run(problem, z0.reshape(-1)) for z0 in inits]
+    runs = [newton_on_field(problem, z0.reshape(-1)) for z0 in inits]
     certified = [r for r in runs if r["residual"] <= CERTIFIED]
     policy = lambda r: scipy.special.softmax(r["z"].reshape(log_ref.shape), axis=1)  # noqa: E731
     interior = [r for r in certified if policy(r).min() >= VANISHED]  # saturation near a face also zeroes it

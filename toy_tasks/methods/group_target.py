@@ -6,7 +6,7 @@ policy's log-probabilities with the sampling policy (its tuple probabilities, it
 held fixed; in the softmax chart its zero is solved for from seeded starts: Euler steps along the update itself
 until it is small (the update also vanishes at every deterministic policy, where Newton from afar
 would run), then the same damped Newton steps as the stop-gradient group objectives
-(:func:`toy_tasks.exact.groups._stationary_run`) with the Jacobian of the whole field by autograd;
+(:func:`toy_tasks.exact.groups.newton_on_field`) with the Jacobian of the whole field by autograd;
 certified by the update's residual. Several distinct stationary points are reported as such.
 """
 
@@ -18,7 +18,7 @@ import torch
 
 from polopt.methods.environment import FiniteEnvironment
 from polopt.methods.group import surrogate
-from toy_tasks.exact.groups import VANISHED, _stationary_run
+from toy_tasks.exact.groups import VANISHED, newton_on_field
 from toy_tasks.exact.pairs import CERTIFIED, STARTS
 
 FLOW_RATE = 1.0  # first Euler step of the update flow in the logits; grown by 1.2 per step, halved on overshoot
@@ -80,7 +80,7 @@ def group_update_target(env: FiniteEnvironment, *, beta: float, group_size: int,
     log_ref = env.reference.numpy()
     rng = np.random.default_rng(seed)
     inits = [log_ref] + [log_ref + rng.standard_normal(log_ref.shape) for _ in range(starts - 1)]
-    runs = [_stationary_run(problem, _flow(problem, z0.reshape(-1))) for z0 in inits]
+    runs = [newton_on_field(problem, _flow(problem, z0.reshape(-1))) for z0 in inits]
     policies = [scipy.special.softmax(r["z"].reshape(problem.shape), axis=1) for r in runs]
     good = [(r, p) for r, p in zip(runs, policies, strict=True) if r["residual"] <= CERTIFIED and p.min() >= VANISHED]
     how = (f"stationary point of the expected update (damped Newton on it, {starts} seeded starts, torch autograd "
