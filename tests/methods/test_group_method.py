@@ -126,3 +126,20 @@ def test_a_group_below_two_is_refused_in_one_line(tmp_path, monkeypatch, capsys)
     err = capsys.readouterr().err.strip().splitlines()
     assert err == ["polopt train: error: method.group_size must be an integer >= 2 (advantages are relative to the "
                    "group), got 1"]
+
+
+def test_sampled_groups_train_and_a_target_out_of_reach_is_said():
+    # 8^6 = 262144 ordered groups: above the exact update's 100000, so sampled groups train and no target is claimed
+    task = random_task(21, 8)
+    session = task.prepare(registry.resolve("logistic"), beta=BETA)
+    view = session.for_method("group", group_size=6, estimator="sampled", batch_size=4)
+    assert view.target is None and view.target_method.startswith("none computed: the exact expected update sums "
+                                                                 "over 8^6 groups")
+    policy = session.build_policy()
+    result = train_method(view.method, policy, view.environment(), loss=registry.resolve("squared"), beta=BETA,
+                          steps=20, optim=OptimConfig(lr=0.05), log_every=20, progress=False)
+    summary = view.summarise(policy, result)
+    assert summary["reached_optimum"] is None and summary["tv_optimum_to_kl_regularised_optimum"] is None
+    assert summary["kl_to_reference"] > 0.0
+    with pytest.raises(ValueError, match=r"method.estimator=exact sums over 8\^6 = 262144 groups, more than 100000"):
+        session.for_method("group", group_size=6)

@@ -36,7 +36,7 @@ import torch
 
 from polopt.methods.dispatch import METHODS
 from polopt.methods.environment import FiniteEnvironment
-from polopt.methods.group import check_group_method
+from polopt.methods.group import MAX_TUPLES, check_group_method
 from polopt.methods.realign import equivalent_beta, realign
 from polopt.training.contracts import TrainResult
 from polopt.training.verdict import REACHED_TOLERANCE, verdict_fields
@@ -110,11 +110,16 @@ class MethodView:
                                  "rewards (bradley_terry, contextual) or method.reward=win_rate")
             env = FiniteEnvironment(torch.as_tensor(np.log(task.reference)), torch.as_tensor(task.prompt_weights),
                                     torch.as_tensor(rewards, dtype=torch.float64))
-            check_group_method(params.get("group_size", 4), params.get("advantage", "standardised"),
-                               params.get("kl", "estimator"), params.get("estimator", "exact"), task.n_responses)
-            target, how, notes = group_update_target(env, beta=beta, group_size=params.get("group_size", 4),
-                                                     advantage=params.get("advantage", "standardised"),
-                                                     kl=params.get("kl", "estimator"))
+            g = params.get("group_size", 4)
+            check_group_method(g, params.get("advantage", "standardised"), params.get("kl", "estimator"),
+                               params.get("estimator", "exact"), task.n_responses)
+            if task.n_responses**g > MAX_TUPLES:  # the exact expected update is out of reach: no target
+                how, notes = (f"none computed: the exact expected update sums over {task.n_responses}^{g} groups, "
+                              f"more than {MAX_TUPLES}"), []
+            else:
+                target, how, notes = group_update_target(env, beta=beta, group_size=g,
+                                                         advantage=params.get("advantage", "standardised"),
+                                                         kl=params.get("kl", "estimator"))
             method["target_notes"] = notes
         elif name == "best_of_n":
             if rewards is None:
