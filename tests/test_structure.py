@@ -133,7 +133,7 @@ def test_the_training_loop_is_imported_only_by_the_modules_that_train():
 # The stages, lowest first: a module may import its own stage and the stages below it, never above
 # (DEVELOPERS.md's layout). Tasks build on the library; the demo and the commands compose them.
 STAGES = [
-    ("polopt.losses", "polopt.data", "polopt.checkpoints", "polopt.parallel", "polopt.pairs"),
+    ("polopt.losses", "polopt.data", "polopt.checkpoints", "polopt.parallel", "polopt.pairs", "polopt.groups"),
     ("polopt.models",),
     ("polopt.training",),
     ("polopt.methods", "polopt.checks", "polopt.testing"),

@@ -89,6 +89,10 @@ def main(argv: list[str]) -> int:
     config.only_keys(args.overrides, KEYS, "polopt check")
     params = {k: v for k, v in OmegaConf.to_container(cfg.loss, resolve=True).items() if k not in ("name", "smoothing")}
     loss = losses.resolve(cfg.loss.name, **params)
+    if cfg.loss.name in losses.names("group") or type(loss).__name__ == "GroupObjective":
+        raise ValueError(f"{cfg.loss.name!r} is a group objective: polopt check takes margin and pair losses; train "
+                         "it on a finite task against its exact target with polopt train task.feedback=KIND "
+                         "(docs/guides/feedback-beyond-pairs.md)")
     beta, steps = float(cfg.beta), cfg.train.steps
     validate_hyperparameters(beta)
     if not isinstance(steps, int) or steps < 1:

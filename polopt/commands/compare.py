@@ -234,6 +234,13 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     from polopt.commands.train import CONFIG_DIR, run
 
     runs = plan(overrides)
+    from polopt import losses
+
+    grouped = sorted({name for combo in runs if (name := _value(combo, "loss")) in losses.names("group")})
+    if grouped or any(_value(combo, "task.feedback") not in (None, "pairs") for combo in runs):
+        what = ", ".join(grouped) or "task.feedback"
+        raise ValueError(f"polopt compare compares margin and pair losses on pairs; {what} trains on groups: run "
+                         "polopt train task.feedback=KIND for each (docs/guides/feedback-beyond-pairs.md)")
     out.mkdir(parents=True, exist_ok=True)
     rows, summaries, task = [], [], ""
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):

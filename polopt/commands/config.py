@@ -17,7 +17,7 @@ CONFIG_DIR = Path(__file__).resolve().parents[1] / "conf"  # an installed packag
 if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ beside the package
     CONFIG_DIR = Path(__file__).resolve().parents[2] / "conf"
 
-TASK_RUN_KEYS = ("mode", "n_pairs")  # task keys for the run, not for the task's builder
+TASK_RUN_KEYS = ("mode", "n_pairs", "feedback", "group_size")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 HYDRA_PACKAGES = ("hydra.",)  # where a _target_ under hydra.* (launcher, sweeper) may point
 

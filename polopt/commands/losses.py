@@ -38,6 +38,25 @@ PAIR_CATALOGUE = [
 ]
 
 
+# group objectives (polopt.losses.registry, kind "group"): name, the feedback each reads (task.feedback), keyword
+# parameters with their defaults, whether its target is a stationary point (a statistic held without gradient), source
+GROUP_CATALOGUE = [
+    ("unpaired_prospect", "unpaired", "desirable_weight=1.0, undesirable_weight=1.0", True,
+     "Ethayarajh et al. 2024 (KTO)"),
+    ("unpaired_classifier", "unpaired", "-", True, "Jung et al. 2024 (BCO)"),
+    ("ranking_likelihood", "pairs, ranking", "-", False, "Rafailov et al. 2023, appendix (Plackett-Luce listwise DPO)"),
+    ("score_cross_entropy", "scored", "temperature=1.0", False, "Chen et al. 2024 (InfoNCA)"),
+    ("score_binary_contrast", "scored", "temperature=1.0", False, "Chen et al. 2024 (NCA)"),
+    ("score_reverse_kl", "scored", "temperature=1.0", False, "Ji et al. 2024 (EXO)"),
+    ("flip_corrected_logistic", "pairs, ranking", "flip_rate=0.1", False,
+     "Chowdhury et al. 2024 (robust DPO, known flip rate)"),
+    ("calibrated_logistic", "pairs, ranking", "-", False, "Xiao et al. 2024 (Cal-DPO)"),
+    ("anchored_raise_lower", "pairs, ranking", "-", False, "D'Oosterlinck et al. 2024 (APO-zero)"),
+    ("anchored_lower_both", "pairs, ranking", "-", False, "D'Oosterlinck et al. 2024 (APO-down)"),
+    ("logistic_exponential_blend", "pairs, ranking", "tau=0.05", False, "Lu et al. 2024 (DiscoPOP)"),
+]
+
+
 def main(argv: list[str]) -> int:
     """The ``polopt losses`` subcommand."""
     argparse.ArgumentParser(prog="polopt losses", description="List the built-in losses: f'(0), f''(0) at the "
@@ -49,6 +68,11 @@ def main(argv: list[str]) -> int:
     print("\npair objectives (functions of both log-ratios and the lengths, not of the margin alone):")
     for name, takes, source in PAIR_CATALOGUE:
         print(f"{name:<26} {takes:<54} {source}")
+    print("\ngroup objectives (unpaired labels, rankings, scored groups; train with task.feedback=KIND; every pair "
+          "objective above also trains on pairs and rankings):")
+    for name, feedback, takes, stationary, source in GROUP_CATALOGUE:
+        target = "stationary point" if stationary else "minimiser"
+        print(f"{name:<26} {feedback:<15} {takes:<45} {target:<16} {source}")
     return 0
 
 

@@ -48,7 +48,7 @@ from polopt.training.contracts import (
     task_for_model,
     trains_on_gpu,
 )
-from polopt.training.loop import MethodBatches, PairBatches, TrainSettings, optimise
+from polopt.training.loop import GroupBatches, MethodBatches, PairBatches, TrainSettings, optimise
 from polopt.training.optim import OptimConfig
 from polopt.training.run_folder import RunFolder, run_summary
 from polopt.training.verdict import reached_line
@@ -132,8 +132,10 @@ def prepare_session(cfg: DictConfig, run_dir: Path, context: distributed.Context
     validate_hyperparameters(cfg.beta, cfg.loss.smoothing)
     task = task_for_model(build_task(cfg.task), OmegaConf.to_container(cfg.model, resolve=True))
     with distributed.main_first(context):  # rank 0 writes any cache in the run folder before the others read it
+        groups = {k: cfg.task[k] for k in ("feedback", "group_size") if k in cfg.task}  # finite tasks only
         session = task.prepare(loss, beta=float(cfg.beta), smoothing=float(cfg.loss.smoothing),
-                               mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir)
+                               mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=cfg.train.seed, run_dir=run_dir,
+                               **groups)
     threads = cfg.train.get("threads") or session_threads(session)
     if threads:  # tiny finite-task tensors run fastest on one thread; a pool only adds overhead
         torch.set_num_threads(int(threads))
@@ -163,12 +165,26 @@ def objective_of(method: dict, view: MethodView | None, session: Session, policy
     """(the batch objective of this run, the per-step evaluation): the loss on the session's pairs,
     or the method's objective on the view's environment."""
     settings.check()
+    if method["name"] == "offline" and hasattr(session, "groups"):  # task.feedback beyond pairs, or a group objective
+        return GroupBatches(policy, session.groups, session.loss, settings, context), session.evaluate
     if method["name"] == "offline":
         return PairBatches(policy, session.pairs, loss, settings, context), session.evaluate
     loss = losses.resolve_margin(method.get("loss", "squared"))
     step = method_objective(method, policy, view.environment(), loss=loss,
                             beta=settings.beta, target=view.target_tensor(), seed=settings.seed)
     return MethodBatches(step, method["name"]), view.evaluate
+
+
+def training_data(session: Session, policy: torch.nn.Module) -> tuple:
+    """The tensors a run trains on, for its checkpoints' fingerprint: the session's groups, or its pairs."""
+    if hasattr(session, "groups"):
+        return session.groups.identity()
+    p = session.pairs
+    # lengths of index pairs are data of their own (a task file's "lengths"); token pairs' follow from the tokens
+    lengths = () if getattr(policy, "pad_id", None) is not None else (getattr(p, "len_winner", None),
+                                                                       getattr(p, "len_loser", None))
+    return p.identity() if hasattr(p, "identity") else (p.prompt, p.winner, p.loser, p.reference_winner,
+                                                         p.reference_loser, p.weight, *lengths)  # identity: streamed
 
 
 def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distributed.SINGLE,
@@ -193,13 +209,7 @@ def run(cfg: DictConfig, run_dir: Path, context: distributed.Context = distribut
         compile_policy(policy)
     # the checkpoints of this run: same resume-relevant config and the same pairs, bit for bit
     config = resume_config(OmegaConf.to_container(cfg, resolve=True))
-    p = session.pairs
-    # lengths of index pairs are data of their own (a task file's "lengths"); token pairs' follow from the tokens
-    lengths = () if getattr(policy, "pad_id", None) is not None else (getattr(p, "len_winner", None),
-                                                                       getattr(p, "len_loser", None))
-    data = p.identity() if hasattr(p, "identity") else (p.prompt, p.winner, p.loser, p.reference_winner,
-                                                         p.reference_loser, p.weight, *lengths)  # identity: streamed
-    fingerprint = checkpoint.fingerprint(config, *data)
+    fingerprint = checkpoint.fingerprint(config, *training_data(session, policy))
     checkpoint.validate_keep(cfg.train.keep_checkpoints)
     state = resume_state(cfg, folder.checkpoints, fingerprint)
     distributed.barrier(context)  # every rank has read the same checkpoint before rank 0 writes a new one

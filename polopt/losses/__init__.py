@@ -3,6 +3,9 @@
 - :mod:`polopt.losses.margin`: the margin losses ``f(x)`` and :class:`MarginLoss` (the per-pair optimum).
 - :mod:`polopt.losses.pair`: pair losses ``ell(pair, beta)``, their argument :class:`PairScores`,
   :class:`PairLoss` and the built-in members.
+- :mod:`polopt.losses.group_objective`: group objectives ``ell(group, beta)``, their argument
+  :class:`GroupScores`, :class:`GroupObjective`, the pair adapter; built-in members in
+  :mod:`polopt.losses.group` and :mod:`polopt.losses.group_pairwise`.
 - :mod:`polopt.losses.registry`: the one registry (:func:`register`, :func:`names`, :func:`resolve`).
 - :mod:`polopt.losses.reduce`: the one loss path (:func:`margins`, :func:`per_pair_losses`,
   :func:`weighted_mean`).

@@ -136,15 +136,29 @@ def as_pair_loss(loss: MarginLoss | PairLoss | Callable[..., Tensor]) -> PairLos
         if not callable(loss):
             raise TypeError(f"expected a polopt MarginLoss, PairLoss or a callable f(x) or f(pair, beta), got "
                             f"{type(loss).__name__}")
-        name = getattr(loss, "__name__", type(loss).__name__)
-        if kind_of(loss, name) == "pair":
+        name = getattr(loss, "__name__", getattr(loss, "name", type(loss).__name__))
+        kind = kind_of(loss, name)
+        if kind == "group":
+            raise TypeError(f"loss {name!r} is a group objective f(group, beta): it trains on groups (task.feedback="
+                            "unpaired, ranking or scored, or pairs on a finite task), not where pairs are needed")
+        if kind == "pair":
             return PairLoss(name, loss, {}, "user-supplied")
         loss = MarginLoss(name, loss, {}, None, "user-supplied")
     return PairLoss(loss.name, _margin_pair_loss, {"loss": loss}, loss.source, margin=loss)
 
 
+def _takes_a_group(parameter: inspect.Parameter) -> bool:
+    """Whether a function's first parameter says it takes a group (a group objective,
+    :mod:`polopt.losses.group_objective`): named ``group``, or annotated GroupScores (the class or,
+    under ``from __future__ import annotations``, its name)."""
+    note = parameter.annotation
+    shown = note if isinstance(note, str) else getattr(note, "__name__", "")
+    return parameter.name == "group" or shown.split(".")[-1] == "GroupScores"
+
+
 def kind_of(fn: Callable, label: str) -> str:
-    """``"margin"`` for ``f(x)``, ``"pair"`` for ``ell(pair, beta)``, decided by the positional
+    """``"margin"`` for ``f(x)``, ``"pair"`` for ``ell(pair, beta)``, ``"group"`` for ``ell(group,
+    beta)`` (the first parameter named ``group`` or annotated GroupScores), decided by the positional
     parameters without defaults; a TypeError naming ``label`` for any other signature."""
     try:
         parameters = list(inspect.signature(fn).parameters.values())
@@ -158,10 +172,12 @@ def kind_of(fn: Callable, label: str) -> str:
     if len(positional) == 1:
         return "margin"
     if len(positional) == 2:
-        return "pair"
+        first = next(p for p in parameters if p.name == positional[0])
+        return "group" if _takes_a_group(first) else "pair"
     raise TypeError(f"loss {label!r} takes ({', '.join(positional)}): a loss takes one tensor, f(x) (a margin "
                     "loss of x = beta * margin), or two arguments, f(pair, beta) (a pair objective returning one "
-                    "loss per pair); extra parameters go after * as keyword-only")
+                    "loss per pair) or f(group, beta) (a group objective returning one loss per group); extra "
+                    "parameters go after * as keyword-only")
 
 
 # ----------------------------------------------------------------------------

@@ -14,13 +14,16 @@ included). ``ell`` is any loss of the registry: a pair loss as it is, a margin l
 
 Every caller goes through :func:`per_pair_losses` and :func:`weighted_mean`: the training step
 (:mod:`polopt.training.step`), the streamed and in-memory summaries, the methods and the exact
-solvers' population losses.
+solvers' population losses. Groups take the same reduction: :func:`group_losses` is a group
+objective's per-group losses, checked (no label smoothing: a group's feedback is no label to flip).
 """
 
 from __future__ import annotations
 
 import torch
 
+from polopt.groups import GroupSet
+from polopt.losses.group_objective import GroupObjective, GroupScores, check_group_values
 from polopt.losses.margin import MarginLoss
 from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
 
@@ -83,6 +86,30 @@ def weighted_mean(values: Tensor, weights: Tensor | None = None) -> Tensor:
         return values.mean()
     weights = weights.to(values.dtype)
     return (weights * values).sum() / weights.sum()
+
+
+def group_scores(batch: GroupSet, logp: Tensor) -> GroupScores:
+    """The :class:`GroupScores` of a batch of groups given the policy's log-probs (B, G) of its members;
+    lengths of 1 where the batch has none."""
+    lengths = torch.ones_like(logp) if batch.lengths is None else batch.lengths.to(logp.dtype)
+    return GroupScores(logp, batch.reference, lengths, batch.mask, batch.labels, batch.ranks, batch.scores,
+                       batch.weight)
+
+
+def group_losses(objective: GroupObjective, logp: Tensor, batch: GroupSet, *, beta: float) -> Tensor:
+    """A group objective's per-group losses (B,) on a batch of groups from the policy's log-probs of its
+    members, (B, G); a ValueError (one line) for a wrong shape. Reduce with :func:`weighted_mean`."""
+    values = objective(group_scores(batch, logp), beta)  # (B,)
+    check_group_values(objective.name, values, len(batch))
+    return values
+
+
+def group_statistics(logratio: Tensor, mask: Tensor, weight: Tensor | None) -> dict:
+    """The weighted mean log-ratio of the batch's present members. ``logratio``, ``mask`` (B, G);
+    ``weight`` (B,)."""
+    w = torch.ones(logratio.shape[0], dtype=logratio.dtype) if weight is None else weight.to(logratio.dtype)
+    m = mask.to(logratio.dtype) * w[:, None]  # (B, G)
+    return {"logratio_mean": float((m * logratio).sum() / m.sum())}
 
 
 def validate_hyperparameters(beta: float, smoothing: float = 0.0) -> None:

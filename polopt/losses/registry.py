@@ -6,10 +6,14 @@
   margin ``x = beta * rho``), resolved to a :class:`MarginLoss` so that every analysis of the
   family (closed forms, the per-pair optimum x*(p), ``polopt check``) keeps working; or
 - a *pair loss* ``ell(pair, beta)`` (:mod:`polopt.losses.pair`: a function of a
-  :class:`PairScores` and beta, returning one loss per pair), resolved to a :class:`PairLoss`.
+  :class:`PairScores` and beta, returning one loss per pair), resolved to a :class:`PairLoss`; or
+- a *group objective* ``ell(group, beta)`` (:mod:`polopt.losses.group_objective`: a function of a
+  :class:`GroupScores` and beta, returning one loss per group), resolved to a :class:`GroupObjective`
+  with the feedback it reads (found on probe groups).
 
-Both kinds live in one table, told apart by the signature: one positional parameter is a margin
-loss, two (``pair, beta``) a pair loss; keyword-only parameters are the ``loss.<key>=`` settings
+All kinds live in one table, told apart by the signature: one positional parameter is a margin
+loss, two a pair loss, or a group objective when the first is named ``group`` (or annotated
+``GroupScores``); keyword-only parameters are the ``loss.<key>=`` settings
 (as Huber's ``delta``). Anything else is a one-line TypeError. :func:`resolve` is the one way from
 a name, a dotted path, a bare callable or a loss to a loss with its parameters bound.
 
@@ -19,11 +23,12 @@ Usage::
     losses.resolve("divergence_alpha", alpha=0.3)      # a PairLoss
     losses.resolve("logistic")                          # a MarginLoss
     losses.resolve("team_losses:my_loss")               # by signature
-    losses.names("margin"), losses.names("pair")
+    losses.names("margin"), losses.names("pair"), losses.names("group")
 """
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import importlib
 import inspect
@@ -31,15 +36,17 @@ from collections.abc import Callable
 
 import torch
 
-from polopt.losses import margin, pair
+from polopt.losses import group, group_pairwise, margin, pair
+from polopt.losses.group_objective import GroupObjective, validate_group
 from polopt.losses.margin import MarginLoss
-from polopt.losses.pair import PairLoss, PairScores, kind_of, winner_nll
+from polopt.losses.pair import PairLoss, PairScores, as_pair_loss, kind_of, winner_nll
 from polopt.losses.reduce import check_values, per_pair_losses
 
 Tensor = torch.Tensor
-KINDS = ("margin", "pair")
+KINDS = ("margin", "pair", "group")
+Loss = MarginLoss | PairLoss | GroupObjective
 
-_REGISTRY: dict[str, MarginLoss | PairLoss] = {}
+_REGISTRY: dict[str, Loss] = {}
 
 
 # ----------------------------------------------------------------------------
@@ -74,20 +81,26 @@ def import_dotted(path: str, *, field: str = "loss path", takes: str = "f(x) or 
 
 
 def _entry(key: str, fn: Callable[..., Tensor], source: str, *, convex: bool | None = None,
-           closed_form_optimum: Callable[[float], float] | None = None) -> MarginLoss | PairLoss:
-    """A registry entry for ``fn``, of the kind its signature says."""
-    if kind_of(fn, key) == "margin":
+           closed_form_optimum: Callable[[float], float] | None = None, pairwise_group: bool = False) -> Loss:
+    """A registry entry for ``fn``, of the kind its signature says (``pairwise_group``: a pair function
+    registered as a group objective on rankings, :func:`from_pair`)."""
+    kind = kind_of(fn, key)
+    if kind == "margin":
         return MarginLoss(key, fn, {}, convex, source, closed_form_optimum)
     if convex is not None or closed_form_optimum is not None:
-        raise TypeError(f"register: {key!r} is a pair loss; convex and closed_form_optimum describe margin "
+        raise TypeError(f"register: {key!r} is a {kind} loss; convex and closed_form_optimum describe margin "
                         "losses f(x) only")
-    return PairLoss(key, fn, {}, source)
+    if kind == "group":
+        return GroupObjective(key, fn, {}, source, stop_gradient=getattr(fn, "stop_gradient", False))
+    return from_pair(PairLoss(key, fn, {}, source)) if pairwise_group else PairLoss(key, fn, {}, source)
 
 
 def register(name: str | None = None, *, source: str = "", convex: bool | None = None,
-             closed_form_optimum: Callable[[float], float] | None = None):
-    """Decorator adding a margin loss ``f(x)`` or a pair loss ``ell(pair, beta)`` (told apart by the
-    signature; parameters keyword-only) to the registry under ``name``.
+             closed_form_optimum: Callable[[float], float] | None = None, pairwise_group: bool = False):
+    """Decorator adding a margin loss ``f(x)``, a pair loss ``ell(pair, beta)`` or a group objective
+    ``ell(group, beta)`` (told apart by the signature; parameters keyword-only) to the registry under
+    ``name``. ``pairwise_group``: register the pair function as a group objective on rankings. A group
+    function with the attribute ``stop_gradient = True`` declares a statistic held without gradient.
 
     Example::
 
@@ -107,7 +120,8 @@ def register(name: str | None = None, *, source: str = "", convex: bool | None =
             raise TypeError(f"register: a loss must be callable, got {type(fn).__name__}")
         if not key:
             raise ValueError("register: give the loss a name, register('my_loss')")
-        entry = _entry(key, fn, source, convex=convex, closed_form_optimum=closed_form_optimum)
+        entry = _entry(key, fn, source, convex=convex, closed_form_optimum=closed_form_optimum,
+                       pairwise_group=pairwise_group)
         existing = _REGISTRY.get(key)
         if existing is not None and type(existing) is not type(entry):
             raise ValueError(f"register: {key!r} is already a {_kind(existing)} loss; choose another name")
@@ -122,8 +136,8 @@ def unregister(name: str) -> None:
     _REGISTRY.pop(name, None)
 
 
-def _kind(loss: MarginLoss | PairLoss) -> str:
-    return "margin" if isinstance(loss, MarginLoss) else "pair"
+def _kind(loss: Loss) -> str:
+    return "margin" if isinstance(loss, MarginLoss) else "group" if isinstance(loss, GroupObjective) else "pair"
 
 
 def _check_kind(kind: str | None) -> None:
@@ -133,7 +147,7 @@ def _check_kind(kind: str | None) -> None:
 
 def names(kind: str | None = None) -> list[str]:
     """Every registered name ``loss=`` takes, in registration order (margin losses first among the
-    built-ins); ``kind="margin"`` or ``"pair"`` for one kind."""
+    built-ins, group objectives last); ``kind="margin"``, ``"pair"`` or ``"group"`` for one kind."""
     _check_kind(kind)
     return [key for key, loss in _REGISTRY.items() if kind is None or _kind(loss) == kind]
 
@@ -143,7 +157,7 @@ def builtin_names(kind: str | None = None) -> list[str]:
     return [key for key in names(kind) if _REGISTRY[key].fn is _BUILTIN_FNS.get(key)]
 
 
-def is_builtin(loss: MarginLoss | PairLoss) -> bool:
+def is_builtin(loss: Loss) -> bool:
     """A built-in member at its default parameters."""
     return _BUILTIN_FNS.get(loss.name) is loss.fn and not loss.params
 
@@ -153,17 +167,18 @@ def is_builtin(loss: MarginLoss | PairLoss) -> bool:
 # ----------------------------------------------------------------------------
 
 
-def resolve(loss: str | MarginLoss | PairLoss | Callable[..., Tensor], **params) -> MarginLoss | PairLoss:
+def resolve(loss: str | Loss | Callable[..., Tensor], **params) -> Loss:
     """The loss ``loss`` names, with ``params`` bound: a registered name, a dotted path
     ``pkg.module:name`` or a bare callable (told apart by the signature), or a loss (rebound to
-    ``params`` when given). A pair loss is validated on a probe batch.
+    ``params`` when given). A pair loss is validated on a probe batch; a group objective on probe
+    groups, which also find the feedback it reads (:func:`polopt.losses.group_objective.validate_group`).
 
     Raises:
         ValueError: unknown name (the message lists them all), an unknown parameter, or a pair loss
             that does not return finite losses of shape (B,) on a probe batch.
         TypeError: a function of neither signature.
     """
-    if isinstance(loss, MarginLoss | PairLoss):
+    if isinstance(loss, MarginLoss | PairLoss | GroupObjective):
         base = loss
     elif isinstance(loss, str) and loss in _REGISTRY:
         base = _REGISTRY[loss]
@@ -173,13 +188,15 @@ def resolve(loss: str | MarginLoss | PairLoss | Callable[..., Tensor], **params)
         base = registered if registered is not None and registered.fn is fn else _entry(loss, fn, "user-supplied")
     elif isinstance(loss, str) and loss:
         raise ValueError(f"unknown loss {loss!r}; known losses: {', '.join(names())}; or give a dotted path "
-                         "'pkg.module:name' to f(x) or f(pair, beta)")
+                         "'pkg.module:name' to f(x), f(pair, beta) or f(group, beta)")
     elif callable(loss) and not isinstance(loss, str):
         base = _entry(getattr(loss, "__name__", type(loss).__name__), loss, "user-supplied")
     else:
         raise ValueError(f"loss must be a registered name, a dotted path 'pkg.module:name', a callable or a "
                          f"polopt loss, got {loss!r}")
     bound = _bind(base, params)
+    if isinstance(bound, GroupObjective):
+        return validate_group(bound)
     if isinstance(bound, PairLoss):
         validate(bound)
     return bound
@@ -190,18 +207,18 @@ def resolve_margin(loss: str | MarginLoss | Callable[[Tensor], Tensor], **params
     a ValueError naming the pair loss otherwise."""
     resolved = resolve(loss, **params)
     if not isinstance(resolved, MarginLoss):
-        raise ValueError(f"{resolved.name!r} is a pair loss; a margin loss f(x) is needed here "
+        raise ValueError(f"{resolved.name!r} is a {_kind(resolved)} loss; a margin loss f(x) is needed here "
                          f"(one of {', '.join(names('margin'))}, or a dotted path to f(x))")
     return resolved
 
 
 @functools.lru_cache(maxsize=64)
-def _resolve_default(name: str) -> MarginLoss | PairLoss:
+def _resolve_default(name: str) -> Loss:
     """:func:`resolve` at default parameters, once per name (for losses built on others)."""
     return resolve(name)
 
 
-def _bind(loss: MarginLoss | PairLoss, params: dict) -> MarginLoss | PairLoss:
+def _bind(loss: Loss, params: dict) -> Loss:
     """``loss`` with ``params`` added to its bound parameters (keyword-only parameters of its function)."""
     if not params:
         return loss
@@ -212,12 +229,29 @@ def _bind(loss: MarginLoss | PairLoss, params: dict) -> MarginLoss | PairLoss:
         raise ValueError(f"loss {loss.name!r} got unknown parameter(s) {', '.join(unknown)}; "
                          f"it takes: {', '.join(takes)}")
     merged = {**loss.params, **params}
+    if isinstance(loss, GroupObjective):
+        return dataclasses.replace(loss, params=merged)
     if isinstance(loss, PairLoss):
         return PairLoss(loss.name, loss.fn, merged, loss.source, loss.margin)
     # the closed form of a member holds at its default parameters only
     defaults = all(accepted[k].default == v for k, v in merged.items())
     return MarginLoss(loss.name, loss.fn, merged, loss.convex, loss.source,
                       loss.closed_form_optimum if defaults else None)
+
+
+def from_pair(loss: PairLoss) -> GroupObjective:
+    """A pair loss as a group objective on rankings: the mean of the pair loss over the pairs each
+    group's ranking orders (:func:`polopt.losses.group_objective.ranked_pairs`); at G = 2 the pair loss
+    itself."""
+    return GroupObjective(loss.name, loss.fn, dict(loss.params), loss.source, pairwise=True, reads=("ranks",))
+
+
+def as_group_objective(loss: Loss) -> GroupObjective:
+    """A :class:`GroupObjective` for any kind of loss (margin losses and pair losses through
+    :func:`polopt.losses.pair.as_pair_loss` and :func:`from_pair`)."""
+    if isinstance(loss, GroupObjective):
+        return loss
+    return from_pair(as_pair_loss(loss))
 
 
 # ----------------------------------------------------------------------------
@@ -302,7 +336,23 @@ _BUILTINS = [
     (plus_winner_nll, "Xu et al. 2024 (CPO: a loss plus the winner's NLL)", None),
     (pair.odds_ratio_with_nll, "Hong et al. 2024 (ORPO)", None),
 ]
-_BUILTIN_FNS = {fn.__name__: fn for fn, _, _ in _BUILTINS}
+# group objectives: the group-native members, then pair functions registered as group objectives on rankings
+_GROUP_BUILTINS = [
+    (group.unpaired_prospect, "Ethayarajh et al. 2024 (KTO)"),
+    (group.unpaired_classifier, "Jung et al. 2024 (BCO)"),
+    (group.ranking_likelihood, "Rafailov et al. 2023, appendix (Plackett-Luce listwise DPO)"),
+    (group.score_cross_entropy, "Chen et al. 2024 (InfoNCA)"),
+    (group.score_binary_contrast, "Chen et al. 2024 (NCA)"),
+    (group.score_reverse_kl, "Ji et al. 2024 (EXO)"),
+    (group_pairwise.flip_corrected_logistic, "Chowdhury et al. 2024 (robust DPO, known flip rate)"),
+    (group_pairwise.calibrated_logistic, "Xiao et al. 2024 (Cal-DPO)"),
+    (group_pairwise.anchored_raise_lower, "D'Oosterlinck et al. 2024 (APO-zero)"),
+    (group_pairwise.anchored_lower_both, "D'Oosterlinck et al. 2024 (APO-down)"),
+    (group_pairwise.logistic_exponential_blend, "Lu et al. 2024 (DiscoPOP)"),
+]
+_BUILTIN_FNS = {fn.__name__: fn for fn, *_ in _BUILTINS + _GROUP_BUILTINS}
 for _fn, _source, _convex in _BUILTINS:
     register(_fn.__name__, source=_source, convex=_convex,
              closed_form_optimum=margin.CLOSED_FORM_OPTIMA.get(_fn.__name__))(_fn)
+for _fn, _source in _GROUP_BUILTINS:
+    register(_fn.__name__, source=_source, pairwise_group=_fn.__module__ == group_pairwise.__name__)(_fn)

@@ -5,6 +5,8 @@
 - ``selfplay``: pairs from the current policy (:mod:`polopt.methods.selfplay`); target the
   Nash equilibrium of the regularised preference game at tau = beta / 2.
 - ``best_of_n``: distillation of best-of-n of the reference (:mod:`polopt.methods.distill`).
+- ``group``: group-relative online updates (:mod:`polopt.methods.group`); target the update's exact
+  stationary point, beside pi_ref e^{r / beta}.
 
 Each method talks to a policy through log-probabilities and to a task through a
 :class:`polopt.methods.environment.FiniteEnvironment`; the task computes each

@@ -13,13 +13,14 @@ import torch
 from polopt.losses.margin import MarginLoss
 from polopt.methods.distill import distill_objective
 from polopt.methods.environment import FiniteEnvironment
+from polopt.methods.group import group_objective
 from polopt.methods.rl import rl_objective
 from polopt.methods.selfplay import selfplay_objective
 from polopt.training.contracts import TrainResult
 from polopt.training.loop import MethodBatches, TrainSettings, optimise
 from polopt.training.optim import OptimConfig
 
-METHODS = ("offline", "rl", "selfplay", "best_of_n")
+METHODS = ("offline", "rl", "selfplay", "best_of_n", "group")
 
 
 def check_method(name: str) -> None:
@@ -44,6 +45,10 @@ def method_objective(method: dict, policy: torch.nn.Module, env: FiniteEnvironme
     if name == "best_of_n":
         return distill_objective(policy, env, target=target, estimator=estimator, n=method.get("n", 4),
                                  n_samples=method.get("n_samples", 4096), generator=generator)
+    if name == "group":
+        return group_objective(policy, env, beta=beta, group_size=method.get("group_size", 4),
+                               advantage=method.get("advantage", "standardised"), kl=method.get("kl", "estimator"),
+                               estimator=estimator, batch_size=method.get("batch_size", 16), generator=generator)
     raise ValueError("method=offline trains with polopt.training.loop.PairBatches, not through polopt.methods")
 
 

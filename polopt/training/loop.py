@@ -37,7 +37,10 @@ from tqdm.auto import tqdm
 
 from polopt import losses
 from polopt.checkpoints.store import restore_training_state, training_state
+from polopt.groups import GroupSet, score_groups
+from polopt.losses.group_objective import GroupObjective
 from polopt.losses.margin import MarginLoss
+from polopt.losses.reduce import group_losses, group_statistics
 from polopt.pairs import PairSet, score_pairs
 from polopt.parallel import distributed
 from polopt.training.batching import Batcher
@@ -222,6 +225,71 @@ class MethodBatches:
     def __call__(self, step: int) -> StepLoss:
         value, stats = self.method_step(step)
         return StepLoss(value, value, lambda: stats, lambda s, problem: f"step {s}: {problem} (method {self.name})")
+
+
+class GroupBatches:
+    """A group objective on batches of ``groups`` (full, or drawn in a fresh order each epoch): one
+    process, no label smoothing (a group's feedback is no label to flip)."""
+
+    counts_tokens = False
+
+    def __init__(self, policy: torch.nn.Module, groups: GroupSet, loss: GroupObjective, settings: TrainSettings,
+                 context: distributed.Context = distributed.SINGLE):
+        if context.active:
+            raise ValueError("group objectives train on one process; torchrun trains pair objectives only")
+        if settings.smoothing:
+            raise ValueError(f"loss.smoothing flips a pair's label; group objective {loss.name!r} takes none: "
+                             f"set loss.smoothing=0.0, got {settings.smoothing}")
+        full = settings.batch_size is None or settings.batch_size >= len(groups)
+        if settings.optim.name == "lbfgs" and loss.stop_gradient:
+            raise ValueError(f"{loss.name!r} holds a statistic without gradient, so its loss is no function that "
+                             "optim=lbfgs's line search can decrease along the gradient: use optim=adam")
+        if settings.optim.name == "lbfgs" and not full:
+            raise ValueError(f"optim=lbfgs's line search needs one fixed objective: set train.batch_size=null "
+                             f"(all {len(groups)} groups each step), or use optim=adam for minibatches")
+        self.name, self.policy, self.groups, self.loss = f"train {loss.name}", policy, groups, loss
+        self.settings = settings
+        self.full_batch, self.device = full, torch.device(settings.device)
+        self.order, self.cursor, self._whole = None, 0, None
+
+    def start(self, generator: torch.Generator) -> None:
+        self.generator, self.order, self.cursor = generator, torch.randperm(len(self.groups), generator=generator), 0
+
+    def position(self) -> tuple[Tensor, int]:
+        return self.order, self.cursor
+
+    def restore(self, order: Tensor, cursor: int) -> None:
+        self.order, self.cursor = order, cursor
+
+    def batch(self) -> tuple[Tensor, GroupSet]:
+        """(global indices, the batch on the device)."""
+        if self.full_batch:
+            if self._whole is None:
+                self._whole = self.groups.to(self.device, self.settings.dtype)  # the full batch moves once
+            return torch.arange(len(self.groups)), self._whole
+        size = self.settings.batch_size
+        if self.cursor + size > len(self.groups):
+            self.order, self.cursor = torch.randperm(len(self.groups), generator=self.generator), 0
+        index = self.order[self.cursor:self.cursor + size]
+        self.cursor += size
+        return index, self.groups.select(index).to(self.device, self.settings.dtype)
+
+    def __call__(self, step: int) -> StepLoss:
+        index, batch = self.batch()
+        with torch.autocast(self.device.type, dtype=torch.bfloat16, enabled=self.settings.precision == "bf16"):
+            logp = score_groups(self.policy.logprobs, batch.prompt, batch.members).to(batch.reference.dtype)  # (B, G)
+        per_group = group_losses(self.loss, logp, batch, beta=self.settings.beta)  # (B,)
+        value = losses.weighted_mean(per_group, batch.weight)
+
+        def statistics() -> dict:
+            return group_statistics(logp - batch.reference, batch.mask, batch.weight)
+
+        def report(step: int, problem: str) -> str:
+            bad = torch.nonzero(~torch.isfinite(per_group.detach())).flatten()
+            return (f"step {step}: {problem} on a batch of {len(index)} groups (non-finite at groups "
+                    f"{index[bad.cpu()].tolist()[:8]})")
+
+        return StepLoss(value, value, statistics, report)
 
 
 def nonfinite_report(step: int, what: str, index: Tensor, batch: PairSet, per_pair: Tensor) -> str:

@@ -236,6 +236,23 @@ def test_the_losses_catalogue_is_the_registry():
     assert PAIR_CATALOGUE == registry
 
 
+def test_the_group_catalogue_is_the_registry():
+    import inspect
+
+    from polopt.commands.losses import GROUP_CATALOGUE
+    from polopt.losses import registry as objectives
+    from polopt.losses.group_objective import FEEDBACK_FIELDS
+
+    registry = []
+    for name in objectives.names("group"):
+        objective = objectives.resolve(name)
+        keys = {k: p.default for k, p in inspect.signature(objective.fn).parameters.items() if p.kind is p.KEYWORD_ONLY}
+        feedback = ", ".join(k for k in FEEDBACK_FIELDS if objective.reads_feedback(k))
+        registry.append((name, feedback, ", ".join(f"{k}={v}" for k, v in keys.items()) or "-",
+                         objective.stop_gradient, objective.source))
+    assert GROUP_CATALOGUE == registry
+
+
 def test_check_prints_a_progress_line_per_check_with_its_time(capsys):
     assert main(["check", "logistic", "--quick", "--no-plot"]) == 0
     err = capsys.readouterr().err.strip().splitlines()

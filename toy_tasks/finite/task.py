@@ -22,7 +22,9 @@ The JSON file (``task=file task.path=...``) holds one prompt at the top level::
 
     {"responses": [...], "reference": [...], "sampling": [...],
      "preference": [[...], ...]  or  "rewards": [...],
-     "lengths": [n_0, ...]}            # optional: tokens per response, default 1 each
+     "lengths": [n_0, ...],            # optional: tokens per response, default 1 each
+     "desirability": [d_0, ...]}       # optional: P(labelled desirable) per response, for unpaired
+                                       # feedback (toy_tasks/finite/feedback.py); default sum_j mu_j P[y, j]
 
 or several under ``"prompts": [{"prompt": "...", "weight": 1.0, ...same keys...}, ...]``.
 """
@@ -36,7 +38,8 @@ from pathlib import Path
 import numpy as np
 import scipy.special
 
-from toy_tasks.finite import session
+from polopt.losses.group_objective import GroupObjective
+from toy_tasks.finite import group_session, session
 from toy_tasks.measures import kl_divergence
 from toy_tasks.methods import reward_fit
 
@@ -68,6 +71,8 @@ class FiniteTask:
         lengths: (X, K) response lengths in tokens (positive integers, stored as float64);
             1 for every response of a task given without lengths.
         responses: K response labels; prompts: X prompt labels.
+        desirability: (X, K) the probability that a response is labelled desirable (unpaired
+            feedback), in [0, 1], or None (then derived from P; see toy_tasks.finite.feedback).
     """
 
     reference: np.ndarray
@@ -80,6 +85,7 @@ class FiniteTask:
     name: str = "finite"
     description: str = ""
     lengths: np.ndarray | None = None
+    desirability: np.ndarray | None = None
 
     def __post_init__(self):
         if self.lengths is None:  # frozen: set the default through object.__setattr__
@@ -139,10 +145,14 @@ class FiniteTask:
         """Prompt-weighted KL(pi || pi_ref)."""
         return kl_divergence(policy, self.reference, self.prompt_weights)
 
-    def prepare(self, loss, **kwargs):
-        """``task.prepare(loss, beta=..., smoothing=..., mode=..., n_pairs=..., seed=...)``: the
-        trainer's view of this task (see :mod:`toy_tasks.finite.session`)."""
-        return session.prepare(self, loss, **kwargs)
+    def prepare(self, loss, *, feedback: str = "pairs", group_size: int = 2, **kwargs):
+        """``task.prepare(loss, beta=..., smoothing=..., mode=..., n_pairs=..., seed=..., feedback=...,
+        group_size=...)``: the trainer's view of this task. Labelled pairs trained by a margin loss or
+        a pair objective: :mod:`toy_tasks.finite.session`; any other feedback kind, or a group
+        objective: weighted groups (:mod:`toy_tasks.finite.group_session`)."""
+        if feedback == "pairs" and group_size == 2 and not isinstance(loss, GroupObjective):
+            return session.prepare(self, loss, **kwargs)
+        return group_session.prepare(self, loss, feedback=feedback, group_size=group_size, **kwargs)
 
     def fit_reward(self, **kwargs):
         """``polopt reward``: a Bradley–Terry reward table fitted to this task's pairs
@@ -168,6 +178,8 @@ class FiniteTask:
             else:
                 entry["preference"] = self.preference[x].tolist()
             entry["lengths"] = [int(n) for n in self.lengths[x]]
+            if self.desirability is not None:
+                entry["desirability"] = self.desirability[x].tolist()
             entries.append(entry)
         if self.n_prompts == 1:
             out = entries[0]
@@ -197,7 +209,8 @@ def bradley_terry_preference(rewards: np.ndarray) -> np.ndarray:
 
 
 def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt_weights=None,
-              responses=None, prompts=None, lengths=None, name: str = "finite", description: str = "",
+              responses=None, prompts=None, lengths=None, desirability=None, name: str = "finite",
+              description: str = "",
               where: str = "task") -> FiniteTask:
     """Build and validate a :class:`FiniteTask` from nested lists or arrays.
 
@@ -267,7 +280,11 @@ def make_task(reference, preference=None, *, rewards=None, sampling=None, prompt
         raise ValueError(f"{where}: field 'responses' has {len(labels)} labels but 'reference' has {k} entries")
     prompt_labels = list(prompts) if prompts is not None else []
     n_tokens = np.ones_like(ref) if lengths is None else _check_lengths(lengths, (n_prompts, k), single, where)
-    return FiniteTask(ref, mu, pref, weights, r, labels, prompt_labels, name, description, n_tokens)
+    d = None if desirability is None else per_prompt(desirability, "desirability", 1)
+    if d is not None and np.any((d < 0) | (d > 1)):
+        raise ValueError(f"{where}: field 'desirability' must hold probabilities in [0, 1] (the chance each "
+                         f"response is labelled desirable), got {str(desirability)[:60]!r}")
+    return FiniteTask(ref, mu, pref, weights, r, labels, prompt_labels, name, description, n_tokens, d)
 
 
 def _check_lengths(lengths, shape: tuple[int, int], single: bool, where: str) -> np.ndarray:
@@ -391,7 +408,8 @@ def load_task(path: str | Path) -> FiniteTask:
     return task_from_dict(data, where=where, name=path.stem)
 
 
-_ENTRY_FIELDS = {"prompt", "responses", "reference", "sampling", "preference", "rewards", "weight", "lengths"}
+_ENTRY_FIELDS = {"prompt", "responses", "reference", "sampling", "preference", "rewards", "weight", "lengths",
+                 "desirability"}
 
 
 def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> FiniteTask:
@@ -429,6 +447,9 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
     if any("lengths" in e for e in entries):
         tokens = [e.get("lengths", [1] * len(e["reference"])) for e in entries] if len(entries) > 1 \
             else entries[0]["lengths"]
+    given = ["desirability" in e for e in entries]
+    if any(given) and not all(given):
+        raise ValueError(f"{where}: give 'desirability' for every prompt or for none")
     responses = entries[0].get("responses")
     weights = [e.get("weight", 1.0) for e in entries] if len(entries) > 1 else None
     prompts = [e.get("prompt", f"prompt {x}") for x, e in enumerate(entries)] if len(entries) > 1 else None
@@ -437,5 +458,5 @@ def task_from_dict(data: dict, *, where: str = "task", name: str = "file") -> Fi
         stack("preference") if has_pref[0] else None,
         rewards=stack("rewards") if has_rewards[0] else None,
         sampling=sampling, prompt_weights=weights, responses=responses, prompts=prompts, lengths=tokens,
-        name=name, description=description, where=where,
+        desirability=stack("desirability") if all(given) else None, name=name, description=description, where=where,
     )

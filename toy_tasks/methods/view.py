@@ -9,6 +9,8 @@ the trainer:
 - ``selfplay``: the Nash equilibrium of the regularised preference game at
   tau = beta / 2 (:mod:`toy_tasks.methods.equilibrium`), for the squared loss;
 - ``best_of_n``: the exact best-of-n distribution (:mod:`toy_tasks.methods.best_of_n`);
+- ``group``: the stationary point of the expected group-relative update
+  (:mod:`toy_tasks.methods.group_target`), beside pi_ref e^{r / beta};
 - ``offline``: the session's optimum (:mod:`toy_tasks.exact.margin`), plus realignment
   by lambda checked against the optimum re-solved at beta / lambda.
 
@@ -34,6 +36,7 @@ import torch
 
 from polopt.methods.dispatch import METHODS
 from polopt.methods.environment import FiniteEnvironment
+from polopt.methods.group import MAX_TUPLES, check_group_method
 from polopt.methods.realign import equivalent_beta, realign
 from polopt.training.contracts import TrainResult
 from polopt.training.verdict import REACHED_TOLERANCE, verdict_fields
@@ -41,6 +44,7 @@ from toy_tasks.exact.margin import solve
 from toy_tasks.measures import per_prompt, total_variation
 from toy_tasks.methods.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.methods.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
+from toy_tasks.methods.group_target import group_update_target
 from toy_tasks.methods.reward_fit import learned_reward_fields, learned_rewards
 from toy_tasks.tables import method_footer, policy_rows
 
@@ -100,6 +104,23 @@ class MethodView:
                 target, how = equilibrium.policy, f"Nash equilibrium at tau = beta / 2: {equilibrium.method}"
             else:
                 how = "none known: the Nash equilibrium is self-play's fixed point for the squared loss only"
+        elif name == "group":
+            if rewards is None:
+                raise ValueError(f"method=group needs rewards and task {task.name!r} has none; use a task with "
+                                 "rewards (bradley_terry, contextual) or method.reward=win_rate")
+            env = FiniteEnvironment(torch.as_tensor(np.log(task.reference)), torch.as_tensor(task.prompt_weights),
+                                    torch.as_tensor(rewards, dtype=torch.float64))
+            g = params.get("group_size", 4)
+            check_group_method(g, params.get("advantage", "standardised"), params.get("kl", "estimator"),
+                               params.get("estimator", "exact"), task.n_responses)
+            if task.n_responses**g > MAX_TUPLES:  # the exact expected update is out of reach: no target
+                how, notes = (f"none computed: the exact expected update sums over {task.n_responses}^{g} groups, "
+                              f"more than {MAX_TUPLES}"), []
+            else:
+                target, how, notes = group_update_target(env, beta=beta, group_size=g,
+                                                         advantage=params.get("advantage", "standardised"),
+                                                         kl=params.get("kl", "estimator"))
+            method["target_notes"] = notes
         elif name == "best_of_n":
             if rewards is None:
                 raise ValueError(f"method=best_of_n needs rewards and task {task.name!r} has none; use a task "
@@ -222,6 +243,8 @@ class MethodView:
                     "dominates its regularisation and gradient steps circle the equilibrium; the default "
                     "method.update=fixed_point does not (or lower optim.lr roughly in proportion to beta and raise "
                     "train.steps)")
+        elif name == "group":
+            summary.update(self.group_fields(pi))
         elif name == "best_of_n":
             n = self.method.get("n", 4)
             kl_bon = scipy.special.rel_entr(self.target, pi).sum(1)
@@ -241,6 +264,21 @@ class MethodView:
         summary.update(verdict_fields(summary, result.history,
                                       tolerance=getattr(self.session, "tolerance", REACHED_TOLERANCE)))
         return summary
+
+    def group_fields(self, pi: np.ndarray) -> dict:
+        """method=group: the KL-regularised optimum pi_ref e^{r / beta} beside the update's stationary
+        point, and the TV between them (how far the group normalisation moves the answer)."""
+        task = self.task
+        regularised = kl_optimum(task.reference, self.rewards, self.session.beta)
+        apart = None if self.target is None else total_variation(self.target, regularised, task.prompt_weights)
+        notes = list(self.method.get("target_notes", []))
+        if apart is not None:
+            notes.append(f"the update's stationary point lies TV {apart:.3g} from pi_ref e^{{r / beta}} "
+                         f"(method.advantage={self.method.get('advantage', 'standardised')}, "
+                         f"method.kl={self.method.get('kl', 'estimator')})")
+        return {"optimum_kind": "stationary point", "kl_regularised_optimum": per_prompt(regularised),
+                "tv_optimum_to_kl_regularised_optimum": apart,
+                "tv_to_kl_regularised_optimum": total_variation(pi, regularised, task.prompt_weights), "notes": notes}
 
     def _format(self, p: np.ndarray) -> str:
         return "; ".join("[" + ", ".join(f"{v:.4f}" for v in row) + "]" for row in p)

@@ -1,0 +1,239 @@
+"""The exact optimum (or stationary point) of any group objective on a finite task, with a certificate.
+
+A group objective ``ell(group, beta) -> (B,)`` on a population of weighted groups
+(:class:`toy_tasks.finite.feedback.WeightedGroups`: groups b of prompt x_b, members m_b, feedback,
+weight w_b) has the population loss over the simplex
+
+    L(pi) = sum_b w_b ell(log pi[x_b, m_b], log ref[x_b, m_b], lengths, feedback_b)
+
+with the whole population as one batch (so that a statistic of the batch, such as KTO's reference
+point, is its population value). In the softmax chart pi_x = softmax(z_x):
+
+- an objective without a stop-gradient: L is minimised per prompt (the groups of different prompts
+  share nothing) by the pair solver's machinery, :mod:`toy_tasks.exact.pairs`: its trust-region
+  Newton solve, its continuation along a descent ray to a boundary infimum, its seeded starts and
+  its agreement test (non-unique minimisers, distinct local minima; where the first starts reach
+  different values, :data:`NONCONVEX_STARTS` starts in all before the lowest is reported: a wider
+  search, not a proof of global optimality). The certificate ``residual`` is max |dL/dz|, as for pairs.
+- an objective that holds a statistic without gradient (``GroupObjective.stop_gradient``: KTO's
+  reference point, BCO's reward shift): gradient descent does not minimise L; it stops where the
+  gradient *with the detached part held at its current value* vanishes. That semi-gradient is what
+  torch's autograd returns through ``.detach()``; its zero is found jointly over all prompts (the
+  statistic couples them) by damped Newton steps on the semi-gradient with its Jacobian, from the
+  same seeded starts. The answer is a stationary point, certified by the semi-gradient's residual
+  and reported as such (``Optimum.method``; ``optimum_kind`` in summary.json), never as a minimiser.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.special
+import torch
+
+from polopt.losses.group_objective import GroupObjective, GroupScores
+from toy_tasks.exact.margin import Optimum
+from toy_tasks.exact.pairs import CERTIFIED, GRADIENT_TOLERANCE, STARTS, _agree, _solve_prompt, _starts
+
+Tensor = torch.Tensor
+NEWTON_STEPS = 200  # damped Newton steps of a stationary-point solve from one start
+NONCONVEX_STARTS = 16  # seeded starts in all once the first starts reach different values (a non-convex objective)
+VANISHED = 1e-9  # a stationary point giving a response less probability than this lies on the simplex's boundary
+STATIONARY = "stationary point"
+MINIMISER = "minimiser"
+
+
+class _Population:
+    """L as a function of the logits z (X K,) of the prompts ``prompts`` of one population, with exact
+    derivatives by autograd (float64). The gauge ``0.5 sum_x (sum_k z_xk)^2`` fixes each prompt's free
+    shift without moving pi. Offers what the pair solver's per-prompt problem offers (``value``,
+    ``grad``, ``fun``, ``hess``, ``hessp``), so that its minimiser runs on it unchanged."""
+
+    def __init__(self, objective: GroupObjective, groups, log_ref: np.ndarray, lengths: np.ndarray, beta: float):
+        self.objective, self.beta = objective, beta
+        t = lambda a, dtype=torch.float64: torch.tensor(np.asarray(a), dtype=dtype)  # noqa: E731  (copies)
+        self.shape = log_ref.shape  # (X, K)
+        self.prompt = t(groups.prompt, torch.long)[:, None]  # (N, 1)
+        self.members = t(groups.members, torch.long)  # (N, G)
+        self.weight = t(groups.weight)  # (N,)
+        self.feedback = {k: t(v, torch.long if k == "ranks" else torch.float64) for k, v in groups.feedback().items()}
+        self.ref = t(log_ref)[self.prompt, self.members]  # (N, G)
+        self.lengths = t(lengths)[self.prompt, self.members]  # (N, G)
+        self.log_ref = t(log_ref).reshape(-1)
+
+    def loss_at(self, log_pi: Tensor) -> Tensor:
+        """L at log-probabilities (X, K), a scalar."""
+        group = GroupScores(log_pi[self.prompt, self.members], self.ref, self.lengths,
+                            torch.ones_like(self.ref, dtype=torch.bool), weight=self.weight, **self.feedback)
+        return (self.weight * self.objective(group, self.beta)).sum()
+
+    def loss(self, z: Tensor) -> Tensor:
+        return self.loss_at(torch.log_softmax(z.reshape(self.shape), dim=1))
+
+    def _gauge(self, z: np.ndarray) -> np.ndarray:
+        return np.repeat(z.reshape(self.shape).sum(1), self.shape[1])  # each prompt's sum, on its logits
+
+    def value(self, z: np.ndarray) -> float:
+        with torch.no_grad():
+            return float(self.loss(torch.as_tensor(z, dtype=torch.float64)))
+
+    def grad(self, z: np.ndarray) -> np.ndarray:
+        """dL/dz (X K,): through a detached statistic, the gradient with it held fixed."""
+        zt = torch.as_tensor(z, dtype=torch.float64).requires_grad_(True)
+        (g,) = torch.autograd.grad(self.loss(zt), zt)
+        return g.numpy()
+
+    def fun(self, z: np.ndarray) -> tuple[float, np.ndarray]:
+        gauge = z.reshape(self.shape).sum(1)
+        return self.value(z) + 0.5 * float((gauge**2).sum()), self.grad(z) + self._gauge(z)
+
+    def hess(self, z: np.ndarray) -> np.ndarray:
+        """The Jacobian of :meth:`grad` plus the gauge's (a block of ones per prompt); symmetric (the
+        Hessian) unless the objective detaches a statistic."""
+        zt = torch.as_tensor(z, dtype=torch.float64)
+        jac = torch.autograd.functional.jacobian(lambda v: torch.autograd.grad(self.loss(v), v, create_graph=True)[0],
+                                                 zt)
+        return jac.numpy() + np.kron(np.eye(self.shape[0]), np.ones((self.shape[1],) * 2))
+
+    def hessp(self, z: np.ndarray, p: np.ndarray) -> np.ndarray:
+        return self.hess(z) @ p
+
+
+def population_value(objective: GroupObjective, groups, h: np.ndarray, reference: np.ndarray, lengths: np.ndarray,
+                     *, beta: float) -> float:
+    """L at log-ratios h (X, K) (the policy pi ∝ pi_ref e^h)."""
+    log_ref = np.log(reference)
+    return _Population(objective, groups, log_ref, lengths, beta).value((log_ref + h).reshape(-1))
+
+
+def _prompt_groups(groups, x: int):
+    """The groups of prompt x, renumbered as the only prompt (0)."""
+    keep = groups.prompt == x
+    out = groups.take(keep, groups.weight[keep])
+    return type(out)(out.kind, np.zeros(int(keep.sum()), dtype=np.int64), out.members, out.weight, **out.feedback())
+
+
+def _interior_if_nothing_vanished(run: dict, k: int) -> dict:
+    """A run the pair solver sent along a descent ray that kept every response's mass is a finite
+    minimiser: at an optimal value of 0 (EXO's) float64 noise alone can make the ray look falling."""
+    if not run["finite"] and run["support"] is not None and len(run["support"]) == k:
+        return {**run, "finite": True, "support": None}
+    return run
+
+
+def _runs_from(problem: _Population, inits: list[np.ndarray]) -> list[dict]:
+    """The pair solver's run (minimise, follow a boundary ray) from each start, kink search off."""
+    k = problem.shape[1]
+    return [_interior_if_nothing_vanished(_solve_prompt(problem, z0, kink_search=False), k) for z0 in inits]
+
+
+def _minimum(objective, groups, reference, lengths, beta, starts, seed) -> tuple[list[dict], list[str], bool]:
+    """Per prompt: the pair solver's runs from seeded starts; (the best run per prompt, notes, unique)."""
+    best_runs, notes, unique = [], [], True
+    log_ref = np.log(reference)
+    for x in range(reference.shape[0]):
+        problem = _Population(objective, _prompt_groups(groups, x), log_ref[x:x + 1], lengths[x:x + 1], beta)
+        runs = _runs_from(problem, _starts(log_ref[x], starts, seed + x))
+        values = [r["value"] for r in runs]
+        if max(values) - min(values) > 1e-9 * (1.0 + abs(min(values))):  # not convex: search wider before choosing
+            runs += _runs_from(problem, _starts(log_ref[x], NONCONVEX_STARTS, seed + 1000 + x)[1:])
+        runs = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
+        best = min(runs, key=lambda r: r["value"])
+        unique &= _agree(runs, best, notes, x)
+        best_runs.append(best)
+    return best_runs, notes, unique
+
+
+def newton_on_field(problem, z: np.ndarray) -> dict:
+    """Damped Newton on a field (``problem.grad``: the semi-gradient here, the expected update of
+    ``method=group`` in :mod:`toy_tasks.methods.group_target`; plus the gauge) from z: each step solves
+    with the Jacobian ``problem.hess`` (least squares where singular) and is halved until the residual's
+    norm falls. Returns z, the value and the residual max |field|."""
+    def residual(v):
+        return problem.grad(v) + problem._gauge(v)
+
+    r = residual(z)
+    for _ in range(NEWTON_STEPS):
+        if np.abs(problem.grad(z)).max() <= GRADIENT_TOLERANCE:
+            break
+        step = -np.linalg.lstsq(problem.hess(z), r, rcond=None)[0]
+        t = 1.0
+        while t > 1e-8:
+            trial = residual(z + t * step)
+            if np.all(np.isfinite(trial)) and np.linalg.norm(trial) < (1.0 - 1e-4 * t) * np.linalg.norm(r):
+                break
+            t *= 0.5
+        if t <= 1e-8:
+            break
+        z, r = z + t * step, trial
+    return {"z": z, "value": problem.value(z), "residual": float(np.abs(problem.grad(z)).max())}
+
+
+def _stationary(objective, groups, reference, lengths, beta, starts, seed) -> tuple[dict, list[str], bool]:
+    """The joint stationary point over all prompts from seeded starts; (the run of least residual among
+    the certified ones, notes, unique)."""
+    log_ref = np.log(reference)
+    problem = _Population(objective, groups, log_ref, lengths, beta)
+    rng = np.random.default_rng(seed)
+    inits = [log_ref] + [log_ref + rng.standard_normal(log_ref.shape) for _ in range(starts - 1)]
+    runs = [newton_on_field(problem, z0.reshape(-1)) for z0 in inits]
+    certified = [r for r in runs if r["residual"] <= CERTIFIED]
+    policy = lambda r: scipy.special.softmax(r["z"].reshape(log_ref.shape), axis=1)  # noqa: E731
+    interior = [r for r in certified if policy(r).min() >= VANISHED]  # saturation near a face also zeroes it
+    best = min(interior or certified or runs, key=lambda r: r["residual"])
+    notes, unique = [], True
+    pis = [policy(r) for r in interior]
+    if len(pis) > 1:
+        spread = max(0.5 * np.abs(p - pis[0]).sum(1).max() for p in pis)
+        if spread > 1e-6:
+            unique = False
+            notes.append(f"the starts reached stationary points up to TV {spread:.3g} apart: several stationary "
+                         "points; the one of least residual is reported")
+    if len(certified) < len(runs):
+        notes.append(f"{len(runs) - len(certified)} of {len(runs)} starts did not reach a stationary point")
+    return best, notes, unique
+
+
+def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengths: np.ndarray, *, beta: float,
+                 starts: int = STARTS, seed: int = 0) -> Optimum:
+    """The exact target of a group objective on weighted groups (see the module docstring): the
+    minimiser, or the stationary point of an objective with a stop-gradient. ``reference``,
+    ``lengths``: (X, K). The Optimum's ``logratios`` are log pi* - log pi_ref, centred per prompt; its
+    ``method`` starts with "minimiser" or "stationary point"."""
+    reference, lengths = (np.asarray(a, dtype=np.float64) for a in (reference, lengths))
+    log_ref, x_count, k = np.log(reference), *reference.shape
+    components = [np.zeros(k, dtype=int)] * x_count
+    if objective.stop_gradient:
+        best, notes, unique = _stationary(objective, groups, reference, lengths, beta, starts, seed)
+        z = best["z"].reshape(x_count, k)
+        pi = scipy.special.softmax(z, axis=1)
+        finite = bool(pi.min() >= VANISHED)  # saturated terms have no gradient near a face of the simplex either
+        support = [[int(i) for i in np.flatnonzero(row >= VANISHED)] for row in pi]
+        residual, value = best["residual"], best["value"]
+        method = (f"{STATIONARY}: the gradient with the detached statistic held fixed is zero (damped Newton on it, "
+                  f"{starts} seeded starts, torch autograd float64); training stops here, not at a minimiser")
+    else:
+        runs, notes, unique = _minimum(objective, groups, reference, lengths, beta, starts, seed)
+        z = np.stack([r["z"] for r in runs])
+        finite = all(r["finite"] for r in runs)
+        support = [r["support"] if not r["finite"] else list(range(k)) for r in runs]
+        residual, value = max(r["residual"] for r in runs), sum(r["value"] for r in runs)
+        method = (f"{MINIMISER}: trust-region Newton in the softmax logits per prompt (the pair solver's, scipy "
+                  f"trust-exact, torch autograd float64), {starts} seeded starts")
+    if not finite:
+        where = (f"{STATIONARY} on the simplex's boundary: the semi-gradient vanishes only as some probabilities fall "
+                 "to 0 (saturated terms)" if objective.stop_gradient else
+                 f"{MINIMISER}: no finite optimum, the infimum lies on the simplex's boundary")
+        return Optimum(False, None, value, where, residual, False, support, components,
+                       notes + ["some responses' probabilities fall to 0 in the limit; 'limit_support' lists, per "
+                                "prompt, the responses that keep mass"])
+    h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
+    if residual > CERTIFIED:
+        notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); "
+                     "reached_optimum is null")
+    return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes,
+                   certified=residual <= CERTIFIED)
+
+
+def target_kind(optimum: Optimum) -> str:
+    """"stationary point" or "minimiser", as :func:`solve_groups` found it."""
+    return STATIONARY if optimum.method.startswith(STATIONARY) else MINIMISER

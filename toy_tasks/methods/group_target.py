@@ -1,0 +1,97 @@
+"""The exact target of group-relative updates (``method=group``) on a finite task: the stationary
+point of the expected update.
+
+The expected update of :mod:`polopt.methods.group` is minus the gradient of its surrogate in the
+policy's log-probabilities with the sampling policy (its tuple probabilities, its rewards' KL part)
+held fixed; in the softmax chart its zero is solved for from seeded starts: Euler steps along the update itself
+until it is small (the update also vanishes at every deterministic policy, where Newton from afar
+would run), then the same damped Newton steps as the stop-gradient group objectives
+(:func:`toy_tasks.exact.groups.newton_on_field`) with the Jacobian of the whole field by autograd;
+certified by the update's residual. Several distinct stationary points are reported as such.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.special
+import torch
+
+from polopt.methods.environment import FiniteEnvironment
+from polopt.methods.group import surrogate
+from toy_tasks.exact.groups import VANISHED, newton_on_field
+from toy_tasks.exact.pairs import CERTIFIED, STARTS
+
+FLOW_RATE = 1.0  # first Euler step of the update flow in the logits; grown by 1.2 per step, halved on overshoot
+FLOW_MAX_RATE = 4.0
+FLOW_STEPS = 4_000
+FLOW_TOLERANCE = 1e-4  # then damped Newton on the update takes over
+
+
+class _UpdateField:
+    """The expected update at logits z (X K,) as the solver's problem: ``grad`` is minus the update,
+    ``hess`` its Jacobian plus the gauge's, ``value`` the regularised objective's surrogate."""
+
+    def __init__(self, env: FiniteEnvironment, keys: dict):
+        self.env, self.keys = env, keys
+        self.shape = tuple(env.reference.shape)
+
+    def field(self, z: torch.Tensor) -> torch.Tensor:
+        log_pi = torch.log_softmax(z.reshape(self.shape), dim=1)
+        moving = log_pi + 0.0  # the differentiated copy; log_pi itself is the held policy
+        (g,) = torch.autograd.grad(surrogate(moving, log_pi, self.env, **self.keys), moving, create_graph=True)
+        pi = log_pi.exp()
+        return (g - pi * g.sum(1, keepdim=True)).reshape(-1)  # chain rule through log_softmax: d/dz
+
+    def _gauge(self, z: np.ndarray) -> np.ndarray:
+        return np.repeat(z.reshape(self.shape).sum(1), self.shape[1])
+
+    def grad(self, z: np.ndarray) -> np.ndarray:
+        return self.field(torch.tensor(z, dtype=torch.float64, requires_grad=True)).detach().numpy()
+
+    def hess(self, z: np.ndarray) -> np.ndarray:
+        jac = torch.autograd.functional.jacobian(self.field, torch.as_tensor(z, dtype=torch.float64))
+        return jac.numpy() + np.kron(np.eye(self.shape[0]), np.ones((self.shape[1],) * 2))
+
+    def value(self, z: np.ndarray) -> float:
+        return 0.0  # the update is no gradient of one loss: nothing to report but its residual
+
+
+def _flow(problem: _UpdateField, z: np.ndarray) -> np.ndarray:
+    """Follow the expected update itself (Euler steps, halved where the update turns back) until it is small, so
+    that Newton starts near the stationary point training reaches: the update also vanishes at every
+    deterministic policy (a group of one response has no advantage), and Newton from afar runs there."""
+    rate, field = FLOW_RATE, problem.grad(z)
+    for _ in range(FLOW_STEPS):
+        if np.abs(field).max() <= FLOW_TOLERANCE:
+            break
+        trial = z - rate * field
+        ahead = problem.grad(trial)
+        if float(ahead @ field) < 0.0:  # the update turned back: the step overshot; shorter, and again
+            rate *= 0.5
+            continue
+        z, field, rate = trial, ahead, min(1.2 * rate, FLOW_MAX_RATE)
+    return z
+
+
+def group_update_target(env: FiniteEnvironment, *, beta: float, group_size: int, advantage: str, kl: str,
+                        starts: int = STARTS, seed: int = 0) -> tuple[np.ndarray | None, str, list[str]]:
+    """(the stationary policy (X, K) or None, how it was found, notes)."""
+    problem = _UpdateField(env, dict(beta=beta, group_size=group_size, advantage=advantage, kl=kl))
+    log_ref = env.reference.numpy()
+    rng = np.random.default_rng(seed)
+    inits = [log_ref] + [log_ref + rng.standard_normal(log_ref.shape) for _ in range(starts - 1)]
+    runs = [newton_on_field(problem, _flow(problem, z0.reshape(-1))) for z0 in inits]
+    policies = [scipy.special.softmax(r["z"].reshape(problem.shape), axis=1) for r in runs]
+    good = [(r, p) for r, p in zip(runs, policies, strict=True) if r["residual"] <= CERTIFIED and p.min() >= VANISHED]
+    how = (f"stationary point of the expected update (damped Newton on it, {starts} seeded starts, torch autograd "
+           "float64)")
+    if not good:
+        residuals = ", ".join(f"{r['residual']:.2g}" for r in runs)
+        return None, how + ": none certified in the simplex's interior", [
+            f"no start reached an interior stationary point (residuals {residuals})"]
+    notes = []
+    spread = max(0.5 * np.abs(p - good[0][1]).sum(1).max() for _, p in good)
+    if spread > 1e-6:
+        notes.append(f"the starts reached stationary points up to TV {spread:.3g} apart: several stationary points; "
+                     "the one from the reference start (or the first certified) is reported")
+    return good[0][1], how + f", residual {good[0][0]['residual']:.2g}", notes
