@@ -132,8 +132,8 @@ def test_sign_error_is_flagged_as_rewarding_the_loser(tasks):
     assert "negative for p > 1/2" in report.result("pair_optimum").reason
     scale = report.result("scale")
     assert scale.status == "fail" and "logistic loss with the sign of the margin flipped" in scale.reason
-    assert report.result("population:bradley_terry").status == "fail"
-    assert "prefers the losers" in report.result("population:bradley_terry").reason
+    population = report.result("population:bradley_terry")  # it reaches its own (wrong-way) optimum: a warning
+    assert population.status == "warn" and "prefers the losers" in population.reason
 
 
 def test_sign_error_in_a_squared_loss():
