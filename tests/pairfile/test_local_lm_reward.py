@@ -157,3 +157,8 @@ def test_bad_input_is_one_line(fitted, tmp_path, capsys):
     with pytest.raises(ValueError, match=r"evaluate.reward: .*stale.pt was fitted for weights '[0-9a-f]+', but this "
                                          r"run has '[0-9a-f]+'"):
         load_lm_reward(stale)
+    with pytest.raises(ValueError, match=r"task=pairs fits a scalar head on the tiny transformer or on model=local_lm; "
+                                         r"model=tabular cannot"):
+        from polopt.pairfile.task import pair_task
+
+        pair_task(str(fitted["pairs"])).fit_reward(mode="sampled", n_pairs=None, seed=0, model={"kind": "tabular"})
