@@ -342,7 +342,9 @@ def main(argv: list[str]) -> int:
         prog="polopt compare",
         description="Train several losses / methods on one task and tabulate them side by side: KL to the "
                     "reference, win rate over the reference, expected reward, TV to each run's exact optimum "
-                    "and to the Nash equilibrium, steps, seconds. Writes comparison.txt/.csv/.json/.png.",
+                    "and to the Nash equilibrium, steps, seconds (on a pair file, task=pairs: loss, margin_mean, "
+                    "pair_accuracy, winner and loser log-ratios, steps, seconds). Writes "
+                    "comparison.txt/.csv/.json/.png.",
         epilog="example: polopt compare task=nontransitive loss=logistic,squared,hinge "
                "method=offline,selfplay beta=0.5")
     parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train'; comma lists sweep; "
