@@ -14,6 +14,13 @@ the optimum does: the winners' mean log-ratio (likelihood displacement) and the
 mean response length against the reference's (length exploitation); steps and
 seconds. Pair objectives compare as margin losses do: ``loss=divergence_forward_kl,length_normalised_free``.
 
+A pair file (``task=pairs``, with the built-in transformer or ``model=local_lm``) has no exact optimum,
+no population to measure a win rate on and no sample of the policy to estimate a KL from: when no run
+has those measures the table shows what every pair run's summary.json holds instead (:data:`PAIR_SHOWN`:
+the final loss over every accepted pair, ``margin_mean``, ``pair_accuracy``, the winners' and losers'
+mean log-ratios, steps, seconds), and the plot those (``polopt evaluate RUN`` samples from a local LM
+run's policy).
+
 Why a loop over Hydra's compose API rather than Hydra's multirun sweeper: the
 table needs every run's summary in one process, which the sweeper's launcher
 does not hand back to the app; the loop also skips duplicate runs (methods other
@@ -43,6 +50,22 @@ SHOWN = (("beta", "g"), ("kl_to_reference", ".4f"), ("win_rate_over_reference", 
          ("tv_to_optimum", ".2e"), ("tv_to_equilibrium", ".2e"), ("reached_optimum", ""),
          ("optimum_logratio_winner", ".4f"), ("optimum_mean_length", ".3f"), ("reference_mean_length", ".3f"),
          ("steps", "d"), ("seconds", ".2f"))
+# a pair file's runs (no exact target, no population): their summaries' own statistics over the accepted pairs
+PAIR_COLUMNS = ("run", "method", "loss_name", "beta", "loss", "margin_mean", "pair_accuracy", "logratio_winner",
+                "logratio_loser", "steps", "seconds")
+PAIR_SHOWN = (("beta", "g"), ("loss", ".4f"), ("margin_mean", ".4f"), ("pair_accuracy", ".4f"),
+              ("logratio_winner", ".4f"), ("logratio_loser", ".4f"), ("steps", "d"), ("seconds", ".2f"))
+LEGEND = ("kl_to_reference: KL(pi || pi_ref); win_rate_over_reference: P(pi > pi_ref); tv_to_optimum: TV to "
+          "the run's own exact target; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
+          "optimum_logratio_winner: the optimum's mean log-ratio of preferred responses (below 0: they "
+          "lose probability, likelihood displacement); optimum_mean_length, reference_mean_length: mean "
+          "response length in tokens under the optimum and under the reference; reached_optimum: tv_to_optimum "
+          "within the run's tolerance (summary.json)")
+PAIR_LEGEND = ("over every accepted pair, with the final policy against the reference: loss: the run's loss; "
+               "margin_mean: the mean margin log-ratio(winner) - log-ratio(loser); pair_accuracy: the share of "
+               "pairs with a positive margin; logratio_winner, logratio_loser: the mean log pi/pi_ref of winners and "
+               "of losers (winners below 0: likelihood displacement). A pair file has no exact optimum and no "
+               "sample of the policy, so no TV or KL column: polopt evaluate RUN samples from a local LM run")
 SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not written out in the notes
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
@@ -115,11 +138,17 @@ def label(summary: dict) -> str:
     return method
 
 
-def row(name: str, summary: dict) -> dict:
+def row(name: str, summary: dict, columns: tuple[str, ...] = COLUMNS) -> dict:
     method = summary.get("method", "offline")
     loss = summary.get("loss_name") if method == "offline" else summary.get("method_config", {}).get("loss")
     return {"run": name, "method": method, "loss_name": loss, "beta": summary["beta"],
-            **{k: summary.get(k) for k in COLUMNS[4:]}}
+            **{k: summary.get(k) for k in columns[4:]}}
+
+
+def on_pair_file(summaries: list[dict]) -> bool:
+    """Whether every run trained on a pair file with none of the exact measures (see the module docstring)."""
+    exact = ("kl_to_reference", "win_rate_over_reference", "tv_to_optimum")
+    return all("margin_mean" in s and all(s.get(k) is None for k in exact) for s in summaries)
 
 
 def equilibrium_notes(rows: list[dict], summaries: list[dict]) -> list[str]:
@@ -150,18 +179,13 @@ def _fmt(value, spec: str = ".3g") -> str:
     return "-" if value is None else format(value, spec)
 
 
-def render(rows: list[dict], notes: list[str], task: str) -> str:
-    head = ["run", *(key for key, _ in SHOWN)]
-    body = [[r["run"], *(_cell(r[key], spec) for key, spec in SHOWN)] for r in rows]
+def render(rows: list[dict], notes: list[str], task: str, *, shown=SHOWN, legend: str = LEGEND) -> str:
+    head = ["run", *(key for key, _ in shown)]
+    body = [[r["run"], *(_cell(r[key], spec) for key, spec in shown)] for r in rows]
     widths = [max(len(line[c]) for line in [head, *body]) for c in range(len(head))]
     lines = [f"task {task}"] + ["  ".join(cell.ljust(w) for cell, w in zip(line, widths, strict=True))
                                 for line in [head, *body]]
-    lines += ["", "kl_to_reference: KL(pi || pi_ref); win_rate_over_reference: P(pi > pi_ref); tv_to_optimum: TV to "
-                  "the run's own exact target; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
-                  "optimum_logratio_winner: the optimum's mean log-ratio of preferred responses (below 0: they "
-                  "lose probability, likelihood displacement); optimum_mean_length, reference_mean_length: mean "
-                  "response length in tokens under the optimum and under the reference; reached_optimum: tv_to_optimum "
-                  "within the run's tolerance (summary.json)"]
+    lines += ["", legend]
     lines += [f"note: {n}" for n in notes]
     return "\n".join(lines)
 
@@ -209,6 +233,36 @@ def plot(rows: list[dict], path: Path, task: str) -> Path:
     return path
 
 
+def plot_pairs(rows: list[dict], path: Path, task: str) -> Path:
+    """One PNG for a pair file's runs: each run's pair accuracy, and its winners' against its losers' log-ratio."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5))
+    x = range(len(rows))
+    left.bar(list(x), [r["pair_accuracy"] for r in rows])
+    left.set_xticks(list(x), [f"{r['run']}\nbeta={r['beta']:g}" for r in rows], rotation=30, ha="right", fontsize=8)
+    left.set_ylim(0, 1)
+    left.set_ylabel("pair_accuracy (margin > 0)")
+    left.set_title(f"{task}: pairs the policy orders as the file does")
+    for r in rows:
+        right.scatter(r["logratio_loser"], r["logratio_winner"], s=40)
+        right.annotate(r["run"], (r["logratio_loser"], r["logratio_winner"]), textcoords="offset points",
+                       xytext=(5, 4), fontsize=8)
+    right.axhline(0.0, color="grey", linewidth=1)
+    right.axvline(0.0, color="grey", linewidth=1)
+    right.set_xlabel("logratio_loser: mean log pi/pi_ref of losers")
+    right.set_ylabel("logratio_winner: mean log pi/pi_ref of winners")
+    right.set_title("where the margin comes from")
+    right.grid(alpha=0.3)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
 def _plot_traits(ax, rows: list[dict]) -> None:
     """Each run's optimum: mean length against the reference's (x) and the winners' log-ratio (y)."""
     shown = [r for r in rows if r.get("optimum_mean_length") is not None]
@@ -242,7 +296,7 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
         raise ValueError(f"polopt compare compares margin and pair losses on pairs; {what} trains on groups: run "
                          "polopt train task.feedback=KIND for each (docs/guides/feedback-beyond-pairs.md)")
     out.mkdir(parents=True, exist_ok=True)
-    rows, summaries, task = [], [], ""
+    summaries, task = [], ""
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         for number, combo in enumerate(tqdm(runs, desc="compare", disable=not progress)):
             cfg = compose("config", overrides=[*rewrite_overrides(combo), "train.progress=false"])
@@ -250,18 +304,20 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
                 summary = run(cfg, out / f"{number:02d}")
             (out / f"{number:02d}" / "report.txt").write_text(text.getvalue(), encoding="utf-8")
             task = summary.get("task", "")
-            rows.append(row(label(summary), summary))
             summaries.append(summary)
+    pairs_only = on_pair_file(summaries)
+    columns = PAIR_COLUMNS if pairs_only else COLUMNS
+    rows = [row(label(s), s, columns) for s in summaries]
     names = [r["run"] for r in rows]
     for r in rows:  # runs that differ in something else than method and loss get their folder number
         if names.count(r["run"]) > 1:
             r["run"] = f"{r['run']} #{rows.index(r):02d}"
-    notes = merge_notes(overrides) + equilibrium_notes(rows, summaries)
-    table = render(rows, notes, task)
+    notes = merge_notes(overrides) + ([] if pairs_only else equilibrium_notes(rows, summaries))
+    table = render(rows, notes, task, **({"shown": PAIR_SHOWN, "legend": PAIR_LEGEND} if pairs_only else {}))
     result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
               "notes": notes}
-    write_tables(out / "comparison", table, rows, COLUMNS, result)
-    plot(rows, out / "comparison.png", task)
+    write_tables(out / "comparison", table, rows, columns, result)
+    (plot_pairs if pairs_only else plot)(rows, out / "comparison.png", task)
     learned = overoptimisation.rows_of_runs(rows, summaries)  # runs with method.reward=PATH
     if learned:
         table += "\n\n" + overoptimisation.render(learned, f"{task}: true and learned reward against KL")
@@ -286,7 +342,9 @@ def main(argv: list[str]) -> int:
         prog="polopt compare",
         description="Train several losses / methods on one task and tabulate them side by side: KL to the "
                     "reference, win rate over the reference, expected reward, TV to each run's exact optimum "
-                    "and to the Nash equilibrium, steps, seconds. Writes comparison.txt/.csv/.json/.png.",
+                    "and to the Nash equilibrium, steps, seconds (on a pair file, task=pairs: loss, margin_mean, "
+                    "pair_accuracy, winner and loser log-ratios, steps, seconds). Writes "
+                    "comparison.txt/.csv/.json/.png.",
         epilog="example: polopt compare task=nontransitive loss=logistic,squared,hinge "
                "method=offline,selfplay beta=0.5")
     parser.add_argument("overrides", nargs="*", help="Hydra overrides as for 'polopt train'; comma lists sweep; "

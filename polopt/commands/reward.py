@@ -6,7 +6,8 @@ The same ``key=value`` overrides as ``polopt train`` (Hydra's compose API on
 conf/config.yaml), plus the ``reward`` block (``reward.l2``, ``reward.heldout``,
 ``reward.bins``, ``reward.steps``, ``reward.lr``). The task does the fitting
 (``task.fit_reward(...)``: a table on finite tasks, a scalar head on the tiny
-transformer for the sequence task) and returns the summary and the file's fields;
+transformer for the sequence task and pair files, a linear head on a local causal LM's last hidden
+state for ``task=pairs model=local_lm``) and returns the summary and the file's fields;
 this module writes ``reward.pt``, ``summary.json`` and ``config.yaml`` into the
 output folder. Give ``method.reward=OUT/reward.pt`` to ``method=best_of_n`` or
 ``method=rl`` to optimise against it.
@@ -59,7 +60,8 @@ def main(argv: list[str]) -> int:
     parser = argparse.ArgumentParser(
         prog="polopt reward",
         description="Fit a Bradley–Terry reward model by maximum likelihood to a task's pairs: a table of rewards per "
-                    "prompt on finite tasks, a scalar head on the tiny transformer for task=sequence. Writes "
+                    "prompt on finite tasks, a scalar head on the tiny transformer for task=sequence and task=pairs, "
+                    "a linear head on a local causal LM's last hidden state for task=pairs model=local_lm. Writes "
                     "reward.pt (give it to method.reward=PATH) and summary.json (rewards, pair_counts, "
                     "heldout_accuracy, calibration_error, the distance to the true rewards).",
         epilog="example: polopt reward task=bradley_terry task.mode=sampled task.n_pairs=2000 train.seed=0 "

@@ -8,7 +8,7 @@ block designs, 1952). Only differences of r within a prompt are identified.
 This module owns what every kind of reward model shares:
 
 - the file: ``torch.save`` of a plain dict (loaded back with
-  ``torch.load(weights_only=True)``) holding ``kind`` (``table`` or ``transformer``),
+  ``torch.load(weights_only=True)``) holding ``kind`` (``table``, ``transformer`` or ``local_lm``),
   the weights, and ``identity``, a dict describing the task and the model shape
   it was fitted for, so that a file for another task or shape is refused in one
   line (:func:`load_reward_model`);
@@ -35,7 +35,7 @@ from polopt.models.transformer import TinyTransformer
 
 FORMAT = "polopt reward model"
 VERSION = 1
-KINDS = ("table", "transformer")
+KINDS = ("table", "transformer", "local_lm")  # local_lm: polopt.methods.lm_reward
 CALIBRATION = ("expected calibration error over {bins} equal-width bins of the predicted probability that the "
                "model's favourite of a held-out pair wins, in [0.5, 1] (Naeini et al. 2015; Guo et al. 2017)")
 

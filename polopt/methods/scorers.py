@@ -15,7 +15,10 @@ prompt matters (the policy's response against the reference's). Two kinds:
   Text is encoded as its pair file was, with the tokenizer its file names (``bos + prompt``,
   ``response + eos``); a response that does not fit the head's context beside its prompt is cut on
   the right to fit (counted in ``cut``); finite-task reward tables score response indices, not text,
-  and are refused.
+  and are refused. A reward model of ``polopt reward task=pairs model=local_lm`` (a head on a local causal
+  LM, :mod:`polopt.methods.lm_reward`) encodes text by the token convention of :mod:`polopt.data.chat`
+  with its model's tokenizer (message prompts included), the response cut on the right to fit the
+  context it was fitted with.
 """
 
 from __future__ import annotations
@@ -30,6 +33,8 @@ import torch
 from polopt.data.encoding import SequenceIds, encode_prompts, encode_responses
 from polopt.data.tokenizer import load_tokenizer
 from polopt.losses.registry import import_dotted
+from polopt.methods.lm_reward import KIND as LM_KIND
+from polopt.methods.lm_reward import load_lm_reward, text_scores
 from polopt.methods.reward_model import ScalarRewardModel, load_reward_model, score
 
 SIGNATURE = "a function of (prompt, response) -> float"
@@ -89,8 +94,23 @@ def _reward_head(path: str) -> tuple[ScalarRewardModel, object, SequenceIds, int
     return head.eval(), tokenizer, ids, int(identity["context"])
 
 
+def lm_reward_scorer(path: str) -> Scorer:
+    """``evaluate.reward=PATH`` of a reward model on a local causal LM (:mod:`polopt.methods.lm_reward`)."""
+    reward, tokenizer, context = load_lm_reward(path)
+    cut: list[int] = []
+
+    def scores(prompts: list, responses: list[str]) -> list[float]:
+        values, cut_now = text_scores(reward, tokenizer, context, prompts, responses)
+        cut.extend(cut_now)
+        return values
+
+    return Scorer(f"reward model {path}", scores, cut)
+
+
 def reward_scorer(path: str) -> Scorer:
     """``evaluate.reward=PATH`` as a :class:`Scorer` (see the module docstring)."""
+    if load_reward_model(path, {}, key="evaluate.reward")["kind"] == LM_KIND:
+        return lm_reward_scorer(path)
     head, tokenizer, ids, context = _reward_head(path)
     cut: list[int] = []
 

@@ -42,8 +42,8 @@ def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed:
     if mode != "sampled":
         raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs), got {mode!r}")
     if model.get("kind") != "transformer":
-        raise ValueError(f"task=pairs fits a scalar head on the tiny transformer; model={model.get('kind')} "
-                         "cannot: give +experiment=pairs (or model=transformer)")
+        raise ValueError(f"task=pairs fits a scalar head on the tiny transformer or on model=local_lm; "
+                         f"model={model.get('kind')} cannot: give +experiment=pairs (or model=transformer)")
     tokenizer = load_tokenizer(file.tokenizer or "byte")
     data = read_pair_file(file, tokenizer=tokenizer)
     n = len(data) if n_pairs is None else min(int(n_pairs), len(data))

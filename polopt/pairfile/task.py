@@ -102,7 +102,12 @@ class PairTask:
         return session
 
     def fit_reward(self, **kwargs):
-        """``polopt reward task=pairs``: a scalar-head reward model (see :mod:`polopt.pairfile.reward`)."""
+        """``polopt reward task=pairs``: a scalar-head reward model (see :mod:`polopt.pairfile.reward`), with
+        ``model=local_lm`` a head on the local model's last hidden state (:mod:`polopt.pairfile.reward_lm`)."""
+        if (kwargs.get("model") or {}).get("kind") == "local_lm":
+            from polopt.pairfile.reward_lm import fit_lm_reward
+
+            return fit_lm_reward(self, **kwargs)
         from polopt.pairfile.reward import fit_pair_reward  # builds on the data layer, as this module does
 
         return fit_pair_reward(self.file, **kwargs)
