@@ -54,6 +54,22 @@ def _uncertified(summary: dict) -> list[str]:
             "kink it cannot search): the comparison below is with its best answer"]
 
 
+def _direction(balanced: bool, scaled_margin: float, mean_margin: float) -> tuple[list[str], list[str]]:
+    """(warnings, notes) on the direction of the trained margins. A heuristic: it holds for convex margin
+    losses (the derivation in :func:`check_population`), not for every objective, so it may only warn;
+    the verdict is the comparison with the certified optimum."""
+    if balanced:
+        return [], ["preferences balanced (no direction to check)"]
+    if scaled_margin < -STILL_MARGIN:
+        return [f"the trained policy prefers the losers: weighted mean margin {mean_margin:.4g} < 0 (a convex "
+                "margin loss never does; judged against the exact optimum)"], []
+    if scaled_margin <= STILL_MARGIN:
+        return ["the trained policy did not move from the reference (weighted mean margin "
+                f"{mean_margin:.3g}) although the winners outweigh the losers (a convex margin loss would; judged "
+                "against the exact optimum)"], []
+    return [], [f"weighted mean margin {mean_margin:.4g} > 0"]
+
+
 def check_population(loss: MarginLoss, task, *, beta: float, steps: int = 2000, optim: OptimConfig | None = None,
                      tol: float = 1e-3, name: str | None = None) -> CheckResult:
     """Train ``loss`` on ``task`` in exact mode and compare with the task's exact optimum.
@@ -88,20 +104,8 @@ def check_population(loss: MarginLoss, task, *, beta: float, steps: int = 2000, 
                            {"error": str(err)})
     facts = {key: summary.get(key) for key in FACT_KEYS}
     facts.update({"steps": result.steps, "mean_margin": mean_margin, "balanced": balanced, "tol": tol})
-    problems, notes, warnings = [], [], []
-    # 1. direction of the trained margins: a heuristic (it holds for convex margin losses, not for every
-    # objective), so it may only warn; the verdict is the comparison with the certified optimum below
-    if balanced:
-        notes.append("preferences balanced (no direction to check)")
-    elif beta * mean_margin < -STILL_MARGIN:
-        warnings.append(f"the trained policy prefers the losers: weighted mean margin {mean_margin:.4g} < 0 (a "
-                        "convex margin loss never does; judged against the exact optimum below)")
-    elif beta * mean_margin <= STILL_MARGIN:
-        warnings.append("the trained policy did not move from the reference (weighted mean margin "
-                        f"{mean_margin:.3g}) although the winners outweigh the losers (a convex margin loss "
-                        "would; judged against the exact optimum below)")
-    else:
-        notes.append(f"weighted mean margin {mean_margin:.4g} > 0")
+    problems = []
+    warnings, notes = _direction(balanced, beta * mean_margin, mean_margin)  # 1. a heuristic: it may only warn
     # 2. trained against exact
     if summary["optimum_finite"]:
         tv, gap, value = summary["tv_to_optimum"], summary["loss_gap"], summary["optimum_value"]

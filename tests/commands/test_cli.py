@@ -82,8 +82,8 @@ def test_bad_task_file_is_one_clear_line(tmp_path, case, capsys):
 
 
 @pytest.mark.parametrize("args,message", [
-    (["loss=crossentropy"], "polopt train: error: unknown loss 'crossentropy'; choose one of: chi_squared_link, "
-                            "custom, divergence_alpha"),
+    (["loss=crossentropy"], "polopt train: error: unknown loss 'crossentropy'; choose one of: anchored_lower_both, "
+                            "anchored_raise_lower, calibrated_logistic, chi_squared_link"),
     (["beta=0"], "polopt train: error: beta must be a number > 0"),
     (["beta=-2"], "polopt train: error: beta must be a number > 0"),
     (["task=file"], "task=file needs task.path=PATH"),

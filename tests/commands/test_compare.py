@@ -61,8 +61,8 @@ def test_unknown_method_is_one_line_and_exit_code_2(tmp_path, capsys):
     assert main(["compare", "method=offline,annealing", f"hydra.run.dir={tmp_path}"]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1
-    assert err.startswith("polopt compare: error: unknown method 'annealing'; choose one of: best_of_n, group, offline, "
-                          "rl, selfplay")
+    assert err.startswith("polopt compare: error: unknown method 'annealing'; choose one of: best_of_n, group, "
+                          "offline, rl, selfplay")
 
 
 def test_method_without_rewards_is_one_line(tmp_path, capsys):
