@@ -280,14 +280,14 @@ def test_the_assembled_hessian_is_autograds(name):
 def test_the_pinned_hessian_is_autograds(name):
     # the active-set problem with some responses pinned at the reference (DPO-Positive's kink): the free
     # responses form a softmax chart of their own, so the same chain rule holds on the free block
-    from toy_tasks.exact.pairs import _Pinned, _Prompt
+    from toy_tasks.exact.prompt import PromptLoss
 
     task = random_task(4, bradley_terry=True)
-    problem = _Prompt(losses.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
-                      0.7)
+    problem = PromptLoss(losses.resolve(name), task.win_weights()[0], np.log(task.reference[0]), task.lengths[0],
+                         0.7)
     pinned = np.zeros(task.n_responses, dtype=bool)
     pinned[[0, 2]] = True
-    reduced = _Pinned(problem, pinned)
+    reduced = problem.chart(pinned)
     y = np.random.default_rng(1).normal(size=int((~pinned).sum()))
     full = torch.autograd.functional.hessian(reduced.loss, torch.as_tensor(y)).numpy()
     np.testing.assert_allclose(reduced.hessian(y), full, atol=1e-12)
@@ -309,17 +309,19 @@ def test_an_answer_the_solver_cannot_certify_says_so(monkeypatch):
 
 def test_transfer_slopes_from_one_sided_partials_equal_measured_ones():
     # at the reference every winner sits at the anchor's kink max(0, -h_w) (Pal et al. 2024); the slopes of
-    # every transfer of mass, predicted from 4K one-sided partials, against a difference quotient along
-    # each transfer itself (the one-sided directional derivative, by its definition)
-    from toy_tasks.exact.pairs import _measured_slope, _Prompt, _transfer_slopes
+    # every transfer of mass, predicted from one-sided partials (per-pair gradients with one argument
+    # shifted), against a difference quotient of L along each transfer itself (the one-sided directional
+    # derivative, by its definition)
+    from toy_tasks.exact.kinks import measured_slope, transfer_slopes
+    from toy_tasks.exact.prompt import PromptLoss
 
     task = random_task(1, bradley_terry=False)
-    problem = _Prompt(losses.resolve("winner_anchored", penalty=2.0), task.win_weights()[0],
-                      np.log(task.reference[0]), task.lengths[0], 0.7)
+    problem = PromptLoss(losses.resolve("winner_anchored", penalty=2.0), task.win_weights()[0],
+                         np.log(task.reference[0]), task.lengths[0], 0.7)
     log_pi = np.log(task.reference[0])
-    predicted = _transfer_slopes(problem, log_pi)
+    predicted = transfer_slopes(problem, log_pi)
     k = task.n_responses
-    measured = np.array([[_measured_slope(problem, log_pi, i, j) if i != j else np.inf for j in range(k)]
+    measured = np.array([[measured_slope(problem, log_pi, i, j) if i != j else np.inf for j in range(k)]
                          for i in range(k)])
     np.testing.assert_allclose(predicted, measured, rtol=1e-6, atol=1e-8)
     assert predicted[np.isfinite(predicted)].min() < 0 < predicted[np.isfinite(predicted)].max()  # both sides seen

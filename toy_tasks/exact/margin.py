@@ -9,8 +9,8 @@ the optimal value, how it was found and how exact it is:
   (Azar et al. 2023). Only for population weights without label smoothing.
 - hinge: a linear programme (scipy.optimize.linprog, HiGHS); optima can be
   non-unique, so compare loss values.
-- any other loss: a trust-region Newton solve (scipy.optimize.minimize,
-  method='trust-exact') with exact gradient and Hessian from torch in float64,
+- any other loss: a damped Newton solve (:mod:`toy_tasks.exact.newton`: Cholesky
+  steps, Armijo line search) with exact gradient and Hessian from torch in float64,
   stopped on the gradient norm; the residual ``max |grad L|`` is reported.
 - existence: for losses with no finite per-pair optimum at p = 1 (logistic,
   exponential, savage) a finite minimiser exists iff the graph with an edge
@@ -36,8 +36,10 @@ import scipy.sparse.csgraph
 import torch
 
 from polopt.losses.margin import MarginLoss, has_finite_pair_optimum_at_certainty
+from toy_tasks.exact.newton import minimise
 
 GRADIENT_TOLERANCE = 1e-10  # stop the Newton solve when max |grad L| falls below this
+MAX_ITERATIONS = 500  # Newton iterations per prompt: smooth convex problems need tens
 
 
 @dataclass
@@ -112,20 +114,21 @@ def _elementwise_derivatives(loss: MarginLoss, x: torch.Tensor, order: int):
 
 
 def _loss_grad_hess(loss: MarginLoss, weights: np.ndarray, h: torch.Tensor, beta: float, order: int):
+    """L, its gradient (X, K) and Hessian (X, K, K) in h. f and its derivatives are taken on the dense
+    grid of pairs (no boolean indexing: it dominated the time at K = 364); pairs of no weight are
+    evaluated at x = 0 and dropped by ``torch.where``, so a non-finite value there never leaks."""
     w = torch.as_tensor(weights, dtype=torch.float64)  # (X, K, K)
+    weighted = w > 0
     d = h[:, :, None] - h[:, None, :]  # (X, K, K): h_i - h_j
-    mask = w > 0
-    value_e, d1, d2 = _elementwise_derivatives(loss, beta * d[mask], order)
-    value = float((w[mask] * value_e).sum())
+    value_e, d1, d2 = _elementwise_derivatives(loss, torch.where(weighted, beta * d, 0.0), order)
+    value = float(torch.where(weighted, w * value_e, 0.0).sum())
     if order == 0:
         return value, None, None
-    g_pair = torch.zeros_like(w)
-    g_pair[mask] = w[mask] * d1 * beta  # dL/d(h_i - h_j)
+    g_pair = torch.where(weighted, w * d1 * beta, 0.0)  # (X, K, K): dL/d(h_i - h_j)
     grad = g_pair.sum(2) - g_pair.sum(1)  # (X, K)
     hess = None
     if order > 1:
-        a = torch.zeros_like(w)
-        a[mask] = w[mask] * d2 * beta**2
+        a = torch.where(weighted, w * d2 * beta**2, 0.0)
         a = a + a.transpose(1, 2)  # symmetric coupling of i and j
         hess = torch.diag_embed(a.sum(2)) - a  # (X, K, K): a weighted graph Laplacian per prompt
     return value, grad.numpy(), None if hess is None else hess.numpy()
@@ -163,7 +166,8 @@ def _limit_support(w: np.ndarray, strong: np.ndarray, active: np.ndarray) -> lis
 def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray,
             labels: np.ndarray) -> tuple[np.ndarray, float]:
     """Minimise one prompt's L(h) with a gauge term 0.5 * (sum of h over each component)^2,
-    which fixes the free shift without moving the minimiser of L."""
+    which fixes the free shift without moving the minimiser of L; damped Newton with the Laplacian
+    Hessian (:mod:`toy_tasks.exact.newton`). Returns h and the residual max |grad L(h)|."""
     groups = [labels == c for c in np.unique(labels[labels >= 0])]
     gauge = np.zeros((len(labels), len(labels)))
     for g in groups:
@@ -172,23 +176,14 @@ def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray,
     gauge[inactive, inactive] = 1.0  # unidentified responses are pinned at 0
     wx = w[None]
 
-    def fun(h):
-        value, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1)
-        return value + 0.5 * h @ gauge @ h, grad[0] + gauge @ h
+    def derivatives(h):
+        value, grad, hess = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=2)
+        return value + 0.5 * h @ gauge @ h, grad[0] + gauge @ h, hess[0] + gauge
 
-    def hess(h):
-        _, _, hs = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=2)
-        return hs[0] + gauge
+    def value(h):
+        return _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=0)[0] + 0.5 * h @ gauge @ h
 
-    result = scipy.optimize.minimize(fun, h0, jac=True, hess=hess, method="trust-exact",
-                                     options={"gtol": GRADIENT_TOLERANCE, "maxiter": 2000})
-    h = result.x
-    for _ in range(5):  # polish with plain Newton steps: trust-exact may stop a little above gtol
-        _, grad = fun(h)
-        step = np.linalg.lstsq(hess(h), grad, rcond=None)[0]
-        if not np.abs(fun(h - step)[1]).max() < np.abs(grad).max():
-            break
-        h = h - step
+    h = minimise(derivatives, value, h0, tol=GRADIENT_TOLERANCE, max_iterations=MAX_ITERATIONS).x
     _, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1)
     return h, float(np.abs(grad).max())
 
@@ -225,7 +220,7 @@ def _centre(h: np.ndarray, labels: np.ndarray) -> np.ndarray:
 
 def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.ndarray | None = None,
           sampling: np.ndarray | None = None, preference: np.ndarray | None = None,
-          population: bool = False) -> Optimum:
+          population: bool = False, start: np.ndarray | None = None) -> Optimum:
     """The exact optimum of ``sum W f(beta (h_i - h_j))`` over h (see the module docstring).
 
     Args:
@@ -236,6 +231,9 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
             mu (X, K) and P (X, K, K); used for the closed forms only.
         population: True when W is the population (not empirical) weight tensor
             of those (mu, P); only then are the closed forms valid.
+        start: (X, K) log-ratios to start Newton from (a warm start: the optimum at a nearby beta,
+            as :func:`warm_start` scales it); h = 0 when None. A convex loss has one minimiser, so
+            the answer does not depend on it; a non-convex one reports the stationary point reached.
     """
     weights = np.asarray(weights, dtype=np.float64)
     n_prompts, k, _ = weights.shape
@@ -275,7 +273,8 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
 
     residual = 0.0
     for x in range(n_prompts):
-        h[x], r = _newton(loss, weights[x], beta, np.zeros(k), labels[x])
+        h0 = np.zeros(k) if start is None else np.asarray(start[x], dtype=np.float64)
+        h[x], r = _newton(loss, weights[x], beta, h0, labels[x])
         residual = max(residual, r)
     h = np.stack([_centre(h[x], labels[x]) for x in range(n_prompts)])
     notes = []
@@ -286,8 +285,16 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
         notes.append("some responses are not connected by any weighted pair; only differences "
                      "within connected sets are identified")
     return Optimum(True, h, population_loss(loss, weights, h, beta=beta),
-                   f"trust-region Newton (scipy trust-exact), gradient tolerance {GRADIENT_TOLERANCE:g}",
+                   f"Newton with line search (Cholesky, Armijo), gradient tolerance {GRADIENT_TOLERANCE:g}",
                    residual, loss.convex is not False, None, labels, notes)
+
+
+def warm_start(optimum: Optimum, beta: float, new_beta: float) -> np.ndarray | None:
+    """A start for the solve at ``new_beta`` from the optimum at ``beta``: ``h* beta / new_beta``, exact
+    wherever the optimal scaled margins ``beta (h_i - h_j)`` do not depend on beta (closed forms of
+    DPO and IPO: Rafailov et al. 2023, Azar et al. 2023) and a close start elsewhere; None when the
+    optimum is not finite."""
+    return None if optimum.logratios is None else optimum.logratios * (beta / new_beta)
 
 
 def _closed(loss, weights, beta, h, labels, method) -> Optimum:

@@ -12,11 +12,12 @@ This module minimises L in float64:
 - a margin loss f (a :class:`polopt.losses.margin.MarginLoss`) keeps the solver of :mod:`toy_tasks.exact.margin` (closed
   forms, linear programme, Newton in the log-ratios, Ford's existence test): it is the special case
   ``ell = f(beta ((w - ref_w) - (l - ref_l)))``, and :func:`exact_optimum` hands it over unchanged.
-- any other objective: pi = softmax(z) per prompt, a trust-region Newton solve in the logits z
-  (scipy.optimize.minimize, 'trust-exact' with the exact Hessian for up to :data:`DENSE_LIMIT`
-  responses, 'trust-krylov' with exact Hessian-vector products above), gradient and Hessian from
-  torch.autograd in float64, from several seeded starts (the reference and random logits) to detect
-  a non-unique minimiser or distinct local minima.
+- any other objective: pi = softmax(z) per prompt, a damped Newton solve in the logits z
+  (:mod:`toy_tasks.exact.newton`: Cholesky steps, Armijo line search), the gradient and Hessian
+  assembled in one pass from every pair's derivatives in its two log-probabilities (torch autograd
+  over the whole batch of pairs, float64) and the chain rule through log-softmax
+  (:mod:`toy_tasks.exact.prompt`), from several seeded starts (the reference and random logits) to
+  detect a non-unique minimiser or distinct local minima.
 - the certificate ``residual``: max |dL/dz| at the answer. With g = dL/dpi this is
   ``max_i pi_i |g_i - sum_j pi_j g_j|``, the gradient of L projected onto the tangent space of the
   simplex (in the softmax chart); it is 0 exactly at a stationary point in the simplex's interior.
@@ -31,6 +32,11 @@ This module minimises L in float64:
   the optimum solves ``f'(pi_i / ref_i) = r_i / beta + c`` (their Theorem; for reverse KL,
   f'(u) = log u + 1 gives DPO's pi* ∝ pi_ref e^{r / beta}), computed by :func:`divergence_optimum`
   and certified by the same residual.
+- kinks: where Newton stops with a large gradient next to log-ratios of 0 (DPO-Positive's anchor), the
+  active-set search of :mod:`toy_tasks.exact.kinks` from every start.
+
+The solver that stood here before (scipy's trust region, autograd per call) is kept unchanged in
+:mod:`toy_tasks.exact.landed.pairs`; tests and ``bench/exact_solve.py`` hold this one to it.
 """
 
 from __future__ import annotations
@@ -46,21 +52,22 @@ from tqdm.auto import tqdm
 from polopt.losses.margin import MarginLoss
 from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
 from polopt.losses.reduce import per_pair_losses
+from toy_tasks.exact import kinks
+from toy_tasks.exact.kinks import KINK_BAND, SLOPE_AGREEMENT  # noqa: F401  (part of this module's interface)
 from toy_tasks.exact.margin import Optimum, population_loss, solve
+from toy_tasks.exact.newton import newton_step
+from toy_tasks.exact.prompt import Chart, PromptLoss, minimise_chart, objective_name
 
 Tensor = torch.Tensor
 
 GRADIENT_TOLERANCE = 1e-10  # stop when max |dL/dz| falls below this
 CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is used when its gradient is this small
 CERTIFIED = 1e-7  # an answer whose gradient is larger is reported as not certified
-KINK_BAND = 1e-4  # log-ratios this close to 0 are taken to sit at an anchor term's kink
-KINK_LIMIT = 128  # above this many responses, only the start at the reference searches a kink: from a random
-#                   start at K = 364 the active set changes one transfer at a time, and the search ran over 8
-#                   minutes (killed, beside the test suite) even with the chain-rule Hessian, where the
-#                   reference start took 29 s beside it
-SLOPE_AGREEMENT = 1e-6  # a transfer's measured slope and the one its one-sided partials predict agree this well
-MAX_ITERATIONS = 300  # trust-region iterations per solve: smooth problems need tens; a kink would take them all
-DENSE_LIMIT = 1000  # above this many responses per prompt, Hessian-vector products instead of the Hessian
+MAX_ITERATIONS = 300  # Newton iterations per solve: smooth problems need tens; a kink stalls it sooner
+KINK_STALL = 6  # the first Newton solve hands over to the kink search once this many steps were refused since
+#                 its smallest gradient last halved (circling a kink); a smooth answer found there is polished
+PATIENCE = 25  # iterations without halving the smallest gradient before a solve gives up
+BISECTIONS = 64  # halvings of the bracket [-60, 60] of a closed form's log-ratio: below float64's spacing
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
 SOLVE_BAR_DELAY = 3.0  # seconds before the solve shows a progress bar (quick solves stay silent)
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
@@ -128,133 +135,62 @@ def objective_value(objective, weights: np.ndarray, h: np.ndarray, reference: np
 # ------------------------------------------------------------------ one prompt in the softmax chart
 
 
-class _Prompt:
-    """L of one prompt as a function of its logits z (K,), with exact derivatives by autograd.
-    A gauge term ``0.5 (sum z)^2`` fixes the free shift of z without moving pi."""
+def _Prompt(objective: PairLoss, w: np.ndarray, log_ref: np.ndarray, lengths: np.ndarray,  # noqa: N802
+            beta: float) -> Chart:
+    """L of one prompt in all its softmax logits z (K,): :class:`toy_tasks.exact.prompt.Chart` with no
+    response pinned (the name the landed solver gave it)."""
+    return PromptLoss(objective, w, log_ref, lengths, beta).chart()
 
-    def __init__(self, objective: PairLoss, w: np.ndarray, log_ref: np.ndarray, lengths: np.ndarray,
-                 beta: float):
-        self.objective, self.beta = objective, beta
-        # torch.tensor copies: the task's arrays may be read-only views (np.broadcast_to)
-        self.w, self.log_ref, self.lengths = (torch.tensor(np.asarray(a), dtype=torch.float64)
-                                              for a in (w, log_ref, lengths))
 
-    def loss(self, z: Tensor) -> Tensor:
-        log_pi = torch.log_softmax(z, dim=0)  # (K,)
-        return _pair_terms(self.objective, self.w, log_pi, self.log_ref, self.lengths, self.beta)
+class _Landed:
+    """A problem with the landed solver's interface (``fun``: the gauged value and gradient, ``hess``, ``value``,
+    ``grad``; e.g. the group objectives' population of :mod:`toy_tasks.exact.groups`) as this module's Newton
+    reads a :class:`toy_tasks.exact.prompt.Chart`."""
+
+    def __init__(self, problem):
+        self.problem = problem
+
+    def gauged_value(self, z: np.ndarray) -> float:
+        return float(self.problem.fun(z)[0])
+
+    def gauged_derivatives(self, z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        value, grad = self.problem.fun(z)
+        return float(value), np.asarray(grad), np.asarray(self.problem.hess(z))
 
     def value(self, z: np.ndarray) -> float:
-        with torch.no_grad():
-            return float(self.loss(torch.as_tensor(z, dtype=torch.float64)))
-
-    def value_at(self, log_pi: np.ndarray) -> float:
-        """L at the policy of log-probabilities ``log_pi`` (K,) itself."""
-        with torch.no_grad():
-            return float(_pair_terms(self.objective, self.w, torch.as_tensor(log_pi, dtype=torch.float64),
-                                     self.log_ref, self.lengths, self.beta))
+        return float(self.problem.value(z))
 
     def grad(self, z: np.ndarray) -> np.ndarray:
-        zt = torch.as_tensor(z, dtype=torch.float64).requires_grad_(True)
-        (g,) = torch.autograd.grad(self.loss(zt), zt)
-        return g.numpy()
+        return np.asarray(self.problem.grad(z))
 
-    def fun(self, z: np.ndarray) -> tuple[float, np.ndarray]:
-        zt = torch.as_tensor(z, dtype=torch.float64).requires_grad_(True)
-        value = self.loss(zt)
-        (g,) = torch.autograd.grad(value, zt)
-        shift = z.sum()
-        return float(value.detach()) + 0.5 * shift**2, g.numpy() + shift
-
-    def hess(self, z: np.ndarray) -> np.ndarray:
-        return self.hessian(z) + 1.0  # the gauge term's Hessian is the all-ones matrix
-
-    def hessian(self, z: np.ndarray) -> np.ndarray:
-        """The Hessian of L in z (K, K), assembled from each pair's second derivatives in its two
-        log-probabilities (:meth:`logpi_derivatives`) and the chain rule through log pi = z - logsumexp(z):
-        ``J^T H J - (sum G) (diag(pi) - pi pi^T)`` with ``J = I - 1 pi^T``, H and G the Hessian and
-        gradient in log pi. One pass over the pairs instead of K (autograd's full Hessian)."""
-        log_pi = torch.log_softmax(torch.as_tensor(z, dtype=torch.float64), dim=0)  # (K,)
-        grad_logpi, h = self.logpi_derivatives(log_pi)
-        return _softmax_chain_rule(log_pi.exp(), grad_logpi, h).numpy()
-
-    def logpi_derivatives(self, log_pi: Tensor) -> tuple[Tensor, Tensor]:
-        """The gradient (K,) and Hessian (K, K) of L in the log-probabilities ``log_pi`` (K,), from each
-        pair's first and second derivatives in its own winner's and loser's log-probabilities (a pair's
-        loss reads only those two: the contract)."""
-        i, j = torch.nonzero(self.w > 0, as_tuple=True)  # (E,) each
-        w = self.w[i, j]
-        a, b = log_pi[i].detach().clone().requires_grad_(True), log_pi[j].detach().clone().requires_grad_(True)
-        values = per_pair_losses(self.objective, PairScores(a, b, self.log_ref[i], self.log_ref[j], self.lengths[i],
-                                                            self.lengths[j]), beta=self.beta)  # (E,)
-        ga, gb = torch.autograd.grad(values.sum(), (a, b), create_graph=True)
-
-        def second(g, wrt):  # elementwise d g_e / d wrt_e; zeros where g does not depend on it
-            if not g.requires_grad:
-                return [torch.zeros_like(a) for _ in wrt]
-            out = torch.autograd.grad(g.sum(), wrt, retain_graph=True, allow_unused=True)
-            return [torch.zeros_like(a) if d is None else d for d in out]
-
-        haa, hab = second(ga, (a, b))
-        (hbb,) = second(gb, (b,))
-        k = len(log_pi)
-        grad_logpi = torch.zeros(k, dtype=torch.float64).index_add_(0, i, w * ga.detach()).index_add_(
-            0, j, w * gb.detach())  # (K,)
-        h = torch.zeros(k, k, dtype=torch.float64)
-        h.index_put_((i, i), w * haa.detach(), accumulate=True)
-        h.index_put_((j, j), w * hbb.detach(), accumulate=True)
-        h.index_put_((i, j), w * hab.detach(), accumulate=True)
-        h.index_put_((j, i), w * hab.detach(), accumulate=True)
-        return grad_logpi, h
-
-    def hessp(self, z: np.ndarray, p: np.ndarray) -> np.ndarray:
-        zt = torch.as_tensor(z, dtype=torch.float64)
-        _, hv = torch.autograd.functional.hvp(self.loss, zt, torch.as_tensor(p, dtype=torch.float64))
-        return hv.numpy() + p.sum()
+    def derivatives(self, z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        return self.value(z), self.grad(z), np.asarray(self.problem.hess(z))
 
 
-def _minimise(problem: _Prompt, z0: np.ndarray) -> np.ndarray:
-    """Trust-region Newton from z0 to max |dL/dz| <= GRADIENT_TOLERANCE (or the iteration limit)."""
-    k = len(z0)
-    if k <= DENSE_LIMIT:
-        kwargs = dict(hess=problem.hess, method="trust-exact")
-    else:
-        kwargs = dict(hessp=problem.hessp, method="trust-krylov")
-    result = scipy.optimize.minimize(problem.fun, z0 - z0.mean(), jac=True,
-                                     options={"gtol": GRADIENT_TOLERANCE, "maxiter": MAX_ITERATIONS}, **kwargs)
-    z = result.x
-    for _ in range(5):  # polish with plain Newton steps: trust-region methods may stop a little above gtol
-        gradient = np.abs(problem.fun(z)[1]).max()
-        if gradient <= GRADIENT_TOLERANCE:
-            break
-        candidate = z + _newton_step(problem, z)
-        if not np.abs(problem.fun(candidate)[1]).max() < gradient:
-            break
-        z = candidate
-    return z
+def _as_chart(problem) -> Chart | _Landed:
+    return problem if hasattr(problem, "gauged_derivatives") else _Landed(problem)
 
 
-def _newton_step(problem: _Prompt, z: np.ndarray) -> np.ndarray:
-    """The Newton step of the gauged problem at z (least squares where the Hessian is singular)."""
-    _, g = problem.fun(z)
-    if len(z) <= DENSE_LIMIT:
-        return -np.linalg.lstsq(problem.hess(z), g, rcond=None)[0]
-    op = scipy.sparse.linalg.LinearOperator((len(z), len(z)), matvec=lambda p: problem.hessp(z, p))
-    return -scipy.sparse.linalg.minres(op, g)[0]
+def _minimise(chart: Chart, z0: np.ndarray, stalled: int | None = None) -> np.ndarray:
+    """Newton from z0 to max |dL/dz| <= GRADIENT_TOLERANCE (or a stall, or the iteration limit)."""
+    return minimise_chart(chart, z0, tol=GRADIENT_TOLERANCE, max_iterations=MAX_ITERATIONS, patience=PATIENCE,
+                          stalled=stalled).x
 
 
-def _runs_to_boundary(problem: _Prompt, z: np.ndarray) -> np.ndarray | None:
+def _runs_to_boundary(chart: Chart, z: np.ndarray) -> np.ndarray | None:
     """A point further along a ray where L keeps falling, or None when z is a minimiser.
 
     At a finite strict minimiser the Newton step is ~0 and L does not fall along it; where the
     infimum lies on the boundary the Newton step keeps a finite length (L decays like e^{-c t}
     along the ray) and L falls strictly at every multiple of it tried. Multiples where L is no
     longer a finite number in float64 (a probability that underflowed to 0) end the ray."""
-    step = _newton_step(problem, z)
-    base = problem.value(z)
+    _, grad, hess = chart.gauged_derivatives(z)
+    step = newton_step(hess, grad)
+    base = chart.value(z)
     values, points = [base], [z]
     for t in DESCENT_RAY:
-        value = problem.value(z + t * step)
-        if not np.isfinite(value) or not _derivatives_finite(problem, z + t * step):
+        value = chart.value(z + t * step)
+        if not np.isfinite(value) or not _derivatives_finite(chart, z + t * step):
             break
         values.append(value)
         points.append(z + t * step)
@@ -266,170 +202,55 @@ def _runs_to_boundary(problem: _Prompt, z: np.ndarray) -> np.ndarray | None:
     return None
 
 
-def _derivatives_finite(problem: _Prompt, z: np.ndarray) -> bool:
-    """Whether the gradient and the Hessian (or a Hessian-vector product) are finite at z."""
-    second = problem.hess(z) if len(z) <= DENSE_LIMIT else problem.hessp(z, np.ones_like(z))
-    return bool(np.all(np.isfinite(problem.grad(z))) and np.all(np.isfinite(second)))
+def _derivatives_finite(chart: Chart, z: np.ndarray) -> bool:
+    """Whether the gradient and the Hessian are finite at z."""
+    _, grad, hess = chart.derivatives(z)
+    return bool(np.all(np.isfinite(grad)) and np.all(np.isfinite(hess)))
 
 
-def _solve_prompt(problem: _Prompt, z0: np.ndarray, kink_search: bool = True) -> dict:
-    """Minimise from z0; follow the boundary ray where there is one; search a kink where Newton stops
-    with a large gradient (``kink_search``). Returns z, the value, the residual, and (when the infimum
-    is on the boundary) the responses that keep mass in the limit."""
-    z = _minimise(problem, z0)
+def _solve_prompt(chart: Chart, z0: np.ndarray, kink_search: bool = True) -> dict:
+    """Minimise from z0; search a kink where Newton circles with a large gradient (``kink_search``),
+    returning a kinked answer as it is and polishing a smooth one by Newton; follow the boundary ray
+    where there is one. Returns z, the value, the residual, and (when the infimum is on the boundary)
+    the responses that keep mass in the limit. ``chart``: a :class:`toy_tasks.exact.prompt.Chart`, or a problem
+    with the landed solver's interface (see :class:`_Landed`)."""
+    chart = _as_chart(chart)
+    z = _minimise(chart, z0, stalled=KINK_STALL if kink_search else None)
+    if kink_search and float(np.abs(chart.grad(z)).max()) > GRADIENT_TOLERANCE:
+        kinked = _kinked(chart.prompt, z)
+        if kinked is not None and not kinked.pop("smooth"):
+            stopped = chart.value(z)
+            if kinked["value"] <= stopped + 1e-12 * (1.0 + abs(stopped)):
+                return kinked
+        z = _minimise(chart, z if kinked is None else kinked["z"])
     first = torch.log_softmax(torch.as_tensor(z), 0).numpy()
     on_boundary = False
     for _ in range(BOUNDARY_ROUNDS):
-        further = _runs_to_boundary(problem, z)
+        further = _runs_to_boundary(chart, z)
         if further is None:
             break
         on_boundary = True
-        z = _minimise(problem, further)
+        z = _minimise(chart, further)
     log_pi = torch.log_softmax(torch.as_tensor(z), 0).numpy()
-    out = {"z": z, "value": problem.value(z), "residual": float(np.abs(problem.grad(z)).max()),
+    out = {"z": z, "value": chart.value(z), "residual": float(np.abs(chart.grad(z)).max()),
            "finite": not on_boundary, "support": None}
-    if not on_boundary and out["residual"] > CERTIFIED and kink_search:  # a kink: no gradient vanishes
-        kinked = _kinked(problem, z)
-        if kinked is not None and kinked["value"] <= out["value"] + 1e-12 * (1.0 + abs(out["value"])):
-            return kinked
     if on_boundary:
         kept = (log_pi > first - VANISHED_DROP) & (log_pi > np.log(1e-12))
         out["support"] = [int(i) for i in np.flatnonzero(kept)] or [int(np.argmax(log_pi))]
     return out
 
 
-# ------------------------------------------------------------------ kinks at the reference
+def _kinked(prompt: PromptLoss, z: np.ndarray) -> dict | None:
+    """Where Newton stopped with a large gradient next to log-ratios of 0: the active-set search of
+    :mod:`toy_tasks.exact.kinks`, certified to :data:`CERTIFIED`, or None."""
+    return kinks.search(prompt, z, tol=CERTIFIED, gradient_tol=GRADIENT_TOLERANCE, max_iterations=MAX_ITERATIONS)
 
 
-class _Pinned(_Prompt):
-    """The prompt's L with the responses of ``pinned`` held at their reference probability (log-ratio
-    0, where anchor terms such as max(0, -h_w) have their kink); the others share the remaining mass
-    as a softmax of their own logits y."""
-
-    def __init__(self, base: _Prompt, pinned: np.ndarray):
-        self.__dict__.update(base.__dict__)
-        self.pinned = torch.as_tensor(pinned)
-        self.rest = float(torch.log1p(-self.log_ref[self.pinned].exp().sum()))  # log of the unpinned mass
-
-    def log_policy(self, y: Tensor) -> Tensor:
-        log_pi = self.log_ref.clone()
-        log_pi[~self.pinned] = self.rest + torch.log_softmax(y, dim=0)
-        return log_pi  # (K,)
-
-    def loss(self, y: Tensor) -> Tensor:
-        return _pair_terms(self.objective, self.w, self.log_policy(y), self.log_ref, self.lengths, self.beta)
-
-    def hessian(self, y: np.ndarray) -> np.ndarray:
-        """The Hessian of L in y: the free responses' log pi = rest + log_softmax(y) is a softmax chart of
-        its own, so the same chain rule applies to the free block of L's derivatives in log pi."""
-        log_pi = self.log_policy(torch.as_tensor(y, dtype=torch.float64))
-        grad_logpi, h = self.logpi_derivatives(log_pi)
-        free = ~self.pinned
-        q = torch.softmax(torch.as_tensor(y, dtype=torch.float64), dim=0)  # the free responses' shares
-        return _softmax_chain_rule(q, grad_logpi[free], h[free][:, free]).numpy()
-
-
-def _softmax_chain_rule(pi: Tensor, grad_logpi: Tensor, h: Tensor) -> Tensor:
-    """The Hessian in logits z of a function of log pi = log_softmax(z) (+ a constant), from its gradient
-    G (K,) and Hessian H (K, K) in log pi: ``J^T H J - (sum G) (diag(pi) - pi pi^T)``, ``J = I - 1 pi^T``
-    (d log pi_k / d z_m = delta_km - pi_m; d^2 log pi_k / dz^2 = -(diag(pi) - pi pi^T) for every k)."""
-    jac = torch.eye(len(pi), dtype=torch.float64) - pi[None, :]  # (K, K)
-    return jac.T @ h @ jac - grad_logpi.sum() * (torch.diag(pi) - torch.outer(pi, pi))
-
-
-def _richardson(quotient: Callable[[float], float], step: float) -> float:
-    """``2 q(step / 2) - q(step)``: a one-sided difference quotient q(t) with its O(t) error removed."""
-    return 2.0 * quotient(step / 2) - quotient(step)
-
-
-def _one_sided_partials(problem: _Prompt, log_pi: np.ndarray, step: float = 1e-6) -> tuple[np.ndarray, np.ndarray]:
-    """L's one-sided partial derivatives in each log-probability at ``log_pi`` (K,): ``up[k]`` as
-    log pi_k rises, ``down[k]`` as it falls, by Richardson-extrapolated one-sided differences (error
-    O(step^2)); 4K evaluations of L. Where L is smooth in log pi_k the two agree."""
-    base = problem.value_at(log_pi)
-
-    def difference(k: int, t: float) -> float:  # (L(log pi + t e_k) - L(log pi)) / t, t of either sign
-        moved = log_pi.copy()
-        moved[k] += t
-        return (problem.value_at(moved) - base) / t
-
-    k = len(log_pi)
-    up = np.array([_richardson(lambda t, i=i: difference(i, t), step) for i in range(k)])
-    down = np.array([_richardson(lambda t, i=i: difference(i, t), -step) for i in range(k)])
-    return up, down
-
-
-def _transfer_slopes(problem: _Prompt, log_pi: np.ndarray) -> np.ndarray:
-    """One-sided derivatives (K, K) of L when mass ``t pi_j`` moves from response j to response i
-    (t -> 0+); the diagonal (no move) is +inf, so that it is never the steepest.
-
-    The move raises log pi_i at rate pi_j / pi_i and lowers log pi_j at rate 1. A kink that is a
-    function of one response's log-ratio (an anchor such as max(0, -h_w), Pal et al. 2024) composed
-    into smooth terms makes L's directional derivative the sum of one-sided partials along each
-    coordinate, so ``slope[i, j] = (pi_j / pi_i) up_i - down_j``: 4K evaluations of L instead of a
-    difference quotient per transfer (4K^2). The steepest transfer it finds is then measured directly
-    (:func:`_measured_slope`), so a kink of another shape is caught rather than trusted."""
-    pi = np.exp(log_pi)
-    up, down = _one_sided_partials(problem, log_pi)
-    slopes = np.outer(up / pi, pi) - down[None, :]
-    np.fill_diagonal(slopes, np.inf)
-    return slopes
-
-
-def _measured_slope(problem: _Prompt, log_pi: np.ndarray, i: int, j: int, step: float = 1e-6) -> float:
-    """The one-sided derivative of L along the transfer of mass ``t pi_j`` from j to i, measured by
-    Richardson-extrapolated forward differences."""
-    pi, base = np.exp(log_pi), problem.value_at(log_pi)
-
-    def slope(t):
-        moved = pi.copy()
-        moved[i], moved[j] = pi[i] + t * pi[j], pi[j] * (1.0 - t)
-        return (problem.value_at(np.log(moved)) - base) / t
-
-    return _richardson(slope, step)
-
-
-def _kinked(problem: _Prompt, z: np.ndarray) -> dict | None:
-    """Where Newton stopped with a large gradient next to log-ratios of 0: an active-set solve with
-    those responses pinned at the reference, releasing any pinned response that a transfer of mass
-    can still improve. Returns the answer with its certificate (the largest of the free gradient and
-    the steepest descent over all transfers of mass), or None when it does not certify."""
-    h = torch.log_softmax(torch.as_tensor(z), 0).numpy() - problem.log_ref.numpy()
-    pinned = np.abs(h) < KINK_BAND
-    for _ in range(3 * len(z)):
-        if pinned.all():
-            log_pi, free_gradient = problem.log_ref.numpy(), 0.0
-        else:
-            reduced = _Pinned(problem, pinned)
-            y = _minimise(reduced, h[~pinned] + problem.log_ref.numpy()[~pinned])
-            with torch.no_grad():
-                log_pi = reduced.log_policy(torch.as_tensor(y)).numpy()
-            free_gradient = float(np.abs(reduced.grad(y)).max())
-        h = log_pi - problem.log_ref.numpy()
-        landed = ~pinned & (np.abs(h) < KINK_BAND)  # free responses that stopped at a kink of their own
-        if free_gradient > CERTIFIED and landed.any():
-            pinned |= landed
-            continue
-        slopes = _transfer_slopes(problem, log_pi)
-        i, j = np.unravel_index(int(slopes.argmin()), slopes.shape)  # the steepest transfer: j -> i
-        measured = _measured_slope(problem, log_pi, i, j)
-        if abs(measured - slopes[i, j]) > SLOPE_AGREEMENT * (1.0 + abs(measured)):
-            return None  # a kink that is not a function of one log-ratio: the partials do not add up
-        descent = -min(0.0, slopes.min(), measured)
-        if descent <= CERTIFIED and free_gradient <= CERTIFIED:
-            z_out = log_pi - log_pi.mean()
-            return {"z": z_out, "value": problem.value(z_out), "residual": max(free_gradient, descent),
-                    "finite": True, "support": None}
-        if not (pinned[i] or pinned[j]):
-            return None
-        pinned[i] = pinned[j] = False
-        h[i], h[j] = h[i] + 10 * KINK_BAND, h[j] - 10 * KINK_BAND  # start off the kink, on the descent side
-    return None
-
-
-def _starts(log_ref: np.ndarray, n: int, seed: int) -> list[np.ndarray]:
+def _starts(log_ref: np.ndarray, n: int, seed: int, first: np.ndarray | None = None) -> list[np.ndarray]:
+    """The reference (or ``first``), then n - 1 seeded random logits around the reference."""
     rng = np.random.default_rng(seed)
-    return [log_ref.copy()] + [log_ref + rng.standard_normal(len(log_ref)) for _ in range(n - 1)]
+    return [log_ref.copy() if first is None else first] + [log_ref + rng.standard_normal(len(log_ref))
+                                                            for _ in range(n - 1)]
 
 
 # ------------------------------------------------------------------ closed forms
@@ -443,21 +264,22 @@ def divergence_optimum(ratio_link: Callable[[Tensor], Tensor], reference: np.nda
     ``ratio_link`` is f' (increasing: f strictly convex), a torch function of u = pi / ref.
     ``reference``, ``rewards``: (K,). Returns pi (K,), or None where no c puts every u in
     (e^-60, e^60) (then there is no interior solution to report)."""
-    link = lambda t: float(ratio_link(torch.tensor(np.exp(t), dtype=torch.float64)))  # noqa: E731  f'(e^t)
+    link = lambda t: ratio_link(torch.as_tensor(np.exp(t), dtype=torch.float64)).numpy()  # noqa: E731  f'(e^t)
     low_t, high_t = -60.0, 60.0
-    low, high = link(low_t), link(high_t)
+    low, high = float(link(np.array([low_t]))[0]), float(link(np.array([high_t]))[0])
 
-    def log_ratio(target: float) -> float:  # t with f'(e^t) = target, clipped to the bracket
-        if target <= low:
-            return low_t
-        if target >= high:
-            return high_t
-        return scipy.optimize.brentq(lambda t: link(t) - target, low_t, high_t, xtol=1e-14, rtol=1e-15)
+    def log_ratios(targets: np.ndarray) -> np.ndarray:  # t with f'(e^t) = target, each clipped to the bracket
+        below, above = np.full(len(targets), low_t), np.full(len(targets), high_t)
+        for _ in range(BISECTIONS):  # f' is increasing: bisection on every target at once
+            middle = 0.5 * (below + above)
+            rising = link(middle) < targets
+            below, above = np.where(rising, middle, below), np.where(rising, above, middle)
+        return np.where(targets <= low, low_t, np.where(targets >= high, high_t, 0.5 * (below + above)))
 
     s = np.asarray(rewards, dtype=np.float64) / beta
     # c found through the top response's log-ratio t_top in [-60, 60] (c = f'(e^t_top) - max s): the mass
     # grows with t_top from below 1 (every ratio at e^-60) to above 1 (the top one at e^60)
-    ratios = lambda t_top: np.array([log_ratio(v + link(t_top) - s.max()) for v in s])  # noqa: E731
+    ratios = lambda t_top: log_ratios(s + float(link(np.array([t_top]))[0]) - s.max())  # noqa: E731
     t_top = scipy.optimize.brentq(lambda t: float(np.sum(reference * np.exp(ratios(t)))) - 1.0, low_t, high_t,
                                   xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=500)
     t = ratios(t_top)
@@ -517,7 +339,7 @@ def _closed_form(objective, weights, reference, rewards, beta, population) -> np
 
 def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray, lengths: np.ndarray, *,
                 beta: float, rewards: np.ndarray | None = None, population: bool = False, starts: int = STARTS,
-                seed: int = 0) -> Optimum:
+                seed: int = 0, warm: np.ndarray | None = None) -> Optimum:
     """The exact optimum of a pair objective's population loss (see the module docstring).
 
     Args:
@@ -527,6 +349,8 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
         rewards: (X, K) Bradley–Terry rewards, for the divergence family's closed form only.
         population: whether ``weights`` are the population weights of those rewards.
         starts: seeded starts per prompt (the first is the reference).
+        warm: (X, K) log-ratios to take as the first start instead of the reference (a warm start:
+            the optimum at a nearby beta, see :func:`warm_start`); the seeded random starts stay.
 
     Returns an :class:`toy_tasks.exact.margin.Optimum` whose ``logratios`` are log pi* - log pi_ref (X, K)
     (one component per prompt: only a constant shift per prompt is free) and whose ``residual`` is
@@ -548,18 +372,16 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
                            residual, True, None, components)
     z = np.zeros((n_prompts, k))
     value, residual, finite, unique, support, notes = 0.0, 0.0, True, True, [], []
-    n_starts = starts if k <= DENSE_LIMIT else min(starts, 2)
-    # a large or kinked problem takes minutes: a bar appears once the solve has run for SOLVE_BAR_DELAY s
-    bar = tqdm(total=n_prompts * n_starts, desc=f"exact optimum ({k} responses per prompt)", unit="start",
+    # a large or kinked problem takes a while: a bar appears once the solve has run for SOLVE_BAR_DELAY s
+    bar = tqdm(total=n_prompts * starts, desc=f"exact optimum ({k} responses per prompt)", unit="start",
                delay=SOLVE_BAR_DELAY, leave=False)
     for x, problem in enumerate(problems):
+        first = None if warm is None else log_ref[x] + np.asarray(warm[x], dtype=np.float64)
         runs = []
-        for start, z0 in enumerate(_starts(log_ref[x], n_starts, seed + x)):
-            # above KINK_LIMIT responses only the reference start searches a kink (the anchor's kink lies there)
-            runs.append(_solve_prompt(problem, z0, kink_search=k <= KINK_LIMIT or start == 0))
+        for z0 in _starts(log_ref[x], starts, seed + x, first=first):
+            runs.append(_solve_prompt(problem, z0))
             bar.update()
-        certified = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
-        runs = certified
+        runs = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
         best = min(runs, key=lambda r: r["value"])
         value += best["value"]
         z[x], residual = best["z"], max(residual, best["residual"])
@@ -569,22 +391,25 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
     bar.close()
     if not finite:
         return Optimum(False, None, value, "no finite optimum: the infimum lies on the simplex's boundary "
-                       "(trust-region Newton in the softmax logits, continued along the descent ray)",
+                       "(Newton in the softmax logits, continued along the descent ray)",
                        residual, False, support, components,
                        notes + [f"{_name(objective)}: some responses' probabilities fall to 0 in the limit; "
                                 f"'limit_support' lists, per prompt, the responses that keep mass"])
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
-    scheme = "trust-exact" if k <= DENSE_LIMIT else "trust-krylov"
-    method = (f"trust-region Newton in the softmax logits (scipy {scheme}, torch autograd float64), "
-              f"{n_starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
+    method = (f"Newton in the softmax logits (Cholesky, Armijo line search; derivatives of all pairs at once, "
+              f"torch autograd float64), {starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
     if residual > CERTIFIED:
-        search = (f"above {KINK_LIMIT} responses per prompt (this task has {k}) only the reference start searches a "
-                  "kink, and it did not certify" if k > KINK_LIMIT else "the kink search did not certify it either")
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
-                     f"may not be differentiable there (a max(0, .) term; {search}), or the solve stopped early; "
-                     "reached_optimum is null")
+                     "may not be differentiable there (a max(0, .) term; the kink search did not certify it either), "
+                     "or the solve stopped early; reached_optimum is null")
     return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes,
                    certified=residual <= CERTIFIED)
+
+
+def warm_start(optimum: Optimum) -> np.ndarray | None:
+    """The ``warm`` start of a solve at a nearby beta (or on a nearby task) from ``optimum``: its
+    log-ratios (X, K), or None where it is not finite."""
+    return optimum.logratios
 
 
 def _agree(runs: list[dict], best: dict, notes: list[str], x: int) -> bool:
@@ -615,5 +440,4 @@ def exact_optimum(objective, weights: np.ndarray, *, task, beta: float, populati
                        population=population)
 
 
-def _name(objective) -> str:
-    return getattr(objective, "name", None) or getattr(objective, "__name__", type(objective).__name__)
+_name = objective_name
