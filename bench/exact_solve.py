@@ -1,0 +1,165 @@
+"""Bench: the exact solvers beside the landed ones, in the same run, on the enumerable sequence task.
+
+    PYTHONPATH=. python bench/exact_solve.py [--threads 1] [--blas-threads N] [--objectives NAME ...]
+                                             [--margin NAME ...] [--large] [--landed-large]
+
+For every built-in pair objective (and the margin losses named by ``--margin``) on ``task=sequence``
+(3 symbols, length 5: 364 responses per prompt, 2 prompts), solves the exact optimum with the landed solver
+(:mod:`toy_tasks.exact.landed`) and the fast one (:mod:`toy_tasks.exact.pairs`, :mod:`toy_tasks.exact.margin`)
+one after the other, and prints each one's seconds, their ratio, the TV between the two answers and both
+certificates (finite, unique, certified, residual). Then DPO-Positive's kink case from every start (how many
+of the 3 starts per prompt certified, for each solver), and with ``--large`` the 1,365-response task
+(4 symbols, length 5) with the fast solver (the landed one too with ``--landed-large``: it took over 18
+minutes for 3 of 4 starts when measured for issue 26). The machine's load average (os.getloadavg) is
+printed before and after: other processes on the machine slow both solvers alike, but not evenly over time.
+
+Threads as a run has them: torch on ``--threads`` (default 1, what ``polopt train`` sets for a finite task),
+BLAS (numpy / scipy, which the landed solver's trust region calls) at its own default unless
+``--blas-threads`` sets it; the fast solver does its linear algebra in torch. On a shared machine a
+multi-threaded BLAS pool spins and slows the landed solver several times: ``--blas-threads 1`` compares the
+two on equal terms. Figures only; nothing passes or fails.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+
+
+def _limit_blas(argv: list[str]) -> str:
+    """Set the BLAS thread count before numpy loads it (it reads the environment once, at import)."""
+    if "--blas-threads" not in argv:
+        return "library default"
+    threads = argv[argv.index("--blas-threads") + 1]
+    for key in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[key] = threads
+    return threads
+
+
+def parse(argv: list[str]) -> argparse.Namespace:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--threads", type=int, default=1, help="torch threads")
+    parser.add_argument("--blas-threads", type=int, default=None, help="BLAS threads (default: the library's)")
+    parser.add_argument("--objectives", nargs="*", default=None, help="pair objectives (default: every built-in)")
+    parser.add_argument("--margin", nargs="*", default=["exponential", "savage", "huber"],
+                        help="margin losses solved by Newton (no closed form on this task)")
+    parser.add_argument("--symbols", type=int, default=3)
+    parser.add_argument("--max-length", type=int, default=5)
+    parser.add_argument("--large", action="store_true", help="also the 1,365-response task (4 symbols)")
+    parser.add_argument("--landed-large", action="store_true", help="run the landed solver on it too (slow)")
+    parser.add_argument("--skip-kink", action="store_true")
+    return parser.parse_args(argv)
+
+
+def timed(fn):
+    start = time.perf_counter()
+    out = fn()
+    return out, time.perf_counter() - start
+
+
+def certificate(optimum) -> str:
+    residual = "-" if optimum.residual is None else f"{optimum.residual:.1e}"
+    return f"finite={optimum.finite} unique={optimum.unique} certified={optimum.certified} residual={residual}"
+
+
+def distance(task, a, b) -> str:
+    import numpy as np
+
+    if not (a.finite and b.finite):
+        return "-" if a.limit_support == b.limit_support else "limit supports differ"
+    p, q = task.policy_from_logratios(a.logratios), task.policy_from_logratios(b.logratios)
+    return f"{0.5 * np.abs(p - q).sum(axis=1).max():.1e}"
+
+
+def solve_both(name: str, finite, *, margin: bool, landed: bool = True) -> dict:
+    """Both solvers' answers and seconds for one objective on ``finite`` (a FiniteTask)."""
+    from polopt.losses import margin as losses
+    from polopt.losses import registry as objectives
+    from toy_tasks.exact import margin as fast_margin
+    from toy_tasks.exact import pairs as fast_pairs
+    from toy_tasks.exact.landed import margin as landed_margin
+    from toy_tasks.exact.landed import pairs as landed_pairs
+
+    weights = finite.win_weights()
+    if margin:
+        loss = losses.get(name)
+        run = lambda module: lambda: module.solve(loss, weights, beta=0.5)  # noqa: E731
+        fast_module, landed_module = fast_margin, landed_margin
+    else:
+        objective = objectives.resolve(name)
+        run = lambda module: lambda: module.solve_pairs(  # noqa: E731
+            objective, weights, finite.reference, finite.lengths, beta=0.5, rewards=finite.rewards, population=True)
+        fast_module, landed_module = fast_pairs, landed_pairs
+    slow, slow_s = timed(run(landed_module)) if landed else (None, None)
+    fast, fast_s = timed(run(fast_module))
+    return {"name": name, "fast": fast, "fast_s": fast_s, "landed": slow, "landed_s": slow_s}
+
+
+def print_row(row: dict, finite) -> None:
+    fast, slow = row["fast"], row["landed"]
+    if slow is None:
+        print(f"{row['name']:28s} landed        -   fast {row['fast_s']:7.2f} s   ratio     -   "
+              f"fast: {certificate(fast)}", flush=True)
+        return
+    print(f"{row['name']:28s} landed {row['landed_s']:7.2f} s   fast {row['fast_s']:7.2f} s   "
+          f"ratio {row['landed_s'] / row['fast_s']:6.1f}x   TV {distance(finite, fast, slow):>8s}", flush=True)
+    print(f"{'':28s}   landed: {certificate(slow)}\n{'':28s}   fast:   {certificate(fast)}", flush=True)
+
+
+def kink_starts(finite) -> None:
+    """How many starts certify DPO-Positive's kinked optimum, per solver (3 seeded starts per prompt)."""
+    import numpy as np
+
+    from polopt.losses import registry as objectives
+    from toy_tasks.exact import pairs as fast_pairs
+    from toy_tasks.exact.landed import pairs as landed_pairs
+
+    objective = objectives.resolve("winner_anchored")
+    for label, module in (("landed", landed_pairs), ("fast", fast_pairs)):
+        certified, start_s = 0, time.perf_counter()
+        for x in range(finite.n_prompts):
+            log_ref = np.log(finite.reference[x])
+            problem = module._Prompt(objective, finite.win_weights()[x], log_ref, finite.lengths[x], 0.5)
+            for start, z0 in enumerate(module._starts(log_ref, module.STARTS, x)):
+                if label == "landed":  # the landed solver searched a kink from the reference start only at K > 128
+                    run = module._solve_prompt(problem, z0, kink_search=len(log_ref) <= module.KINK_LIMIT or start == 0)
+                else:
+                    run = module._solve_prompt(problem, z0)
+                certified += run["residual"] <= module.CERTIFIED
+        print(f"winner_anchored, {label:6s}: {certified} of {finite.n_prompts * module.STARTS} starts certified "
+              f"({time.perf_counter() - start_s:.1f} s)", flush=True)
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    blas = _limit_blas(argv)
+    args = parse(argv)
+    import torch
+
+    from polopt.losses import registry as objectives
+    from toy_tasks.sequence.task import sequence_task
+
+    torch.set_num_threads(args.threads)
+    print(f"torch threads {args.threads}, BLAS threads {blas}, {os.cpu_count()} CPUs; load average before: "
+          f"{os.getloadavg()}", flush=True)
+    finite = sequence_task(n_symbols=args.symbols, max_length=args.max_length).finite_task()
+    print(f"sequence task: {finite.n_responses} responses per prompt, {finite.n_prompts} prompts", flush=True)
+    for name in args.objectives if args.objectives is not None else objectives.builtin_names():
+        print_row(solve_both(name, finite, margin=False), finite)
+    for name in args.margin:
+        print_row(solve_both(name, finite, margin=True), finite)
+    if not args.skip_kink:
+        kink_starts(finite)
+    if args.large:
+        large = sequence_task(n_symbols=4, max_length=5).finite_task()
+        print(f"large sequence task: {large.n_responses} responses per prompt", flush=True)
+        for name in args.objectives if args.objectives is not None else objectives.builtin_names():
+            print_row(solve_both(name, large, margin=False, landed=args.landed_large), large)
+    print(f"load average after: {os.getloadavg()}", flush=True)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
