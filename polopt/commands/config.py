@@ -4,7 +4,9 @@ place a task is built from config, by an allow-listed ``_target_``.
 
 Configuration never executes code: a task's ``_target_`` must name a builder in :data:`TASK_PACKAGES`,
 no other ``_target_`` is allowed outside Hydra's own ``hydra.*`` settings (which may name only Hydra's
-classes), and a user loss comes only from ``loss.name=pkg.module:name``.
+classes and the launcher and sweeper plugins Hydra finds installed, e.g. ``hydra/launcher=joblib``,
+``hydra/sweeper=optuna``, with the Optuna sweeper's sampler), and a user loss comes only from
+``loss.name=pkg.module:name``.
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ if not CONFIG_DIR.is_dir():  # a source checkout or editable install: conf/ besi
 TASK_RUN_KEYS = ("mode", "n_pairs", "feedback", "group_size")  # task keys for the run, not for the task's builder
 TASK_PACKAGES = ("toy_tasks.", "polopt.")  # where a task's _target_ may point
 HYDRA_PACKAGES = ("hydra.",)  # where a _target_ under hydra.* (launcher, sweeper) may point
+SAMPLER_PACKAGES = ("optuna.samplers.",)  # where hydra.sweeper.sampler._target_ may point (the Optuna sweeper)
 
 
 def groups() -> list[str]:
@@ -161,9 +164,31 @@ def unknown_key_message(key: str, known: list[str]) -> str:
     return f"unknown key {key!r}; the keys {where} are: {', '.join(beside)}"
 
 
+def hydra_plugins() -> set[str]:
+    """The dotted names of the launcher and sweeper plugins Hydra finds installed (its own included)."""
+    from hydra.core.plugins import Plugins
+    from hydra.plugins.launcher import Launcher
+    from hydra.plugins.sweeper import Sweeper
+
+    found = Plugins.instance()
+    return {f"{cls.__module__}.{cls.__name__}" for kind in (Launcher, Sweeper) for cls in found.discover(kind)}
+
+
+def _hydra_target(path: str, target) -> bool:
+    """Whether ``target`` may stand at ``path`` under ``hydra``: Hydra's own classes, an installed launcher or
+    sweeper plugin at hydra.launcher / hydra.sweeper, an Optuna sampler at hydra.sweeper.sampler."""
+    target = str(target)
+    if target.startswith(HYDRA_PACKAGES):
+        return True
+    if path in ("hydra.launcher", "hydra.sweeper"):
+        return target in hydra_plugins()
+    return path == "hydra.sweeper.sampler" and target.startswith(SAMPLER_PACKAGES)
+
+
 def check_targets(container: dict, where: str = "") -> None:
     """Refuse any ``_target_`` a config could use to run code: only ``task._target_`` (a builder in
-    :data:`TASK_PACKAGES`) and Hydra's own classes under ``hydra.*``."""
+    :data:`TASK_PACKAGES`) and, under ``hydra.*``, Hydra's own classes and installed launcher and sweeper
+    plugins (see :func:`_hydra_target`)."""
     stack = [(where, container)]
     while stack:
         path, node = stack.pop()
@@ -176,7 +201,7 @@ def check_targets(container: dict, where: str = "") -> None:
                                      "a loss of your own goes in loss.name=pkg.module:name")
             elif "_target_" in node and path.startswith("task."):
                 raise ValueError(f"task: a nested _target_ ({target!r}) is not allowed; task keys hold data only")
-            elif "_target_" in node and not (path.startswith("hydra") and str(target).startswith(HYDRA_PACKAGES)):
+            elif "_target_" in node and not (path.startswith("hydra") and _hydra_target(path, target)):
                 raise ValueError(f"{path or 'the config'}: a _target_ ({target!r}) is not allowed here; "
                                  "config keys hold data only (a task's builder goes in task._target_)")
             stack += [(f"{path}.{k}" if path else str(k), v) for k, v in node.items() if k != "_target_"]
@@ -252,7 +277,8 @@ def compose_all(overrides: list[str], *, sweep: bool = False, command: str = "po
         bases = {}
         for combo in combos:
             rewritten = rewrite_overrides(combo)
-            choices = tuple(a for a in rewritten if a.partition("=")[0].lstrip("+") in groups())
+            choices = tuple(a for a in rewritten  # group choices, Hydra's own (hydra/launcher=...) included
+                            if a.partition("=")[0].lstrip("+") in groups() or a.lstrip("+").startswith("hydra/"))
             if choices not in bases:
                 bases[choices] = OmegaConf.to_container(hydra_compose("config", overrides=list(choices),
                                                                       return_hydra_config=True))
