@@ -122,6 +122,23 @@ def record(overrides: list[str], run_dir: Path, summary: dict) -> None:
     _CURRENT.records.append((list(overrides), Path(run_dir), summary))
 
 
+def collect(folder: Path) -> list[tuple[list[str], Path, dict]]:
+    """The finished runs under a sweep's ``folder`` in Hydra's job order: each run folder's overrides (its
+    ``.hydra/overrides.yaml``, which Hydra writes) and its summary.json. A launcher that runs jobs in other
+    processes (``hydra/launcher=joblib``, submitit) leaves :func:`record` of this process empty."""
+    from omegaconf import OmegaConf
+
+    found = []
+    for path in folder.rglob("summary.json"):
+        hydra_dir = path.parent / ".hydra"
+        if not (hydra_dir / "overrides.yaml").exists():
+            continue
+        overrides = [str(o) for o in OmegaConf.load(hydra_dir / "overrides.yaml")]
+        number = int(OmegaConf.load(hydra_dir / "hydra.yaml").hydra.job.num)
+        found.append((number, overrides, path.parent, json.loads(path.read_text(encoding="utf-8"))))
+    return [(overrides, run_dir, summary) for _, overrides, run_dir, summary in sorted(found, key=lambda r: r[0])]
+
+
 def _plain(value):
     """JSON's values: NaN and inf become null (as in summary.json)."""
     if isinstance(value, float) and (value != value or value in (float("inf"), float("-inf"))):
@@ -139,12 +156,14 @@ def sweep_table(current: Plan | None = None) -> str:
     """One table of a sweep's runs (their overrides, then :data:`SWEEP_COLUMNS` where some run has them);
     written to ``runs.txt`` and ``runs.json`` in the sweep's folder."""
     current = current or _CURRENT
-    columns = [c for c in SWEEP_COLUMNS if any(c in s for _, _, s in current.records)]
-    common = set.intersection(*(set(o) for o, _, _ in current.records)) if current.records else set()
+    records = current.records
+    if not records and current.folder is not None and current.folder.is_dir():  # jobs ran in other processes
+        records = collect(current.folder)
+    columns = [c for c in SWEEP_COLUMNS if any(c in s for _, _, s in records)]
+    common = set.intersection(*(set(o) for o, _, _ in records)) if records else set()
     names = [" ".join(o for o in overrides if o not in common) or " ".join(overrides) or "(defaults)"
-             for overrides, _, _ in current.records]
-    rows = [[name, *(_cell(s.get(c)) for c in columns)] for name, (_, _, s) in zip(names, current.records,
-                                                                                   strict=True)]
+             for overrides, _, _ in records]
+    rows = [[name, *(_cell(s.get(c)) for c in columns)] for name, (_, _, s) in zip(names, records, strict=True)]
     header = ["run", *columns]
     widths = [max(len(r[i]) for r in [header, *rows]) for i in range(len(header))]
     lines = ["  ".join(cell.ljust(w) for cell, w in zip(row, widths, strict=True)).rstrip()
@@ -153,6 +172,6 @@ def sweep_table(current: Plan | None = None) -> str:
     if current.folder is not None and current.folder.is_dir():
         (current.folder / "runs.txt").write_text(text + "\n", encoding="utf-8")
         data = [{"run": name, "overrides": o, "folder": str(folder), **{c: _plain(s.get(c)) for c in columns}}
-                for name, (o, folder, s) in zip(names, current.records, strict=True)]
+                for name, (o, folder, s) in zip(names, records, strict=True)]
         (current.folder / "runs.json").write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
     return f"{text}\nsweep folder: {current.folder} ({len(rows)} runs; runs.txt, runs.json)"
