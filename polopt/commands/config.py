@@ -119,7 +119,12 @@ def _parse(overrides: list[str]) -> list:
 
 
 def _values(override) -> list[str]:
-    """The values of one override, a sweep's listed one by one."""
+    """The values of one override, a sweep's listed one by one (an interval sweep's two ends: a tuned sweep
+    draws its values inside, so the ends are what can be checked before it runs)."""
+    from hydra.core.override_parser.types import IntervalSweep
+
+    if isinstance(override.value(), IntervalSweep):
+        return [str(override.value().start), str(override.value().end)]
     if override.is_sweep_override():
         return [str(v) for v in override.sweep_string_iterator()]
     return [override.get_value_element_as_str()] if not override.is_delete() else []

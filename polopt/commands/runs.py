@@ -139,6 +139,48 @@ def collect(folder: Path) -> list[tuple[list[str], Path, dict]]:
     return [(overrides, run_dir, summary) for _, overrides, run_dir, summary in sorted(found, key=lambda r: r[0])]
 
 
+def check_sweep(cfg) -> None:
+    """``sweep.objective`` and ``sweep.target`` are read by a tuned sweep (``-m hydra/sweeper=optuna``)
+    only; elsewhere they would change nothing, so they are refused."""
+    objective, target = cfg.sweep.objective, cfg.sweep.target
+    tuned = "optuna" in str(cfg.hydra.sweeper.get("_target_", "")).lower()
+    if objective is None and target is not None:
+        raise ValueError(f"sweep.target={target} needs sweep.objective, the summary.json key to bring to it "
+                         "(e.g. sweep.objective=kl_to_reference)")
+    if objective is not None and not tuned:
+        raise ValueError(f"sweep.objective={objective} is read by a tuned sweep only: polopt train -m "
+                         "hydra/sweeper=optuna ... sweep.objective=KEY")
+    if tuned and objective is None:
+        raise ValueError("a tuned sweep (hydra/sweeper=optuna) needs sweep.objective, the summary.json key it "
+                         "minimises (e.g. sweep.objective=kl_to_reference; with sweep.target=VALUE: |value - target|)")
+
+
+def sweep_objective(cfg, summary: dict) -> float | None:
+    """What a tuned sweep minimises for one run: ``summary[sweep.objective]``, or its distance to
+    ``sweep.target``; None when no objective is set (Hydra's other sweepers read no return value)."""
+    key, target = cfg.sweep.objective, cfg.sweep.target
+    if key is None:
+        return None
+    value = summary.get(key)
+    if not isinstance(value, (int, float)) or isinstance(value, bool):
+        numeric = sorted(k for k, v in summary.items() if isinstance(v, (int, float)) and not isinstance(v, bool))
+        raise ValueError(f"sweep.objective must name a numeric key of summary.json ({', '.join(numeric)}); "
+                         f"got {key!r} ({value!r} in this run)")
+    return float(value) if target is None else abs(float(value) - float(target))
+
+
+def best_line(folder: Path) -> str | None:
+    """The Optuna sweeper's best trial (its ``optimization_results.yaml`` in the sweep's folder), one line."""
+    from omegaconf import OmegaConf
+
+    path = folder / "optimization_results.yaml"
+    if not path.exists():
+        return None
+    results = OmegaConf.to_container(OmegaConf.load(path))
+    params = " ".join(f"{k}={v}" for k, v in results.get("best_params", {}).items())
+    return f"best: {params} (sweep objective {results.get('best_value')})"
+
+
 def _plain(value):
     """JSON's values: NaN and inf become null (as in summary.json)."""
     if isinstance(value, float) and (value != value or value in (float("inf"), float("-inf"))):
@@ -174,4 +216,6 @@ def sweep_table(current: Plan | None = None) -> str:
         data = [{"run": name, "overrides": o, "folder": str(folder), **{c: _plain(s.get(c)) for c in columns}}
                 for name, (o, folder, s) in zip(names, records, strict=True)]
         (current.folder / "runs.json").write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
+    best = best_line(current.folder) if current.folder is not None else None
+    text = text if best is None else f"{text}\n{best}"
     return f"{text}\nsweep folder: {current.folder} ({len(rows)} runs; runs.txt, runs.json)"

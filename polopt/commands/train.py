@@ -246,14 +246,16 @@ def precheck(cfg: DictConfig) -> None:
     """The refusals that need no task (missing values, the loss, beta): before any folder is made."""
     plain = OmegaConf.masked_copy(cfg, [k for k in cfg if k != "hydra"])
     check_complete(plain)
+    runs.check_sweep(cfg)
     build_loss(plain.loss)
     validate_hyperparameters(plain.beta, plain.loss.smoothing)
 
 
 @hydra.main(version_base="1.3", config_path=str(CONFIG_DIR), config_name="config")
-def train_main(cfg: DictConfig) -> None:
+def train_main(cfg: DictConfig) -> float | None:
     """Hydra's entry point for ``polopt train``: errors are carried past Hydra's own report to the
-    commands' error boundary (:mod:`polopt.commands.errors`); a run refused before training leaves no folder."""
+    commands' error boundary (:mod:`polopt.commands.errors`); a run refused before training leaves no folder.
+    Returns what a tuned sweep minimises (:func:`polopt.commands.runs.sweep_objective`)."""
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
         context = distributed.from_environment()
@@ -268,6 +270,7 @@ def train_main(cfg: DictConfig) -> None:
             summary = run(cfg, run_dir, context, device)
         distributed.teardown(context)
         runs.record(HydraConfig.get().overrides.task, run_dir, summary)
+        return runs.sweep_objective(cfg, summary)
     except KeyboardInterrupt:
         print(f"polopt train: interrupted; rerun the same command to resume from the newest checkpoint in "
               f"{run_dir / 'checkpoints'}", file=sys.stderr)

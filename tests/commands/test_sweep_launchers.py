@@ -42,3 +42,56 @@ def test_a_joblib_sweep_equals_the_sequential_sweep_run_by_run(tmp_path, capsys)
                                 "beta=1.5,loss=squared,task=nontransitive,train.steps=60"]
     assert summaries(parallel) == expected
     assert table(parallel) == table(sequential)
+
+
+def exact_kl(task, beta: float) -> float:
+    """KL(pi* || pi_ref) of the logistic loss's exact optimum at ``beta`` (toy_tasks.exact.margin's solve)."""
+    from polopt.losses import margin as losses
+    from toy_tasks.exact.margin import solve
+
+    optimum = solve(losses.get("logistic"), task.win_weights(), beta=beta)
+    return task.kl_to_reference(task.policy_from_logratios(optimum.logratios))
+
+
+@pytest.mark.slow
+def test_an_optuna_sweep_finds_the_beta_nearest_a_kl_target(tmp_path, capsys):
+    # held against an independent bisection (scipy's brentq) on the exact optimum's KL, which falls as beta
+    # grows: the best trial must be a neighbour of the bisected beta among the trials (the sweep's resolution)
+    pytest.importorskip("hydra_plugins.hydra_optuna_sweeper")
+    import scipy.optimize
+
+    from polopt.commands import config
+
+    folder, target = tmp_path / "tuned", 0.05
+    assert main(["train", "-m", "hydra/sweeper=optuna", "task=nontransitive", "loss=logistic",
+                 "beta=interval(0.05,3.0)", "hydra.sweeper.n_trials=12", "sweep.objective=kl_to_reference",
+                 f"sweep.target={target}", "train.progress=false", f"hydra.sweep.dir={folder}"]) == 0
+    out = capsys.readouterr().out
+    rows = json.loads((folder / "runs.json").read_text())
+    assert len(rows) == 12 and "best: beta=" in out
+    betas = sorted(float(r["run"].removeprefix("beta=")) for r in rows)
+    best = float(out.split("best: beta=", 1)[1].split()[0])
+    task = config.build_task(config.compose(["task=nontransitive"]).task)  # a FiniteTask
+    bisected = scipy.optimize.brentq(lambda b: exact_kl(task, b) - target, 0.05, 3.0, xtol=1e-10)
+    neighbours = {max((b for b in betas if b <= bisected), default=None),
+                  min((b for b in betas if b >= bisected), default=None)} - {None}
+    assert best in neighbours
+    nearest = min(rows, key=lambda r: abs(r["kl_to_reference"] - target))
+    assert float(nearest["run"].removeprefix("beta=")) == best
+
+
+@pytest.mark.parametrize(("extra", "message"), [
+    (["sweep.objective=kl_to_reference"], r"sweep.objective=kl_to_reference is read by a tuned sweep only"),
+    (["sweep.target=0.05"], r"sweep.target=0.05 needs sweep.objective"),
+    (["-m", "hydra/sweeper=optuna", "beta=interval(0.1,1.0)"], r"a tuned sweep \(hydra/sweeper=optuna\) needs "
+                                                              r"sweep.objective"),
+])
+def test_sweep_keys_are_refused_where_nothing_reads_them(extra, message, tmp_path, capsys):
+    pytest.importorskip("hydra_plugins.hydra_optuna_sweeper")
+    import re
+
+    folder = "hydra.sweep.dir" if "-m" in extra else "hydra.run.dir"
+    assert main(["train", *extra, "task=nontransitive", f"{folder}={tmp_path / 'out'}"]) == 2
+    line = capsys.readouterr().err.strip()
+    assert re.search(message, line) and line.startswith("polopt train: error: ")
+    assert not (tmp_path / "out").exists()
