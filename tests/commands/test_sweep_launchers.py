@@ -1,4 +1,5 @@
-"""Sweeps on Hydra's own engines: a joblib sweep gives the sequential sweep's runs, folders and table.
+"""Sweeps on Hydra's own engines: a joblib or submitit sweep gives the sequential sweep's runs, folders and
+table; an Optuna sweep tunes beta to a KL target.
 
 Held against: the same sweep run by Hydra's basic (sequential) launcher in this process; runs are seeded and
 deterministic, so every run's summary.json must match field by field (wall-clock seconds aside).
@@ -23,17 +24,32 @@ def summaries(folder):
             for p in sorted(folder.glob("*/summary.json"))}
 
 
+def test_the_shipped_slurm_config_is_submitits_slurm_launcher():
+    pytest.importorskip("hydra_plugins.hydra_submitit_launcher")
+    from polopt.commands import config
+
+    cfg = config.compose_all(["hydra/launcher=slurm", "hydra.launcher.partition=cpu", "task=nontransitive"],
+                             sweep=True)[0]
+    assert cfg.hydra.launcher._target_ == "hydra_plugins.hydra_submitit_launcher.submitit_launcher.SlurmLauncher"
+    assert cfg.hydra.launcher.partition == "cpu" and cfg.hydra.launcher.timeout_min == 120
+
+
 def table(folder):
     return [{k: v for k, v in row.items() if k not in TIMED | {"folder"}}
             for row in json.loads((folder / "runs.json").read_text())]
 
 
 @pytest.mark.slow
-def test_a_joblib_sweep_equals_the_sequential_sweep_run_by_run(tmp_path, capsys):
-    sequential, parallel = tmp_path / "sequential", tmp_path / "joblib"
+@pytest.mark.parametrize("launcher", [["hydra/launcher=joblib", "hydra.launcher.n_jobs=2"],
+                                      ["hydra/launcher=submitit_local"]])
+def test_a_parallel_sweep_equals_the_sequential_sweep_run_by_run(launcher, tmp_path, capsys):
+    # joblib: worker processes on this machine; submitit_local: submitit's local executor, as the shipped
+    # SLURM config (conf/hydra/launcher/slurm.yaml) submits the same jobs to a cluster
+    if "submitit" in launcher[0]:
+        pytest.importorskip("hydra_plugins.hydra_submitit_launcher")
+    sequential, parallel = tmp_path / "sequential", tmp_path / "parallel"
     assert main(["train", "-m", *SWEEP, f"hydra.sweep.dir={sequential}"]) == 0
-    assert main(["train", "-m", "hydra/launcher=joblib", "hydra.launcher.n_jobs=2", *SWEEP,
-                 f"hydra.sweep.dir={parallel}"]) == 0
+    assert main(["train", "-m", *launcher, *SWEEP, f"hydra.sweep.dir={parallel}"]) == 0
     out = capsys.readouterr().out
     assert f"sweep folder: {parallel} (3 runs; runs.txt, runs.json)" in out
     expected = summaries(sequential)
