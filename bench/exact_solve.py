@@ -79,8 +79,7 @@ def distance(task, a, b) -> str:
 
 def solve_both(name: str, finite, *, margin: bool, landed: bool = True) -> dict:
     """Both solvers' answers and seconds for one objective on ``finite`` (a FiniteTask)."""
-    from polopt.losses import margin as losses
-    from polopt.losses import registry as objectives
+    from polopt import losses
     from toy_tasks.exact import margin as fast_margin
     from toy_tasks.exact import pairs as fast_pairs
     from toy_tasks.exact.landed import margin as landed_margin
@@ -88,11 +87,11 @@ def solve_both(name: str, finite, *, margin: bool, landed: bool = True) -> dict:
 
     weights = finite.win_weights()
     if margin:
-        loss = losses.get(name)
+        loss = losses.resolve_margin(name)
         run = lambda module: lambda: module.solve(loss, weights, beta=0.5)  # noqa: E731
         fast_module, landed_module = fast_margin, landed_margin
     else:
-        objective = objectives.resolve(name)
+        objective = losses.resolve(name)
         run = lambda module: lambda: module.solve_pairs(  # noqa: E731
             objective, weights, finite.reference, finite.lengths, beta=0.5, rewards=finite.rewards, population=True)
         fast_module, landed_module = fast_pairs, landed_pairs
@@ -116,11 +115,11 @@ def kink_starts(finite) -> None:
     """How many starts certify DPO-Positive's kinked optimum, per solver (3 seeded starts per prompt)."""
     import numpy as np
 
-    from polopt.losses import registry as objectives
+    from polopt import losses
     from toy_tasks.exact import pairs as fast_pairs
     from toy_tasks.exact.landed import pairs as landed_pairs
 
-    objective = objectives.resolve("winner_anchored")
+    objective = losses.resolve("winner_anchored")
     for label, module in (("landed", landed_pairs), ("fast", fast_pairs)):
         certified, start_s = 0, time.perf_counter()
         for x in range(finite.n_prompts):
@@ -142,7 +141,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parse(argv)
     import torch
 
-    from polopt.losses import registry as objectives
+    from polopt import losses
     from toy_tasks.sequence.task import sequence_task
 
     torch.set_num_threads(args.threads)
@@ -151,7 +150,7 @@ def main(argv: list[str] | None = None) -> int:
     if not args.only_large:
         finite = sequence_task(n_symbols=args.symbols, max_length=args.max_length).finite_task()
         print(f"sequence task: {finite.n_responses} responses per prompt, {finite.n_prompts} prompts", flush=True)
-        for name in args.objectives if args.objectives is not None else objectives.builtin_names():
+        for name in args.objectives if args.objectives is not None else losses.builtin_names("pair"):
             print_row(solve_both(name, finite, margin=False), finite)
         for name in args.margin:
             print_row(solve_both(name, finite, margin=True), finite)
@@ -160,7 +159,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.large:
         large = sequence_task(n_symbols=4, max_length=5).finite_task()
         print(f"large sequence task: {large.n_responses} responses per prompt", flush=True)
-        names = args.large_objectives if args.large_objectives is not None else objectives.builtin_names()
+        names = args.large_objectives if args.large_objectives is not None else losses.builtin_names("pair")
         for name in names:
             print_row(solve_both(name, large, margin=False, landed=args.landed_large), large)
     print(f"load average after: {os.getloadavg()}", flush=True)

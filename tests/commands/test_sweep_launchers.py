@@ -62,10 +62,10 @@ def test_a_parallel_sweep_equals_the_sequential_sweep_run_by_run(launcher, tmp_p
 
 def exact_kl(task, beta: float) -> float:
     """KL(pi* || pi_ref) of the logistic loss's exact optimum at ``beta`` (toy_tasks.exact.margin's solve)."""
-    from polopt.losses import margin as losses
+    from polopt import losses
     from toy_tasks.exact.margin import solve
 
-    optimum = solve(losses.get("logistic"), task.win_weights(), beta=beta)
+    optimum = solve(losses.resolve_margin("logistic"), task.win_weights(), beta=beta)
     return task.kl_to_reference(task.policy_from_logratios(optimum.logratios))
 
 

@@ -16,10 +16,9 @@ import numpy as np
 import pytest
 import scipy.special
 import user_objectives as user
-from test_pair_solve import random_task
+from helpers_exact import random_task
 
-from polopt.losses import margin as losses
-from polopt.losses import registry as objectives
+from polopt import losses
 from toy_tasks.exact import landed
 from toy_tasks.exact.landed.margin import solve as landed_solve
 from toy_tasks.exact.landed.pairs import solve_pairs as landed_solve_pairs
@@ -70,10 +69,10 @@ def assert_same(fast, slow, task, *, error: float = 0.0):
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2, 3])
-@pytest.mark.parametrize("name", objectives.builtin_names())
+@pytest.mark.parametrize("name", losses.builtin_names("pair"))
 def test_every_builtin_pair_objective_on_random_tasks(name, seed):
     task = random_task(seed, bradley_terry=seed % 2 == 0)
-    objective, weights = objectives.resolve(name), task.win_weights()
+    objective, weights = losses.resolve(name), task.win_weights()
     kwargs = dict(beta=0.7, rewards=task.rewards, population=True)
     slow = landed_solve_pairs(objective, weights, task.reference, task.lengths, **kwargs)
     fast = solve_pairs(objective, weights, task.reference, task.lengths, **kwargs)
@@ -93,7 +92,7 @@ def test_user_objectives_on_a_random_task(name):
 def test_kinked_optima_agree(penalty, seed):
     # DPO-Positive's anchor max(0, -h_w) (Pal et al. 2024): optima at the kink, certified by transfer slopes
     task = random_task(seed, bradley_terry=seed % 2 == 0)
-    objective, weights = objectives.resolve("winner_anchored", penalty=penalty), task.win_weights()
+    objective, weights = losses.resolve("winner_anchored", penalty=penalty), task.win_weights()
     slow = landed_solve_pairs(objective, weights, task.reference, task.lengths, beta=0.7)
     fast = solve_pairs(objective, weights, task.reference, task.lengths, beta=0.7)
     assert fast.certified and fast.residual <= CERTIFIED
@@ -115,7 +114,7 @@ def test_a_non_unique_minimiser_is_reported_by_both():
     # two separate comparisons (0 vs 1, 2 vs 3): the mass split between the two pairs is free
     w = np.zeros((1, 4, 4))
     w[0, 0, 1], w[0, 1, 0], w[0, 2, 3], w[0, 3, 2] = 0.3, 0.2, 0.3, 0.2
-    args = (margin_objective(losses.get("squared")), w, np.full((1, 4), 0.25), np.ones((1, 4)))
+    args = (margin_objective(losses.resolve_margin("squared")), w, np.full((1, 4), 0.25), np.ones((1, 4)))
     slow, fast = landed_solve_pairs(*args, beta=1.0), solve_pairs(*args, beta=1.0)
     assert not slow.unique and not fast.unique
     assert fast.value == pytest.approx(slow.value, rel=1e-10)
@@ -134,12 +133,12 @@ def margin_task(seed: int, k: int, kind: str):
 
 
 @pytest.mark.parametrize("kind", ["bt", "noisy", "deterministic"])
-@pytest.mark.parametrize("name", [n for n in losses.builtin_names() if n != "hinge"])
+@pytest.mark.parametrize("name", [n for n in losses.builtin_names("margin") if n != "hinge"])
 def test_every_builtin_margin_loss(name, kind):
     # no closed form is offered (population=False), so both run Newton; deterministic labels leave the win
     # graph not strongly connected for some seeds (no finite optimum for logistic, exponential, savage)
     task = margin_task(3, 9, kind)
-    loss, weights = losses.get(name), task.win_weights()
+    loss, weights = losses.resolve_margin(name), task.win_weights()
     slow, fast = landed_solve(loss, weights, beta=0.8), solve(loss, weights, beta=0.8)
     assert fast.finite == slow.finite and fast.unique == slow.unique
     assert fast.value == pytest.approx(slow.value, rel=1e-10, abs=1e-12)
@@ -155,7 +154,7 @@ def test_a_warm_start_reaches_the_same_margin_optimum():
     from toy_tasks.exact.margin import warm_start
 
     task = margin_task(4, 9, "noisy")
-    loss, weights = losses.get("exponential"), task.win_weights()
+    loss, weights = losses.resolve_margin("exponential"), task.win_weights()
     start = warm_start(solve(loss, weights, beta=0.5), 0.5, 0.8)
     cold, warm = solve(loss, weights, beta=0.8), solve(loss, weights, beta=0.8, start=start)
     assert tv(task.policy_from_logratios(cold.logratios), task.policy_from_logratios(warm.logratios)) <= TV
@@ -166,7 +165,7 @@ def test_a_warm_start_reaches_the_same_pair_optimum():
     from toy_tasks.exact.pairs import warm_start
 
     task = random_task(6, bradley_terry=False)
-    objective, weights = objectives.resolve("length_regularised"), task.win_weights()
+    objective, weights = losses.resolve("length_regularised"), task.win_weights()
     start = warm_start(solve_pairs(objective, weights, task.reference, task.lengths, beta=0.5))
     cold = solve_pairs(objective, weights, task.reference, task.lengths, beta=0.8)
     warm = solve_pairs(objective, weights, task.reference, task.lengths, beta=0.8, warm=start)

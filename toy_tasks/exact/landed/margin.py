@@ -162,7 +162,8 @@ def _limit_support(w: np.ndarray, strong: np.ndarray, active: np.ndarray) -> lis
 # ------------------------------------------------------------------ solvers
 
 
-def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray, labels: np.ndarray) -> tuple[np.ndarray, float]:
+def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray,
+            labels: np.ndarray) -> tuple[np.ndarray, float]:
     """Minimise one prompt's L(h) with a gauge term 0.5 * (sum of h over each component)^2,
     which fixes the free shift without moving the minimiser of L."""
     groups = [labels == c for c in np.unique(labels[labels >= 0])]
