@@ -150,6 +150,25 @@ def polopt_train(run_dir: Path, processes: int, *extra: str) -> dict:
     return json.loads((run_dir / "summary.json").read_text())
 
 
+def polopt_train_on_two_nodes(run_dir: Path, *extra: str) -> dict:
+    """``polopt train`` under two torchrun launchers on this machine acting as two nodes (``--nnodes=2``, one
+    process each, c10d rendezvous on 127.0.0.1), as on a cluster whose nodes share the run folder."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "OMP_NUM_THREADS": "1", "HF_HUB_OFFLINE": "1"}
+    for key in ("RANK", "WORLD_SIZE", "LOCAL_RANK", "MASTER_ADDR", "MASTER_PORT"):
+        env.pop(key, None)
+    port = free_port()
+    launchers = [[sys.executable, "-m", "torch.distributed.run", "--nnodes=2", "--nproc_per_node=1",
+                  f"--node_rank={node}", "--rdzv_backend=c10d", f"--rdzv_endpoint=127.0.0.1:{port}",
+                  f"--rdzv_id=polopt-{port}", "-m", "polopt", "train", *SEQUENCE, *extra, f"hydra.run.dir={run_dir}"]
+                 for node in (0, 1)]
+    nodes = [subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+             for cmd in launchers]
+    for node in nodes:
+        _, err = node.communicate(timeout=300)
+        assert node.returncode == 0, err[-3000:]
+    return json.loads((run_dir / "summary.json").read_text())
+
+
 def assert_close_runs(got: dict, want: dict) -> None:
     assert got["steps"] == want["steps"]
     assert math.isclose(got["loss"], want["loss"], rel_tol=1e-5)
@@ -179,6 +198,15 @@ def test_torchrun_matches_one_process_and_its_checkpoint_resumes_on_one(tmp_path
     assert [json.loads(line)["step"] for line in (resumed / "metrics.jsonl").read_text().splitlines()] == \
         [1, 4, 8, 12]
 
+
+
+@pytest.mark.slow
+def test_two_torchrun_nodes_train_to_the_one_process_result(tmp_path):
+    # the multi-machine path: two launchers, one process each, meeting at a c10d rendezvous
+    nodes = polopt_train_on_two_nodes(tmp_path / "nodes")
+    one = polopt_train(tmp_path / "one", 1)
+    assert nodes["processes"] == 2
+    assert_close_runs(nodes, one)
 
 
 @pytest.mark.slow
