@@ -1,0 +1,27 @@
+"""bench/exact_solve.py runs end to end on a small sequence task and prints both solvers' figures.
+
+No timing is asserted (benches print figures, they never pass or fail); what is checked is that every
+row names both solvers, their ratio and the TV between their answers, and that the answers agree (the
+landed solver is the reference, tests/toy_tasks/test_landed_agreement.py).
+"""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+
+from bench import exact_solve
+
+
+@pytest.mark.slow
+def test_the_bench_prints_both_solvers_side_by_side(capsys):
+    exact_solve.main(["--symbols", "2", "--max-length", "3", "--objectives", "length_regularised",
+                      "winner_anchored", "--margin", "huber"])
+    out = capsys.readouterr().out
+    assert "load average before" in out and "load average after" in out
+    rows = re.findall(r"^(\w+)\s+landed\s+([\d.]+) s\s+fast\s+([\d.]+) s\s+ratio\s+([\d.]+)x\s+TV\s+(\S+)$", out, re.M)
+    assert [r[0] for r in rows] == ["length_regularised", "winner_anchored", "huber"]
+    assert all(float(tv) <= 1e-8 for *_, tv in rows)
+    assert out.count("certified=True") == 6
+    assert re.search(r"winner_anchored, fast\s*: 6 of 6 starts certified", out)
