@@ -1,7 +1,7 @@
 """Decoding-time realignment (polopt.methods.realign).
 
 Checks against: the optimum re-solved at beta / lambda by toy_tasks.exact.margin (closed
-forms of Rafailov et al. 2023 and Azar et al. 2023, and the trust-region Newton
+forms of Rafailov et al. 2023 and Azar et al. 2023, and the Newton
 solve for the exponential loss of Tang et al. 2024); the identities lambda = 0
 -> the reference and lambda = 1 -> the trained policy (Liu et al., Decoding-time
 Realignment of Language Models, 2024).

@@ -59,7 +59,7 @@ def test_user_objectives_by_dotted_path_reach_their_optimum(name, tmp_path):
     assert 0.5 * np.abs(reported - independent).sum(axis=1).max() <= 1e-4
     assert summary["tv_to_optimum"] <= 1e-3 and summary["reached_optimum"] is True
     on_disk = json.loads((tmp_path / "run" / "summary.json").read_text())
-    assert on_disk["reached_optimum"] is True and on_disk["optimum_method"].startswith("trust-region Newton")
+    assert on_disk["reached_optimum"] is True and on_disk["optimum_method"].startswith("Newton in the softmax logits")
 
 
 def test_a_boundary_optimum_reports_null_and_the_limit_support(tmp_path, capsys):

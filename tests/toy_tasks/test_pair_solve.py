@@ -3,7 +3,7 @@
 What each check is held against, outside the solver:
 - an independent solve written here: scipy's L-BFGS-B on all softmax logits of the task at once, with
   the population loss assembled here from dense (X, K, K) tensors and torch gradients (the solver
-  under test works prompt by prompt with trust-region Newton and exact Hessians);
+  under test works prompt by prompt with damped Newton and exact Hessians);
 - closed forms from the papers: DPO's pi* ∝ pi_ref e^{r / beta} (Rafailov et al., Direct Preference
   Optimization, 2023) and the divergence family's f'(pi / pi_ref) = r / beta + c on Bradley–Terry
   preferences (Wang et al., Beyond Reverse KL, 2023);

@@ -217,8 +217,8 @@ def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengt
         finite = all(r["finite"] for r in runs)
         support = [r["support"] if not r["finite"] else list(range(k)) for r in runs]
         residual, value = max(r["residual"] for r in runs), sum(r["value"] for r in runs)
-        method = (f"{MINIMISER}: trust-region Newton in the softmax logits per prompt (the pair solver's, scipy "
-                  f"trust-exact, torch autograd float64), {starts} seeded starts")
+        method = (f"{MINIMISER}: Newton in the softmax logits per prompt (the pair solver's, Cholesky steps with an "
+                  f"Armijo line search, torch autograd float64), {starts} seeded starts")
     if not finite:
         where = (f"{STATIONARY} on the simplex's boundary: the semi-gradient vanishes only as some probabilities fall "
                  "to 0 (saturated terms)" if objective.stop_gradient else
