@@ -101,23 +101,9 @@ def policy_tokenizer(folder: Path):
     return AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
 
 
-@contextlib.contextmanager
-def _no_progress_bars() -> Iterator[None]:
-    """transformers' loading bars off (its global switch, restored after): stderr keeps to polopt's lines."""
-    from transformers.utils import logging
-
-    was_enabled = logging.is_progress_bar_enabled()
-    logging.disable_progress_bar()
-    try:
-        yield
-    finally:
-        if was_enabled:
-            logging.enable_progress_bar()
-
-
 def load_run(run) -> RunModels:
     """The policy, reference and tokenizer of the finished run in folder ``run`` (see the module docstring)."""
-    with _no_progress_bars():
+    with local_lm.quiet_transformers():
         return _load_run(Path(run))
 
 
