@@ -36,6 +36,21 @@ def pair_identity(file: PairFileSpec, ids: SequenceIds, shape: dict) -> dict:
             "vocab_size": ids.vocab_size, "pad": ids.pad, **shape}
 
 
+def heldout_summary(data, n: int, fit, out, margin: np.ndarray, *, l2: float, bins: int, steps: int, lr: float,
+                    history: list[float]) -> dict:
+    """The summary fields every reward model fitted to a pair file shares: the file's accounting, the split
+    (``fit``, ``out``: row indices), the held-out metrics of ``margin`` (the held-out score differences,
+    weighted by the file's weights where it has them) and the fit."""
+    weight = np.asarray(data.weight[:n], dtype=np.float64)[out.numpy()] if data.accounting["weighted"] else None
+    return {"rows_in": data.accounting["rows_in"], "rows_accepted": data.accounting["rows_accepted"],
+            "rows_rejected": data.accounting["rows_rejected"], "fitted_pairs": int(len(fit)),
+            "heldout_pairs": int(len(out)), "l2": float(l2), "rewards": None, "pair_counts": None,
+            "heldout_rows": [int(data.location[i]) for i in out.tolist()], "row_unit": data.accounting.get("row_unit"),
+            **pair_metrics(margin, weight, bins=bins), "calibration": CALIBRATION.format(bins=bins),
+            "fit_loss_first": history[0], "fit_loss_last": history[-1],
+            "solver": f"Adam, {steps} steps, lr {lr:g}, batch 256, float32"}
+
+
 def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed: int, model: dict, l2: float = 0.0,
                     heldout: float = 0.2, bins: int = 10, steps: int = 300, lr: float = 3e-3) -> dict:
     """Fit the scalar head to the file's accepted pairs; return ``summary``, ``screen`` and ``file``."""
@@ -62,14 +77,8 @@ def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed:
     history = fit_scalar_reward(net, prompt[fit], winner[fit], loser[fit], steps=int(steps), lr=float(lr),
                                 l2=float(l2), seed=seed)
     margin = (score(net, prompt[out], winner[out]) - score(net, prompt[out], loser[out])).double().numpy()
-    weight = np.asarray(data.weight[:n], dtype=np.float64)[out.numpy()] if data.accounting["weighted"] else None
-    summary = {"task": "pairs", "kind": "transformer", "path": str(file.path), "rows_in": data.accounting["rows_in"],
-               "rows_accepted": data.accounting["rows_accepted"], "rows_rejected": data.accounting["rows_rejected"],
-               "fitted_pairs": int(len(fit)), "heldout_pairs": int(len(out)), "l2": float(l2), "rewards": None,
-               "pair_counts": None, "heldout_rows": [int(data.location[i]) for i in out.tolist()],
-               "row_unit": data.accounting.get("row_unit"), **pair_metrics(margin, weight, bins=bins),
-               "calibration": CALIBRATION.format(bins=bins), "fit_loss_first": history[0],
-               "fit_loss_last": history[-1], "solver": f"Adam, {steps} steps, lr {lr:g}, batch 256, float32",
+    summary = {"task": "pairs", "kind": "transformer", "path": str(file.path),
+               **heldout_summary(data, n, fit, out, margin, l2=l2, bins=bins, steps=steps, lr=lr, history=history),
                "notes": ["the pairs are the file's rows: refit from task.path; heldout_rows lists the held-out ones"]}
     acc, ece = summary["heldout_accuracy"], summary["calibration_error"]
     screen = (f"pairs: {file.path}: fitted on {len(fit)}, held out {len(out)}\nheldout_accuracy "

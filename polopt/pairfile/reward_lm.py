@@ -12,14 +12,14 @@ refused; ``model.seed`` starts the head.
 
 from __future__ import annotations
 
-import numpy as np
 import torch
 
 from polopt.methods.lm_reward import fit_head, hidden_features, lm_identity, new_head, pad_rows
-from polopt.methods.reward_model import CALIBRATION, pair_metrics, split_heldout
+from polopt.methods.reward_model import split_heldout
 from polopt.models.local_lm import load_model, model_folder
 from polopt.models.lora import LoraSettings
 from polopt.pairfile.local_lm import context_of, read_for_model
+from polopt.pairfile.reward import heldout_summary
 
 
 def check_reward_keys(task, model: dict) -> None:
@@ -57,17 +57,11 @@ def fit_lm_reward(task, *, mode: str, n_pairs: int | None, seed: int, model: dic
     history = fit_head(head, chosen[fit], rejected[fit], steps=int(steps), lr=float(lr), l2=float(l2), seed=seed)
     with torch.no_grad():
         margin = (head(chosen[out]) - head(rejected[out])).squeeze(-1).double().numpy()  # (N_out,)
-    weight = np.asarray(data.weight[:n], dtype=np.float64)[out.numpy()] if data.accounting["weighted"] else None
     context = context_of(path, model.get("context"))
     context = context if file.max_length is None else min(context, file.max_length)
     summary = {"task": "pairs", "kind": "local_lm", "path": str(file.path), "model": path, "body": "frozen",
-               "head_parameters": sum(p.numel() for p in head.parameters()), "rows_in": data.accounting["rows_in"],
-               "rows_accepted": data.accounting["rows_accepted"], "rows_rejected": data.accounting["rows_rejected"],
-               "fitted_pairs": int(len(fit)), "heldout_pairs": int(len(out)), "l2": float(l2), "rewards": None,
-               "pair_counts": None, "heldout_rows": [int(data.location[i]) for i in out.tolist()],
-               "row_unit": data.accounting.get("row_unit"), **pair_metrics(margin, weight, bins=bins),
-               "calibration": CALIBRATION.format(bins=bins), "fit_loss_first": history[0],
-               "fit_loss_last": history[-1], "solver": f"Adam, {steps} steps, lr {lr:g}, batch 256, float32",
+               "head_parameters": sum(p.numel() for p in head.parameters()),
+               **heldout_summary(data, n, fit, out, margin, l2=l2, bins=bins, steps=steps, lr=lr, history=history),
                "notes": ["a linear head on the frozen model's last hidden state at the last real token; the pairs "
                          "are the file's rows: heldout_rows lists the held-out ones"]}
     acc, ece = summary["heldout_accuracy"], summary["calibration_error"]
