@@ -82,7 +82,8 @@ def _run_page(page: Path, folder: Path, env: dict) -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("page", [p for p in PAGES if scripts(p)], ids=lambda p: p.relative_to(ROOT).as_posix())
+@pytest.mark.parametrize("page", [p for p in PAGES if scripts(p) and p.name not in FOLLOWS.values()],
+                         ids=lambda p: p.relative_to(ROOT).as_posix())  # a continued page runs with its sequel
 def test_every_short_command_runs_as_written(page, tmp_path):
     (tmp_path / "examples").symlink_to(ROOT / "examples")
     bin_dir = Path(sys.executable).parent  # polopt's console script and python beside this interpreter
