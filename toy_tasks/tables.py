@@ -14,6 +14,19 @@ def policy_rows(summary: dict, x: int, indices, labels: list[str], width: int, t
     return lines
 
 
+def finite_policy_table(task, summary: dict, target: str = "optimum") -> list[str]:
+    """Every prompt's :func:`policy_rows` of a finite task (``task.responses`` as labels, else their
+    indices), each under its prompt's line when the task has several."""
+    labels = task.responses or [f"response {i}" for i in range(task.n_responses)]
+    width = max(len(s) for s in labels + ["response"])
+    lines = []
+    for x in range(task.n_prompts):
+        if task.n_prompts > 1:
+            lines.append(f"prompt {x}: {task.prompts[x] if task.prompts else ''}")
+        lines += policy_rows(summary, x, range(len(labels)), labels, width, target=target)
+    return lines
+
+
 def method_footer(summary: dict) -> list[str]:
     """The figures under a method's policy table: TV to its target, KL, win-rate, TV to the
     equilibrium, then the notes."""

@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 
 import torch
 
-from polopt.losses.pair import PairScores
+from polopt.losses.pair import PairScores, check_values
 
 Tensor = torch.Tensor
 
@@ -165,17 +165,6 @@ def probe_group(kind: str, *, at_reference: bool = False, dtype: torch.dtype = t
                        torch.ones(4, 3, dtype=torch.bool), **{kind: feedback[kind]})
 
 
-def check_group_values(name: str, values, n_groups: int) -> None:
-    """A ValueError (one line) unless ``values`` is a tensor of shape (n_groups,)."""
-    if not isinstance(values, torch.Tensor):
-        raise ValueError(f"loss {name!r} returned a {type(values).__name__}; a group objective must return a "
-                         f"torch tensor of one loss per group, shape ({n_groups},)")
-    if tuple(values.shape) != (n_groups,):
-        raise ValueError(f"loss {name!r} returned shape {tuple(values.shape)} for a batch of {n_groups} groups; a "
-                         f"group objective must return one loss per group, shape ({n_groups},), unreduced "
-                         "(polopt averages over groups)")
-
-
 def _try_feedback(objective: GroupObjective, kind: str, beta: float) -> str | None:
     """None when ``objective`` returns finite (4,) losses on the probe groups of ``kind`` (and at the
     reference); else why not, in a few words. A wrong shape raises at once: no feedback fixes that."""
@@ -184,7 +173,7 @@ def _try_feedback(objective: GroupObjective, kind: str, beta: float) -> str | No
             values = objective(probe_group(kind, at_reference=at_reference), beta)
         except Exception as err:  # a function that cannot read this feedback fails in any way
             return f"{type(err).__name__}: {err}"
-        check_group_values(objective.name, values, 4)
+        check_values(objective.name, values, 4, unit="group")
         if not torch.isfinite(values.detach()).all():
             where = "at the reference" if at_reference else "on probe groups"
             return f"non-finite values {values.detach().tolist()} {where}"

@@ -121,6 +121,18 @@ class PairLoss:
         return f"PairLoss({self.name!r}{extra})"
 
 
+def check_values(name: str, values, n: int, *, unit: str = "pair") -> None:
+    """A ValueError (one line) unless ``values`` is a tensor of shape (n,): one loss per ``unit`` ("pair" for a
+    pair objective, "group" for a group objective), unreduced."""
+    if not isinstance(values, torch.Tensor):
+        raise ValueError(f"loss {name!r} returned a {type(values).__name__}; a {unit} objective must return a "
+                         f"torch tensor of one loss per {unit}, shape ({n},)")
+    if tuple(values.shape) != (n,):
+        raise ValueError(f"loss {name!r} returned shape {tuple(values.shape)} for a batch of {n} {unit}s; a "
+                         f"{unit} objective must return one loss per {unit}, shape ({n},), unreduced "
+                         f"(polopt averages over {unit}s)")
+
+
 def _margin_pair_loss(pair: PairScores, beta: float, *, loss: MarginLoss) -> Tensor:
     """``f(beta * rho)`` with ``rho = (w - ref_w) - (l - ref_l)``, the same expression (and so the
     same floating-point result) as :func:`polopt.losses.reduce.margins`. (B,) -> (B,)."""

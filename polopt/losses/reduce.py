@@ -23,9 +23,9 @@ from __future__ import annotations
 import torch
 
 from polopt.groups import GroupSet
-from polopt.losses.group_objective import GroupObjective, GroupScores, check_group_values
+from polopt.losses.group_objective import GroupObjective, GroupScores
 from polopt.losses.margin import MarginLoss
-from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
+from polopt.losses.pair import PairLoss, PairScores, as_pair_loss, check_values
 
 Tensor = torch.Tensor
 
@@ -50,17 +50,6 @@ def pair_scores(batch, logp_w: Tensor, logp_l: Tensor) -> PairScores:
 
     return PairScores(logp_w, logp_l, batch.reference_winner, batch.reference_loser,
                       length(getattr(batch, "len_winner", None)), length(getattr(batch, "len_loser", None)))
-
-
-def check_values(name: str, values, n_pairs: int) -> None:
-    """A ValueError (one line) unless ``values`` is a tensor of shape (n_pairs,)."""
-    if not isinstance(values, torch.Tensor):
-        raise ValueError(f"loss {name!r} returned a {type(values).__name__}; a pair objective must return a "
-                         f"torch tensor of one loss per pair, shape ({n_pairs},)")
-    if tuple(values.shape) != (n_pairs,):
-        raise ValueError(f"loss {name!r} returned shape {tuple(values.shape)} for a batch of {n_pairs} pairs; a "
-                         f"pair objective must return one loss per pair, shape ({n_pairs},), unreduced "
-                         "(polopt averages over pairs)")
 
 
 def per_pair_losses(loss: MarginLoss | PairLoss, pair: PairScores, *, beta: float,
@@ -100,7 +89,7 @@ def group_losses(objective: GroupObjective, logp: Tensor, batch: GroupSet, *, be
     """A group objective's per-group losses (B,) on a batch of groups from the policy's log-probs of its
     members, (B, G); a ValueError (one line) for a wrong shape. Reduce with :func:`weighted_mean`."""
     values = objective(group_scores(batch, logp), beta)  # (B,)
-    check_group_values(objective.name, values, len(batch))
+    check_values(objective.name, values, len(batch), unit="group")
     return values
 
 

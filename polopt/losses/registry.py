@@ -39,8 +39,8 @@ import torch
 from polopt.losses import group, group_pairwise, margin, pair
 from polopt.losses.group_objective import GroupObjective, validate_group
 from polopt.losses.margin import MarginLoss
-from polopt.losses.pair import PairLoss, PairScores, as_pair_loss, kind_of, winner_nll
-from polopt.losses.reduce import check_values, per_pair_losses
+from polopt.losses.pair import PairLoss, PairScores, as_pair_loss, check_values, kind_of, winner_nll
+from polopt.losses.reduce import per_pair_losses
 
 Tensor = torch.Tensor
 KINDS = ("margin", "pair", "group")

@@ -29,7 +29,7 @@ from toy_tasks.exact.groups import population_value, solve_groups, target_kind
 from toy_tasks.exact.margin import Optimum
 from toy_tasks.finite.feedback import WeightedGroups, check_feedback, population_groups, sample_groups
 from toy_tasks.measures import loss_gaps, per_prompt, total_variation
-from toy_tasks.tables import policy_rows
+from toy_tasks.tables import finite_policy_table
 
 MODES = ("exact", "sampled")
 DTYPE = torch.float64
@@ -110,13 +110,7 @@ class GroupSession:
         return summary
 
     def table(self, summary: dict) -> str:
-        labels = self.task.responses or [f"response {i}" for i in range(self.task.n_responses)]
-        width = max(len(s) for s in labels + ["response"])
-        lines = []
-        for x in range(self.task.n_prompts):
-            if self.task.n_prompts > 1:
-                lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
-            lines += policy_rows(summary, x, range(len(labels)), labels, width)
+        lines = finite_policy_table(self.task, summary)
         tv = summary["tv_to_optimum"]
         lines.append(f"loss {summary['loss']:.6g}  {summary['optimum_kind']} {summary['optimum_value']:.6g}  "
                      f"tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  kl_to_reference "

@@ -26,7 +26,7 @@ from toy_tasks.exact.pairs import exact_optimum, objective_value
 from toy_tasks.exact.traits import traits
 from toy_tasks.measures import displacement_warning, loss_gaps, margin_growth, per_prompt, total_variation
 from toy_tasks.methods.view import MethodView
-from toy_tasks.tables import policy_rows
+from toy_tasks.tables import finite_policy_table
 
 MODES = ("exact", "sampled")
 DTYPE = torch.float64  # finite tasks are small: train them in double precision
@@ -156,13 +156,7 @@ class FiniteSession:
 
     def table(self, summary: dict) -> str:
         """The trained policy beside the reference and the exact optimum, as text."""
-        lines = []
-        labels = self.task.responses or [f"response {i}" for i in range(self.task.n_responses)]
-        width = max(len(s) for s in labels + ["response"])
-        for x in range(self.task.n_prompts):
-            if self.task.n_prompts > 1:
-                lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
-            lines += policy_rows(summary, x, range(len(labels)), labels, width)
+        lines = finite_policy_table(self.task, summary)
         tv = summary["tv_to_optimum"]
         lines.append(f"loss {summary['loss']:.6g}  optimum {summary['optimum_value']:.6g}  "
                      f"gap {summary['loss_gap']:.3g}  "

@@ -46,7 +46,7 @@ from toy_tasks.methods.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.methods.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
 from toy_tasks.methods.group_target import group_update_target
 from toy_tasks.methods.reward_fit import learned_reward_fields, learned_rewards
-from toy_tasks.tables import method_footer, policy_rows
+from toy_tasks.tables import finite_policy_table, method_footer
 
 REWARDS = ("task", "win_rate")
 
@@ -285,11 +285,4 @@ class MethodView:
 
     def table(self, summary: dict) -> str:
         """Trained policy beside the reference and the method's target, as text."""
-        labels = self.task.responses or [f"response {i}" for i in range(self.task.n_responses)]
-        width = max(len(s) for s in labels + ["response"])
-        lines = []
-        for x in range(self.task.n_prompts):
-            if self.task.n_prompts > 1:
-                lines.append(f"prompt {x}: {self.task.prompts[x] if self.task.prompts else ''}")
-            lines += policy_rows(summary, x, range(len(labels)), labels, width, target="target")
-        return "\n".join(lines + method_footer(summary))
+        return "\n".join(finite_policy_table(self.task, summary, target="target") + method_footer(summary))
