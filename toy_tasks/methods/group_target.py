@@ -85,6 +85,8 @@ def group_update_target(env: FiniteEnvironment, *, beta: float, group_size: int,
     good = [(r, p) for r, p in zip(runs, policies, strict=True) if r["residual"] <= CERTIFIED and p.min() >= VANISHED]
     how = (f"stationary point of the expected update (damped Newton on it, {starts} seeded starts, torch autograd "
            "float64)")
+    if kl == "in_reward":
+        return _in_reward_target(env, beta, advantage, how, [p for _, p in good])
     if not good:
         residuals = ", ".join(f"{r['residual']:.2g}" for r in runs)
         return None, how + ": none certified in the simplex's interior", [
@@ -95,3 +97,32 @@ def group_update_target(env: FiniteEnvironment, *, beta: float, group_size: int,
         notes.append(f"the starts reached stationary points up to TV {spread:.3g} apart: several stationary points; "
                      "the one from the reference start (or the first certified) is reported")
     return good[0][1], how + f", residual {good[0][0]['residual']:.2g}", notes
+
+
+def _in_reward_target(env: FiniteEnvironment, beta: float, advantage: str, how: str,
+                      found: list[np.ndarray]) -> tuple[np.ndarray, str, list[str]]:
+    """With the KL inside the reward, ``pi* = norm(pi_ref e^{r / beta})`` is a stationary point of the
+    update for every advantage: there ``r - beta log(pi* / pi_ref) = beta log Z`` for every response, so
+    every group's rewards are equal and every advantage is 0 by definition (the module docstring of
+    :mod:`polopt.methods.group`). Certified by that identity's spread in float64, not by the update's
+    residual: the standardised update does not shrink near ``pi*`` (its advantages keep unit scale), so
+    it is no smooth root for Newton. Stationary points the seeded starts found elsewhere are reported."""
+    rewards, log_ref = env.rewards.double().numpy(), env.reference.double().numpy()
+    log_star = scipy.special.log_softmax(log_ref + rewards / beta, axis=1)
+    adjusted = rewards - beta * (log_star - log_ref)  # beta log Z per prompt, up to rounding
+    spread = float((adjusted.max(1) - adjusted.min(1)).max())
+    scale = max(1.0, float(np.abs(rewards).max()), float(beta * np.abs(log_star - log_ref).max()))
+    if spread > 1e-12 * scale:
+        raise RuntimeError(f"r - beta log(pi*/pi_ref) spread {spread:.3g} at pi_ref e^(r/beta): rounding this large "
+                           "means the task's rewards or reference are not finite")
+    star = np.exp(log_star)
+    notes = []
+    if advantage == "standardised":
+        notes.append("the standardised update keeps unit scale near this point, so a constant learning rate circles "
+                     "it; a decaying one (optim.schedule=cosine, the default) settles on it")
+    apart = [0.5 * np.abs(p - star).sum(1).max() for p in found]
+    if any(tv > 1e-6 for tv in apart):
+        notes.append(f"the seeded starts also reached stationary points TV {max(apart):.3g} from it: several "
+                     "stationary points; pi_ref e^(r / beta) is reported")
+    return star, (how.replace("damped Newton on it", "pi_ref e^(r / beta), where every adjusted reward equals "
+                              f"beta log Z (spread {spread:.1g}); damped Newton on it elsewhere")), notes
