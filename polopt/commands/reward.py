@@ -11,6 +11,11 @@ state for ``task=pairs model=local_lm``) and returns the summary and the file's 
 this module writes ``reward.pt``, ``summary.json`` and ``config.yaml`` into the
 output folder. Give ``method.reward=OUT/reward.pt`` to ``method=best_of_n`` or
 ``method=rl`` to optimise against it.
+
+``reward.kind=preference`` fits P(y > y' | x) directly instead (no Bradley–Terry assumption:
+:mod:`polopt.methods.preference_model`), writes ``preference.pt`` (give it to
+``method=selfplay method.preference=PATH``) and reports its held-out accuracy beside that of the
+Bradley–Terry fit on the same split.
 """
 
 from __future__ import annotations
@@ -28,6 +33,7 @@ def fit(overrides: list[str], out: Path) -> dict:
     from polopt.checkpoints.store import atomic_write
     from polopt.commands.config import build_task, compose
     from polopt.commands.train import check_complete
+    from polopt.methods.preference_model import check_fit_kind
     from polopt.methods.reward_model import save_reward_model
     from polopt.training.run_folder import write_json
 
@@ -38,18 +44,20 @@ def fit(overrides: list[str], out: Path) -> dict:
         raise ValueError(f"task {cfg.task.get('_target_')!r} cannot fit a reward model; polopt reward takes a "
                          "finite task (bradley_terry, contextual, file, ...) or task=sequence")
     keys = OmegaConf.to_container(cfg.reward, resolve=True)
+    kind = check_fit_kind(keys["kind"])
     torch.set_num_threads(int(cfg.train.get("threads") or 1))  # tiny models: one thread (see train.threads)
     started = time.perf_counter()
-    fitted = task.fit_reward(mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=int(cfg.train.seed),
+    fitted = task.fit_reward(kind=kind, mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=int(cfg.train.seed),
                              l2=keys["l2"], heldout=keys["heldout"], bins=keys["bins"], steps=keys["steps"],
                              lr=keys["lr"], model=OmegaConf.to_container(cfg.model, resolve=True))
     summary, payload = fitted["summary"], dict(fitted["file"])
     summary["seconds"] = time.perf_counter() - started
     out.mkdir(parents=True, exist_ok=True)
     atomic_write(out / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
-    path = save_reward_model(out / "reward.pt", payload.pop("kind"), payload.pop("identity"), payload.pop("state"),
+    name = "preference.pt" if kind == "preference" else "reward.pt"
+    path = save_reward_model(out / name, payload.pop("kind"), payload.pop("identity"), payload.pop("state"),
                              **payload)
-    summary["reward_model"] = str(path)
+    summary["preference_model" if kind == "preference" else "reward_model"] = str(path)
     summary["screen"] = fitted["screen"]
     write_json(out / "summary.json", {k: v for k, v in summary.items() if k != "screen"})
     return summary
@@ -63,11 +71,16 @@ def main(argv: list[str]) -> int:
                     "prompt on finite tasks, a scalar head on the tiny transformer for task=sequence and task=pairs, "
                     "a linear head on a local causal LM's last hidden state for task=pairs model=local_lm. Writes "
                     "reward.pt (give it to method.reward=PATH) and summary.json (rewards, pair_counts, "
-                    "heldout_accuracy, calibration_error, the distance to the true rewards).",
+                    "heldout_accuracy, calibration_error, the distance to the true rewards). "
+                    "reward.kind=preference fits P(y > y' | x) itself (a table on finite tasks, an antisymmetric "
+                    "pair head otherwise), writes "
+                    "preference.pt (give it to method=selfplay method.preference=PATH) and reports its held-out "
+                    "accuracy beside the Bradley–Terry fit's on the same split.",
         epilog="example: polopt reward task=bradley_terry task.mode=sampled task.n_pairs=2000 train.seed=0 "
                "hydra.run.dir=runs/rm")
-    parser.add_argument("overrides", nargs="*", help="key=value overrides as for 'polopt train' (and reward.l2, "
-                                                     "reward.heldout, reward.bins, reward.steps, reward.lr); "
+    parser.add_argument("overrides", nargs="*", help="key=value overrides as for 'polopt train' (and reward.kind, "
+                                                     "reward.l2, reward.heldout, reward.bins, reward.steps, "
+                                                     "reward.lr); "
                                                      "hydra.run.dir=DIR: the output folder (default "
                                                      "runs/reward/DATE/TIME)")
     args = parser.parse_intermixed_args(argv)
@@ -76,6 +89,10 @@ def main(argv: list[str]) -> int:
     out, overrides = output_folder(args.overrides, "polopt reward", "reward")
     summary = fit(overrides, out)  # a user error: one line by polopt.commands.errors
     print(summary["screen"])
+    if "preference_model" in summary:
+        hint = "  (give it to method=selfplay method.preference=PATH)" if summary.get("preference") is not None else ""
+        print(f"preference model: {summary['preference_model']}{hint}")
+        return 0
     hint = "  (give it to method.reward=PATH)" if summary.get("rewards") is not None else ""
     print(f"reward model: {summary['reward_model']}{hint}")
     return 0

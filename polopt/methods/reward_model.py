@@ -35,7 +35,8 @@ from polopt.models.transformer import TinyTransformer
 
 FORMAT = "polopt reward model"
 VERSION = 1
-KINDS = ("table", "transformer", "local_lm")  # local_lm: polopt.methods.lm_reward
+KINDS = ("table", "transformer", "local_lm",  # local_lm: polopt.methods.lm_reward
+         "preference_table", "preference_transformer", "preference_local_lm")  # polopt.methods.preference_model
 CALIBRATION = ("expected calibration error over {bins} equal-width bins of the predicted probability that the "
                "model's favourite of a held-out pair wins, in [0.5, 1] (Naeini et al. 2015; Guo et al. 2017)")
 
@@ -99,7 +100,7 @@ def save_reward_model(path: Path, kind: str, identity: dict, state: dict, **extr
     return path
 
 
-def load_reward_model(path, identity: dict, *, key: str = "method.reward") -> dict:
+def load_reward_model(path, identity: dict, *, key: str = "method.reward", what: str = "reward model") -> dict:
     """Read a reward model file (weights only) and refuse one fitted for another task or model shape.
 
     ``identity``: what the caller's task and model are (the same keys the file was written
@@ -107,17 +108,20 @@ def load_reward_model(path, identity: dict, *, key: str = "method.reward") -> di
     and what to do.
     """
     path = Path(path)
-    redo = "fit one for this task with polopt reward (the same task keys) and give its reward.pt"
+    redo = ("fit one for this task with polopt reward (the same task keys) and give its reward.pt"
+            if what == "reward model" else
+            "fit one for this task with polopt reward reward.kind=preference (the same task keys) and give its "
+            "preference.pt")
     if not path.is_file():
-        raise ValueError(f"{key}: reward model file {str(path)!r} does not exist; {redo}")
+        raise ValueError(f"{key}: {what} file {str(path)!r} does not exist; {redo}")
     try:
         data = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as err:  # any unreadable or unsafe file: one line
-        raise ValueError(f"{key}: {path} is not a readable reward model ({type(err).__name__}); {redo}") from err
+        raise ValueError(f"{key}: {path} is not a readable {what} ({type(err).__name__}); {redo}") from err
     if not isinstance(data, dict) or data.get("format") != FORMAT:
-        raise ValueError(f"{key}: {path} is not a polopt reward model (no '{FORMAT}' header); {redo}")
+        raise ValueError(f"{key}: {path} is not a polopt {what} (no '{FORMAT}' header); {redo}")
     if data.get("kind") not in KINDS:
-        raise ValueError(f"{key}: {path} holds a reward model of unknown kind {data.get('kind')!r}; {redo}")
+        raise ValueError(f"{key}: {path} holds a {what} of unknown kind {data.get('kind')!r}; {redo}")
     theirs = data.get("identity", {})
     for field, mine in identity.items():
         if theirs.get(field) != mine:
@@ -165,17 +169,28 @@ def fit_scalar_reward(model: ScalarRewardModel, prompt: Tensor, winner: Tensor, 
 
     ``prompt`` (N, T_p), ``winner`` and ``loser`` (N, T_r). Returns the loss per step.
     """
-    optimiser = torch.optim.Adam(model.parameters(), lr=lr)
+    def margin(index: Tensor) -> Tensor:
+        both = model(prompt[index].repeat(2, 1), torch.cat([winner[index], loser[index]]))  # (2B,) one pass
+        return both[: len(index)] - both[len(index):]  # (B,) r_w - r_l
+
+    return adam_on_pairs(margin, model.parameters(), prompt.shape[0], steps=steps, lr=lr, batch_size=batch_size,
+                         l2=l2, seed=seed)
+
+
+def adam_on_pairs(margin, parameters, n: int, *, steps: int, lr: float, batch_size: int | None = 256,
+                  l2: float = 0.0, seed: int = 0) -> list[float]:
+    """Minimise ``-mean log sigmoid(margin(index))`` (+ ``l2/2 ||theta||^2``) by Adam over seeded minibatches
+    of ``n`` labelled pairs; ``margin`` maps a (B,) index tensor to the (B,) logit that the winner wins (a
+    reward difference, or a preference model's logit). Returns the loss per step."""
+    parameters = list(parameters)
+    optimiser = torch.optim.Adam(parameters, lr=lr)
     generator = torch.Generator().manual_seed(seed)
-    n = prompt.shape[0]
     history = []
     for _ in range(steps):
         index = torch.randperm(n, generator=generator)[: batch_size or n]  # (B,)
-        both = model(prompt[index].repeat(2, 1), torch.cat([winner[index], loser[index]]))  # (2B,) one pass
-        margin = both[: len(index)] - both[len(index):]  # (B,) r_w - r_l
-        loss = bradley_terry_nll(margin)
+        loss = bradley_terry_nll(margin(index))
         if l2 > 0:
-            loss = loss + 0.5 * l2 * sum((p**2).sum() for p in model.parameters())
+            loss = loss + 0.5 * l2 * sum((p**2).sum() for p in parameters)
         optimiser.zero_grad()
         loss.backward()
         optimiser.step()

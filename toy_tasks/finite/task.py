@@ -41,7 +41,7 @@ import scipy.special
 from polopt.losses.group_objective import GroupObjective
 from toy_tasks.finite import group_session, session
 from toy_tasks.measures import kl_divergence
-from toy_tasks.methods import reward_fit
+from toy_tasks.methods import preference_fit, reward_fit
 
 PROBABILITY_TOLERANCE = 1e-6
 
@@ -154,10 +154,13 @@ class FiniteTask:
             return session.prepare(self, loss, **kwargs)
         return group_session.prepare(self, loss, feedback=feedback, group_size=group_size, **kwargs)
 
-    def fit_reward(self, **kwargs):
+    def fit_reward(self, *, kind: str = "bradley_terry", **kwargs):
         """``polopt reward``: a Bradley–Terry reward table fitted to this task's pairs
-        (see :mod:`toy_tasks.methods.reward_fit`)."""
+        (see :mod:`toy_tasks.methods.reward_fit`), or with ``kind="preference"`` the table of pairwise
+        win probabilities (:mod:`toy_tasks.methods.preference_fit`)."""
         table_keys = {k: v for k, v in kwargs.items() if k not in ("model", "steps", "lr")}  # no network to train
+        if kind == "preference":
+            return preference_fit.fit_task_preference(self, **table_keys)
         return reward_fit.fit_task_reward(self, **table_keys)
 
     # ------------------------------------------------------------------ files

@@ -131,6 +131,10 @@ def learned_rewards(task, path, *, key: str = "method.reward") -> np.ndarray:
     """The (X, K) learned rewards of a reward model file fitted for ``task``: a table, or a scalar head on
     the sequence task, whose file carries its scores of every enumerated response."""
     data = load_reward_model(path, task_identity(task), key=key)
+    if str(data["kind"]).startswith("preference"):  # polopt.methods.preference_model.PREFERENCE_KINDS
+        raise ValueError(f"{key}: {path} holds a preference model (kind {data['kind']!r}), not a reward: a preference "
+                         "has no reward to optimise; give it to method=selfplay method.preference=PATH, or fit a "
+                         "reward with polopt reward reward.kind=bradley_terry")
     rewards = data["state"].get("rewards")
     if rewards is None or tuple(rewards.shape) != (task.n_prompts, task.n_responses):
         raise ValueError(f"{key}: {path} holds no reward table of shape ({task.n_prompts}, {task.n_responses}); "

@@ -7,7 +7,9 @@ the trainer:
 
 - ``rl``: pi* ∝ pi_ref e^{r / beta} (the KL-regularised optimum, a closed form);
 - ``selfplay``: the Nash equilibrium of the regularised preference game at
-  tau = beta / 2 (:mod:`toy_tasks.methods.equilibrium`), for the squared loss;
+  tau = beta / 2 (:mod:`toy_tasks.methods.equilibrium`), for the squared loss; with
+  ``method.preference=PATH`` (a preference model from ``polopt reward reward.kind=preference``)
+  the game is played on the learned P, and the target is that game's equilibrium;
 - ``best_of_n``: the exact best-of-n distribution (:mod:`toy_tasks.methods.best_of_n`);
 - ``group``: the stationary point of the expected group-relative update
   (:mod:`toy_tasks.methods.group_target`), beside pi_ref e^{r / beta};
@@ -45,6 +47,7 @@ from toy_tasks.measures import per_prompt, total_variation
 from toy_tasks.methods.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.methods.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
 from toy_tasks.methods.group_target import group_update_target
+from toy_tasks.methods.preference_fit import learned_preference
 from toy_tasks.methods.reward_fit import learned_reward_fields, learned_rewards
 from toy_tasks.tables import finite_policy_table, method_footer
 
@@ -83,6 +86,7 @@ class MethodView:
     target: np.ndarray | None  # (X, K) the method's exact target policy, None where unknown
     target_method: str
     equilibrium: Equilibrium
+    preference: np.ndarray | None = None  # (X, K, K) the P the method plays on; None: the task's
 
     @classmethod
     def build(cls, session, name: str = "offline", **params) -> MethodView:
@@ -93,14 +97,21 @@ class MethodView:
         rewards = task_rewards(task, params.get("reward", "task"))
         beta = session.beta
         equilibrium = nash_equilibrium(task.reference, task.preference, tau=tau_of_beta(beta))
-        target, how = None, ""
+        target, how, played = None, "", None
         if name == "rl":
             if rewards is None:
                 raise ValueError(f"method=rl needs rewards and task {task.name!r} has none; use a task with "
                                  "rewards (bradley_terry, contextual) or method.reward=win_rate")
             target, how = kl_optimum(task.reference, rewards, beta), "closed form pi_ref e^{r / beta}"
         elif name == "selfplay":
-            if params.get("loss", "squared") == "squared":
+            if params.get("preference") is not None:  # the game on a learned P (Munos et al. 2023)
+                played = learned_preference(task, params["preference"])
+                learned = nash_equilibrium(task.reference, played, tau=tau_of_beta(beta))
+                target, how = learned.policy, f"Nash equilibrium of the learned P at tau = beta / 2: {learned.method}"
+                if params.get("loss", "squared") != "squared":
+                    target, how = None, ("none known: the Nash equilibrium is self-play's fixed point for the squared "
+                                         "loss only")
+            elif params.get("loss", "squared") == "squared":
                 target, how = equilibrium.policy, f"Nash equilibrium at tau = beta / 2: {equilibrium.method}"
             else:
                 how = "none known: the Nash equilibrium is self-play's fixed point for the squared loss only"
@@ -127,7 +138,7 @@ class MethodView:
                                  "with rewards or method.reward=win_rate")
             target = best_of_n_distribution(task.reference, rewards, params.get("n", 4))
             how = f"exact best-of-{params.get('n', 4)} distribution (order statistics, ties shared)"
-        return cls(session, method, rewards, target, how, equilibrium)
+        return cls(session, method, rewards, target, how, equilibrium, played)
 
     # ------------------------------------------------------------ what the method sees
 
@@ -141,7 +152,8 @@ class MethodView:
             reference=torch.as_tensor(np.log(self.task.reference), dtype=dtype),
             prompt_weights=torch.as_tensor(self.task.prompt_weights, dtype=dtype),
             rewards=None if self.rewards is None else torch.as_tensor(self.rewards, dtype=dtype),
-            preference=torch.as_tensor(self.task.preference, dtype=dtype))
+            preference=torch.as_tensor(self.task.preference if self.preference is None else self.preference,
+                                       dtype=dtype))
 
     def target_tensor(self) -> torch.Tensor | None:
         return None if self.target is None else torch.as_tensor(self.target, dtype=torch.float64)
@@ -231,6 +243,8 @@ class MethodView:
             summary.update({"objective": float(task.prompt_weights @ gain),
                             "optimum_objective": float(task.prompt_weights @ best),
                             "loss_gap": float(task.prompt_weights @ (best - gain))})
+        elif name == "selfplay" and self.preference is not None:
+            summary.update(self.learned_preference_fields(pi))
         elif name == "selfplay":
             summary["loss_gap"] = summary["duality_gap"]
             summary["notes"].append(
@@ -264,6 +278,22 @@ class MethodView:
         summary.update(verdict_fields(summary, result.history,
                                       tolerance=getattr(self.session, "tolerance", REACHED_TOLERANCE)))
         return summary
+
+    def learned_preference_fields(self, pi: np.ndarray) -> dict:
+        """method=selfplay method.preference=PATH: the game is the learned P's. ``optimum`` (the target) is its
+        Nash equilibrium; beside it the true game's, and how far apart the two equilibria lie."""
+        task, tau = self.task, self.equilibrium.tau
+        gap = float(task.prompt_weights @ duality_gap(pi, task.reference, self.preference, tau))
+        out = {"preference_model": str(self.method["preference"]), "optimum_kind": "Nash equilibrium of the learned P",
+               "loss_gap": gap, "learned_duality_gap": gap,
+               "tv_optimum_to_true_equilibrium": None if self.target is None else total_variation(
+                   self.target, self.equilibrium.policy, task.prompt_weights)}
+        if self.target is not None:
+            trained = total_variation(pi, self.target, task.prompt_weights)
+            out["notes"] = [f"played on the learned preference of {self.method['preference']}: its Nash equilibrium "
+                            f"(tau = beta / 2 = {tau:g}) lies TV {out['tv_optimum_to_true_equilibrium']:.3g} from the "
+                            f"true game's; self-play ends at TV {trained:.2g} from the learned one"]
+        return out
 
     def group_fields(self, pi: np.ndarray) -> dict:
         """method=group: the KL-regularised optimum pi_ref e^{r / beta} beside the update's stationary
