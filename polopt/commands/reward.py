@@ -90,7 +90,7 @@ def main(argv: list[str]) -> int:
     summary = fit(overrides, out)  # a user error: one line by polopt.commands.errors
     print(summary["screen"])
     if "preference_model" in summary:
-        hint = "  (give it to method=selfplay method.preference=PATH)" if summary.get("preference") is not None else ""
+        hint = "  (give it to method=selfplay method.preference=PATH)" if summary["task"] != "pairs" else ""
         print(f"preference model: {summary['preference_model']}{hint}")
         return 0
     hint = "  (give it to method.reward=PATH)" if summary.get("rewards") is not None else ""

@@ -59,18 +59,27 @@ def load_preference_model(path, identity: dict, *, key: str = "method.preference
 
 
 class AntisymmetricHead(nn.Module):
-    """``f(a, b) = g(a, b) - g(b, a)`` with ``g(a, b) = w . tanh(W [a; b] + c)``: a logit antisymmetric by
-    construction (module docstring). ``forward(a (B, D), b (B, D)) -> (B,)``."""
+    """``f(a, b) = g(a, b) - g(b, a)``, a logit antisymmetric by construction (module docstring), with
+
+        g(a, b) = a^T M b + v . tanh(U [a; b] + c),
+
+    so ``f = a^T (M - M^T) b + ...``: the bilinear part's skew-symmetric matrix holds a cycle from the
+    start (a near-linear g alone would begin as a Bradley–Terry difference ``v' . (a - b)``; the skew
+    bilinear form is the general preference model's, Zhang et al., General preference modeling with
+    preference representations, 2024, from memory), the small network the rest.
+    ``forward(a (B, D), b (B, D)) -> (B,)``."""
 
     def __init__(self, width: int, *, hidden: int | None = None, seed: int = 0):
         super().__init__()
         with torch.random.fork_rng(devices=[]):  # seeded weights without touching the global stream
             torch.manual_seed(seed)
+            self.bilinear = nn.Parameter(torch.randn(width, width) / width)  # M, (D, D)
             self.g = nn.Sequential(nn.Linear(2 * width, hidden or width), nn.Tanh(), nn.Linear(hidden or width, 1))
 
     def forward(self, a: Tensor, b: Tensor) -> Tensor:
-        both = self.g(torch.cat([torch.cat([a, b], -1), torch.cat([b, a], -1)])).squeeze(-1)  # (2B,) one pass
-        return both[: len(a)] - both[len(a):]  # (B,) g(a, b) - g(b, a)
+        first, second = torch.cat([a, b]), torch.cat([b, a])  # (2B, D) each: both orders in one pass
+        g = ((first @ self.bilinear) * second).sum(-1) + self.g(torch.cat([first, second], -1)).squeeze(-1)  # (2B,)
+        return g[: len(a)] - g[len(a):]  # (B,) g(a, b) - g(b, a)
 
 
 class PairwisePreferenceModel(nn.Module):

@@ -51,9 +51,10 @@ def heldout_summary(data, n: int, fit, out, margin: np.ndarray, *, l2: float, bi
             "solver": f"Adam, {steps} steps, lr {lr:g}, batch 256, float32"}
 
 
-def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed: int, model: dict, l2: float = 0.0,
-                    heldout: float = 0.2, bins: int = 10, steps: int = 300, lr: float = 3e-3) -> dict:
-    """Fit the scalar head to the file's accepted pairs; return ``summary``, ``screen`` and ``file``."""
+def encode_pair_file(file: PairFileSpec, *, mode: str, n_pairs: int | None, model: dict) -> tuple:
+    """The file's first ``n_pairs`` accepted pairs as tokens for a head on the tiny transformer: ``(data, n, ids,
+    prompt (N, T_p), winner (N, T_r), loser (N, T_r), shape)``, ``shape`` the model's context, width, layers
+    and heads (the context stretched to the longest pair)."""
     if mode != "sampled":
         raise ValueError(f"task.mode must be sampled for task=pairs (a file holds sampled pairs), got {mode!r}")
     if model.get("kind") != "transformer":
@@ -72,6 +73,16 @@ def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed:
                                 real_tokens(prompt, loser, pad_id=ids.pad)).max())
     shape = {"context": max(int(model.get("context") or CONTEXT_FLOOR), longest),
              **{k: int(model.get(k, d)) for k, d in (("width", 32), ("layers", 2), ("heads", 2))}}
+    return data, n, ids, prompt, winner, loser, shape
+
+
+def fit_pair_reward(file: PairFileSpec, *, mode: str, n_pairs: int | None, seed: int, model: dict, l2: float = 0.0,
+                    heldout: float = 0.2, bins: int = 10, steps: int = 300, lr: float = 3e-3,
+                    encoded: tuple | None = None) -> dict:
+    """Fit the scalar head to the file's accepted pairs; return ``summary``, ``screen`` and ``file``.
+    ``encoded``: :func:`encode_pair_file`'s result where the caller has it already."""
+    data, n, ids, prompt, winner, loser, shape = encoded or encode_pair_file(file, mode=mode, n_pairs=n_pairs,
+                                                                             model=model)
     net = ScalarRewardModel(ids.vocab_size, pad_id=ids.pad, seed=int(model.get("seed", 0)), **shape)
     fit, out = (torch.as_tensor(i) for i in split_heldout(n, heldout, seed))
     history = fit_scalar_reward(net, prompt[fit], winner[fit], loser[fit], steps=int(steps), lr=float(lr),

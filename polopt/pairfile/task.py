@@ -101,13 +101,23 @@ class PairTask:
             session.attach_reference(model)
         return session
 
-    def fit_reward(self, **kwargs):
+    def fit_reward(self, *, kind: str = "bradley_terry", **kwargs):
         """``polopt reward task=pairs``: a scalar-head reward model (see :mod:`polopt.pairfile.reward`), with
-        ``model=local_lm`` a head on the local model's last hidden state (:mod:`polopt.pairfile.reward_lm`)."""
+        ``model=local_lm`` a head on the local model's last hidden state (:mod:`polopt.pairfile.reward_lm`);
+        with ``kind="preference"`` an antisymmetric pair head on either (:mod:`polopt.pairfile.preference`,
+        :mod:`polopt.pairfile.preference_lm`)."""
         if (kwargs.get("model") or {}).get("kind") == "local_lm":
+            if kind == "preference":
+                from polopt.pairfile.preference_lm import fit_lm_preference
+
+                return fit_lm_preference(self, **kwargs)
             from polopt.pairfile.reward_lm import fit_lm_reward
 
             return fit_lm_reward(self, **kwargs)
+        if kind == "preference":
+            from polopt.pairfile.preference import fit_pair_preference
+
+            return fit_pair_preference(self.file, **kwargs)
         from polopt.pairfile.reward import fit_pair_reward  # builds on the data layer, as this module does
 
         return fit_pair_reward(self.file, **kwargs)

@@ -48,6 +48,8 @@ def preference_table(counts: np.ndarray, *, l2: float = 0.0) -> np.ndarray:
     total = won + lost  # (X, K, K) n_ij
     with np.errstate(invalid="ignore", divide="ignore"):
         table = np.where(total > 0, won / total, 0.5)  # the binomial proportion; 1/2 where never compared
+    lower = np.tril(np.ones(counts.shape[1:], dtype=bool), -1)
+    table = np.where(lower, 1.0 - np.swapaxes(table, 1, 2), table)  # P_ji = 1 - P_ij, by construction
     if l2 > 0:
         for x, i, j in zip(*np.nonzero(np.triu(total > 0, 1)), strict=True):
             a, b = won[x, i, j], lost[x, i, j]

@@ -41,6 +41,7 @@ import torch
 from polopt.models.logprobs import batched_logprobs
 from polopt.models.transformer import TinyTransformer
 from toy_tasks.finite.task import FiniteTask, make_task
+from toy_tasks.sequence import preference as sequence_preference
 from toy_tasks.sequence import reward as sequence_reward
 from toy_tasks.sequence import session as sequence_session
 
@@ -211,8 +212,11 @@ class SequenceTask:
         """Write the enumerated finite task as a task file (``polopt export sequence OUT.json``)."""
         return self.finite.save(path)
 
-    def fit_reward(self, **kwargs):
-        """``polopt reward``: a scalar head on the tiny transformer (see :mod:`toy_tasks.sequence.reward`)."""
+    def fit_reward(self, *, kind: str = "bradley_terry", **kwargs):
+        """``polopt reward``: a scalar head on the tiny transformer (see :mod:`toy_tasks.sequence.reward`), or with
+        ``kind="preference"`` an antisymmetric pair head (:mod:`toy_tasks.sequence.preference`)."""
+        if kind == "preference":
+            return sequence_preference.fit_sequence_preference(self, **kwargs)
         return sequence_reward.fit_sequence_reward(self, **kwargs)
 
     def prepare(self, loss, **kwargs):
