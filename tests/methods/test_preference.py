@@ -280,3 +280,30 @@ def test_bad_preference_input_is_one_line_and_exit_2(tmp_path, capsys):
         assert "Traceback" not in err
         assert re.search(message, err), err
     assert load_preference_model(preference, task_identity(nontransitive()))["kind"] == "preference_table"
+
+
+@pytest.mark.slow
+def test_sequence_task_pair_head_beats_the_scalar_head_on_a_cycle_and_selfplay_plays_on_it(tmp_path):
+    """task=sequence task.preference=nontransitive (classes of responses in a cycle): the pair head against the
+    Bradley–Terry scalar head on the same 600 held-out pairs, beside the task's own P (the Bayes rule).
+    Measured (3000 pairs, 300 steps): preference 0.738, Bradley–Terry 0.562, the task's P 0.7525. The file's
+    table of every enumerated pair is antisymmetric; self-play on it reaches the learned game's equilibrium
+    within the sequence task's tolerance."""
+    from polopt.commands.main import main
+    from toy_tasks.sequence.task import sequence_task
+
+    task = sequence_task(preference="nontransitive")
+    model = {"kind": "transformer", "width": 32, "layers": 2, "heads": 2, "context": 16, "seed": 0}
+    fitted = task.fit_reward(kind="preference", mode="sampled", n_pairs=3000, seed=0, model=model, steps=300)
+    summary = fitted["summary"]
+    assert summary["heldout_accuracy"] >= summary["true_preference_heldout_accuracy"] - 0.03
+    assert summary["accuracy_gap"] > 0.1
+    f = fitted["file"]
+    path = save_reward_model(tmp_path / "preference.pt", f["kind"], f["identity"], f["state"])
+    table = learned_preference(task.finite, path)
+    np.testing.assert_allclose(table + np.swapaxes(table, 1, 2), 1.0, atol=1e-12)
+    run = tmp_path / "run"
+    assert main(["train", "task=sequence", "task.preference=nontransitive", "method=selfplay",
+                 f"method.preference={path}", "train.steps=200", "train.progress=false", f"hydra.run.dir={run}"]) == 0
+    played = json.loads((run / "summary.json").read_text())
+    assert played["reached_optimum"] is True and played["optimum_kind"] == "Nash equilibrium of the learned P"
