@@ -8,7 +8,8 @@ block designs, 1952). Only differences of r within a prompt are identified.
 This module owns what every kind of reward model shares:
 
 - the file: ``torch.save`` of a plain dict (loaded back with
-  ``torch.load(weights_only=True)``) holding ``kind`` (``table``, ``transformer`` or ``local_lm``),
+  ``torch.load(weights_only=True)``) holding ``kind`` (``table``, ``transformer`` or ``local_lm``; the
+  preference models of :mod:`polopt.methods.preference_model` share the file as ``preference_*``),
   the weights, and ``identity``, a dict describing the task and the model shape
   it was fitted for, so that a file for another task or shape is refused in one
   line (:func:`load_reward_model`);
