@@ -269,6 +269,8 @@ def test_bad_preference_input_is_one_line_and_exit_2(tmp_path, capsys):
          r"method.reward: .* holds a preference model \(kind 'preference_table'\), not a reward"),
         (("train", "method=selfplay", f"method.preference={tmp_path / 'none.pt'}"),
          r"preference model file .*none.pt' does not exist"),
+        (("train", "method=rl", "method.preference=x.pt"),
+         r"method=rl has no key 'preference'.*preference belongs to method=selfplay"),
         (("reward", "reward.kind=cyclic", f"hydra.run.dir={tmp_path / 'x'}"),
          r"polopt reward: error: reward.kind must be one of bradley_terry, preference, got 'cyclic'"),
     ]
