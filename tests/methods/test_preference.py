@@ -282,6 +282,27 @@ def test_bad_preference_input_is_one_line_and_exit_2(tmp_path, capsys):
         assert "Traceback" not in err
         assert re.search(message, err), err
     assert load_preference_model(preference, task_identity(nontransitive()))["kind"] == "preference_table"
+    from toy_tasks.sequence.task import sequence_task
+
+    with pytest.raises(ValueError, match=r"task=sequence fits a pair head on the tiny transformer; model=tabular"):
+        sequence_task().fit_reward(kind="preference", mode="sampled", n_pairs=10, seed=0, model={"kind": "tabular"})
+
+
+def test_the_command_writes_the_preference_file_and_both_accuracies(tmp_path, capsys):
+    from polopt.commands.main import main
+
+    out = tmp_path / "pm"
+    assert main(["reward", "task=nontransitive", "task.mode=sampled", "task.n_pairs=3000", "reward.kind=preference",
+                 f"hydra.run.dir={out}"]) == 0
+    printed = capsys.readouterr().out
+    assert re.search(r"heldout_accuracy 0.6850 \(preference\)  0.5017 \(Bradley–Terry, the same split\)", printed)
+    assert "give it to method=selfplay method.preference=PATH" in printed
+    summary = json.loads((out / "summary.json").read_text())
+    direct = fit_task_preference(nontransitive(), mode="sampled", n_pairs=3000, seed=0)["summary"]
+    assert summary["preference"] == direct["preference"] and summary["accuracy_gap"] == direct["accuracy_gap"]
+    assert summary["preference_model"] == str(out / "preference.pt") and not (out / "reward.pt").exists()
+    np.testing.assert_array_equal(learned_preference(nontransitive(), out / "preference.pt"),
+                                  np.asarray(direct["preference"]))
 
 
 @pytest.mark.slow

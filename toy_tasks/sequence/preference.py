@@ -41,6 +41,9 @@ def fit_sequence_preference(task, *, mode: str, n_pairs: int, seed: int, model: 
     if mode != "sampled":
         raise ValueError("task=sequence: polopt reward fits the pair head to sampled token pairs; give "
                          "task.mode=sampled (and task.n_pairs)")
+    if model.get("kind") != "transformer":
+        raise ValueError(f"task=sequence fits a pair head on the tiny transformer; model={model.get('kind')} "
+                         "cannot: give +experiment=sequence (or model=transformer)")
     identity = model_identity(task, model)
     finite = task.finite
     pairs = finite.sample_pairs(n_pairs, seed)
