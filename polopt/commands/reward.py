@@ -24,6 +24,10 @@ import argparse
 import time
 from pathlib import Path
 
+# what polopt reward reads: the task and its model, the fit's own block, the seed of the split, the threads
+KEYS = ("task", "task.", "model", "model.", "reward.", "train.seed", "train.threads", "+experiment")
+FINITE_UNUSED = ("reward.steps", "reward.lr")  # a finite task's table is a maximum-likelihood fit: no Adam
+
 
 def fit(overrides: list[str], out: Path) -> dict:
     """Compose the config, fit the task's reward model, write the folder; return summary.json's content."""
@@ -45,6 +49,13 @@ def fit(overrides: list[str], out: Path) -> dict:
                          "finite task (bradley_terry, contextual, file, ...) or task=sequence")
     keys = OmegaConf.to_container(cfg.reward, resolve=True)
     kind = check_fit_kind(keys["kind"])
+    if _fits_a_table(task):
+        unused = [a for a in overrides if a.partition("=")[0].lstrip("+~") in FINITE_UNUSED
+                  or a.partition("=")[0].lstrip("+~").partition(".")[0] == "model"]
+        if unused:
+            raise ValueError(f"{', '.join(unused)}: task {cfg.task.get('_target_', '?')!r} fits a table by maximum "
+                             "likelihood (no model, no Adam steps) and would ignore it; model and reward.steps / "
+                             "reward.lr apply to task=sequence and task=pairs")
     torch.set_num_threads(int(cfg.train.get("threads") or 1))  # tiny models: one thread (see train.threads)
     started = time.perf_counter()
     fitted = task.fit_reward(kind=kind, mode=cfg.task.mode, n_pairs=cfg.task.n_pairs, seed=int(cfg.train.seed),
@@ -61,6 +72,13 @@ def fit(overrides: list[str], out: Path) -> dict:
     summary["screen"] = fitted["screen"]
     write_json(out / "summary.json", {k: v for k, v in summary.items() if k != "screen"})
     return summary
+
+
+def _fits_a_table(task) -> bool:
+    """Whether the task fits a table (a finite task: closed form or scipy) rather than a head with Adam."""
+    from toy_tasks.finite.task import FiniteTask
+
+    return isinstance(task, FiniteTask)
 
 
 def main(argv: list[str]) -> int:
@@ -84,9 +102,10 @@ def main(argv: list[str]) -> int:
                                                      "hydra.run.dir=DIR: the output folder (default "
                                                      "runs/reward/DATE/TIME)")
     args = parser.parse_intermixed_args(argv)
-    from polopt.commands.config import output_folder
+    from polopt.commands.config import only_keys, output_folder
 
     out, overrides = output_folder(args.overrides, "polopt reward", "reward")
+    only_keys(overrides, KEYS, "polopt reward")
     summary = fit(overrides, out)  # a user error: one line by polopt.commands.errors
     print(summary["screen"])
     if "preference_model" in summary:

@@ -82,6 +82,10 @@ def plan(argv: list[str]) -> Plan:
         raise ValueError("polopt train reads the kit's own config folder; give settings as key=value "
                          "(or +experiment=NAME), not --config-path, --config-name or --config-dir")
     multirun = bool(args.multirun)
+    for arg in args.overrides:
+        if arg.partition("=")[0].lstrip("+~").partition(".")[0] == "reward":
+            raise ValueError(f"polopt train does not read the reward block ({arg!r} would change nothing here): it "
+                             "configures polopt reward; train against a fitted model with method.reward=PATH")
     configs = config.compose_all(args.overrides, sweep=multirun)
     argv = [a for a in argv if a not in args.overrides] + config.rewrite_overrides(args.overrides)
     if args.cfg or args.info or args.resolve:  # Hydra prints the config; nothing is run or written

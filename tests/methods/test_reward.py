@@ -205,6 +205,13 @@ def test_bad_reward_input_is_one_line_and_exit_2(tmp_path, capsys):
          r"unknown key 'reward.nosuch'; did you mean reward\."),
         (("reward", "task.mode=sampled", "reward.heldout=1.5", f"hydra.run.dir={tmp_path / 'y'}"),
          r"reward.heldout .* must lie in \[0, 1\)"),
+        # a key a command does not read is refused, never ignored
+        (("train", "reward.l2=1"), r"polopt train does not read the reward block \('reward.l2=1'"),
+        (("reward", "optim.lr=3", f"hydra.run.dir={tmp_path / 'w'}"),
+         r"polopt reward reads task, .* only; 'optim.lr=3' would change nothing here"),
+        (("reward", "reward.steps=3", f"hydra.run.dir={tmp_path / 'v'}"),
+         r"reward.steps=3: task .* fits a table by maximum likelihood \(no model, no Adam steps\)"),
+        (("reward", "model=bigram", f"hydra.run.dir={tmp_path / 'u'}"), r"model=bigram: task .* fits a table"),
     ]
     for args, message in cases:
         extra = ("train.progress=false", f"hydra.run.dir={tmp_path / 'run'}") if args[0] == "train" else ()
