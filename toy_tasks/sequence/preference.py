@@ -18,9 +18,9 @@ import scipy.special
 import torch
 
 from polopt.methods.preference_model import PairwisePreferenceModel, fit_pairwise_preference
-from polopt.methods.reward_model import CALIBRATION, pair_metrics, split_heldout
+from polopt.methods.reward_model import CALIBRATION, pair_metrics
 from toy_tasks.methods.preference_fit import format_preference_summary
-from toy_tasks.sequence.reward import fit_sequence_reward, model_identity
+from toy_tasks.sequence.reward import fit_sequence_reward, model_identity, sampled_token_pairs
 
 
 def logit_table(net: PairwisePreferenceModel, task) -> np.ndarray:
@@ -38,21 +38,16 @@ def logit_table(net: PairwisePreferenceModel, task) -> np.ndarray:
 def fit_sequence_preference(task, *, mode: str, n_pairs: int, seed: int, model: dict, l2: float = 0.0,
                             heldout: float = 0.2, bins: int = 10, steps: int = 400, lr: float = 3e-3) -> dict:
     """Fit the pair head to ``n_pairs`` sampled pairs (a share ``heldout`` held out); see the module docstring."""
-    if mode != "sampled":
-        raise ValueError("task=sequence: polopt reward fits the pair head to sampled token pairs; give "
-                         "task.mode=sampled (and task.n_pairs)")
     if model.get("kind") != "transformer":
         raise ValueError(f"task=sequence fits a pair head on the tiny transformer; model={model.get('kind')} "
                          "cannot: give +experiment=sequence (or model=transformer)")
     identity = model_identity(task, model)
     finite = task.finite
-    pairs = finite.sample_pairs(n_pairs, seed)
-    fit, out = split_heldout(len(pairs), heldout, seed)
+    pairs, fit, out, prompt, winner, loser = sampled_token_pairs(task, mode=mode, n_pairs=n_pairs, seed=seed,
+                                                                 heldout=heldout, head="pair head")
     net = PairwisePreferenceModel(task.vocab.size, pad_id=task.vocab.pad_id, context=identity["context"],
                                   width=identity["width"], layers=identity["layers"], heads=identity["heads"],
                                   seed=int(model.get("seed", 0)))
-    prompt, winner = task.rows(pairs.prompt[fit], pairs.winner[fit])
-    _, loser = task.rows(pairs.prompt[fit], pairs.loser[fit])
     history = fit_pairwise_preference(net, prompt, winner, loser, steps=int(steps), lr=float(lr), l2=float(l2),
                                       seed=seed)
     logits = logit_table(net, task)  # (X, K, K)

@@ -40,21 +40,30 @@ def model_identity(task, model: dict) -> dict:
     return {**task_identity(task.finite), **shape}
 
 
+def sampled_token_pairs(task, *, mode: str, n_pairs: int, seed: int, heldout: float, head: str):
+    """The ``n_pairs`` labelled pairs drawn with ``seed`` and their held-out split, shared by the scalar and
+    the pair head so both are measured on the same pairs: (pairs, fit rows, held-out rows, and the fitted
+    rows' prompt, winner and loser tokens)."""
+    if mode != "sampled":
+        raise ValueError(f"task=sequence: polopt reward fits the {head} to sampled token pairs; give "
+                         "task.mode=sampled (and task.n_pairs)")
+    pairs = task.finite.sample_pairs(n_pairs, seed)
+    fit, out = split_heldout(len(pairs), heldout, seed)
+    prompt, winner = task.rows(pairs.prompt[fit], pairs.winner[fit])
+    _, loser = task.rows(pairs.prompt[fit], pairs.loser[fit])
+    return pairs, fit, out, prompt, winner, loser
+
+
 def fit_sequence_reward(task, *, mode: str, n_pairs: int, seed: int, model: dict, l2: float = 0.0,
                         heldout: float = 0.2, bins: int = 10, steps: int = 400, lr: float = 3e-3) -> dict:
     """Fit the scalar head to ``n_pairs`` sampled pairs (a share ``heldout`` held out); see the module docstring."""
-    if mode != "sampled":
-        raise ValueError("task=sequence: polopt reward fits the scalar head to sampled token pairs; give "
-                         "task.mode=sampled (and task.n_pairs)")
     identity = model_identity(task, model)
     finite = task.finite
-    pairs = finite.sample_pairs(n_pairs, seed)
-    fit, out = split_heldout(len(pairs), heldout, seed)
+    pairs, fit, out, prompt, winner, loser = sampled_token_pairs(task, mode=mode, n_pairs=n_pairs, seed=seed,
+                                                                 heldout=heldout, head="scalar head")
     net = ScalarRewardModel(task.vocab.size, pad_id=task.vocab.pad_id, context=identity["context"],
                             width=identity["width"], layers=identity["layers"], heads=identity["heads"],
                             seed=int(model.get("seed", 0)))
-    prompt, winner = task.rows(pairs.prompt[fit], pairs.winner[fit])
-    _, loser = task.rows(pairs.prompt[fit], pairs.loser[fit])
     history = fit_scalar_reward(net, prompt, winner, loser, steps=int(steps), lr=float(lr), l2=float(l2), seed=seed)
     all_prompts, all_responses = task.all_rows()
     table = score(net, all_prompts, all_responses).double().reshape(task.n_prompts, task.n_responses).numpy()
