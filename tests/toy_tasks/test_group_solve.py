@@ -284,3 +284,13 @@ def test_a_non_convex_member_reports_its_starts_and_the_global_minimum():
     assert slope == pytest.approx(0.7843, abs=1e-4)
     assert summary["reached_optimum"] is False and summary["tv_to_optimum"] > 0.1
     assert summary["loss"] > summary["optimum_value"] + 0.01
+    # where it stopped: a local minimum, certified and reported; an independent BFGS from the trained policy
+    # lands on the same point, with the same value, above the global one
+    trained = np.log(np.asarray(summary["policy"][0]))
+    local = scipy.optimize.minimize(population, trained[1:] - trained[0], method="BFGS", jac="3-point",
+                                    options={"gtol": 1e-11})
+    independent = scipy.special.softmax(np.concatenate([[0.0], local.x]))
+    assert summary["tv_to_local_minimum"] <= 1e-3
+    assert 0.5 * np.abs(independent - np.asarray(summary["local_minimum"][0])).sum() <= 1e-6
+    assert summary["local_minimum_value"] == pytest.approx(local.fun, abs=1e-9)
+    assert summary["local_minimum_value"] > best + 0.01 and "local minimum" in summary["likely_fix"]

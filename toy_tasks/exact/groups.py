@@ -237,3 +237,29 @@ def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengt
 def target_kind(optimum: Optimum) -> str:
     """"stationary point" or "minimiser", as :func:`solve_groups` found it."""
     return STATIONARY if optimum.method.startswith(STATIONARY) else MINIMISER
+
+
+def local_minimum_near(objective: GroupObjective, groups, reference: np.ndarray, lengths: np.ndarray, *, beta: float,
+                       log_pi: np.ndarray) -> dict | None:
+    """The local minimum of a group objective without a stop-gradient that the policy ``log_pi`` (X, K)
+    lies in, where training stopped short of the global one (a non-convex objective): per prompt the
+    pair solver's minimisation from the trained logits, certified as a local minimiser by its residual
+    (max |dL/dz| <= CERTIFIED) and a positive definite Hessian (its least eigenvalue with the gauge's block
+    of ones, which moves no probability). None where that fails: the answer lies on the boundary, the
+    residual is large, or the Hessian is not positive definite. Returns the policy (X, K), the value, the
+    residual and the least eigenvalue."""
+    reference, lengths = (np.asarray(a, dtype=np.float64) for a in (reference, lengths))
+    log_ref = np.log(reference)
+    z, value, residual, least = [], 0.0, 0.0, np.inf
+    for x in range(reference.shape[0]):
+        problem = _Population(objective, _prompt_groups(groups, x), log_ref[x:x + 1], lengths[x:x + 1], beta)
+        run = _solve_prompt(problem, np.asarray(log_pi[x], dtype=np.float64), kink_search=False)
+        if not run["finite"] or run["residual"] > CERTIFIED:
+            return None
+        least = min(least, float(np.linalg.eigvalsh(0.5 * (problem.hess(run["z"]) + problem.hess(run["z"]).T))[0]))
+        z.append(run["z"])
+        value, residual = value + run["value"], max(residual, run["residual"])
+    if least <= 0.0:
+        return None
+    return {"policy": scipy.special.softmax(np.stack(z), axis=1), "value": value, "residual": residual,
+            "least_eigenvalue": least}

@@ -25,7 +25,7 @@ from polopt.models.tabular import build_policy
 from polopt.training.contracts import TrainResult
 from polopt.training.stopping import FINITE_TASK_TOL
 from polopt.training.verdict import REACHED_TOLERANCE, verdict_fields
-from toy_tasks.exact.groups import population_value, solve_groups, target_kind
+from toy_tasks.exact.groups import MINIMISER, local_minimum_near, population_value, solve_groups, target_kind
 from toy_tasks.exact.margin import Optimum
 from toy_tasks.finite.feedback import WeightedGroups, check_feedback, population_groups, sample_groups
 from toy_tasks.measures import loss_gaps, per_prompt, total_variation
@@ -107,7 +107,31 @@ class GroupSession:
         if not opt.finite:
             summary["limit_support"] = opt.limit_support
         summary.update(verdict_fields(summary, result.history, tolerance=self.tolerance))
+        if summary["reached_optimum"] is False and kind == MINIMISER:
+            local = self._stopped_at_local_minimum(pi)
+            if local:
+                summary["notes"].append(local.pop("note"))
+                summary.update(local)
         return summary
+
+    def _stopped_at_local_minimum(self, pi: np.ndarray) -> dict:
+        """Where training stopped short of the global minimum: the certified local minimum it sits in, if it
+        sits in one (a non-convex objective; :func:`toy_tasks.exact.groups.local_minimum_near`)."""
+        local = local_minimum_near(self.loss, self.trained, self.task.reference, self.task.lengths, beta=self.beta,
+                                   log_pi=np.log(pi))
+        if local is None:
+            return {}
+        tv = total_variation(pi, local["policy"], self.task.prompt_weights)
+        if tv > self.tolerance or local["value"] <= self.optimum.value + 1e-9 * (1.0 + abs(self.optimum.value)):
+            return {}
+        note = (f"training stopped in a local minimum (certified: gradient {local['residual']:.2g}, the Hessian's "
+                f"least eigenvalue {local['least_eigenvalue']:.3g} > 0) TV {tv:.2g} from the trained policy, its "
+                f"loss {local['value']:.6g} above the global minimum's {self.optimum.value:.6g}: the objective is "
+                "not convex and gradient descent from the reference does not reach its global minimum")
+        return {"local_minimum": per_prompt(local["policy"]), "local_minimum_value": local["value"],
+                "tv_to_local_minimum": tv, "note": note,
+                "likely_fix": "none by tuning: the run sits in a local minimum of a non-convex objective "
+                              "(local_minimum); start elsewhere or change the objective"}
 
     def table(self, summary: dict) -> str:
         lines = finite_policy_table(self.task, summary)
