@@ -223,15 +223,29 @@ def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengt
         where = (f"{STATIONARY} on the simplex's boundary: the semi-gradient vanishes only as some probabilities fall "
                  "to 0 (saturated terms)" if objective.stop_gradient else
                  f"{MINIMISER}: no finite optimum, the infimum lies on the simplex's boundary")
+        limit = None if objective.stop_gradient else _limit_policy(z, support)
         return Optimum(False, None, value, where, residual, False, support, components,
                        notes + ["some responses' probabilities fall to 0 in the limit; 'limit_support' lists, per "
-                                "prompt, the responses that keep mass"])
+                                "prompt, the responses that keep mass" + ("" if limit is None else
+                                ", 'limit_policy' the policy the infimum is approached at")], limit_policy=limit)
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
     if residual > CERTIFIED:
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); "
                      "reached_optimum is null")
     return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes,
                    certified=residual <= CERTIFIED)
+
+
+def _limit_policy(z: np.ndarray, support: list[list[int]]) -> np.ndarray:
+    """The policy a boundary infimum is approached at: the solver, having followed the descent ray until the
+    responses off the support carried no weight that mattered, minimised over the rest, which is the face's
+    minimiser; its probabilities off the support are set to 0 exactly and the rest renormalised."""
+    pi = scipy.special.softmax(z, axis=1)
+    on = np.zeros_like(pi, dtype=bool)
+    for x, kept in enumerate(support):
+        on[x, kept] = True
+    pi = np.where(on, pi, 0.0)
+    return pi / pi.sum(1, keepdims=True)
 
 
 def target_kind(optimum: Optimum) -> str:

@@ -59,6 +59,8 @@ class Optimum:
             component (-1 for responses with no weight).
         certified: False where the solver could not certify its answer (a gradient above its
             tolerance at a kink it cannot search): the answer is then no exact target.
+        limit_policy: when not finite and the solver minimised on the face the mass goes to: (X, K) the
+            policy the infimum is approached at (0 off ``limit_support``); None where it is not known.
     """
 
     finite: bool
@@ -71,6 +73,7 @@ class Optimum:
     components: list[np.ndarray] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     certified: bool = True
+    limit_policy: np.ndarray | None = None
 
     def aligned_to(self, h: np.ndarray) -> np.ndarray:
         """h* shifted, per connected component, to the mean of the given h; responses with

@@ -106,6 +106,9 @@ class GroupSession:
             summary["relative_loss_gap"] = None  # the verdict rests on the distance alone
         if not opt.finite:
             summary["limit_support"] = opt.limit_support
+            if opt.limit_policy is not None:
+                summary["limit_policy"] = per_prompt(opt.limit_policy)
+                summary["tv_to_limit_policy"] = total_variation(pi, opt.limit_policy, self.task.prompt_weights)
         summary.update(verdict_fields(summary, result.history, tolerance=self.tolerance))
         if summary["reached_optimum"] is False and kind == MINIMISER:
             local = self._stopped_at_local_minimum(pi)
@@ -140,6 +143,9 @@ class GroupSession:
                      f"tv_to_optimum {'-' if tv is None else f'{tv:.3g}'}  kl_to_reference "
                      f"{summary['kl_to_reference']:.4g}  ({summary['feedback']}, groups of {summary['group_size']}, "
                      f"{summary['n_groups']} groups)")
+        if "tv_to_limit_policy" in summary:
+            lines.append(f"no finite optimum: tv_to_limit_policy {summary['tv_to_limit_policy']:.3g} (the policy the "
+                         "infimum is approached at, on the responses of limit_support)")
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
 
