@@ -13,6 +13,14 @@ every kind the format can hold mixed in), and ``expected.json``: the good pairs
 in order and, for each file, every bad row's location, field and reason. The
 tests read that manifest to check that each bad row is reported and that no
 good row is lost; ``polopt data OUT_DIR/pairs.jsonl task.max_length=400`` shows it.
+
+    python examples/library_desk.py OUT_DIR --kind ranking|scored|unpaired [--pairs 200] [--seed 0]
+
+writes the same desk's feedback as rows of another kind instead, ``KIND.jsonl``, ``KIND.csv`` (lists as
+JSON arrays in their cells) and ``KIND.parquet`` (list columns): ``ranking`` rows rank three replies
+(the helpful one, a neutral one, the curt one; ``ranking[i]`` is the rank of ``responses[i]``, 0 = best,
+listed in a seeded order), ``scored`` rows give the same replies a helpfulness score (2, 1, 0, plus
+seeded noise), ``unpaired`` rows are single replies labelled 1 (helpful) or 0 (curt).
 """
 
 from __future__ import annotations
@@ -316,6 +324,48 @@ def _finite(value):
     return value
 
 
+NEUTRAL = "Someone at the front desk can help with that."  # the middle reply of ranking and scored rows
+KINDS = ("ranking", "scored", "unpaired")
+
+
+def feedback_rows(kind: str, n: int, seed: int = 0) -> list[dict]:
+    """The first ``n`` good pairs' replies as rows of ``kind`` (see the module docstring); seeded."""
+    rng = random.Random(seed + 3)
+    rows = []
+    for pair in good_pairs(n, seed):
+        if kind == "unpaired":
+            rows.append({"prompt": pair["prompt"], "response": pair["winner"], "label": 1})
+            rows.append({"prompt": pair["prompt"], "response": pair["loser"], "label": 0})
+            continue
+        replies = [(pair["winner"], 0, 2.0), (NEUTRAL, 1, 1.0), (pair["loser"], 2, 0.0)]  # (text, rank, score)
+        rng.shuffle(replies)
+        row = {"prompt": pair["prompt"], "responses": [r for r, _, _ in replies]}
+        if kind == "ranking":
+            row["ranking"] = [k for _, k, _ in replies]
+        else:
+            row["scores"] = [round(s + rng.uniform(-0.3, 0.3), 3) for _, _, s in replies]
+        rows.append(row)
+    return rows[:n] if kind == "unpaired" else rows
+
+
+def write_kind(out: Path, kind: str, n: int = 200, seed: int = 0) -> list[dict]:
+    """Write ``KIND.jsonl``, ``KIND.csv`` and ``KIND.parquet`` of :func:`feedback_rows`; return the rows."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    out.mkdir(parents=True, exist_ok=True)
+    rows = feedback_rows(kind, n, seed)
+    (out / f"{kind}.jsonl").write_text("".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rows),
+                                       encoding="utf-8")
+    with (out / f"{kind}.csv").open("w", encoding="utf-8", newline="") as f:
+        writer = csv.DictWriter(f, fieldnames=list(rows[0]))
+        writer.writeheader()
+        writer.writerows({k: json.dumps(v, ensure_ascii=False) if isinstance(v, list) else v for k, v in r.items()}
+                         for r in rows)
+    pq.write_table(pa.Table.from_pylist(rows), out / f"{kind}.parquet")
+    return rows
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("out", type=Path, help="folder to write the files into")
@@ -323,7 +373,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--bad", action="store_true", help="mix in bad rows of every kind")
     parser.add_argument("--weights", action="store_true", help="add a per-pair weight column")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--kind", choices=KINDS, help="write rows of this kind instead of pairs")
     args = parser.parse_args(argv)
+    if args.kind is not None:
+        rows = write_kind(args.out, args.kind, args.pairs, args.seed)
+        print(f"wrote {args.out}/{args.kind}.jsonl, {args.kind}.csv and {args.kind}.parquet: {len(rows)} rows")
+        return 0
     manifest = write_all(args.out, args.pairs, args.seed, bad=args.bad, weights=args.weights)
     bad = {k: len(v) for k, v in manifest["expected"].items()}
     print(f"wrote {args.out}/pairs.jsonl, pairs.csv, pairs.parquet, pairs_folder/ and expected.json: "
