@@ -334,6 +334,8 @@ def reject_later(data: PairData, rejected: dict[int, Reject], cuts: dict[int, di
              rows_truncated=sum(1 for i, c in cuts.items() if c and i not in rejected),
              truncated_fields={f: truncated[f] for f in CUT_FIELDS if truncated[f]},
              tokens_removed=sum(sum(c.values()) for i, c in cuts.items() if i not in rejected))
+    if data.kind != "pairs":
+        a["group_sizes"] = dict(sorted(Counter(len(r) for r in out.responses).items()))
     if a["rows_in"] != a["rows_accepted"] + a["rows_rejected"]:  # never: each row moves exactly once
         raise RuntimeError(f"row accounting broke: {a['balance']}")
     out.accounting = a
