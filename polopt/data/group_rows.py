@@ -51,7 +51,7 @@ def _as_list(value, text_values: bool):
     if text_values and isinstance(value, str):
         try:
             value = json.loads(value)
-        except ValueError:
+        except (ValueError, RecursionError):  # ValueError also: an integer of over 4300 digits
             return None
     return list(value) if isinstance(value, (list, tuple)) else None
 
@@ -120,8 +120,12 @@ def _scores(value, g: int | None, text_values: bool) -> tuple[list | None, list[
     for k, s in enumerate(scores):
         if isinstance(s, bool) or not isinstance(s, (int, float)):
             return None, [_problem("scores", "bad_score", f"scores[{k}] is {_short(s)}, not a number")]
-        if not math.isfinite(float(s)):
-            return None, [_problem("scores", "bad_score", f"scores[{k}] is {s}, not finite")]
+        try:
+            finite = math.isfinite(float(s))
+        except OverflowError:  # an integer beyond the float range
+            finite = False
+        if not finite:
+            return None, [_problem("scores", "bad_score", f"scores[{k}] is {_short(s)}, not finite")]
     return [float(s) for s in scores], []
 
 

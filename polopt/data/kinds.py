@@ -25,6 +25,12 @@ def describe(kind: str) -> str:
     return f"{kind} ({' + '.join(KINDS[kind])})"
 
 
+def require_pairs(kind: str, what: str) -> None:
+    """One ValueError where a file of ``kind`` rows reaches ``what``, which reads pair rows only."""
+    if kind != "pairs":
+        raise ValueError(f"{what} reads pair rows (prompt, winner, loser); this file holds {describe(kind)} rows")
+
+
 def complete_kinds(found: Iterable[str], columns: Columns) -> list[str]:
     """The kinds whose columns all appear among ``found`` (the file's columns), in :data:`KINDS` order."""
     found = set(found)

@@ -16,6 +16,9 @@ import json
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from helpers_fuzz import FUZZ, assert_loads_or_one_line_error, json_values
+from hypothesis import given
+from hypothesis import strategies as st
 
 from examples.library_desk import feedback_rows, write_kind
 from polopt.commands.main import main
@@ -191,3 +194,29 @@ def test_a_file_of_no_kind_names_the_pair_columns_and_the_other_kinds(tmp_path):
                                          r"prompt with response \+ label \(unpaired\), responses \+ ranking, or "
                                          r"responses \+ scores\."):
         load_pairs(path)
+
+
+anything = st.one_of(json_values, st.text(max_size=6))
+texts = st.lists(st.one_of(st.text(max_size=5), json_values), max_size=4)
+group_rows = st.one_of(
+    st.fixed_dictionaries({"prompt": anything, "responses": st.one_of(texts, anything),
+                           "ranking": st.one_of(st.permutations(range(3)).map(list), anything)}),
+    st.fixed_dictionaries({"prompt": anything, "responses": st.one_of(texts, anything),
+                           "scores": st.one_of(st.lists(st.floats(), max_size=4), anything)}),
+    st.fixed_dictionaries({"prompt": anything, "response": anything, "label": anything}),
+)
+
+
+@FUZZ
+@given(rows=st.lists(group_rows, max_size=8), limit=st.sampled_from([None, 4, 12]),
+       truncation=st.sampled_from(["reject", "truncate_response", "truncate_prompt"]))
+def test_any_rows_load_and_balance_or_refuse_in_one_line(tmp_path, rows, limit, truncation):
+    """Rows of every kind with values of any JSON type (tests/helpers_fuzz.py): the file loads with every row
+    accepted or rejected once, or is refused in one line (a file mixing kinds)."""
+    path = tmp_path / "rows.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+    data = assert_loads_or_one_line_error(lambda p: load_pairs(p, max_length=limit, truncation=truncation), path)
+    if data is not None:
+        a = data.accounting
+        assert a["rows_in"] == len(rows) == a["rows_accepted"] + a["rows_rejected"]
+        assert len(data.rejects) == a["rows_rejected"] and len(data) == a["rows_accepted"]

@@ -193,3 +193,13 @@ def test_a_loss_that_cannot_read_the_rows_is_refused_in_one_line(rows, extra, me
     err = capsys.readouterr().err
     assert code == 2 and err.count("\n") == 1, err
     assert __import__("re").search(message, err.strip())
+
+
+def test_a_reward_model_refuses_rows_beyond_pairs(tmp_path, capsys):
+    path = write(tmp_path / "ranking.jsonl", RANKING_ROWS)
+    code = main(["reward", "task=pairs", f"task.path={path}", "model=transformer",
+                 f"hydra.run.dir={tmp_path / 'run'}"])
+    err = capsys.readouterr().err
+    assert code == 2 and err == ("polopt reward: error: polopt reward (a Bradley–Terry head fitted to pairs) reads "
+                                 "pair rows (prompt, winner, loser); this file holds ranking (responses + ranking) "
+                                 "rows\n")
