@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 
 import numpy as np
 import pytest
@@ -39,9 +40,9 @@ RANKING_ROWS = [  # ragged groups: absent members are masked
     {"prompt": "moss on stones", "responses": ["soft", "green and soft", "grey", "none"], "ranking": [2, 0, 3, 1]},
     {"prompt": "lantern", "responses": ["glows", "hums"], "ranking": [0, 1]},
 ]
-SCORED_ROWS = [
-    {"prompt": "tea?", "responses": ["green, hot", "no", "ask later"], "scores": [1.5, -0.5, 0.2]},
-    {"prompt": "moss", "responses": ["soft", "grey"], "scores": [0.3, 0.9]},
+SCORED_ROWS = [  # weighted rows: the loss is the weighted mean over rows
+    {"prompt": "tea?", "responses": ["green, hot", "no", "ask later"], "scores": [1.5, -0.5, 0.2], "weight": 1.0},
+    {"prompt": "moss", "responses": ["soft", "grey"], "scores": [0.3, 0.9], "weight": 3.0},
 ]
 UNPAIRED_ROWS = [
     {"prompt": "tea?", "response": "green, hot", "label": 1},
@@ -136,8 +137,8 @@ def test_a_ranking_file_feeds_a_pair_objective_through_its_ordered_pairs(tmp_pat
 def test_scored_rows_give_infonca(tmp_path):
     path = write(tmp_path / "scored.jsonl", SCORED_ROWS)
     session, policy = session_and_policy(overrides(path, "loss=score_cross_entropy"), tmp_path / "run")
-    want = np.mean([-(softmax(r["scores"]) * log_softmax(BETA * logratios(session, policy, r))).sum()
-                    for r in SCORED_ROWS])
+    want = np.average([-(softmax(r["scores"]) * log_softmax(BETA * logratios(session, policy, r))).sum()
+                       for r in SCORED_ROWS], weights=[r["weight"] for r in SCORED_ROWS])
     assert session.full_statistics(policy)["loss"] == pytest.approx(want, rel=1e-5)
 
 
@@ -192,7 +193,7 @@ def test_a_loss_that_cannot_read_the_rows_is_refused_in_one_line(rows, extra, me
     code = main(["train", *overrides(path, *extra, f"hydra.run.dir={tmp_path / 'run'}")])
     err = capsys.readouterr().err
     assert code == 2 and err.count("\n") == 1, err
-    assert __import__("re").search(message, err.strip())
+    assert re.search(message, err.strip())
 
 
 def test_a_reward_model_refuses_rows_beyond_pairs(tmp_path, capsys):
@@ -203,3 +204,18 @@ def test_a_reward_model_refuses_rows_beyond_pairs(tmp_path, capsys):
     assert code == 2 and err == ("polopt reward: error: polopt reward (a Bradley–Terry head fitted to pairs) reads "
                                  "pair rows (prompt, winner, loser); this file holds ranking (responses + ranking) "
                                  "rows\n")
+
+
+def test_a_group_run_resumed_ends_where_one_run_does(tmp_path, capsys):
+    """Two steps, then the same run raised to four steps (it resumes from its checkpoint), against four steps
+    in one go (constant schedule): the same final loss, bit for bit (DEVELOPERS.md: resume is bit-identical)."""
+    path = write(tmp_path / "ranking.jsonl", RANKING_ROWS)
+    extra = ("loss=ranking_likelihood", "optim.schedule=constant", "optim.warmup_steps=0", "train.batch_size=2",
+             "train.checkpoint_every=1")
+    whole = run(config(overrides(path, *extra, "train.steps=4")), tmp_path / "whole")
+    run(config(overrides(path, *extra, "train.steps=2")), tmp_path / "parts")
+    capsys.readouterr()
+    resumed = run(config(overrides(path, *extra, "train.steps=4", "train.resume=true")), tmp_path / "parts")
+    told = capsys.readouterr()
+    assert re.search(r"resuming from .* \(step 2 of", told.out + told.err)
+    assert resumed["steps"] == 4 and resumed["loss"] == whole["loss"]
