@@ -201,9 +201,9 @@ def test_a_reward_model_refuses_rows_beyond_pairs(tmp_path, capsys):
     code = main(["reward", "task=pairs", f"task.path={path}", "model=transformer",
                  f"hydra.run.dir={tmp_path / 'run'}"])
     err = capsys.readouterr().err
-    assert code == 2 and err == ("polopt reward: error: polopt reward (a Bradley–Terry head fitted to pairs) reads "
-                                 "pair rows (prompt, winner, loser); this file holds ranking (responses + ranking) "
-                                 "rows\n")
+    assert code == 2 and err == ("polopt reward: error: polopt reward (a reward or preference head fitted to pairs) "
+                                 "reads pair rows (prompt, winner, loser); this file holds ranking (responses + "
+                                 "ranking) rows\n")
 
 
 def test_a_group_run_resumed_ends_where_one_run_does(tmp_path, capsys):
