@@ -101,8 +101,10 @@ def plot_lengths(data: PairData, path: str | Path) -> Path:
     if a["max_length"] is not None:
         ax.axvline(a["max_length"], color="#cc3311", linestyle="--", label=f"max_length {a['max_length']}")
         ax.legend()
-    ax.set_xlabel(f"pair length ({unit}: prompt + longer response)")
-    ax.set_ylabel("accepted pairs")
+    pairs = a.get("row_kind", "pairs") == "pairs"
+    ax.set_xlabel(f"{'pair' if pairs else 'row'} length ({unit}: prompt + {'longer' if pairs else 'longest'} "
+                  "response)")
+    ax.set_ylabel("accepted pairs" if pairs else f"accepted {a['row_kind']} rows")
     ax.set_title(f"{Path(a['source']).name}: {a['rows_accepted']} accepted, {a['rows_rejected']} rejected")
     fig.tight_layout()
     path = Path(path)

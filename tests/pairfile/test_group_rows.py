@@ -219,3 +219,15 @@ def test_a_group_run_resumed_ends_where_one_run_does(tmp_path, capsys):
     told = capsys.readouterr()
     assert re.search(r"resuming from .* \(step 2 of", told.out + told.err)
     assert resumed["steps"] == 4 and resumed["loss"] == whole["loss"]
+
+
+def test_a_parquet_file_of_rows_beyond_pairs_is_refused_by_the_stream(tmp_path, capsys):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.Table.from_pylist(SCORED_ROWS), tmp_path / "scored.parquet")
+    code = main(["train", *overrides(tmp_path / "scored.parquet", "task.stream=true", "train.batch_size=2",
+                                     f"hydra.run.dir={tmp_path / 'run'}")])
+    assert code == 2 and capsys.readouterr().err == (
+        "polopt train: error: task.stream=true streams pair rows (prompt, winner, loser); this file holds scored "
+        "(responses + scores) rows: set task.stream=false (read in memory)\n")
