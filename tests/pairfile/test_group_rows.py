@@ -231,3 +231,22 @@ def test_a_parquet_file_of_rows_beyond_pairs_is_refused_by_the_stream(tmp_path, 
     assert code == 2 and capsys.readouterr().err == (
         "polopt train: error: task.stream=true streams pair rows (prompt, winner, loser); this file holds scored "
         "(responses + scores) rows: set task.stream=false (read in memory)\n")
+
+
+def test_a_reference_checkpoint_scores_the_members(tmp_path):
+    """With task.reference_checkpoint (written by polopt sft) the members' reference log-probs are that model's,
+    computed directly member by member."""
+    from polopt.training.sft import load_reference
+
+    sft = write(tmp_path / "sft.jsonl", [{"prompt": r["prompt"], "response": r["responses"][0]} for r in RANKING_ROWS])
+    assert main(["sft", str(sft), "train.steps=2", "model.width=16", "model.layers=1", "model.heads=2",
+                 "train.progress=false", f"hydra.run.dir={tmp_path / 'ref'}"]) == 0
+    path = write(tmp_path / "ranking.jsonl", RANKING_ROWS)
+    session, _ = session_and_policy(overrides(path, "loss=ranking_likelihood",
+                                              f"task.reference_checkpoint={tmp_path / 'ref' / 'reference.pt'}"),
+                                    tmp_path / "run", moved=False)
+    reference, _ = load_reference(str(tmp_path / "ref" / "reference.pt"))
+    for i, row in enumerate(RANKING_ROWS):
+        want = [direct_logprob(reference, session, row["prompt"], m) for m in row["responses"]]
+        np.testing.assert_allclose(session.groups.reference[i, :len(want)].double().numpy(), want, rtol=1e-5,
+                                   atol=1e-4)
