@@ -46,7 +46,7 @@ from polopt.models.local_lm import (
 from polopt.models.logprobs import SequencePolicy, real_tokens
 from polopt.models.lora import ADAPTERS, LoraSettings, adapter_dropout_on, with_lora
 from polopt.models.reference_cache import FILE_NAME
-from polopt.pairfile.session import REJECTS_FILE, PairSession
+from polopt.pairfile.session import REJECTS_FILE, PairSession, nothing_accepted
 from polopt.training.contracts import TrainResult
 from polopt.training.run_folder import POLICY_DIR
 
@@ -226,8 +226,7 @@ def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smooth
     path = str(model_folder(model.get("path")))
     rejects = None if run_dir is None else write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
     if len(data) == 0:
-        raise ValueError(f"task.path {spec.path!r}: no {'pair' if data.kind == 'pairs' else 'row'} was accepted "
-                         f"({data.accounting['rows_rejected']} rejected; see {rejects or 'the rejects'})")
+        raise nothing_accepted(spec.path, data, rejects)
     cache = Path(run_dir) / FILE_NAME if run_dir is not None and task.cache_reference else None
     special = SequenceIds(PAD, tokenizer.bos_token_id, tokenizer.eos_token_id, len(tokenizer))
     session = session_type(data=data, tokenizer=tokenizer, file_tokenizer=path, ids=special, loss=loss,

@@ -43,7 +43,7 @@ from polopt.losses.margin import MarginLoss
 from polopt.models.reference_cache import FILE_NAME
 from polopt.pairfile.group_session import grouped
 from polopt.pairfile.local_lm import prepare_local_lm
-from polopt.pairfile.session import REJECTS_FILE, PairSession
+from polopt.pairfile.session import REJECTS_FILE, PairSession, nothing_accepted
 from polopt.pairfile.streamed import prepare_streamed
 from polopt.training.sft import load_reference
 
@@ -96,9 +96,7 @@ class PairTask:
         if run_dir is not None:
             rejects = write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
         if len(data) == 0:
-            what = "pair" if data.kind == "pairs" else "row"
-            raise ValueError(f"task.path {self.file.path!r}: no {what} was accepted "
-                             f"({data.accounting['rows_rejected']} rejected; see {rejects or 'polopt data FILE'})")
+            raise nothing_accepted(self.file.path, data, rejects)
         model, meta = (None, None) if self.reference is None else load_reference(self.reference)
         cache = Path(run_dir) / FILE_NAME if run_dir is not None and self.cache_reference else None
         session = session_type(data=data, tokenizer=tokenizer, file_tokenizer=str(self.file.tokenizer),

@@ -250,3 +250,17 @@ def test_a_reference_checkpoint_scores_the_members(tmp_path):
         want = [direct_logprob(reference, session, row["prompt"], m) for m in row["responses"]]
         np.testing.assert_allclose(session.groups.reference[i, :len(want)].double().numpy(), want, rtol=1e-5,
                                    atol=1e-4)
+
+
+def test_a_file_whose_rankings_are_all_bad_is_one_line_naming_the_reasons(tmp_path, capsys):
+    """Rows are rejected one by one (the accounting); a file of which no row survives stops the run in one line,
+    exit 2, with the reasons counted."""
+    rows = [{"prompt": "a", "responses": ["x", "y"], "ranking": [1, 1]},
+            {"prompt": "b", "responses": ["x", "y"], "ranking": [0, 2]},
+            {"prompt": "c", "responses": ["x", "y", "z"], "ranking": [0, 1]}]
+    path = write(tmp_path / "bad.jsonl", rows)
+    folder = tmp_path / "run"
+    code = main(["train", *overrides(path, "loss=ranking_likelihood", f"hydra.run.dir={folder}")])
+    assert code == 2 and capsys.readouterr().err == (
+        f"polopt train: error: task.path '{path}': no row was accepted (3 rejected; see {folder / 'rejects.jsonl'}): "
+        "length_mismatch 1, not_a_permutation 2\n")
