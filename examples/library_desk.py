@@ -13,6 +13,16 @@ every kind the format can hold mixed in), and ``expected.json``: the good pairs
 in order and, for each file, every bad row's location, field and reason. The
 tests read that manifest to check that each bad row is reported and that no
 good row is lost; ``polopt data OUT_DIR/pairs.jsonl task.max_length=400`` shows it.
+
+    python examples/library_desk.py OUT_DIR --kind ranking|scored|unpaired [--pairs 200] [--seed 0]
+
+writes the same desk's feedback as rows of another kind instead, ``KIND.jsonl``, ``KIND.csv`` (lists as
+JSON arrays in their cells) and ``KIND.parquet`` (list columns): ``ranking`` rows rank three replies
+(the helpful one, a neutral one, the curt one; ``ranking[i]`` is the rank of ``responses[i]``, 0 = best,
+listed in a seeded order), ``scored`` rows give the same replies a helpfulness score (2, 1, 0, plus
+seeded noise), ``unpaired`` rows are single replies labelled 1 (helpful) or 0 (curt). With ``--bad``,
+bad rows of the kind are mixed in (those each format can hold) and ``KIND-expected.json`` records the
+good rows and, per file, every bad row's location, field and reason.
 """
 
 from __future__ import annotations
@@ -316,6 +326,110 @@ def _finite(value):
     return value
 
 
+NEUTRAL = "Someone at the front desk can help with that."  # the middle reply of ranking and scored rows
+KINDS = ("ranking", "scored", "unpaired")
+
+
+def feedback_rows(kind: str, n: int, seed: int = 0) -> list[dict]:
+    """The first ``n`` good pairs' replies as rows of ``kind`` (see the module docstring); seeded."""
+    rng = random.Random(seed + 3)
+    rows = []
+    for pair in good_pairs(n, seed):
+        if kind == "unpaired":
+            rows.append({"prompt": pair["prompt"], "response": pair["winner"], "label": 1})
+            rows.append({"prompt": pair["prompt"], "response": pair["loser"], "label": 0})
+            continue
+        replies = [(pair["winner"], 0, 2.0), (NEUTRAL, 1, 1.0), (pair["loser"], 2, 0.0)]  # (text, rank, score)
+        rng.shuffle(replies)
+        row = {"prompt": pair["prompt"], "responses": [r for r, _, _ in replies]}
+        if kind == "ranking":
+            row["ranking"] = [k for _, k, _ in replies]
+        else:
+            row["scores"] = [round(s + rng.uniform(-0.3, 0.3), 3) for _, _, s in replies]
+        rows.append(row)
+    return rows[:n] if kind == "unpaired" else rows
+
+
+def _kind_cases(kind: str, good: list[dict], rng: random.Random) -> dict[str, list[tuple]]:
+    """Bad rows of ``kind`` per format, (field, reason, row): the ones every format can hold, and the
+    type errors JSON Lines (any JSON value) or CSV (any text in a cell) can."""
+    def changed(**fields):
+        return dict(rng.choice(good), **fields)
+
+    def repeated(k: int):
+        row = dict(rng.choice(good))
+        row["responses"] = [*row["responses"][:k], row["responses"][0], *row["responses"][k + 1:]]
+        return row
+
+    dup = ("duplicate",) * 2
+    if kind == "ranking":
+        every = [("ranking", "not_a_permutation", changed(ranking=[0, 0, 1])),
+                 ("ranking", "length_mismatch", changed(ranking=[0, 1])),
+                 ("responses", "too_few_responses", changed(responses=[NEUTRAL], ranking=[0])),
+                 ("responses[2]", "repeated_response", repeated(2)), ("prompt", "empty", changed(prompt="  ")),
+                 (None, *dup)]
+        jsonl = [("responses", "not_a_list", changed(responses=NEUTRAL)), ("ranking", "missing", changed(ranking=None)),
+                 ("responses[1]", "not_a_string", changed(responses=[NEUTRAL, 5, "curt"]))]
+        text = [("ranking", "not_a_list", changed(ranking="first, second, third"))]
+    elif kind == "scored":
+        every = [("scores", "bad_score", changed(scores=[1.0, float("nan"), 0.5])),
+                 ("scores", "length_mismatch", changed(scores=[1.0, 0.5])),
+                 ("responses[1]", "empty", changed(responses=[NEUTRAL, "", "curt"])), (None, *dup)]
+        jsonl = [("scores", "bad_score", changed(scores=[1.0, "high", 0.5]))]
+        text = [("responses", "not_a_list", changed(responses="helpful; neutral; curt"))]
+    else:
+        every = [("label", "bad_label", changed(label=2)), ("response", "empty", changed(response="")), (None, *dup)]
+        jsonl = [("label", "bad_label", changed(label="yes")),
+                 ("label", "missing", {k: v for k, v in rng.choice(good).items() if k != "label"})]
+        text = [("label", "bad_label", changed(label="thumbs up"))]
+    return {"jsonl": every + jsonl, "csv": every + text, "parquet": every}
+
+
+def _cell(value) -> str:
+    return json.dumps(value, ensure_ascii=False) if isinstance(value, list) else str(value)
+
+
+def _write_kind_csv(plan: list[tuple], path: Path, columns: list[str]) -> list[dict]:
+    out, line, expected = io.BytesIO(), 2, []
+    out.write(_csv_record(columns))
+    for entry in plan:
+        row = entry[2] if entry[0] == "good" else entry[4]
+        data = _csv_record([_cell(row[c]) if c in row else "" for c in columns])
+        if entry[0] == "bad":
+            expected.append({"line": line, "field": entry[1], "reason": entry[2]})
+        out.write(data)
+        line += data.count(b"\n")  # quoted newlines inside a record move the next record down
+    path.write_bytes(out.getvalue())
+    return expected
+
+
+def write_kind(out: Path, kind: str, n: int = 200, seed: int = 0, *, bad: bool = False) -> list[dict]:
+    """Write ``KIND.jsonl``, ``KIND.csv`` and ``KIND.parquet`` of :func:`feedback_rows` (with ``bad``: bad rows
+    mixed in, and ``KIND-expected.json``, see the module docstring); return the good rows."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    out.mkdir(parents=True, exist_ok=True)
+    rows = feedback_rows(kind, n, seed)
+    cases = _kind_cases(kind, rows, random.Random(seed + 4)) if bad else {"jsonl": [], "csv": [], "parquet": []}
+    plans = {fmt: _mix(rows, [(f, why, "bad", row) for f, why, row in items], seed)
+             for fmt, items in cases.items()}
+    entries = {fmt: [e[2] if e[0] == "good" else e[4] for e in plan] for fmt, plan in plans.items()}
+    (out / f"{kind}.jsonl").write_text("".join(json.dumps(r, ensure_ascii=False) + "\n" for r in entries["jsonl"]),
+                                       encoding="utf-8")
+    expected = {"jsonl": [{"line": k + 1, "field": e[1], "reason": e[2]}
+                          for k, e in enumerate(plans["jsonl"]) if e[0] == "bad"],
+                "csv": _write_kind_csv(plans["csv"], out / f"{kind}.csv", list(rows[0])),
+                "parquet": [{"index": k, "field": e[1], "reason": e[2]}
+                            for k, e in enumerate(plans["parquet"]) if e[0] == "bad"]}
+    pq.write_table(pa.Table.from_pylist(entries["parquet"]), out / f"{kind}.parquet")
+    if bad:
+        manifest = {"good": rows, "expected": expected}
+        (out / f"{kind}-expected.json").write_text(json.dumps(_finite(manifest), indent=1, ensure_ascii=False),
+                                                   encoding="utf-8")
+    return rows
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("out", type=Path, help="folder to write the files into")
@@ -323,7 +437,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--bad", action="store_true", help="mix in bad rows of every kind")
     parser.add_argument("--weights", action="store_true", help="add a per-pair weight column")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--kind", choices=KINDS, help="write rows of this kind instead of pairs")
     args = parser.parse_args(argv)
+    if args.kind is not None:
+        rows = write_kind(args.out, args.kind, args.pairs, args.seed, bad=args.bad)
+        print(f"wrote {args.out}/{args.kind}.jsonl, {args.kind}.csv and {args.kind}.parquet: {len(rows)} rows")
+        return 0
     manifest = write_all(args.out, args.pairs, args.seed, bad=args.bad, weights=args.weights)
     bad = {k: len(v) for k, v in manifest["expected"].items()}
     print(f"wrote {args.out}/pairs.jsonl, pairs.csv, pairs.parquet, pairs_folder/ and expected.json: "

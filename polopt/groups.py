@@ -18,8 +18,10 @@ Tensor = torch.Tensor
 class GroupSet:
     """Groups as tensors with a leading dimension N.
 
-    ``members`` (N, G) is whatever the policy's ``logprobs`` takes per member (response indices for
-    finite tasks); ``reference`` (N, G) the cached reference log-probabilities; ``mask`` (N, G) True
+    ``prompt`` (N, ...) and ``members`` (N, G, ...) are whatever the policy's ``logprobs`` takes per
+    member: prompt and response indices for finite tasks, (N,) and (N, G); right-padded token ids for
+    sequence models, (N, T_p) and (N, G, T_r). ``reference`` (N, G) the cached reference log-probabilities
+    (0 where a member is absent); ``mask`` (N, G) True
     where a member is present; ``lengths`` (N, G) or None (1 each); exactly one of ``labels`` (N, G),
     ``ranks`` (N, G) and ``scores`` (N, G) is set; ``weight`` (N,) or None (equal weights).
     """
@@ -61,6 +63,7 @@ class GroupSet:
 
 def score_groups(score, prompt: Tensor, members: Tensor) -> Tensor:
     """Log-probs (N, G) of every member: ``score(prompt, response)`` over the prompts repeated per
-    member and the members flattened, in one pass. ``prompt`` (N,), ``members`` (N, G)."""
-    n, g = members.shape
-    return score(prompt.repeat_interleave(g), members.reshape(-1)).reshape(n, g)  # (N G,) -> (N, G)
+    member and the members flattened, in one pass. ``prompt`` (N, ...), ``members`` (N, G, ...)."""
+    n, g = members.shape[:2]
+    flat = members.reshape(n * g, *members.shape[2:])  # (N G, ...)
+    return score(prompt.repeat_interleave(g, dim=0), flat).reshape(n, g)  # (N G,) -> (N, G)

@@ -1,5 +1,8 @@
 """``polopt data FILE [task.KEY=VALUE ...]``: check and summarise a preference-pair file without training.
 
+A file may hold unpaired, ranking or scored rows instead of pairs (:mod:`polopt.data.group_rows`); the report
+then names the kind and the responses per row.
+
     polopt data pairs.jsonl
     polopt data answers.csv 'task.columns={prompt: question, winner: good_reply, loser: other_reply}'
     polopt data pairs.parquet task.max_length=512 task.truncation=truncate_response --plot
@@ -40,10 +43,14 @@ def build_parser() -> argparse.ArgumentParser:
                "task.truncation=reject|truncate_response|truncate_prompt; task.duplicates=reject|keep; "
                "task.tokenizer=byte|DIR; task.hub=true (FILE may name a hub data set: downloads). "
                "Row numbers: 1-based line (where the record starts) for JSONL and CSV, 0-based row index for "
-               "Parquet and saved folders. Lengths are bytes of UTF-8 with the built-in tokenizer. Reasons: "
+               "Parquet and saved folders. Lengths are bytes of UTF-8 with the built-in tokenizer. Rows may be "
+               "pairs (prompt, winner, loser) or of one other kind: unpaired (response, label), ranking "
+               "(responses, ranking: the rank of each response, 0 = best) or scored (responses, scores). Reasons: "
                "invalid_utf8, invalid_json, not_an_object, wrong_field_count, missing, not_a_string, empty, "
-               "bad_weight, identical, too_long, duplicate; with model=local_lm model.path=DIR (keys "
-               "model.context, task.chat_template) also bad_messages, template_mismatch, template_error.")
+               "bad_weight, identical, too_long, duplicate, bad_label, not_a_list, too_few_responses, "
+               "length_mismatch, not_a_permutation, bad_score, repeated_response; with model=local_lm "
+               "model.path=DIR (keys model.context, task.chat_template) also bad_messages, template_mismatch, "
+               "template_error.")
     parser.add_argument("file", help="a .jsonl/.csv/.tsv/.parquet file or a folder written by datasets' save_to_disk")
     parser.add_argument("overrides", nargs="*", metavar="task.KEY=VALUE",
                         help=f"how to read the file, as for polopt train task=pairs: {', '.join(KEYS)}; "

@@ -1,9 +1,11 @@
-"""Preference pairs from files: read, check, account for every row.
+"""Preference data from files (pairs, unpaired, ranking and scored rows): read, check, account for every row.
 
 - :mod:`polopt.data.spec`: :class:`PairFileSpec`, the nine keys saying which file and how to read it.
 - :mod:`polopt.data.rows`: the column mapping, the reject record, the reason codes.
 - :mod:`polopt.data.read`: JSONL / CSV / Parquet / saved folders (and the hub, opt-in) to raw rows.
-- :mod:`polopt.data.validate`: the row checks, truncation, duplicates, the accounting.
+- :mod:`polopt.data.kinds`: which kind of row a file holds (pairs, unpaired, ranking, scored).
+- :mod:`polopt.data.validate`: the row checks, truncation, duplicates, the accounting (pairs);
+  :mod:`polopt.data.group_rows` the same for the other kinds.
 - :mod:`polopt.data.report`: the summary text, the length histogram and plot, the rejects file.
 - :mod:`polopt.commands.data`: ``polopt data FILE``.
 
@@ -24,16 +26,17 @@ from __future__ import annotations
 from collections.abc import Mapping
 from pathlib import Path
 
+from polopt.data.group_rows import validate_groups
 from polopt.data.read import FORMATS, RawTable, read_table
 from polopt.data.report import histogram, plot_lengths, summary_text, write_rejects
-from polopt.data.rows import FIELDS, REASONS, Columns, Reject
+from polopt.data.rows import FIELDS, KINDS, REASONS, Columns, Reject
 from polopt.data.spec import DEFAULTS, PairFileSpec
 from polopt.data.tokenizer import load_tokenizer
 from polopt.data.validate import DUPLICATES, TRUNCATION, PairData, check_policies, validate
 
-__all__ = ["DUPLICATES", "FIELDS", "FORMATS", "PAIR_FILE_KEYS", "REASONS", "TRUNCATION", "Columns", "PairData",
+__all__ = ["DUPLICATES", "FIELDS", "FORMATS", "KINDS", "PAIR_FILE_KEYS", "REASONS", "TRUNCATION", "Columns", "PairData",
            "PairFileSpec", "RawTable", "Reject", "histogram", "load_pairs", "load_pairs_from_config", "plot_lengths",
-           "read_pair_file", "read_table", "summary_text", "validate", "write_rejects"]
+           "read_pair_file", "read_table", "summary_text", "validate", "validate_rows", "write_rejects"]
 
 # the config keys of a pair file (e.g. under task: in a task=pairs config), with their defaults
 PAIR_FILE_KEYS = DEFAULTS
@@ -54,8 +57,14 @@ def read_pair_file(spec: PairFileSpec, *, tokenizer=None, messages: bool = False
     cols = spec.columns if isinstance(spec.columns, Columns) else Columns.parse(spec.columns)
     check_policies(spec.max_length, spec.truncation, spec.duplicates)  # before reading a large file
     table = read_table(spec.path, cols, format=spec.format, hub=bool(spec.hub), split=spec.split)
-    return validate(table, tokenizer, max_length=spec.max_length, truncation=spec.truncation,
-                    duplicates=spec.duplicates, messages=messages)
+    return validate_rows(table, tokenizer, max_length=spec.max_length, truncation=spec.truncation,
+                         duplicates=spec.duplicates, messages=messages)
+
+
+def validate_rows(table: RawTable, tokenizer, **keys) -> PairData:
+    """The checks of the table's kind of row: :func:`validate` for pairs, :func:`validate_groups` for the
+    other kinds (``keys``: max_length, truncation, duplicates, messages)."""
+    return (validate if table.kind == "pairs" else validate_groups)(table, tokenizer, **keys)
 
 
 def load_pairs(path: str | Path, *, columns: Mapping | str | Columns | None = None, format: str = "auto",

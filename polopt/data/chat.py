@@ -103,15 +103,22 @@ def pair_ids(tokenizer, prompt, winner, loser) -> tuple[list[int], list[int], li
     """(prompt, winner, loser) ids of one row (chat or plain, see the module docstring), or a :class:`RowProblem`
     (a response rendered to no token, a prompt of no token). A chat row's prompt ids are the same for both
     responses (its prompt text does not depend on the response)."""
-    ids = chat_ids if is_chat_row(prompt, winner, loser) else plain_ids
-    p, w = ids(tokenizer, prompt, winner)
-    _, lo = ids(tokenizer, prompt, loser)
+    p, (w, lo) = member_ids(tokenizer, prompt, [winner, loser], names=("winner", "loser"))
+    return p, w, lo
+
+
+def member_ids(tokenizer, prompt, responses: list, *, names) -> tuple[list[int], list[list[int]]]:
+    """(prompt ids, the ids of each response) of one row of any kind by the same convention as
+    :func:`pair_ids`; ``names[k]`` is the field reported for response k."""
+    ids = chat_ids if is_chat_row(prompt, *responses) else plain_ids
+    rendered = [ids(tokenizer, prompt, r) for r in responses]
+    p = rendered[0][0]
     if not p:
         raise RowProblem("empty", "prompt", "the prompt has no tokens, so nothing scores the first response token")
-    for name, r in (("winner", w), ("loser", lo)):
+    for name, (_, r) in zip(names, rendered, strict=True):
         if not r:
             raise RowProblem("empty", name, f"the {name} renders to no tokens")
-    return p, w, lo
+    return p, [r for _, r in rendered]
 
 
 def check_tokenizer(tokenizer, *, chat: bool, plain: bool) -> None:
@@ -123,6 +130,33 @@ def check_tokenizer(tokenizer, *, chat: bool, plain: bool) -> None:
     if plain and tokenizer.eos_token_id is None:
         raise ValueError("the tokenizer has no end-of-sequence token (eos_token); a plain response must end with one "
                          "so that the model scores where it stops")
+
+
+def fit_member_ids(prompt: list[int], responses: list[list[int]], *, limit: int, truncation: str,
+                   field: str) -> tuple[list[int], list[list[int]], dict[str, int]]:
+    """:func:`fit_ids` for a row of any number of responses (``field``: ``response`` or ``responses``, the
+    field reported): cut every response on the right (two that become the same: ``repeated_response``) or
+    the prompt on the left, with the tokens removed per field."""
+    n_p, n_r = len(prompt), max(len(r) for r in responses)
+    if n_p + n_r <= limit:
+        return prompt, responses, {}
+    too_long = f"{n_p + n_r} tokens (prompt {n_p} + longest response {n_r}) > {limit}"
+    if truncation == "truncate_response":
+        budget = limit - n_p
+        if budget < 1:
+            raise RowProblem("too_long", "prompt", f"{too_long}, and the prompt alone leaves no room for a response")
+        cut = [r[:budget] for r in responses]
+        if len({tuple(r) for r in cut}) < len(cut):
+            raise RowProblem("repeated_response", field, f"two responses are the same tokens after truncation to "
+                                                         f"{budget}")
+        return prompt, cut, {field: sum(map(len, responses)) - sum(map(len, cut))}
+    if truncation == "truncate_prompt":
+        budget = limit - n_r
+        if budget < 1:
+            raise RowProblem("too_long", field, f"{too_long}, and the longest response alone leaves no room for the "
+                                                "prompt")
+        return prompt[n_p - budget:], responses, {"prompt": n_p - budget}
+    raise RowProblem("too_long", None, too_long)
 
 
 def fit_ids(prompt: list[int], winner: list[int], loser: list[int], *, limit: int,

@@ -43,7 +43,8 @@ import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from polopt.data.rows import Columns, Reject, describe_bad_bytes, representable
+from polopt.data.kinds import infer_kind
+from polopt.data.rows import FIELDS, KINDS, Columns, Reject, describe_bad_bytes, representable
 
 TEXT_SUFFIXES = {".jsonl": "jsonl", ".ndjson": "jsonl", ".json": "jsonl", ".csv": "csv", ".tsv": "csv"}
 TABLE_SUFFIXES = {".parquet": "parquet", ".pq": "parquet"}
@@ -53,8 +54,9 @@ FORMATS = ("auto", "jsonl", "csv", "parquet", "folder", "hub")
 @dataclass
 class RawTable:
     """Rows as read, before any check. ``values[f][i]`` is the raw value of our field ``f``
-    (prompt, winner, loser, weight when used) in row i: a str, bytes (text that is not valid
-    UTF-8), None (absent or null) or any other object the file held."""
+    (prompt, the fields of the file's ``kind`` of row, weight when used) in row i: a str, bytes (text
+    that is not valid UTF-8), None (absent or null) or any other object the file held (a list for
+    responses, ranking and scores)."""
 
     source: str
     format: str
@@ -70,6 +72,7 @@ class RawTable:
     blank_lines: int = 0
     reader: str = ""
     text_values: bool = False  # CSV: every value is text, so a weight is parsed from text
+    kind: str = "pairs"  # the kind of row (polopt.data.rows.KINDS), inferred by polopt.data.kinds
 
     def __len__(self) -> int:
         return len(self.locations)
@@ -111,22 +114,27 @@ def _detect(path: Path, format: str, hub: bool) -> str:
     return kind
 
 
-def _wanted(columns: Columns) -> list[tuple[str, str]]:
-    """(our field, file column) pairs to read, weight last."""
-    return [(f, columns.column(f)) for f in ("prompt", "winner", "loser")] + (
-        [("weight", columns.weight)] if columns.weight is not None else [])
+def _wanted(columns: Columns, kind: str | None = "pairs") -> list[tuple[str, str]]:
+    """(our field, file column) pairs to read for rows of ``kind`` (None: every field), weight last."""
+    fields = [f for f in FIELDS if f != "weight"] if kind is None else ["prompt", *KINDS[kind]]
+    return [(f, columns.column(f)) for f in fields] + ([("weight", columns.weight)] if columns.weight is not None
+                                                         else [])
 
 
-def _check_columns(found: list[str], columns: Columns, source: str) -> bool:
-    """Raise the file-level error for absent required columns; return whether weights are used."""
-    missing = [columns.column(f) for f in ("prompt", "winner", "loser") if columns.column(f) not in found]
+def _check_columns(found: list[str], columns: Columns, source: str, kind: str | None = "pairs") -> bool:
+    """Raise the file-level error for absent required columns of rows of ``kind`` (None: no kind is complete;
+    the pair columns are named); return whether weights are used."""
+    own = KINDS[kind or "pairs"]
+    missing = [columns.column(f) for f in ("prompt", *own) if columns.column(f) not in found]
     if columns.weight_required and columns.weight not in found:
         missing.append(columns.weight)
     if missing:
         shown = ", ".join(map(repr, found[:20])) + (" ..." if len(found) > 20 else "") if found else "none"
+        others = "" if kind is not None else (" A file of another kind of row has prompt with response + label "
+                                              "(unpaired), responses + ranking, or responses + scores.")
         raise ValueError(f"{source}: missing column(s) {', '.join(missing)}; the file has: {shown}. "
                          "Map your names with task.columns, e.g. task.columns='{prompt: question, winner: "
-                         "good_reply, loser: other_reply}' (polopt train task=pairs and polopt data alike)")
+                         "good_reply, loser: other_reply}' (polopt train task=pairs and polopt data alike)." + others)
     return columns.weight is not None and columns.weight in found
 
 
@@ -192,9 +200,12 @@ def _read_json_array(path: Path, data: bytes, columns: Columns) -> RawTable:
 def _json_table(path: Path, format: str, unit: str, rows: list[tuple[int, dict]], early: list[Reject], blank: int,
                 columns: Columns) -> RawTable:
     found = list(dict.fromkeys(k for _, obj in rows for k in obj))
-    weighted = _check_columns(found, columns, str(path)) if rows else False
-    table = RawTable(str(path), format, unit, columns, found, weighted, early_rejects=early, blank_lines=blank)
-    wanted = [(f, c) for f, c in _wanted(columns) if f != "weight" or weighted]
+    kind = infer_kind(found, ((n, obj.get) for n, obj in rows), columns, unit=unit, source=str(path))
+    weighted = _check_columns(found, columns, str(path), kind) if rows else False
+    kind = kind or "pairs"
+    table = RawTable(str(path), format, unit, columns, found, weighted, early_rejects=early, blank_lines=blank,
+                     kind=kind)
+    wanted = [(f, c) for f, c in _wanted(columns, kind) if f != "weight" or weighted]
     table.locations = [n for n, _ in rows]
     table.content = [representable(obj) for _, obj in rows]
     table.present = [{f for f, c in wanted if c in obj} for _, obj in rows]
@@ -212,8 +223,8 @@ def _undecodable_json_line(number: int, raw: bytes, columns: Columns) -> Reject:
         obj = None
     if not isinstance(obj, dict):
         return Reject(number, "line", None, "invalid_utf8", detail, {"raw": representable(raw)})
-    bad = [f for f, c in _wanted(columns) if isinstance(obj.get(c), str) and _undecodable(obj[c])]
-    if bad:
+    bad = [f for f, c in _wanted(columns, None) if _undecodable_value(obj.get(c))]
+    if bad and isinstance(obj[columns.column(bad[0])], str):
         detail = f"{bad[0]}: {describe_bad_bytes(obj[columns.column(bad[0])].encode('utf-8', 'surrogateescape'))}"
     return Reject(number, "line", bad[0] if bad else None, "invalid_utf8", detail, representable(obj))
 
@@ -229,6 +240,17 @@ def _json_error(err: Exception) -> str:
 
 def _undecodable(text: str) -> bool:
     return any(0xDC80 <= ord(ch) <= 0xDCFF for ch in text)
+
+
+def _undecodable_value(value) -> bool:
+    """Whether a JSON value holds undecodable bytes in a string (at any depth: lists of responses)."""
+    if isinstance(value, str):
+        return _undecodable(value)
+    if isinstance(value, list):
+        return any(_undecodable_value(v) for v in value)
+    if isinstance(value, dict):
+        return any(_undecodable_value(v) for v in value.values())
+    return False
 
 
 def _load_with_datasets(builder: str, copy: Path, cache: Path, names: list[str], n: int, **kwargs) -> dict:
@@ -297,7 +319,7 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
         named = dict(zip(header, record, strict=False))
         if bad:
             name = header[bad[0]] if bad[0] < len(header) else None
-            ours = next((f for f, c in _wanted(columns) if c == name), None)
+            ours = next((f for f, c in _wanted(columns, None) if c == name), None)
             detail = describe_bad_bytes(record[bad[0]].encode("utf-8", "surrogateescape"))
             detail = f"column {name!r}: {detail}" if name is not None else f"field {bad[0] + 1}: {detail}"
             early.append(Reject(start, "line", ours, "invalid_utf8", detail, representable(named)))
@@ -308,10 +330,12 @@ def _read_csv(path: Path, columns: Columns) -> RawTable:
                                 {"fields": representable(record)}))
             continue
         rows.append((start, named))
-    weighted = _check_columns(header, columns, str(path)) if header else False
+    kind = infer_kind(header, ((n, r.get) for n, r in rows), columns, unit="line", source=str(path))
+    weighted = _check_columns(header, columns, str(path), kind) if header else False
+    kind = kind or "pairs"
     table = RawTable(str(path), "csv", "line", columns, header, weighted, early_rejects=early, blank_lines=blank,
-                     text_values=True)
-    wanted = [(f, c) for f, c in _wanted(columns) if f != "weight" or weighted]
+                     text_values=True, kind=kind)
+    wanted = [(f, c) for f, c in _wanted(columns, kind) if f != "weight" or weighted]
     table.locations = [n for n, _ in rows]
     table.content = [dict(r) for _, r in rows]
     table.present = [{f for f, _ in wanted} for _ in rows]  # CSV has no null: a field is there, maybe empty
@@ -384,12 +408,15 @@ def _read_dataset(source: str, columns: Columns, kind: str, split: str) -> RawTa
             ds = ds[split]
         table = ds.with_format("arrow")[:] if len(ds) else ds.data.table
     found = list(table.column_names)
-    weighted = _check_columns(found, columns, source)
-    out = RawTable(source, kind, "index", columns, found, weighted,
-                   reader=f"datasets {'load_from_disk' if kind == 'folder' else kind}")
     n = table.num_rows
     every = {name: arrow_values(table.column(name)) for name in found}
-    wanted = [(f, c) for f, c in _wanted(columns) if f != "weight" or weighted]
+    rows = ((i, lambda c, i=i: every[c][i] if c in every else None) for i in range(n))
+    row_kind = infer_kind(found, rows, columns, unit="index", source=source)
+    weighted = _check_columns(found, columns, source, row_kind)
+    row_kind = row_kind or "pairs"
+    out = RawTable(source, kind, "index", columns, found, weighted,
+                   reader=f"datasets {'load_from_disk' if kind == 'folder' else kind}", kind=row_kind)
+    wanted = [(f, c) for f, c in _wanted(columns, row_kind) if f != "weight" or weighted]
     out.locations = list(range(n))
     out.values = {f: every[c] for f, c in wanted}
     out.content = [{name: representable(every[name][i]) for name in found} for i in range(n)]

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from polopt.data.rows import REASONS, Reject
+from polopt.data.rows import KINDS, REASONS, Reject
 from polopt.data.validate import PairData
 
 BAR = 40  # characters of the longest histogram bar
@@ -50,6 +50,11 @@ def summary_text(data: PairData, rejects_path: str | Path | None = None, *, show
              f"  rows in        {a['rows_in']:>8}",
              f"  accepted       {a['rows_accepted']:>8}",
              f"  rejected       {a['rows_rejected']:>8}"]
+    kind = a.get("row_kind", "pairs")
+    if kind != "pairs":
+        sizes = ", ".join(f"{g}: {n}" for g, n in a.get("group_sizes", {}).items())
+        lines.append(f"  row kind       {kind} ({' + '.join(KINDS[kind])})"
+                     + (f"; responses per row (accepted) {sizes}" if kind != "unpaired" and sizes else ""))
     for reason, count in a["rejected_by_reason"].items():
         lines.append(f"    {reason:<18}{count:>6}  {REASONS[reason]}")
     lines.append(f"  {a['balance']}")
@@ -64,7 +69,9 @@ def summary_text(data: PairData, rejects_path: str | Path | None = None, *, show
     lines.append(f"  weights: {'column ' + repr(a['columns']['weight']) if a['weighted'] else 'none (all 1)'}")
     counts, edges = histogram(data.length)
     if len(counts):
-        lines.append(f"  pair length ({unit}: prompt + longer response) of the accepted rows:")
+        what = "pair length" if kind == "pairs" else "row length"
+        lines.append(f"  {what} ({unit}: prompt + {'longer' if kind == 'pairs' else 'longest'} response) of the "
+                     "accepted rows:")
         top, longest = max(int(counts.max()), 1), max(data.length)
         for c, lo, hi in zip(counts, edges[:-1], edges[1:], strict=True):
             bar = "#" * int(round(BAR * int(c) / top))
@@ -94,8 +101,10 @@ def plot_lengths(data: PairData, path: str | Path) -> Path:
     if a["max_length"] is not None:
         ax.axvline(a["max_length"], color="#cc3311", linestyle="--", label=f"max_length {a['max_length']}")
         ax.legend()
-    ax.set_xlabel(f"pair length ({unit}: prompt + longer response)")
-    ax.set_ylabel("accepted pairs")
+    pairs = a.get("row_kind", "pairs") == "pairs"
+    ax.set_xlabel(f"{'pair' if pairs else 'row'} length ({unit}: prompt + {'longer' if pairs else 'longest'} "
+                  "response)")
+    ax.set_ylabel("accepted pairs" if pairs else f"accepted {a['row_kind']} rows")
     ax.set_title(f"{Path(a['source']).name}: {a['rows_accepted']} accepted, {a['rows_rejected']} rejected")
     fig.tight_layout()
     path = Path(path)

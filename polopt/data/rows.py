@@ -1,7 +1,9 @@
-"""The vocabulary of the data layer: which columns hold a pair, and why a row was rejected.
+"""The vocabulary of the data layer: which columns hold a row, and why a row was rejected.
 
 Owns :class:`Columns` (the mapping from our field names ``prompt``, ``winner``,
-``loser``, ``weight`` to a file's column names), :class:`Reject` (one bad row:
+``loser``, ``response``, ``label``, ``responses``, ``ranking``, ``scores``, ``weight`` to a
+file's column names), :data:`KINDS` (the four kinds of row and the fields each holds beside the
+prompt), :class:`Reject` (one bad row:
 where, which field, which reason), the reason codes in :data:`REASONS`, and
 :func:`representable`, which turns a row's original content into something
 JSON can hold for the rejects file.
@@ -14,7 +16,14 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 TEXT_FIELDS = ("prompt", "winner", "loser")
-FIELDS = (*TEXT_FIELDS, "weight")
+# kind of row -> its fields beside prompt (and the optional weight); the kinds are task.feedback's names
+KINDS = {
+    "pairs": ("winner", "loser"),
+    "unpaired": ("response", "label"),
+    "ranking": ("responses", "ranking"),
+    "scored": ("responses", "scores"),
+}
+FIELDS = ("prompt", "winner", "loser", "response", "label", "responses", "ranking", "scores", "weight")
 
 # reason code -> what it means; the codes are stable (summaries, rejects files and tests use them)
 REASONS = {
@@ -30,7 +39,15 @@ REASONS = {
     "bad_weight": "the weight is not a finite number > 0",
     "identical": "winner and loser are the same text",
     "too_long": "the pair is longer than max_length and the truncation policy does not cut it",
-    "duplicate": "the same (prompt, winner, loser, weight) as an earlier accepted row",
+    "duplicate": "the same (prompt, winner, loser, weight) as an earlier accepted row (other kinds: the same prompt, "
+                 "responses, feedback and weight)",
+    "bad_label": "an unpaired row's label is not 1, 0, true or false",
+    "not_a_list": "responses, ranking or scores is not a list (in CSV: not a JSON array)",
+    "too_few_responses": "a ranking or scored row has fewer than 2 responses",
+    "length_mismatch": "ranking or scores does not have one entry per response",
+    "not_a_permutation": "ranking is not a permutation of 0..G-1 (G responses; 0 = best)",
+    "bad_score": "a score is not a finite number",
+    "repeated_response": "two responses of one ranking or scored row are the same text (after truncation, where cut)",
     "template_mismatch": "the chat template's rendering of prompt + response does not start with that of the prompt",
     "template_error": "the chat template refused the conversation (its raise_exception, e.g. roles out of order)",
 }
@@ -38,15 +55,20 @@ REASONS = {
 
 @dataclass(frozen=True)
 class Columns:
-    """Our field -> the file's column. ``weight`` None: no weights (all 1). The default weight
-    column ``weight`` is used only when the file has it; a weight column named explicitly
-    must exist."""
+    """Our field -> the file's column (every field of :data:`FIELDS` but weight defaults to its own name).
+    ``weight`` None: no weights (all 1). The default weight column ``weight`` is used only when the file
+    has it; a weight column named explicitly must exist."""
 
     prompt: str = "prompt"
     winner: str = "winner"
     loser: str = "loser"
     weight: str | None = "weight"
     weight_required: bool = False
+    response: str = "response"
+    label: str = "label"
+    responses: str = "responses"
+    ranking: str = "ranking"
+    scores: str = "scores"
 
     @classmethod
     def parse(cls, mapping: Mapping | str | None) -> Columns:
@@ -75,15 +97,23 @@ class Columns:
         names = [mapping.get(f, f) for f in TEXT_FIELDS]
         if len(set(names)) < 3:
             raise ValueError(f"columns: prompt, winner and loser must be three different columns, got {names}")
+        every = {f: mapping.get(f, f) for f in FIELDS if f != "weight"}
+        for kind, own in KINDS.items():
+            used = [every[f] for f in ("prompt", *own)]
+            if len(set(used)) < len(used):
+                raise ValueError(f"columns: {', '.join(('prompt', *own))} (rows of kind {kind}) must be different "
+                                 f"columns, got {used}")
         weight = mapping.get("weight", "weight")
         required = "weight" in mapping and weight is not None and weight != "weight"
-        return cls(*names, weight=weight, weight_required=required)
+        others = {f: every[f] for f in ("response", "label", "responses", "ranking", "scores")}
+        return cls(*names, weight=weight, weight_required=required, **others)
 
-    def mapping(self) -> dict:
-        return {"prompt": self.prompt, "winner": self.winner, "loser": self.loser, "weight": self.weight}
+    def mapping(self, kind: str = "pairs") -> dict:
+        """Our fields of rows of ``kind`` (prompt, the kind's own, weight) -> the file's columns."""
+        return {f: getattr(self, f) for f in ("prompt", *KINDS[kind], "weight")}
 
     def column(self, name: str) -> str:
-        return self.mapping()[name]
+        return getattr(self, name)
 
 
 @dataclass
@@ -93,7 +123,7 @@ class Reject:
 
     location: int
     unit: str  # "line" | "index"
-    field: str | None  # our field name (prompt, winner, loser, weight), None for the whole row
+    field: str | None  # our field name (prompt, winner, loser, response, ..., weight), None for the whole row
     reason: str  # a key of REASONS
     detail: str
     row: dict | None = None  # the original row, as far as JSON can hold it

@@ -30,6 +30,7 @@ from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
 
+from polopt.data.kinds import complete_kinds, describe
 from polopt.data.read import (
     TABLE_SUFFIXES,
     TEXT_SUFFIXES,
@@ -99,6 +100,9 @@ def _parquet_chunks(path: Path, columns: Columns) -> Iterator[RawTable]:
     except Exception as err:
         raise ValueError(f"{path}: pyarrow cannot read it as parquet: {err}") from None
     found = list(source.schema_arrow.names)
+    kinds = complete_kinds(found, columns)
+    if kinds and "pairs" not in kinds:
+        refuse_kind(kinds[0])
     weighted = _check_columns(found, columns, str(path))
     wanted = [(f, c) for f, c in _wanted(columns) if f != "weight" or weighted]
     start = 0
@@ -112,6 +116,12 @@ def _parquet_chunks(path: Path, columns: Columns) -> Iterator[RawTable]:
         table.present = [{f for f, _ in wanted} for _ in range(n)]
         start += n
         yield table
+
+
+def refuse_kind(kind: str):
+    """The one line for a file of rows beyond pairs under ``task.stream=true``."""
+    raise ValueError(f"task.stream=true streams pair rows (prompt, winner, loser); this file holds "
+                     f"{describe(kind)} rows: set task.stream=false (read in memory)")
 
 
 class SeenDigests:
@@ -181,6 +191,8 @@ class StreamPass:
             self.seconds = time.perf_counter() - start
 
     def _check(self, table: RawTable, seen: SeenDigests, rejects) -> dict | None:
+        if table.kind != "pairs":
+            refuse_kind(table.kind)
         if self.weighted is None and len(table):
             self.weighted, self.found, self.reader = table.weighted, table.columns_found, table.reader
         part = validate(table, self.tokenizer, max_length=self.file["max_length"], truncation=self.file["truncation"],

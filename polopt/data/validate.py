@@ -18,7 +18,9 @@ reason; the other field problems found are listed beside it):
    contradicting label, which is data.
 
 The accounting dict says ``rows_in == rows_accepted + rows_rejected``, and
-:func:`validate` raises if that ever fails to hold.
+:func:`validate` raises if that ever fails to hold. Rows of the other kinds (unpaired, ranking,
+scored: :data:`polopt.data.rows.KINDS`) are checked by :mod:`polopt.data.group_rows` in the same
+order, into the same :class:`PairData` and accounting.
 """
 
 from __future__ import annotations
@@ -30,7 +32,7 @@ from dataclasses import dataclass, field
 
 from polopt.data.chat import is_messages, message_problem
 from polopt.data.read import RawTable
-from polopt.data.rows import REASONS, TEXT_FIELDS, Reject, describe_bad_bytes, representable
+from polopt.data.rows import KINDS, REASONS, TEXT_FIELDS, Reject, describe_bad_bytes, representable
 
 TRUNCATION = {
     "reject": "reject pairs longer than max_length",
@@ -39,14 +41,19 @@ TRUNCATION = {
                        "longer response",
 }
 DUPLICATES = ("reject", "keep")
+CUT_FIELDS = ("prompt", "winner", "loser", "response", "responses")  # the fields truncation may cut
 
 
 @dataclass
 class PairData:
-    """Accepted pairs as parallel lists, the rejects, and the accounting.
+    """Accepted rows as parallel lists, the rejects, and the accounting.
 
-    ``location[i]`` is where pair i came from (1-based line, or 0-based index; see
-    ``accounting["row_unit"]``); ``length[i]`` its tokens after any truncation.
+    ``kind`` is the file's kind of row (:data:`polopt.data.rows.KINDS`). Pairs fill ``winner`` and
+    ``loser``; the other kinds fill ``responses`` (a list per row: the one response of an unpaired
+    row, the G responses of a ranking or scored row) and ``feedback`` (a list per row, one entry per
+    response: the label 1.0 / 0.0, the rank 0 = best, or the score). ``location[i]`` is where row i
+    came from (1-based line, or 0-based index; see ``accounting["row_unit"]``); ``length[i]`` its
+    tokens (prompt + longest response) after any truncation.
     """
 
     prompt: list[str] = field(default_factory=list)
@@ -57,23 +64,48 @@ class PairData:
     length: list[int] = field(default_factory=list)
     rejects: list[Reject] = field(default_factory=list)
     accounting: dict = field(default_factory=dict)
+    kind: str = "pairs"
+    responses: list[list] = field(default_factory=list)
+    feedback: list[list] = field(default_factory=list)
 
     def __len__(self) -> int:
         return len(self.prompt)
 
     def rows(self) -> list[dict]:
-        """The accepted pairs as dicts ``{prompt, winner, loser, weight}``."""
-        return [{"prompt": p, "winner": w, "loser": lo, "weight": wt}
-                for p, w, lo, wt in zip(self.prompt, self.winner, self.loser, self.weight, strict=True)]
+        """The accepted rows as dicts in our field names: ``{prompt, winner, loser, weight}``,
+        ``{prompt, response, label, weight}``, ``{prompt, responses, ranking | scores, weight}``."""
+        if self.kind == "pairs":
+            return [{"prompt": p, "winner": w, "loser": lo, "weight": wt}
+                    for p, w, lo, wt in zip(self.prompt, self.winner, self.loser, self.weight, strict=True)]
+        first, second = KINDS[self.kind]
+        one = self.kind == "unpaired"
+        return [{"prompt": p, first: r[0] if one else r, second: f[0] if one else f, "weight": wt}
+                for p, r, f, wt in zip(self.prompt, self.responses, self.feedback, self.weight, strict=True)]
+
+    def add(self, row: dict, *, location: int, length: int | None) -> None:
+        """Append one accepted row (a dict as :meth:`rows` gives) with its location and length."""
+        self.prompt.append(row["prompt"])
+        if self.kind == "pairs":
+            self.winner.append(row["winner"])
+            self.loser.append(row["loser"])
+        else:
+            first, second = KINDS[self.kind]
+            one = self.kind == "unpaired"
+            self.responses.append([row[first]] if one else list(row[first]))
+            self.feedback.append([row[second]] if one else list(row[second]))
+        self.weight.append(row["weight"])
+        self.location.append(location)
+        self.length.append(length)
 
     def to_dataset(self):
-        """The accepted pairs as a ``datasets.Dataset`` with columns prompt, winner, loser,
-        weight and the row's location (``line`` or ``index``)."""
+        """The accepted rows as a ``datasets.Dataset`` with the columns of :meth:`rows` and the row's
+        location (``line`` or ``index``)."""
         import datasets
 
-        return datasets.Dataset.from_dict({"prompt": self.prompt, "winner": self.winner, "loser": self.loser,
-                                           "weight": self.weight,
-                                           self.accounting.get("row_unit", "line"): self.location})
+        rows = self.rows()
+        names = rows[0] if rows else ("prompt", *KINDS[self.kind], "weight")
+        columns = {name: [r[name] for r in rows] for name in names}
+        return datasets.Dataset.from_dict(columns | {self.accounting.get("row_unit", "line"): self.location})
 
 
 def check_policies(max_length, truncation: str, duplicates: str) -> None:
@@ -133,11 +165,10 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
             n_truncated += 1
             truncated_fields.update(cut.keys())
             removed += sum(cut.values())
-        for name, value in (("prompt", prompt), ("winner", winner), ("loser", loser), ("weight", weight),
-                            ("location", location), ("length", length)):
-            getattr(out, name).append(value)
+        out.add({"prompt": prompt, "winner": winner, "loser": loser, "weight": weight}, location=location,
+                length=length)
     out.rejects.sort(key=lambda r: r.location)
-    out.accounting = _accounting(table, out, tokenizer, max_length=max_length, truncation=truncation,
+    out.accounting = accounting(table, out, tokenizer, max_length=max_length, truncation=truncation,
                                  duplicates=duplicates, n_duplicates=n_duplicates, n_truncated=n_truncated,
                                  truncated_fields=truncated_fields, removed=removed)
     return out
@@ -145,31 +176,39 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
 
 def _field_problems(raw: dict, present: set, text_values: bool, messages: bool = False) -> list[dict]:
     """Every problem of the single fields of one row, in field order."""
-    problems = []
-    for name in TEXT_FIELDS:
-        value = raw[name]
-        if messages and is_messages(value):
-            detail = message_problem(value, field=name)
-            if detail is not None:
-                problems.append({"field": name, "reason": "bad_messages", "detail": detail})
-        elif value is None:
-            problems.append({"field": name, "reason": "missing",
-                             "detail": f"{name} is null" if name in present else f"{name} is absent"})
-        elif isinstance(value, bytes):
-            problems.append({"field": name, "reason": "invalid_utf8", "detail": describe_bad_bytes(value)})
-        elif not isinstance(value, str):
-            problems.append({"field": name, "reason": "not_a_string",
-                             "detail": f"{name} is a {type(value).__name__} ({_short(value)}), not text"})
-        elif not _encodable(value):
-            problems.append({"field": name, "reason": "invalid_utf8", "detail": _surrogate_detail(name, value)})
-        elif not value.strip():
-            problems.append({"field": name, "reason": "empty",
-                             "detail": f"{name} is empty" if not value else f"{name} is only whitespace"})
+    problems = [p for name in TEXT_FIELDS if (p := text_problem(name, raw[name], name in present, messages))]
+    return problems + weight_problems(raw, present, text_values)
+
+
+def weight_problems(raw: dict, present: set, text_values: bool) -> list[dict]:
+    """[the weight's problem] where the row has a weight and it is not a finite number > 0, else []."""
     if "weight" in raw:
         detail = _weight_problem(raw["weight"], "weight" in present, text_values)
         if detail is not None:
-            problems.append({"field": "weight", "reason": "bad_weight", "detail": detail})
-    return problems
+            return [{"field": "weight", "reason": "bad_weight", "detail": detail}]
+    return []
+
+
+def text_problem(name: str, value, present: bool, messages: bool = False, *, role_of: str | None = None) -> dict | None:
+    """The problem of one text field's value, or None: missing, not text, not UTF-8, empty, or (``messages``)
+    a bad message list. ``name`` is the field reported (e.g. ``responses[2]``); ``role_of``: the field whose
+    rule a message list follows (default ``name``; a response's messages are the assistant's)."""
+    if messages and is_messages(value):
+        detail = message_problem(value, field=role_of or name)
+        return None if detail is None else {"field": name, "reason": "bad_messages", "detail": detail}
+    if value is None:
+        return {"field": name, "reason": "missing", "detail": f"{name} is null" if present else f"{name} is absent"}
+    if isinstance(value, bytes):
+        return {"field": name, "reason": "invalid_utf8", "detail": describe_bad_bytes(value)}
+    if not isinstance(value, str):
+        return {"field": name, "reason": "not_a_string",
+                "detail": f"{name} is a {type(value).__name__} ({_short(value)}), not text"}
+    if not _encodable(value):
+        return {"field": name, "reason": "invalid_utf8", "detail": _surrogate_detail(name, value)}
+    if not value.strip():
+        return {"field": name, "reason": "empty",
+                "detail": f"{name} is empty" if not value else f"{name} is only whitespace"}
+    return None
 
 
 def _weight_problem(value, present: bool, text_values: bool) -> str | None:
@@ -233,8 +272,9 @@ def _fit(prompt: str, winner: str, loser: str, tokenizer, max_length: int | None
     return (cut_p, winner, loser), {"prompt": n_p - tokenizer.count(cut_p)}, tokenizer.count(cut_p) + max(n_w, n_l)
 
 
-def _accounting(table: RawTable, out: PairData, tokenizer, *, max_length, truncation, duplicates, n_duplicates,
-                n_truncated, truncated_fields, removed) -> dict:
+def accounting(table: RawTable, out: PairData, tokenizer, *, max_length, truncation, duplicates, n_duplicates,
+               n_truncated, truncated_fields, removed) -> dict:
+    """The accounting dict of a checked table (every kind of row), after checking the balance."""
     rows_in = len(table) + len(table.early_rejects)
     accepted, rejected = len(out), len(out.rejects)
     if rows_in != accepted + rejected:  # never: every row is accepted or rejected exactly once
@@ -246,7 +286,8 @@ def _accounting(table: RawTable, out: PairData, tokenizer, *, max_length, trunca
         "reader": table.reader,
         "row_unit": table.unit,
         "row_numbering": "1-based line where the record starts" if table.unit == "line" else "0-based row index",
-        "columns": table.columns.mapping() | ({} if table.weighted else {"weight": None}),
+        "row_kind": table.kind,
+        "columns": table.columns.mapping(table.kind) | ({} if table.weighted else {"weight": None}),
         "columns_found": table.columns_found,
         "weighted": table.weighted,
         "rows_in": rows_in,
@@ -259,7 +300,7 @@ def _accounting(table: RawTable, out: PairData, tokenizer, *, max_length, trunca
         "max_length": max_length,
         "truncation": truncation,
         "rows_truncated": n_truncated,
-        "truncated_fields": {f: truncated_fields[f] for f in TEXT_FIELDS if truncated_fields[f]},
+        "truncated_fields": {f: truncated_fields[f] for f in CUT_FIELDS if truncated_fields[f]},
         "tokens_removed": removed,
         "duplicates": duplicates,
         "duplicate_rows": n_duplicates,
@@ -273,7 +314,7 @@ def reject_later(data: PairData, rejected: dict[int, Reject], cuts: dict[int, di
     truncation removed from its fields, ``lengths[i]`` is its measured length. The accounting is updated so
     that ``rows_in = rows_accepted + rows_rejected`` still holds; ``tokenizer`` and ``max_length`` say what
     the lengths were measured with and against."""
-    out = PairData(rejects=list(data.rejects))
+    out = PairData(rejects=list(data.rejects), kind=data.kind)
     truncated: Counter = Counter()
     for i, row in enumerate(data.rows()):
         if i in rejected:
@@ -282,10 +323,7 @@ def reject_later(data: PairData, rejected: dict[int, Reject], cuts: dict[int, di
                                       representable(row)))
             continue
         truncated.update(cuts.get(i, {}).keys())
-        for name in ("prompt", "winner", "loser", "weight"):
-            getattr(out, name).append(row[name])
-        out.location.append(data.location[i])
-        out.length.append(lengths[i])
+        out.add(row, location=data.location[i], length=lengths[i])
     out.rejects.sort(key=lambda r: r.location)
     by_reason = Counter(r.reason for r in out.rejects)
     a = dict(data.accounting)
@@ -294,8 +332,10 @@ def reject_later(data: PairData, rejected: dict[int, Reject], cuts: dict[int, di
              balance=f"rows_in {a['rows_in']} = rows_accepted {len(out)} + rows_rejected {len(out.rejects)}",
              tokenizer=tokenizer, max_length=max_length,
              rows_truncated=sum(1 for i, c in cuts.items() if c and i not in rejected),
-             truncated_fields={f: truncated[f] for f in TEXT_FIELDS if truncated[f]},
+             truncated_fields={f: truncated[f] for f in CUT_FIELDS if truncated[f]},
              tokens_removed=sum(sum(c.values()) for i, c in cuts.items() if i not in rejected))
+    if data.kind != "pairs":
+        a["group_sizes"] = dict(sorted(Counter(len(r) for r in out.responses).items()))
     if a["rows_in"] != a["rows_accepted"] + a["rows_rejected"]:  # never: each row moves exactly once
         raise RuntimeError(f"row accounting broke: {a['balance']}")
     out.accounting = a

@@ -28,7 +28,7 @@ from pathlib import Path
 import torch
 
 from polopt.data import PairData, read_pair_file, write_rejects
-from polopt.data.chat import RowProblem, check_tokenizer, fit_ids, is_chat_row, pair_ids
+from polopt.data.chat import RowProblem, check_tokenizer, fit_ids, fit_member_ids, is_chat_row, member_ids, pair_ids
 from polopt.data.encoding import SequenceIds
 from polopt.data.rows import Reject
 from polopt.data.validate import reject_later
@@ -46,7 +46,7 @@ from polopt.models.local_lm import (
 from polopt.models.logprobs import SequencePolicy, real_tokens
 from polopt.models.lora import ADAPTERS, LoraSettings, adapter_dropout_on, with_lora
 from polopt.models.reference_cache import FILE_NAME
-from polopt.pairfile.session import REJECTS_FILE, PairSession
+from polopt.pairfile.session import REJECTS_FILE, PairSession, nothing_accepted
 from polopt.training.contracts import TrainResult
 from polopt.training.run_folder import POLICY_DIR
 
@@ -77,25 +77,39 @@ def context_of(path, context: int | None) -> int:
     return context
 
 
+def _encode_row(tokenizer, prompt, responses: list, *, kind: str, limit: int, truncation: str):
+    """(ids, tokens removed per field, length) of one row: ids (prompt, winner, loser) for pairs, (prompt,
+    [response ids...]) for the other kinds; a :class:`polopt.data.chat.RowProblem` where it cannot be encoded."""
+    if kind == "pairs":
+        p, w, lo, cut = fit_ids(*pair_ids(tokenizer, prompt, *responses), limit=limit, truncation=truncation)
+        return (p, w, lo), cut, len(p) + max(len(w), len(lo))
+    field = "response" if kind == "unpaired" else "responses"
+    names = [field] if kind == "unpaired" else [f"responses[{k}]" for k in range(len(responses))]
+    p, rs, cut = fit_member_ids(*member_ids(tokenizer, prompt, responses, names=names), limit=limit,
+                                truncation=truncation, field=field)
+    return (p, rs), cut, len(p) + max(map(len, rs))
+
+
 def encode_rows(tokenizer, data: PairData, *, limit: int, truncation: str) -> tuple[PairData, list[tuple]]:
-    """The accepted rows as ids (prompt, winner, loser) by :mod:`polopt.data.chat`'s convention within ``limit``
-    tokens, and ``data`` with the rows that cannot be encoded moved to its rejects (see
-    :func:`polopt.data.validate.reject_later`)."""
-    rows = data.rows()
-    check_tokenizer(tokenizer, chat=any(is_chat_row(r["prompt"], r["winner"], r["loser"]) for r in rows),
-                    plain=any(not is_chat_row(r["prompt"], r["winner"], r["loser"]) for r in rows))
+    """The accepted rows as ids by :mod:`polopt.data.chat`'s convention within ``limit`` tokens: (prompt, winner,
+    loser) for pairs, (prompt, [ids of each response]) for the other kinds; and ``data`` with the rows that cannot
+    be encoded moved to its rejects (see :func:`polopt.data.validate.reject_later`)."""
+    rows = [(p, [w, lo]) for p, w, lo in zip(data.prompt, data.winner, data.loser, strict=True)] \
+        if data.kind == "pairs" else list(zip(data.prompt, data.responses, strict=True))
+    check_tokenizer(tokenizer, chat=any(is_chat_row(p, *rs) for p, rs in rows),
+                    plain=any(not is_chat_row(p, *rs) for p, rs in rows))
     ids, rejected, cuts, measured = [], {}, {}, []
-    for i, row in enumerate(rows):
+    for i, (prompt, responses) in enumerate(rows):
         try:
-            p, w, lo, cut = fit_ids(*pair_ids(tokenizer, row["prompt"], row["winner"], row["loser"]), limit=limit,
-                                    truncation=truncation)
+            row_ids, cut, length = _encode_row(tokenizer, prompt, responses, kind=data.kind, limit=limit,
+                                               truncation=truncation)
         except RowProblem as problem:
             rejected[i] = Reject(0, "", problem.field, problem.reason, problem.detail)
             measured.append(0)
             continue
-        ids.append((p, w, lo))
+        ids.append(row_ids)
         cuts[i] = cut
-        measured.append(len(p) + max(len(w), len(lo)))
+        measured.append(length)
     name = getattr(tokenizer, "name_or_path", type(tokenizer).__name__)
     return reject_later(data, rejected, cuts, measured, tokenizer=name, max_length=limit), ids
 
@@ -192,9 +206,11 @@ class LocalLMSession(PairSession):
 
 
 def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smoothing: float, n_pairs: int | None,
-                     run_dir: str | Path | None) -> LocalLMSession:
+                     run_dir: str | Path | None, grouped=None) -> LocalLMSession:
     """The session of ``task`` (a :class:`polopt.pairfile.task.PairTask`) on ``model`` (the ``model`` config,
-    ``kind: local_lm``): the file read and encoded with the model's tokenizer (see the module docstring)."""
+    ``kind: local_lm``): the file read and encoded with the model's tokenizer (see the module docstring).
+    ``grouped(kind, loss)``: (a session class, the group objective) where the file's rows train as groups
+    (:func:`polopt.pairfile.group_session.grouped`), None for pairs."""
     spec = task.file
     if task.stream:
         raise ValueError("task.stream=true streams pairs for model=transformer; model=local_lm reads the file in "
@@ -203,17 +219,21 @@ def prepare_local_lm(task, loss: MarginLoss, *, model: dict, beta: float, smooth
         model_folder(task.reference, field="task.reference_checkpoint")
     data, token_ids, tokenizer = read_for_model(spec, path=model.get("path"), context=model.get("context"),
                                                 chat_template=task.chat_template)
+    session_type, extra = LocalLMSession, {}
+    if grouped is not None and (choice := grouped(data.kind, loss)) is not None:
+        session_type, loss = choice
+        extra = {"feedback": data.kind}
     path = str(model_folder(model.get("path")))
     rejects = None if run_dir is None else write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
     if len(data) == 0:
-        raise ValueError(f"task.path {spec.path!r}: no pair was accepted "
-                         f"({data.accounting['rows_rejected']} rejected; see {rejects or 'the rejects'})")
+        raise nothing_accepted(spec.path, data, rejects)
     cache = Path(run_dir) / FILE_NAME if run_dir is not None and task.cache_reference else None
     special = SequenceIds(PAD, tokenizer.bos_token_id, tokenizer.eos_token_id, len(tokenizer))
-    session = LocalLMSession(data=data, tokenizer=tokenizer, file_tokenizer=path, ids=special, loss=loss,
+    session = session_type(data=data, tokenizer=tokenizer, file_tokenizer=path, ids=special, loss=loss,
                              beta=beta, smoothing=smoothing, n_pairs=n_pairs, reference_path=task.reference,
                              reference_model=None, reference_meta=None, cache=cache, rejects_path=rejects,
-                             model_path=path, token_ids=token_ids, run_dir=None if run_dir is None else Path(run_dir))
+                             model_path=path, token_ids=token_ids, run_dir=None if run_dir is None else Path(run_dir),
+                             **extra)
     session.encode()
     return session
 

@@ -17,6 +17,7 @@ import torch
 
 from polopt.data import PairFileSpec, read_pair_file
 from polopt.data.encoding import SequenceIds, encode_prompts, encode_responses
+from polopt.data.kinds import require_pairs
 from polopt.data.tokenizer import load_tokenizer
 from polopt.methods.reward_model import (
     CALIBRATION,
@@ -62,6 +63,7 @@ def encode_pair_file(file: PairFileSpec, *, mode: str, n_pairs: int | None, mode
                          f"model={model.get('kind')} cannot: give +experiment=pairs (or model=transformer)")
     tokenizer = load_tokenizer(file.tokenizer or "byte")
     data = read_pair_file(file, tokenizer=tokenizer)
+    require_pairs(data.kind, "polopt reward (a reward or preference head fitted to pairs)")
     n = len(data) if n_pairs is None else min(int(n_pairs), len(data))
     if n < 2:
         raise ValueError(f"task.path {str(file.path)!r}: {n} pair(s) accepted; a reward model needs at least 2")

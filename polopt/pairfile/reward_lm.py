@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import torch
 
+from polopt.data.kinds import require_pairs
 from polopt.methods.lm_reward import fit_head, hidden_features, lm_identity, new_head, pad_rows
 from polopt.methods.reward_model import split_heldout
 from polopt.models.local_lm import load_model, model_folder
@@ -45,6 +46,7 @@ def fit_lm_reward(task, *, mode: str, n_pairs: int | None, seed: int, model: dic
     file = task.file
     data, token_ids, tokenizer = read_for_model(file, path=model.get("path"), context=model.get("context"),
                                                 chat_template=task.chat_template)
+    require_pairs(data.kind, "polopt reward (a reward or preference head fitted to pairs)")
     path = str(model_folder(model.get("path")).resolve())  # the file names its model wherever it is read from
     n = len(token_ids) if n_pairs is None else min(int(n_pairs), len(token_ids))
     if n < 2:

@@ -28,6 +28,15 @@ INITS = ("reference", "random")
 REJECTS_FILE = "rejects.jsonl"
 
 
+def nothing_accepted(path, data: PairData, rejects) -> ValueError:
+    """The one line for a file of which no row was accepted, with the reasons counted (``rejects``: the rejects
+    file written, or None)."""
+    what = "pair" if data.kind == "pairs" else "row"
+    reasons = ", ".join(f"{k} {n}" for k, n in data.accounting["rejected_by_reason"].items())
+    return ValueError(f"task.path {str(path)!r}: no {what} was accepted ({data.accounting['rows_rejected']} rejected; "
+                      f"see {rejects or 'polopt data FILE'})" + (f": {reasons}" if reasons else ""))
+
+
 @dataclass
 class PairSession:
     """One run's view of a pair file; see the module docstring."""

@@ -38,10 +38,12 @@ import torch
 from polopt.data import PairFileSpec, read_pair_file, write_rejects
 from polopt.data.encoding import SequenceIds
 from polopt.data.tokenizer import load_tokenizer
+from polopt.losses.group_objective import GroupObjective
 from polopt.losses.margin import MarginLoss
 from polopt.models.reference_cache import FILE_NAME
+from polopt.pairfile.group_session import grouped
 from polopt.pairfile.local_lm import prepare_local_lm
-from polopt.pairfile.session import REJECTS_FILE, PairSession
+from polopt.pairfile.session import REJECTS_FILE, PairSession, nothing_accepted
 from polopt.pairfile.streamed import prepare_streamed
 from polopt.training.sft import load_reference
 
@@ -75,26 +77,32 @@ class PairTask:
             raise ValueError(f"task.n_pairs must be a positive integer or null (every accepted pair), got {n_pairs!r}")
         if (self.model or {}).get("kind") == "local_lm":
             return prepare_local_lm(self, loss, model=self.model, beta=beta, smoothing=smoothing, n_pairs=n_pairs,
-                                    run_dir=run_dir)
+                                    run_dir=run_dir, grouped=lambda kind, loss: grouped(kind, loss, local=True))
         if self.chat_template is not None:
             raise ValueError(f"task.chat_template is read with model=local_lm only (the built-in transformer reads "
                              f"plain rows), got task.chat_template={self.chat_template!r}")
+        if self.stream and isinstance(loss, GroupObjective):
+            raise ValueError(f"task.stream=true trains margin losses and pair objectives on pair rows; loss "
+                             f"{loss.name!r} is a group objective: set task.stream=false (read in memory)")
         if self.stream:
             return prepare_streamed(self, loss, beta=beta, smoothing=smoothing, n_pairs=n_pairs, run_dir=run_dir)
         tokenizer = load_tokenizer(self.file.tokenizer or "byte")
         data = read_pair_file(self.file, tokenizer=tokenizer)
+        session_type, extra = PairSession, {}
+        if (choice := grouped(data.kind, loss)) is not None:  # rows beyond pairs, or a group objective
+            session_type, loss = choice
+            extra = {"feedback": data.kind}
         rejects = None
         if run_dir is not None:
             rejects = write_rejects(data.rejects, Path(run_dir) / REJECTS_FILE)
         if len(data) == 0:
-            raise ValueError(f"task.path {self.file.path!r}: no pair was accepted "
-                             f"({data.accounting['rows_rejected']} rejected; see {rejects or 'polopt data FILE'})")
+            raise nothing_accepted(self.file.path, data, rejects)
         model, meta = (None, None) if self.reference is None else load_reference(self.reference)
         cache = Path(run_dir) / FILE_NAME if run_dir is not None and self.cache_reference else None
-        session = PairSession(data=data, tokenizer=tokenizer, file_tokenizer=str(self.file.tokenizer),
-                              ids=SequenceIds.for_tokenizer(tokenizer), loss=loss,
-                              beta=beta, smoothing=smoothing, n_pairs=n_pairs, reference_path=self.reference,
-                              reference_model=model, reference_meta=meta, cache=cache, rejects_path=rejects)
+        session = session_type(data=data, tokenizer=tokenizer, file_tokenizer=str(self.file.tokenizer),
+                               ids=SequenceIds.for_tokenizer(tokenizer), loss=loss,
+                               beta=beta, smoothing=smoothing, n_pairs=n_pairs, reference_path=self.reference,
+                               reference_model=model, reference_meta=meta, cache=cache, rejects_path=rejects, **extra)
         session.encode()
         if model is not None:
             session.check_reference()

@@ -278,6 +278,7 @@ class GroupBatches:
         index, batch = self.batch()
         with torch.autocast(self.device.type, dtype=torch.bfloat16, enabled=self.settings.precision == "bf16"):
             logp = score_groups(self.policy.logprobs, batch.prompt, batch.members).to(batch.reference.dtype)  # (B, G)
+        logp = torch.where(batch.mask, logp, 0.0)  # absent members carry log-probability 0 (GroupScores)
         per_group = group_losses(self.loss, logp, batch, beta=self.settings.beta)  # (B,)
         value = losses.weighted_mean(per_group, batch.weight)
 

@@ -264,11 +264,13 @@ def test_policy_errors(tmp_path, kwargs, message):
 
 
 @pytest.mark.parametrize(("mapping", "error", "message"), [
-    ({"answer": "x"}, ValueError, r"columns: unknown key 'answer'; the keys are prompt, winner, loser, weight"),
+    ({"answer": "x"}, ValueError, r"columns: unknown key 'answer'; the keys are prompt, winner, loser, "
+                                r"response, label, responses, ranking, scores, weight"),
     ({"prompt": ""}, ValueError, r"columns.prompt must be a column name \(a non-empty string\), got ''"),
     ({"winner": "prompt"}, ValueError, r"prompt, winner and loser must be three different columns"),
     ("prompt:q", ValueError, r"columns must look like prompt=NAME,winner=NAME"),
-    (["prompt"], TypeError, r"columns must be a mapping of prompt, winner, loser, weight to column names, got list"),
+    (["prompt"], TypeError, r"columns must be a mapping of prompt, winner, loser, response, label, responses, ranking, "
+                      r"scores, weight to column names, got list"),
 ])
 def test_column_mapping_errors(mapping, error, message):
     with pytest.raises(error, match=message):
