@@ -36,7 +36,14 @@ from collections import Counter
 
 from polopt.data.read import RawTable
 from polopt.data.rows import KINDS, Reject
-from polopt.data.validate import PairData, accounting, check_policies, text_problem, weight_problems
+from polopt.data.validate import (
+    PairData,
+    accounting,
+    check_policies,
+    fit_to_length,
+    text_problem,
+    weight_problems,
+)
 
 LABELS = {"1": 1.0, "0": 0.0, "true": 1.0, "false": 0.0}  # CSV text of a label, lower-cased
 
@@ -160,42 +167,6 @@ def parse_row(kind: str, raw: dict, present: set, text_values: bool, messages: b
     return {"prompt": raw["prompt"], "responses": members, "feedback": feedback}, []
 
 
-def fit_group(prompt, responses: list, tokenizer, max_length: int | None, truncation: str, *, one: bool):
-    """((prompt, responses), {field: tokens removed}, length) within ``max_length`` by the policy, or a
-    Reject (its location is filled in by the caller). ``one``: an unpaired row (field ``response``)."""
-    if not all(isinstance(t, str) for t in (prompt, *responses)):
-        return (prompt, responses), {}, None  # a message row: measured in the model's tokens later
-    field = "response" if one else "responses"
-    n_p, n_r = tokenizer.count(prompt), [tokenizer.count(r) for r in responses]
-    length = n_p + max(n_r)
-    if max_length is None or length <= max_length:
-        return (prompt, responses), {}, length
-    unit = "bytes" if getattr(tokenizer, "name", "") == "byte" else "tokens"
-    too_long = f"{length} {unit} (prompt {n_p} + longest response {max(n_r)}) > max_length {max_length}"
-    if truncation == "reject":
-        return Reject(0, "", None, "too_long", too_long)
-    if truncation == "truncate_response":
-        budget = max_length - n_p
-        if budget < 1:
-            return Reject(0, "", "prompt", "too_long", f"{too_long}, and the prompt alone leaves no room to cut "
-                                                       "the responses to")
-        cut = [tokenizer.truncate(r, budget) for r in responses]
-        if len(set(cut)) < len(cut):
-            return Reject(0, "", field, "repeated_response", f"two responses are the same text after truncation "
-                                                             f"to {budget} {unit}")
-        m_r = [tokenizer.count(r) for r in cut]
-        removed = sum(n_r) - sum(m_r)
-        return (prompt, cut), {field: removed} if removed else {}, n_p + max(m_r)
-    budget = max_length - max(n_r)  # truncate_prompt
-    if budget < 1:
-        return Reject(0, "", field, "too_long", f"{too_long}, and the longest response alone leaves no room for "
-                                                "the prompt")
-    cut_p = tokenizer.truncate(prompt, budget, side="left")
-    if not cut_p.strip():
-        return Reject(0, "", "prompt", "too_long", f"{too_long}; the prompt cut to {budget} {unit} is empty")
-    return (cut_p, responses), {"prompt": n_p - tokenizer.count(cut_p)}, tokenizer.count(cut_p) + max(n_r)
-
-
 def validate_groups(table: RawTable, tokenizer, *, max_length: int | None = None, truncation: str = "reject",
                     duplicates: str = "reject", messages: bool = False) -> PairData:
     """Check every row of ``table`` (a file of unpaired, ranking or scored rows; see the module docstring);
@@ -223,7 +194,9 @@ def validate_groups(table: RawTable, tokenizer, *, max_length: int | None = None
             continue
         weight = float(raw["weight"]) if table.weighted else 1.0
         key = json.dumps([row["prompt"], row["responses"], row["feedback"], weight])
-        fitted = fit_group(row["prompt"], row["responses"], tokenizer, max_length, truncation, one=one)
+        field = "response" if one else "responses"
+        fitted = fit_to_length(row["prompt"], row["responses"], [field] * len(row["responses"]), tokenizer,
+                               max_length, truncation, same=(field, "repeated_response"))
         if isinstance(fitted, Reject):
             reject(fitted.field, fitted.reason, fitted.detail)
             continue

@@ -149,11 +149,12 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
             reject("loser", "identical", "winner and loser are the same text")
             continue
         key = tuple(json.dumps(v) if is_messages(v) else v for v in (prompt, winner, loser)) + (weight,)
-        fitted = _fit(prompt, winner, loser, tokenizer, max_length, truncation)
+        fitted = fit_to_length(prompt, [winner, loser], ["winner", "loser"], tokenizer, max_length, truncation,
+                               same=("loser", "identical"))
         if isinstance(fitted, Reject):
             reject(fitted.field, fitted.reason, fitted.detail)
             continue
-        (prompt, winner, loser), cut, length = fitted
+        (prompt, (winner, loser)), cut, length = fitted
         if key in seen:
             n_duplicates += 1
             if duplicates == "reject":
@@ -237,17 +238,20 @@ def _as_float(value) -> float:
         return math.inf
 
 
-def _fit(prompt: str, winner: str, loser: str, tokenizer, max_length: int | None, truncation: str):
-    """((prompt, winner, loser), {field: tokens removed}, length) within ``max_length`` by the
-    policy, or a Reject (its location is filled in by the caller)."""
-    if not all(isinstance(t, str) for t in (prompt, winner, loser)):
-        return (prompt, winner, loser), {}, None  # a message row: measured in the model's tokens later
-    n_p, n_w, n_l = (tokenizer.count(t) for t in (prompt, winner, loser))
-    length = n_p + max(n_w, n_l)
+def fit_to_length(prompt, responses: list, fields: list[str], tokenizer, max_length: int | None, truncation: str,
+                  *, same: tuple[str, str]):
+    """((prompt, responses), {field: tokens removed}, length) within ``max_length`` by the policy
+    ``truncation``, or a Reject (its location is filled in by the caller). The length is prompt + the
+    longest response; ``fields`` names each response's field in messages and counts (winner / loser, or
+    response / responses), ``same`` the (field, reason) of responses that truncation makes the same text."""
+    if not all(isinstance(t, str) for t in (prompt, *responses)):
+        return (prompt, responses), {}, None  # a message row: measured in the model's tokens later
+    n_p, n_r = tokenizer.count(prompt), [tokenizer.count(r) for r in responses]
+    length, longest = n_p + max(n_r), "longer" if len(responses) == 2 else "longest"
     if max_length is None or length <= max_length:
-        return (prompt, winner, loser), {}, length
+        return (prompt, responses), {}, length
     unit = "bytes" if getattr(tokenizer, "name", "") == "byte" else "tokens"
-    too_long = f"{length} {unit} (prompt {n_p} + longer response {max(n_w, n_l)}) > max_length {max_length}"
+    too_long = f"{length} {unit} (prompt {n_p} + {longest} response {max(n_r)}) > max_length {max_length}"
     if truncation == "reject":
         return Reject(0, "", None, "too_long", too_long)
     if truncation == "truncate_response":
@@ -255,21 +259,23 @@ def _fit(prompt: str, winner: str, loser: str, tokenizer, max_length: int | None
         if budget < 1:
             return Reject(0, "", "prompt", "too_long", f"{too_long}, and the prompt alone leaves no room to cut "
                                                        "the responses to")
-        cut_w, cut_l = tokenizer.truncate(winner, budget), tokenizer.truncate(loser, budget)
-        if cut_w == cut_l:
-            return Reject(0, "", "loser", "identical", f"winner and loser are the same text after truncation "
-                                                       f"to {budget} {unit}")
-        m_w, m_l = tokenizer.count(cut_w), tokenizer.count(cut_l)
-        cut = {f: k for f, k in (("winner", n_w - m_w), ("loser", n_l - m_l)) if k > 0}
-        return (prompt, cut_w, cut_l), cut, n_p + max(m_w, m_l)
-    budget = max_length - max(n_w, n_l)  # truncate_prompt
+        cut = [tokenizer.truncate(r, budget) for r in responses]
+        if len(set(cut)) < len(cut):
+            what = "winner and loser are" if fields == ["winner", "loser"] else "two responses are"
+            return Reject(0, "", same[0], same[1], f"{what} the same text after truncation to {budget} {unit}")
+        m_r = [tokenizer.count(r) for r in cut]
+        removed = Counter()
+        for f, before, after in zip(fields, n_r, m_r, strict=True):
+            removed[f] += before - after
+        return (prompt, cut), {f: k for f, k in removed.items() if k > 0}, n_p + max(m_r)
+    budget = max_length - max(n_r)  # truncate_prompt
     if budget < 1:
-        return Reject(0, "", "winner" if n_w >= n_l else "loser", "too_long",
-                      f"{too_long}, and the longer response alone leaves no room for the prompt")
+        return Reject(0, "", fields[n_r.index(max(n_r))], "too_long",
+                      f"{too_long}, and the {longest} response alone leaves no room for the prompt")
     cut_p = tokenizer.truncate(prompt, budget, side="left")
     if not cut_p.strip():
         return Reject(0, "", "prompt", "too_long", f"{too_long}; the prompt cut to {budget} {unit} is empty")
-    return (cut_p, winner, loser), {"prompt": n_p - tokenizer.count(cut_p)}, tokenizer.count(cut_p) + max(n_w, n_l)
+    return (cut_p, responses), {"prompt": n_p - tokenizer.count(cut_p)}, tokenizer.count(cut_p) + max(n_r)
 
 
 def accounting(table: RawTable, out: PairData, tokenizer, *, max_length, truncation, duplicates, n_duplicates,
