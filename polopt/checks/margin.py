@@ -44,9 +44,11 @@ import scipy.optimize
 import torch
 
 from polopt import losses
+from polopt.checks.group import run_group_checks, unvalidated_group
 from polopt.checks.pair import run_pair_checks
 from polopt.checks.population import check_population
 from polopt.checks.result import CheckResult, Report, guarded, what_it_tests
+from polopt.losses.group_objective import GroupObjective
 from polopt.losses.margin import MarginLoss
 from polopt.losses.registry import PairLoss
 from polopt.training.optim import OptimConfig
@@ -531,19 +533,31 @@ def check_scale(loss: MarginLoss, *, beta: float, tolerance: float = 1e-6) -> Ch
 def run_checks(loss: MarginLoss | PairLoss | str | Callable[..., Tensor], *, beta: float = 0.5, tasks: Sequence = (),
                steps: int = 2000, optim: OptimConfig | None = None, tol: float = 1e-3,
                progress: bool | None = False, params: dict | None = None, noisy_task=None,
-               on_check: Callable[[CheckResult, float], None] | None = None) -> Report:
+               on_check: Callable[[CheckResult, float], None] | None = None, group_tasks: tuple | None = None
+               ) -> Report:
     """Every check of the module docstring; the population checks on ``tasks``
     (objects with ``prepare``, or ``(name, task)`` pairs). When f is not elementwise
     the other checks are skipped: f of a single margin is then not defined.
     A pair objective gets the checks of :mod:`polopt.checks.pair` (``noisy_task``: the finite task
-    whose exact optimum's finiteness it reports).
+    whose exact optimum's finiteness it reports); a group objective those of :mod:`polopt.checks.group`
+    (``group_tasks``: the finite task with rewards and the same task with every reward equal).
     ``progress``: a tqdm bar over the checks (None: only on a terminal);
     ``on_check(result, seconds)``: called as each check ends (``polopt check``'s progress lines)."""
     import time
 
     from tqdm.auto import tqdm
 
-    loss = losses.resolve(loss, **(params or {}))
+    try:
+        loss = losses.resolve(loss, **(params or {}))
+    except ValueError:
+        broken = unvalidated_group(loss)
+        if broken is None:
+            raise
+        return run_group_checks(broken, beta=beta, on_check=on_check)  # per_group fails with the reason
+    if isinstance(loss, GroupObjective):
+        signal, silent = group_tasks or (None, None)
+        return run_group_checks(loss, beta=beta, signal_task=signal, silent_task=silent, steps=steps, optim=optim,
+                                tol=tol, on_check=on_check)
     if isinstance(loss, PairLoss) and loss.margin is None:
         return run_pair_checks(loss, beta=beta, tasks=tasks, noisy_task=noisy_task, steps=steps, optim=optim,
                                tol=tol)

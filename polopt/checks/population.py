@@ -1,7 +1,8 @@
 """The population check of ``polopt check``: train a loss in exact mode on a finite task and compare the
 result with the task's exact optimum (direction of the margins, distance, or the limit support where no
 finite optimum exists). Used for margin losses (:mod:`polopt.checks.margin`) and pair objectives
-(:mod:`polopt.checks.pair`) alike.
+(:mod:`polopt.checks.pair`) alike; :func:`train_groups` trains a group session for :mod:`polopt.checks.group`
+(the one module of the checks that runs the training loop).
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ from polopt.losses.margin import MarginLoss
 from polopt.losses.reduce import margins
 from polopt.pairs import score_pairs
 from polopt.training.contracts import session_tol
-from polopt.training.loop import TrainSettings, train
+from polopt.training.loop import GroupBatches, TrainSettings, optimise, train
 from polopt.training.optim import OptimConfig
 
 Tensor = torch.Tensor
@@ -142,3 +143,13 @@ def check_population(loss: MarginLoss, task, *, beta: float, steps: int = 2000, 
     if warnings:
         return CheckResult(check, "warn", "; ".join(warnings + notes), facts)
     return CheckResult(check, "pass", "; ".join(notes), facts)
+
+
+def train_groups(session, *, steps: int, optim: OptimConfig | None = None):
+    """Train a group session's tabular policy from the reference in exact mode with the task's early stop,
+    as ``polopt train`` does: (policy, result, summary)."""
+    policy = session.build_policy()
+    settings = TrainSettings(beta=session.beta, steps=steps, optim=optim or OptimConfig(),
+                             log_every=max(steps // 20, 1), progress=False, tol=session_tol(session))
+    result = optimise(policy, GroupBatches(policy, session.groups, session.loss, settings), settings)
+    return policy, result, session.summarise(policy, result)

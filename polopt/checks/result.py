@@ -23,10 +23,24 @@ CHECK_TESTS = {
     "scale": "whether f is a built-in rescaled (a wrong scale)",
 }
 
+# the per-feedback-kind rows of a group objective's report (polopt.checks.group), CHECK:KIND
+GROUP_TESTS = {
+    "reference_pull": "with no signal in the {} feedback, the reference is a minimum",
+    "signal": "it rewards the better responses of {} feedback",
+    "noisy_optimum": "a finite optimum (or stationary point) on noisy {} feedback",
+    "descent": "gradient descent from the reference reaches the global target ({})",
+}
+
+
 def what_it_tests(name: str) -> str:
     """The phrase a report row opens with: what check ``name`` tests."""
-    if name.startswith("population:"):
-        return f"training reaches the exact optimum of task {name.partition(':')[2]}"
+    check, _, kind = name.partition(":")
+    if check == "population":
+        return f"training reaches the exact optimum of task {kind}"
+    if kind and check in GROUP_TESTS:
+        return GROUP_TESTS[check].format(kind)
+    if name == "per_group":
+        return "one loss per group, shape (B,)"
     return CHECK_TESTS.get(name, name)
 
 @dataclass

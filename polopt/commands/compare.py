@@ -13,6 +13,10 @@ preference game (tau = beta / 2), whether the run reached its optimum, and what
 the optimum does: the winners' mean log-ratio (likelihood displacement) and the
 mean response length against the reference's (length exploitation); steps and
 seconds. Pair objectives compare as margin losses do: ``loss=divergence_forward_kl,length_normalised_free``.
+Group objectives and feedback kinds too (``task.feedback=ranking loss=ranking_likelihood,flip_corrected_logistic``),
+each run against its own minimiser or stationary point (``optimum_kind``); ``method=group`` runs add the TV from
+the update's stationary point to ``pi_ref e^{r / beta}`` (``tv_optimum_to_kl_regularised_optimum``). A group
+session measures no win rate and no equilibrium: those cells stay empty.
 
 A pair file (``task=pairs``, with the built-in transformer or ``model=local_lm``) has no exact optimum,
 no population to measure a win rate on and no sample of the policy to estimate a KL from: when no run
@@ -43,11 +47,13 @@ from polopt.methods import overoptimisation
 
 # summary.json's own key names, so that the table, the CSV and the run folders say the same thing
 COLUMNS = ("run", "method", "loss_name", "beta", "kl_to_reference", "win_rate_over_reference", "expected_reward",
-           "tv_to_optimum", "tv_to_equilibrium", "reached_optimum", "optimum_logratio_winner", "optimum_mean_length",
+           "optimum_kind", "tv_to_optimum", "tv_optimum_to_kl_regularised_optimum", "tv_to_equilibrium",
+           "reached_optimum", "optimum_logratio_winner", "optimum_mean_length",
            "reference_mean_length", "steps", "seconds", "learned_reward", "true_reward", "reward_model")
 # the table's columns as printed, with the number format of each
 SHOWN = (("beta", "g"), ("kl_to_reference", ".4f"), ("win_rate_over_reference", ".4f"), ("expected_reward", ".4f"),
-         ("tv_to_optimum", ".2e"), ("tv_to_equilibrium", ".2e"), ("reached_optimum", ""),
+         ("optimum_kind", ""), ("tv_to_optimum", ".2e"), ("tv_optimum_to_kl_regularised_optimum", ".3g"),
+         ("tv_to_equilibrium", ".2e"), ("reached_optimum", ""),
          ("optimum_logratio_winner", ".4f"), ("optimum_mean_length", ".3f"), ("reference_mean_length", ".3f"),
          ("steps", "d"), ("seconds", ".2f"))
 # a pair file's runs (no exact target, no population): their summaries' own statistics over the accepted pairs
@@ -55,8 +61,10 @@ PAIR_COLUMNS = ("run", "method", "loss_name", "beta", "loss", "margin_mean", "pa
                 "logratio_loser", "steps", "seconds")
 PAIR_SHOWN = (("beta", "g"), ("loss", ".4f"), ("margin_mean", ".4f"), ("pair_accuracy", ".4f"),
               ("logratio_winner", ".4f"), ("logratio_loser", ".4f"), ("steps", "d"), ("seconds", ".2f"))
-LEGEND = ("kl_to_reference: KL(pi || pi_ref); win_rate_over_reference: P(pi > pi_ref); tv_to_optimum: TV to "
-          "the run's own exact target; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
+LEGEND = ("kl_to_reference: KL(pi || pi_ref); win_rate_over_reference: P(pi > pi_ref); optimum_kind: the run's "
+          "exact target, a minimiser or a stationary point (a stop-gradient objective, method=group); tv_to_optimum: "
+          "TV to the run's own exact target; tv_optimum_to_kl_regularised_optimum: method=group, TV from the update's "
+          "stationary point to pi_ref e^{r / beta}; tv_to_equilibrium: TV to the Nash equilibrium at tau = beta / 2; "
           "optimum_logratio_winner: the optimum's mean log-ratio of preferred responses (below 0: they "
           "lose probability, likelihood displacement); optimum_mean_length, reference_mean_length: mean "
           "response length in tokens under the optimum and under the reference; reached_optimum: tv_to_optimum "
@@ -129,8 +137,14 @@ def merge_notes(overrides: list[str]) -> list[str]:
 
 def label(summary: dict) -> str:
     method = summary.get("method", "offline")
+    if method == "offline" and summary.get("feedback", "pairs") != "pairs":  # a group session
+        return f"offline {summary['loss_name']} ({summary['feedback']}, G={summary['group_size']})"
     if method == "offline":
         return f"offline {summary['loss_name']}"
+    if method == "group":
+        keys = summary["method_config"]
+        advantage, kl = keys.get("advantage", "standardised"), keys.get("kl", "estimator")
+        return f"group G={keys.get('group_size', 4)} {advantage} {kl}"
     if method == "selfplay":
         return f"selfplay {summary['method_config'].get('loss', 'squared')}"
     if method == "best_of_n":
@@ -204,7 +218,7 @@ def plot(rows: list[dict], path: Path, task: str) -> Path:
     import matplotlib.pyplot as plt
 
     fig, (left, right, third) = plt.subplots(1, 3, figsize=(18, 4.5))
-    for r in rows:
+    for r in (r for r in rows if r["win_rate_over_reference"] is not None):  # group sessions measure no win rate
         left.scatter(r["kl_to_reference"], r["win_rate_over_reference"], s=40)
         left.annotate(f"{r['run']} (beta={r['beta']:g})", (r["kl_to_reference"], r["win_rate_over_reference"]),
                       textcoords="offset points", xytext=(5, 4), fontsize=8)
@@ -288,13 +302,6 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     from polopt.commands.train import CONFIG_DIR, run
 
     runs = plan(overrides)
-    from polopt import losses
-
-    grouped = sorted({name for combo in runs if (name := _value(combo, "loss")) in losses.names("group")})
-    if grouped or any(_value(combo, "task.feedback") not in (None, "pairs") for combo in runs):
-        what = ", ".join(grouped) or "task.feedback"
-        raise ValueError(f"polopt compare compares margin and pair losses on pairs; {what} trains on groups: run "
-                         "polopt train task.feedback=KIND for each (docs/guides/feedback-beyond-pairs.md)")
     out.mkdir(parents=True, exist_ok=True)
     summaries, task = [], ""
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
