@@ -78,6 +78,9 @@ SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not 
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
 
+OFFLINE_ONLY = ("loss", "task.feedback", "task.group_size")  # what only method=offline reads
+
+
 def expand(overrides: list[str]) -> list[list[str]]:
     """The Cartesian product of the sweep overrides, by Hydra's override grammar.
 
@@ -103,8 +106,9 @@ def _value(combo: list[str], key: str) -> str | None:
 
 
 def plan(overrides: list[str]) -> list[list[str]]:
-    """The runs of a comparison: the expanded combinations, without the ``loss`` override for
-    methods that do not use it, duplicates removed (order kept)."""
+    """The runs of a comparison: the expanded combinations, without the ``loss``, ``task.feedback`` and
+    ``task.group_size`` overrides for methods that do not use them (the methods draw their own samples),
+    duplicates removed (order kept)."""
     from polopt.methods.dispatch import METHODS
 
     runs, seen = [], set()
@@ -113,12 +117,31 @@ def plan(overrides: list[str]) -> list[list[str]]:
         if method not in METHODS:
             raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
         if method != "offline":
-            combo = [item for item in combo if item.partition("=")[0] != "loss"]
+            combo = [item for item in combo if item.partition("=")[0] not in OFFLINE_ONLY]
         key = tuple(combo)
         if key not in seen:
             seen.add(key)
             runs.append(combo)
     return runs
+
+
+def readable(runs: list[list[str]]) -> tuple[list[list[str]], list[str]]:
+    """The runs whose registered group objective reads their ``task.feedback`` (a list of objectives over a
+    list of feedback kinds pairs each objective with the kinds it reads), and a note on the others. Every run
+    skipped: a ValueError naming the first pairing."""
+    from polopt import losses
+
+    kept, notes = [], []
+    for combo in runs:
+        name, feedback = _value(combo, "loss"), _value(combo, "task.feedback") or "pairs"
+        if name in losses.names("group") and not losses.resolve(name).reads_feedback(feedback):
+            notes.append(f"skipped loss={name} task.feedback={feedback}: the objective cannot read that feedback")
+            continue
+        kept.append(combo)
+    if runs and not kept:
+        raise ValueError(f"no combination of the comparison can run: {notes[0].removeprefix('skipped ')}; "
+                         "polopt losses lists the feedback each objective reads")
+    return kept, notes
 
 
 def merge_notes(overrides: list[str]) -> list[str]:
@@ -132,6 +155,11 @@ def merge_notes(overrides: list[str]) -> list[str]:
             uses = "its own method.loss" if method == "selfplay" else "no preference loss"
             notes.append(f"method={method} ignores the loss group (it trains with {uses}): its runs for "
                          f"loss={','.join(given)} were merged into one")
+        feedback = sorted({_value(c, "task.feedback") for c in combos if (_value(c, "method") or "offline") == method}
+                          - {None})
+        if method != "offline" and feedback:
+            notes.append(f"method={method} draws its own samples and ignores task.feedback and task.group_size: its "
+                         f"runs for task.feedback={','.join(feedback)} ran on the task itself")
     return notes
 
 
@@ -301,7 +329,7 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     from polopt.commands.config import rewrite_overrides
     from polopt.commands.train import CONFIG_DIR, run
 
-    runs = plan(overrides)
+    runs, skipped = readable(plan(overrides))
     out.mkdir(parents=True, exist_ok=True)
     summaries, task = [], ""
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
@@ -319,7 +347,7 @@ def compare(overrides: list[str], out: Path, *, progress: bool = True) -> dict:
     for r in rows:  # runs that differ in something else than method and loss get their folder number
         if names.count(r["run"]) > 1:
             r["run"] = f"{r['run']} #{rows.index(r):02d}"
-    notes = merge_notes(overrides) + ([] if pairs_only else equilibrium_notes(rows, summaries))
+    notes = merge_notes(overrides) + skipped + ([] if pairs_only else equilibrium_notes(rows, summaries))
     table = render(rows, notes, task, **({"shown": PAIR_SHOWN, "legend": PAIR_LEGEND} if pairs_only else {}))
     result = {"task": task, "overrides": overrides, "runs": [" ".join(c) for c in runs], "rows": rows,
               "notes": notes}
