@@ -126,3 +126,52 @@ def _in_reward_target(env: FiniteEnvironment, beta: float, advantage: str, how: 
                      "stationary points; pi_ref e^(r / beta) is reported")
     return star, (how.replace("damped Newton on it", "pi_ref e^(r / beta), where every adjusted reward equals "
                               f"beta log Z (spread {spread:.1g}); damped Newton on it elsewhere")), notes
+
+
+# ----------------------------------------------------------------------------
+# Many responses, few distinct rewards: the update on reward classes
+# ----------------------------------------------------------------------------
+
+REWARD_DIGITS = 12  # rewards equal to this many decimals form one class (sums of the same terms in another order)
+
+
+def reward_classes(rewards: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(class of each response (K,), mean reward of each class (R,)) of one prompt's rewards (K,)."""
+    _, index = np.unique(np.round(rewards, REWARD_DIGITS), return_inverse=True)
+    return index, np.bincount(index, weights=rewards) / np.bincount(index)
+
+
+def lumped_classes(env: FiniteEnvironment, group_size: int) -> int:
+    """The most ordered G-tuples of reward classes a prompt of ``env`` has: what :func:`lumped_group_target` sums."""
+    return max(len(reward_classes(r)[1]) for r in env.rewards.numpy()) ** group_size
+
+
+def lumped_group_target(env: FiniteEnvironment, *, beta: float, group_size: int, advantage: str, kl: str,
+                        starts: int = STARTS, seed: int = 0) -> tuple[np.ndarray | None, str, list[str]]:
+    """:func:`group_update_target` on the responses lumped by equal reward, prompt by prompt, then spread
+    back in proportion to the reference: (the stationary policy (X, K) or None, how, notes).
+
+    Exact, derived here: the advantages depend on a group's rewards only, so the expected update of
+    response y is ``pi_y a(r_y)`` with ``a`` a function of the classes' masses Q_c = sum_{y in c} pi_y;
+    the KL terms' parts are ``beta (pi_y - pi_ref_y)`` (estimator), ``beta pi_y (h_y + 1)`` (exact) and
+    ``r_y - beta h_y`` inside the reward (in_reward). On policies with h constant within each class
+    (pi_y = Q_c pi_ref_y / Q_ref_c) every one of them is the lumped task's update spread over the class
+    in proportion to pi_ref, so a stationary point of the lumped task is one of the whole task; the
+    expected update from the reference stays on those policies."""
+    reference, rewards = env.reference.exp().numpy(), env.rewards.numpy()
+    policy, notes, hows = np.zeros_like(reference), [], []
+    for x in range(reference.shape[0]):
+        index, values = reward_classes(rewards[x])
+        mass = np.bincount(index, weights=reference[x])  # (R,) Q_ref
+        lumped = FiniteEnvironment(torch.as_tensor(np.log(mass))[None], torch.ones(1, dtype=torch.float64),
+                                   torch.as_tensor(values)[None])
+        target, how, found = group_update_target(lumped, beta=beta, group_size=group_size, advantage=advantage,
+                                                 kl=kl, starts=starts, seed=seed + x)
+        notes += [f"prompt {x}: {n}" for n in found]
+        hows.append(how)
+        if target is None:
+            return None, how + f" (prompt {x}, {len(values)} reward classes)", notes
+        policy[x] = target[0][index] * reference[x] / mass[index]
+    classes = [len(reward_classes(r)[1]) for r in rewards]
+    return policy, (f"{hows[0]}, on the responses lumped by equal reward ({', '.join(map(str, classes))} classes "
+                    f"per prompt), spread back in proportion to pi_ref"), notes

@@ -46,7 +46,7 @@ from toy_tasks.exact.margin import solve
 from toy_tasks.measures import per_prompt, total_variation
 from toy_tasks.methods.best_of_n import best_of_n_distribution, kl_formula
 from toy_tasks.methods.equilibrium import Equilibrium, duality_gap, nash_equilibrium, tau_of_beta
-from toy_tasks.methods.group_target import group_update_target
+from toy_tasks.methods.group_target import group_update_target, lumped_classes, lumped_group_target
 from toy_tasks.methods.preference_fit import learned_preference
 from toy_tasks.methods.reward_fit import learned_reward_fields, learned_rewards
 from toy_tasks.tables import finite_policy_table, method_footer
@@ -124,13 +124,16 @@ class MethodView:
             g = params.get("group_size", 4)
             check_group_method(g, params.get("advantage", "standardised"), params.get("kl", "estimator"),
                                params.get("estimator", "exact"), task.n_responses)
-            if task.n_responses**g > MAX_TUPLES:  # the exact expected update is out of reach: no target
-                how, notes = (f"none computed: the exact expected update sums over {task.n_responses}^{g} groups, "
-                              f"more than {MAX_TUPLES}"), []
+            keys = dict(beta=beta, group_size=g, advantage=params.get("advantage", "standardised"),
+                        kl=params.get("kl", "estimator"))
+            if task.n_responses**g > MAX_TUPLES and lumped_classes(env, g) <= MAX_TUPLES:  # few distinct rewards
+                target, how, notes = lumped_group_target(env, **keys)
+            elif task.n_responses**g > MAX_TUPLES:  # the exact expected update is out of reach: no target
+                how, notes = (f"none computed: the exact expected update sums over {task.n_responses}^{g} groups "
+                              f"({lumped_classes(env, g)} groups of reward classes), more than {MAX_TUPLES}; a "
+                              "smaller method.group_size has one"), []
             else:
-                target, how, notes = group_update_target(env, beta=beta, group_size=g,
-                                                         advantage=params.get("advantage", "standardised"),
-                                                         kl=params.get("kl", "estimator"))
+                target, how, notes = group_update_target(env, **keys)
             method["target_notes"] = notes
         elif name == "best_of_n":
             if rewards is None:
