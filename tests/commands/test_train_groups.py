@@ -106,5 +106,6 @@ def test_the_guides_thumbs_example_runs_as_written(tmp_path, monkeypatch):
 def test_compare_refuses_a_group_objective_that_cannot_read_the_feedback_in_one_line(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
     assert main(["compare", "loss=score_cross_entropy", "train.steps=2", "--quiet"]) == 2
-    assert _one_line(capsys).startswith("polopt compare: error: loss 'score_cross_entropy' cannot read "
-                                        "task.feedback=pairs (group.ranks); it reads the feedback of: scored")
+    assert _one_line(capsys).startswith("polopt compare: error: no combination of the comparison can run: "
+                                        "loss=score_cross_entropy task.feedback=pairs: the objective cannot read "
+                                        "that feedback; polopt losses lists the feedback each objective reads")
