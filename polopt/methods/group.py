@@ -41,6 +41,7 @@ ADVANTAGES = ("standardised", "centred", "leave_one_out")
 KL_TERMS = ("estimator", "exact", "in_reward")
 ESTIMATORS = ("exact", "sampled")
 MAX_TUPLES = 100_000  # ordered G-tuples of the exact expectation
+TIE_TOLERANCE = 1e-12  # a group whose rewards' std is below this (relative to their size) has equal rewards
 
 
 def check_group_method(group_size, advantage: str, kl: str, estimator: str, n_responses: int) -> None:
@@ -69,9 +70,11 @@ def advantages(rewards: Tensor, kind: str) -> Tensor:
     if kind == "leave_one_out":
         return rewards - (rewards.sum(-1, keepdim=True) - rewards) / (g - 1)
     std = rewards.std(-1, keepdim=True)  # ddof 1
-    # equal rewards compared exactly: their mean can differ from them by rounding, and (r - mean) / std would
-    # then be rounding noise of order 1 instead of 0
-    equal = (rewards == rewards[..., :1]).all(-1, keepdim=True)
+    # equal rewards, and rewards equal up to rounding (a sum of the same terms in another order): their mean
+    # can differ from them by rounding, and (r - mean) / std would then be rounding noise of order 1, or, where
+    # the std rounds to 0, of order 1e290, instead of 0
+    scale = rewards.abs().amax(-1, keepdim=True).clamp(min=1.0)
+    equal = (rewards == rewards[..., :1]).all(-1, keepdim=True) | (std <= TIE_TOLERANCE * scale)
     return torch.where(equal, 0.0, (rewards - mean) / std.clamp(min=torch.finfo(rewards.dtype).tiny))
 
 

@@ -13,6 +13,7 @@ import pytest
 import torch
 
 from polopt.methods.environment import FiniteEnvironment
+from polopt.methods.group import advantages
 from toy_tasks.methods.group_target import group_update_target, lumped_classes, lumped_group_target, reward_classes
 from toy_tasks.methods.view import kl_optimum
 
@@ -43,3 +44,15 @@ def test_the_lumped_target_is_the_direct_solve(advantage, kl):
     if (advantage, kl) == ("leave_one_out", "in_reward"):
         reference = env.reference.exp().numpy()
         np.testing.assert_allclose(lumped, kl_optimum(reference, REWARDS, BETA), rtol=0, atol=1e-8)
+
+
+def test_rewards_equal_up_to_rounding_have_no_standardised_advantage():
+    # IEEE 754 binary64: 0.1 + 0.2 is 0.30000000000000004, one ulp from 0.3; the sequence task's rewards are such
+    # sums of the same symbol values in different orders
+    tied = torch.tensor([[0.3, 0.1 + 0.2]], dtype=torch.float64)
+    assert tied[0, 0] != tied[0, 1]
+    assert advantages(tied, "standardised").tolist() == [[0.0, 0.0]]
+    apart = torch.tensor([[0.3, 0.1 + 0.2, 1.0, -1.0]], dtype=torch.float64)  # a real spread: numpy's formula
+    r = apart.numpy()[0]
+    np.testing.assert_allclose(advantages(apart, "standardised").numpy()[0], (r - r.mean()) / r.std(ddof=1),
+                               rtol=0, atol=1e-15)
