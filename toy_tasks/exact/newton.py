@@ -51,10 +51,12 @@ def newton_step(hessian: np.ndarray, gradient: np.ndarray, damping: float = 0.0)
     """``-(H + lam s I)^{-1} g`` with the smallest ``lam >= damping`` in 0, 1e-10, 1e-9, ... (s the
     largest |H_ii|) that makes the matrix positive definite; the steepest-descent step if none does."""
     h, g = torch.as_tensor(hessian, dtype=torch.float64), torch.as_tensor(gradient, dtype=torch.float64)
-    eye = torch.eye(len(g), dtype=torch.float64)
-    scale = max(float(h.diagonal().abs().max()) if len(g) else 0.0, 1e-300)
+    diagonal = h.diagonal().clone()  # (n,)
+    scale = max(float(diagonal.abs().max()) if len(g) else 0.0, 1e-300)
+    damped = h.clone()
     for lam in [damping] + [10.0**e for e in range(-10, 9) if 10.0**e > damping]:
-        factor, info = torch.linalg.cholesky_ex(h + lam * scale * eye)
+        damped.diagonal().copy_(diagonal + lam * scale)
+        factor, info = torch.linalg.cholesky_ex(damped)
         if int(info) != 0:
             continue
         step = -torch.cholesky_solve(g[:, None], factor)[:, 0]  # (n,)
