@@ -209,12 +209,14 @@ def _derivatives_finite(chart: Chart, z: np.ndarray) -> bool:
 
 
 def _solve_prompt(chart: Chart, z0: np.ndarray, kink_search: bool = True) -> dict:
-    """Minimise from z0; search a kink where Newton circles with a large gradient (``kink_search``),
+    """Minimise from z0; search a kink where Newton circles with a large gradient (``kink_search``, and the
+    objective not known to be smooth: :attr:`toy_tasks.exact.scores.ScoreForm.smooth`),
     returning a kinked answer as it is and polishing a smooth one by Newton; follow the boundary ray
     where there is one. Returns z, the value, the residual, and (when the infimum is on the boundary)
     the responses that keep mass in the limit. ``chart``: a :class:`toy_tasks.exact.prompt.Chart`, or a problem
     with the landed solver's interface (see :class:`_Landed`)."""
     chart = _as_chart(chart)
+    kink_search = kink_search and not getattr(getattr(chart, "prompt", None), "smooth", False)
     z = _minimise(chart, z0, stalled=KINK_STALL if kink_search else None)
     if kink_search and float(np.abs(chart.grad(z)).max()) > GRADIENT_TOLERANCE:
         kinked = _kinked(chart.prompt, z)

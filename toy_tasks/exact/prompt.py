@@ -97,6 +97,7 @@ class PromptLoss:
         pair = PairScores(self.ref_i, self.ref_j, self.ref_i, self.ref_j, self.len_i, self.len_j)
         dense = len(self.i) > 0 and scores.verified(objective, form, pair, beta)
         self.terms = scores.DenseTerms(form, self.w, self.log_ref, self.lengths) if dense else PairTerms(self)
+        self.smooth = dense and form.smooth  # known to have no kink (else a stalled Newton may search one)
 
     def pair_losses(self, a: Tensor, b: Tensor) -> Tensor:
         """ell of every weighted pair at winner log-probabilities a and loser log-probabilities b, (E,)."""

@@ -75,12 +75,15 @@ def logistic_from_sigmoid(x: Tensor, high: Tensor) -> Tensor:
 
 @dataclass(frozen=True)
 class ScoreForm:
-    """``ell(a, b) = link(winner_score(a) - loser_score(b)) + winner_term(a)`` (see the module docstring)."""
+    """``ell(a, b) = link(winner_score(a) - loser_score(b)) + winner_term(a)`` (see the module docstring).
+    ``smooth``: every piece is twice differentiable (no kink such as DPO-Positive's max(0, -h_w), so no kink
+    search is needed where Newton is slow); False where unknown (a margin loss's link)."""
 
     link: Link
     winner_score: Score
     loser_score: Score
     winner_term: Score | None = None
+    smooth: bool = True
 
     def pair_values(self, pair: PairScores) -> Tensor:
         """ell of every pair of ``pair``, (B,)."""
@@ -123,7 +126,7 @@ def _alpha(beta: float, alpha: float = 0.5) -> ScoreForm:
 
 def _chi(beta: float, clip: float | None = None) -> ScoreForm:
     score = _of_logratio(lambda h: beta * (_exp_tail(h) + h))
-    return ScoreForm(Link(clip=None if clip is None else float(clip)), score, score)
+    return ScoreForm(Link(clip=None if clip is None else float(clip)), score, score, smooth=clip is None)
 
 
 def _simpo(beta: float, gamma: float = 0.5) -> ScoreForm:
@@ -137,7 +140,7 @@ def _rdpo(beta: float, alpha: float = 0.05) -> ScoreForm:
 
 def _anchored(beta: float, penalty: float = 50.0) -> ScoreForm:
     winner = _of_logratio(lambda h: beta * (h - penalty * F.relu(-h)))
-    return ScoreForm(Link(), winner, _logratio(beta))
+    return ScoreForm(Link(), winner, _logratio(beta), smooth=False)
 
 
 def _orpo(beta: float, weight: float = 0.1) -> ScoreForm:
@@ -182,10 +185,10 @@ def form_of(objective, beta: float) -> ScoreForm | None:
     if own is not None:
         return own(beta)
     if isinstance(objective, MarginLoss):
-        return ScoreForm(Link(fn=objective), _logratio(beta), _logratio(beta))
+        return ScoreForm(Link(fn=objective), _logratio(beta), _logratio(beta), smooth=False)
     fn, params = getattr(objective, "fn", None), dict(getattr(objective, "params", {}) or {})
     if fn is pair_losses._margin_pair_loss:
-        return ScoreForm(Link(fn=params["loss"]), _logratio(beta), _logratio(beta))
+        return ScoreForm(Link(fn=params["loss"]), _logratio(beta), _logratio(beta), smooth=False)
     build = FORMS.get(getattr(fn, "__name__", ""))
     if build is None or getattr(fn, "__module__", "") not in ("polopt.losses.pair", "polopt.losses.registry"):
         return None
