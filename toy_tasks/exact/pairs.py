@@ -182,24 +182,30 @@ def _runs_to_boundary(chart: Chart, z: np.ndarray) -> np.ndarray | None:
 
     At a finite strict minimiser the Newton step is ~0 and L does not fall along it; where the
     infimum lies on the boundary the Newton step keeps a finite length (L decays like e^{-c t}
-    along the ray) and L falls strictly at every multiple of it tried. Multiples where L is no
-    longer a finite number in float64 (a probability that underflowed to 0) end the ray."""
+    along the ray) and L falls strictly at every multiple of it tried. Multiples where L or its
+    derivatives are no longer finite numbers in float64 (a probability that underflowed to 0) end the
+    ray (the derivatives are checked only where the drop could count: at a minimiser none are)."""
     _, grad, hess = chart.gauged_derivatives(z)
     step = newton_step(hess, grad)
     base = chart.value(z)
     values, points = [base], [z]
     for t in DESCENT_RAY:
         value = chart.value(z + t * step)
-        if not np.isfinite(value) or not _derivatives_finite(chart, z + t * step):
+        if not np.isfinite(value):
             break
         values.append(value)
         points.append(z + t * step)
     noise = 1e-14 * (1.0 + abs(base))  # float64 rounding of a sum of many terms
-    falling = len(values) >= 3 and all(b <= a + noise for a, b in zip(values, values[1:], strict=False))
-    drop = base - values[-1]
-    if falling and drop > 1e-12 * (1.0 + abs(base)) or falling and drop > 1e-6 * abs(base) > 0:
-        return points[-1]
-    return None
+    falling = 1 + next((n for n, (a, b) in enumerate(zip(values, values[1:], strict=False)) if b > a + noise),
+                       len(values) - 1)  # the longest prefix along which L falls
+    threshold = min(1e-12 * (1.0 + abs(base)), 1e-6 * abs(base) if base != 0 else np.inf)
+    if base - min(values[:falling]) <= threshold:
+        return None
+    scan = range(1, min(len(values), falling + 1))  # up to the first rise: a later end cannot shorten the ray more
+    kept = next((n for n in scan if not _derivatives_finite(chart, points[n])), len(values))
+    if kept > falling or kept < 3:  # the ray, ended where the derivatives are not finite, rises or is too short
+        return None
+    return points[kept - 1] if base - values[kept - 1] > threshold else None
 
 
 def _derivatives_finite(chart: Chart, z: np.ndarray) -> bool:

@@ -70,7 +70,7 @@ def logistic_from_sigmoid(x: Tensor, high: Tensor) -> Tensor:
     """``-log sigma(x)`` from ``high = sigma(x)``: one log where softplus costs several times more; ``-x``
     where sigma(x) underflowed (x below about -745, where -log sigma(x) = -x to float64's precision)."""
     out = -torch.log(high)
-    return torch.where(high > 0, out, -x) if bool((x < -700.0).any()) else out
+    return torch.where(high > 0, out, -x) if float(high.detach().min()) == 0.0 else out
 
 
 @dataclass(frozen=True)
@@ -244,6 +244,10 @@ class DenseTerms:
         out = self.w * values
         return out if self.mask is None else torch.where(self.mask, out, 0.0)
 
+    def _total(self, values: Tensor) -> Tensor:
+        """sum W * values, a scalar (a dot product: no (K, K) temporary where no mask is needed)."""
+        return torch.dot(self.w.view(-1), values.reshape(-1)) if self.mask is None else self._weighted(values).sum()
+
     def _gap(self, sw: Tensor, sl: Tensor) -> Tensor:
         gap = sw[:, None] - sl[None, :]  # (K, K): X
         return gap if self.mask is None else torch.where(self.mask, gap, 0.0)
@@ -251,7 +255,7 @@ class DenseTerms:
     def value(self, log_pi: Tensor) -> float:
         with torch.no_grad():
             (sw, _, _), (sl, _, _), (t, _, _) = self._scores(log_pi, 0)
-            return float(self._weighted(self.form.link(self._gap(sw, sl))).sum() + self.row_w @ t)
+            return float(self._total(self.form.link(self._gap(sw, sl))) + self.row_w @ t)
 
     def derivatives(self, log_pi: Tensor) -> tuple[float, Tensor, Tensor]:
         """L, G (K,) and H (K, K) in the log-probabilities."""
@@ -263,7 +267,7 @@ class DenseTerms:
         m = a2.mul_(sw1[:, None]).mul_(sl1[None, :])  # (K, K): -d2 ell / da db, per (winner, loser); a2 reused
         hess = (m + m.T).neg_()  # (K, K)
         hess.diagonal().add_(sw1**2 * r2 + sw2 * r1 + sl1**2 * c2 - sl2 * c1 + t2 * self.row_w)
-        return float(self._weighted(f0).sum() + self.row_w @ t), grad, hess
+        return float(self._total(f0) + self.row_w @ t), grad, hess
 
     def gradient(self, log_pi: Tensor, shift: float = 0.0) -> Tensor:
         """G (K,), with the argument each pair reads of response k shifted by ``shift`` in the terms that
