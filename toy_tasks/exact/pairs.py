@@ -12,10 +12,11 @@ This module minimises L in float64:
 - a margin loss f (a :class:`polopt.losses.margin.MarginLoss`) keeps the solver of :mod:`toy_tasks.exact.margin` (closed
   forms, linear programme, Newton in the log-ratios, Ford's existence test): it is the special case
   ``ell = f(beta ((w - ref_w) - (l - ref_l)))``, and :func:`exact_optimum` hands it over unchanged.
-- any other objective: pi = softmax(z) per prompt, a damped Newton solve in the logits z
-  (:mod:`toy_tasks.exact.newton`: Cholesky steps, Armijo line search), the gradient and Hessian
-  assembled in one pass from every pair's derivatives in its two log-probabilities (torch autograd
-  over the whole batch of pairs, float64) and the chain rule through log-softmax
+- any other objective: pi = softmax(z) per prompt, a Newton solve in the logits z
+  (:mod:`toy_tasks.exact.newton`: Cholesky steps capped in length, Armijo line search), the gradient and
+  Hessian assembled in one pass from every pair's derivatives in its two log-probabilities (in closed
+  (K, K) formulas from a built-in's per-response scores, :mod:`toy_tasks.exact.scores`; by torch autograd
+  over the whole batch of pairs for any other objective; float64) and the chain rule through log-softmax
   (:mod:`toy_tasks.exact.prompt`), from several seeded starts (the reference and random logits) to
   detect a non-unique minimiser or distinct local minima.
 - the certificate ``residual``: max |dL/dz| at the answer. With g = dL/dpi this is
@@ -52,7 +53,7 @@ from tqdm.auto import tqdm
 from polopt.losses.margin import MarginLoss
 from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
 from polopt.losses.reduce import per_pair_losses
-from toy_tasks.exact import kinks
+from toy_tasks.exact import kinks, scores
 from toy_tasks.exact.kinks import KINK_BAND, SLOPE_AGREEMENT  # noqa: F401  (part of this module's interface)
 from toy_tasks.exact.margin import Optimum, population_loss, solve
 from toy_tasks.exact.newton import newton_step
@@ -404,8 +405,9 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
                        notes + [f"{_name(objective)}: some responses' probabilities fall to 0 in the limit; "
                                 f"'limit_support' lists, per prompt, the responses that keep mass"])
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
+    how = "the objective's score form" if isinstance(problems[0].prompt.terms, scores.DenseTerms) else "torch autograd"
     method = (f"Newton in the softmax logits (Cholesky, Armijo line search; derivatives of all pairs at once, "
-              f"torch autograd float64), {starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
+              f"{how}, float64), {starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
     if residual > CERTIFIED:
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
                      "may not be differentiable there (a max(0, .) term; the kink search did not certify it either), "

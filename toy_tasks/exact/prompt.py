@@ -94,7 +94,8 @@ class PromptLoss:
         self.ref_i, self.ref_j = self.log_ref[self.i], self.log_ref[self.j]  # (E,) each
         self.len_i, self.len_j = self.lengths[self.i], self.lengths[self.j]  # (E,) each
         form = scores.form_of(objective, beta)
-        pair = PairScores(self.ref_i, self.ref_j, self.ref_i, self.ref_j, self.len_i, self.len_j)
+        probe = slice(None, None, max(1, len(self.i) // scores.PROBE_PAIRS))  # up to ~2 PROBE_PAIRS pairs, spread out
+        pair = PairScores(*(t[probe] for t in (self.ref_i, self.ref_j, self.ref_i, self.ref_j, self.len_i, self.len_j)))
         dense = len(self.i) > 0 and scores.verified(objective, form, pair, beta)
         self.terms = scores.DenseTerms(form, self.w, self.log_ref, self.lengths) if dense else PairTerms(self)
         self.smooth = dense and form.smooth  # known to have no kink (else a stalled Newton may search one)

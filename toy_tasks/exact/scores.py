@@ -42,6 +42,7 @@ Tensor = torch.Tensor
 F64 = torch.float64
 Score = Callable[[Tensor, Tensor, Tensor], Tensor]  # (log-prob, reference log-prob, length), each (K,) -> (K,)
 FORM_AGREEMENT = 1e-10  # the form's per-pair values and the objective's agree to this (relative) before it is used
+PROBE_PAIRS = 2048  # the check compares them on about this many of a prompt's pairs (every pair of a small task)
 
 
 @dataclass(frozen=True)
