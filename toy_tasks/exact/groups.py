@@ -26,6 +26,8 @@ point, is its population value). In the softmax chart pi_x = softmax(z_x):
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import scipy.special
 import torch
@@ -33,8 +35,10 @@ import torch
 from polopt.losses.group_objective import GroupObjective, GroupScores
 from toy_tasks.exact.margin import Optimum
 from toy_tasks.exact.pairs import CERTIFIED, GRADIENT_TOLERANCE, STARTS, _agree, _solve_prompt, _starts
+from toy_tasks.exact.prompt import softmax_chain_rule
 
 Tensor = torch.Tensor
+SEPARABLE_PROBE = 16  # groups whose losses are compared when one group's log-probabilities move
 NEWTON_STEPS = 200  # damped Newton steps of a stationary-point solve from one start
 NONCONVEX_STARTS = 16  # seeded starts in all once the first starts reach different values (a non-convex objective)
 VANISHED = 1e-9  # a stationary point giving a response less probability than this lies on the simplex's boundary
@@ -60,11 +64,55 @@ class _Population:
         self.lengths = t(lengths)[self.prompt, self.members]  # (N, G)
         self.log_ref = t(log_ref).reshape(-1)
 
+    def member_losses(self, logp: Tensor, rows: slice | None = None) -> Tensor:
+        """Each group's loss at its members' log-probabilities ``logp`` (N, G) (or those of the groups ``rows``)."""
+        rows = slice(None) if rows is None else rows
+        group = GroupScores(logp, self.ref[rows], self.lengths[rows], torch.ones_like(logp, dtype=torch.bool),
+                            weight=self.weight[rows], **{k: v[rows] for k, v in self.feedback.items()})
+        return self.objective(group, self.beta)  # (N,)
+
     def loss_at(self, log_pi: Tensor) -> Tensor:
         """L at log-probabilities (X, K), a scalar."""
-        group = GroupScores(log_pi[self.prompt, self.members], self.ref, self.lengths,
-                            torch.ones_like(self.ref, dtype=torch.bool), weight=self.weight, **self.feedback)
-        return (self.weight * self.objective(group, self.beta)).sum()
+        return (self.weight * self.member_losses(log_pi[self.prompt, self.members])).sum()
+
+    @functools.cached_property
+    def separable(self) -> bool:
+        """Whether each group's loss reads only its own members (no statistic of the batch, checked on the
+        first groups: moving one group's log-probabilities leaves the others' losses as they were), so that
+        its second derivatives come from G + 1 passes over the groups (:meth:`logpi_hessian`)."""
+        if self.objective.stop_gradient:
+            return False
+        rows = slice(0, min(len(self.weight), SEPARABLE_PROBE))
+        logp = self.ref[rows].clone()  # (n, G)
+        with torch.no_grad():
+            before = self.member_losses(logp, rows)
+            for b in range(min(2, len(before))):
+                moved = logp.clone()
+                moved[b] -= torch.linspace(0.3, 0.7, logp.shape[1], dtype=logp.dtype)  # members apart, not together
+                after = self.member_losses(moved, rows)
+                others = torch.arange(len(before)) != b
+                if not torch.equal(after[others], before[others]):
+                    return False
+        return True
+
+    def logpi_hessian(self, log_pi: Tensor) -> tuple[float, Tensor, Tensor]:
+        """L, its gradient (X K,) and Hessian (X K, X K) in the log-probabilities of a separable objective: the
+        per-group derivatives in its G members from one backward pass and G more (the gradient of a sum of
+        independent terms is each term's own), scattered onto the members' (prompt, response) indices."""
+        n_flat = log_pi.numel()
+        index = (self.prompt * self.shape[1] + self.members)  # (N, G): flat (prompt, response) of each member
+        logp = log_pi[self.prompt, self.members].detach().clone().requires_grad_(True)  # (N, G)
+        total = (self.weight * self.member_losses(logp)).sum()
+        (grad,) = torch.autograd.grad(total, logp, create_graph=True)
+        gradient = torch.zeros(n_flat, dtype=torch.float64).index_add_(0, index.reshape(-1), grad.detach().reshape(-1))
+        hessian = torch.zeros(n_flat * n_flat, dtype=torch.float64)
+        for m in range(logp.shape[1]):
+            if not grad.requires_grad:
+                break
+            (second,) = torch.autograd.grad(grad[:, m].sum(), logp, retain_graph=True, allow_unused=True)
+            if second is not None:  # (N, G): d2 L_b / d logp_bm d logp_bn
+                hessian.index_add_(0, (index[:, m:m + 1] * n_flat + index).reshape(-1), second.reshape(-1))
+        return float(total.detach()), gradient, hessian.view(n_flat, n_flat)
 
     def loss(self, z: Tensor) -> Tensor:
         return self.loss_at(torch.log_softmax(z.reshape(self.shape), dim=1))
@@ -89,10 +137,36 @@ class _Population:
     def hess(self, z: np.ndarray) -> np.ndarray:
         """The Jacobian of :meth:`grad` plus the gauge's (a block of ones per prompt); symmetric (the
         Hessian) unless the objective detaches a statistic."""
+        if self.separable:
+            return self.gauged_derivatives(z)[2]
         zt = torch.as_tensor(z, dtype=torch.float64)
         jac = torch.autograd.functional.jacobian(lambda v: torch.autograd.grad(self.loss(v), v, create_graph=True)[0],
                                                  zt)
         return jac.numpy() + np.kron(np.eye(self.shape[0]), np.ones((self.shape[1],) * 2))
+
+    def gauged_value(self, z: np.ndarray) -> float:
+        return self.fun(z)[0]
+
+    def gauged_derivatives(self, z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        """The gauged L, gradient and Hessian in z (what the pair solver's Newton reads): of a separable objective
+        from one pass over the groups (:meth:`logpi_hessian`, then the softmax chain rule per prompt, the prompts
+        sharing no group); else :meth:`fun` and :meth:`hess`."""
+        if not self.separable:
+            value, grad = self.fun(z)
+            return value, grad, self.hess(z)
+        log_pi = torch.log_softmax(torch.as_tensor(z, dtype=torch.float64).reshape(self.shape), dim=1)  # (X, K)
+        value, grad, hess = self.logpi_hessian(log_pi)
+        k, grads, blocks = self.shape[1], [], []
+        for x in range(self.shape[0]):
+            q, g = log_pi[x].exp(), grad[x * k:(x + 1) * k]
+            grads.append(g - q * g.sum())
+            blocks.append(softmax_chain_rule(q, g, hess[x * k:(x + 1) * k, x * k:(x + 1) * k].clone(), gauge=True))
+        gauge = z.reshape(self.shape).sum(1)
+        return (value + 0.5 * float((gauge**2).sum()), torch.cat(grads).numpy() + self._gauge(z),
+                torch.block_diag(*blocks).numpy())
+
+    def derivatives(self, z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        return self.value(z), self.grad(z), self.hess(z) - np.kron(np.eye(self.shape[0]), np.ones((self.shape[1],) * 2))
 
     def hessp(self, z: np.ndarray, p: np.ndarray) -> np.ndarray:
         return self.hess(z) @ p

@@ -41,13 +41,8 @@ def one_sided_partials(prompt: PromptLoss, log_pi: np.ndarray, step: float = PAR
     rises, ``down[k]`` as it falls (both as rates of change per unit of log pi_k, so that they agree
     where L is smooth). A pair's term reads log pi_k as its winner or its loser argument, so the
     partial in log pi_k is the sum of the per-pair derivatives with that argument shifted by t."""
-    lp = torch.as_tensor(log_pi, dtype=F64)
-    a, b, i, j, w = lp[prompt.i], lp[prompt.j], prompt.i, prompt.j, prompt.weight
-
     def partial(t: float) -> np.ndarray:
-        ga, _ = prompt.pair_gradients(a + t, b)
-        _, gb = prompt.pair_gradients(a, b + t)
-        return torch.zeros(prompt.k, dtype=F64).index_add_(0, i, w * ga).index_add_(0, j, w * gb).numpy()
+        return prompt.logpi_gradient(log_pi, t).numpy()
 
     return richardson(partial, step), richardson(partial, -step)
 

@@ -156,11 +156,9 @@ def _strong_components(w: np.ndarray) -> np.ndarray:
 
 def _limit_support(w: np.ndarray, strong: np.ndarray, active: np.ndarray) -> list[int]:
     """Responses in strongly connected components that nothing outside them beats."""
-    beaten_from_outside = set()
-    for i, j in zip(*np.nonzero(w > 0), strict=True):
-        if strong[i] != strong[j]:
-            beaten_from_outside.add(strong[j])
-    return [i for i in range(len(strong)) if active[i] and strong[i] not in beaten_from_outside]
+    i, j = np.nonzero(w > 0)  # the weighted pairs, (E,) each
+    beaten_from_outside = np.unique(strong[j][strong[i] != strong[j]])
+    return [int(k) for k in np.flatnonzero(active & ~np.isin(strong, beaten_from_outside))]
 
 
 # ------------------------------------------------------------------ solvers

@@ -12,10 +12,11 @@ This module minimises L in float64:
 - a margin loss f (a :class:`polopt.losses.margin.MarginLoss`) keeps the solver of :mod:`toy_tasks.exact.margin` (closed
   forms, linear programme, Newton in the log-ratios, Ford's existence test): it is the special case
   ``ell = f(beta ((w - ref_w) - (l - ref_l)))``, and :func:`exact_optimum` hands it over unchanged.
-- any other objective: pi = softmax(z) per prompt, a damped Newton solve in the logits z
-  (:mod:`toy_tasks.exact.newton`: Cholesky steps, Armijo line search), the gradient and Hessian
-  assembled in one pass from every pair's derivatives in its two log-probabilities (torch autograd
-  over the whole batch of pairs, float64) and the chain rule through log-softmax
+- any other objective: pi = softmax(z) per prompt, a Newton solve in the logits z
+  (:mod:`toy_tasks.exact.newton`: Cholesky steps capped in length, Armijo line search), the gradient and
+  Hessian assembled in one pass from every pair's derivatives in its two log-probabilities (in closed
+  (K, K) formulas from a built-in's per-response scores, :mod:`toy_tasks.exact.scores`; by torch autograd
+  over the whole batch of pairs for any other objective; float64) and the chain rule through log-softmax
   (:mod:`toy_tasks.exact.prompt`), from several seeded starts (the reference and random logits) to
   detect a non-unique minimiser or distinct local minima.
 - the certificate ``residual``: max |dL/dz| at the answer. With g = dL/dpi this is
@@ -52,7 +53,7 @@ from tqdm.auto import tqdm
 from polopt.losses.margin import MarginLoss
 from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
 from polopt.losses.reduce import per_pair_losses
-from toy_tasks.exact import kinks
+from toy_tasks.exact import kinks, scores
 from toy_tasks.exact.kinks import KINK_BAND, SLOPE_AGREEMENT  # noqa: F401  (part of this module's interface)
 from toy_tasks.exact.margin import Optimum, population_loss, solve
 from toy_tasks.exact.newton import newton_step
@@ -182,24 +183,30 @@ def _runs_to_boundary(chart: Chart, z: np.ndarray) -> np.ndarray | None:
 
     At a finite strict minimiser the Newton step is ~0 and L does not fall along it; where the
     infimum lies on the boundary the Newton step keeps a finite length (L decays like e^{-c t}
-    along the ray) and L falls strictly at every multiple of it tried. Multiples where L is no
-    longer a finite number in float64 (a probability that underflowed to 0) end the ray."""
+    along the ray) and L falls strictly at every multiple of it tried. Multiples where L or its
+    derivatives are no longer finite numbers in float64 (a probability that underflowed to 0) end the
+    ray (the derivatives are checked only where the drop could count: at a minimiser none are)."""
     _, grad, hess = chart.gauged_derivatives(z)
     step = newton_step(hess, grad)
     base = chart.value(z)
     values, points = [base], [z]
     for t in DESCENT_RAY:
         value = chart.value(z + t * step)
-        if not np.isfinite(value) or not _derivatives_finite(chart, z + t * step):
+        if not np.isfinite(value):
             break
         values.append(value)
         points.append(z + t * step)
     noise = 1e-14 * (1.0 + abs(base))  # float64 rounding of a sum of many terms
-    falling = len(values) >= 3 and all(b <= a + noise for a, b in zip(values, values[1:], strict=False))
-    drop = base - values[-1]
-    if falling and drop > 1e-12 * (1.0 + abs(base)) or falling and drop > 1e-6 * abs(base) > 0:
-        return points[-1]
-    return None
+    falling = 1 + next((n for n, (a, b) in enumerate(zip(values, values[1:], strict=False)) if b > a + noise),
+                       len(values) - 1)  # the longest prefix along which L falls
+    threshold = min(1e-12 * (1.0 + abs(base)), 1e-6 * abs(base) if base != 0 else np.inf)
+    if base - min(values[:falling]) <= threshold:
+        return None
+    scan = range(1, min(len(values), falling + 1))  # up to the first rise: a later end cannot shorten the ray more
+    kept = next((n for n in scan if not _derivatives_finite(chart, points[n])), len(values))
+    if kept > falling or kept < 3:  # the ray, ended where the derivatives are not finite, rises or is too short
+        return None
+    return points[kept - 1] if base - values[kept - 1] > threshold else None
 
 
 def _derivatives_finite(chart: Chart, z: np.ndarray) -> bool:
@@ -209,12 +216,14 @@ def _derivatives_finite(chart: Chart, z: np.ndarray) -> bool:
 
 
 def _solve_prompt(chart: Chart, z0: np.ndarray, kink_search: bool = True) -> dict:
-    """Minimise from z0; search a kink where Newton circles with a large gradient (``kink_search``),
+    """Minimise from z0; search a kink where Newton circles with a large gradient (``kink_search``, and the
+    objective not known to be smooth: :attr:`toy_tasks.exact.scores.ScoreForm.smooth`),
     returning a kinked answer as it is and polishing a smooth one by Newton; follow the boundary ray
     where there is one. Returns z, the value, the residual, and (when the infimum is on the boundary)
     the responses that keep mass in the limit. ``chart``: a :class:`toy_tasks.exact.prompt.Chart`, or a problem
     with the landed solver's interface (see :class:`_Landed`)."""
     chart = _as_chart(chart)
+    kink_search = kink_search and not getattr(getattr(chart, "prompt", None), "smooth", False)
     z = _minimise(chart, z0, stalled=KINK_STALL if kink_search else None)
     if kink_search and float(np.abs(chart.grad(z)).max()) > GRADIENT_TOLERANCE:
         kinked = _kinked(chart.prompt, z)
@@ -396,8 +405,9 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
                        notes + [f"{_name(objective)}: some responses' probabilities fall to 0 in the limit; "
                                 f"'limit_support' lists, per prompt, the responses that keep mass"])
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
+    how = "the objective's score form" if isinstance(problems[0].prompt.terms, scores.DenseTerms) else "torch autograd"
     method = (f"Newton in the softmax logits (Cholesky, Armijo line search; derivatives of all pairs at once, "
-              f"torch autograd float64), {starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
+              f"{how}, float64), {starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
     if residual > CERTIFIED:
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
                      "may not be differentiable there (a max(0, .) term; the kink search did not certify it either), "

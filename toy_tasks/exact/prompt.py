@@ -28,6 +28,7 @@ import torch
 
 from polopt.losses.pair import PairScores
 from polopt.losses.reduce import per_pair_losses
+from toy_tasks.exact import scores
 from toy_tasks.exact.newton import NewtonResult, minimise
 
 Tensor = torch.Tensor
@@ -38,8 +39,50 @@ def objective_name(objective) -> str:
     return getattr(objective, "name", None) or getattr(objective, "__name__", type(objective).__name__)
 
 
+class PairTerms:
+    """L of one prompt and its derivatives in the log-probabilities by torch autograd over its E weighted pairs
+    (any pair objective): ``d_a, d_b, d_aa, d_ab, d_bb`` of every pair from three backward passes, scattered
+    onto (K, K) (the module docstring)."""
+
+    def __init__(self, prompt: PromptLoss):
+        self.prompt = prompt
+
+    def value(self, log_pi: Tensor) -> float:
+        with torch.no_grad():
+            return float(self.prompt.loss_at(log_pi))
+
+    def derivatives(self, log_pi: Tensor) -> tuple[float, Tensor, Tensor]:
+        p = self.prompt
+        a = log_pi[p.i].detach().clone().requires_grad_(True)  # (E,)
+        b = log_pi[p.j].detach().clone().requires_grad_(True)  # (E,)
+        values = p.pair_losses(a, b)  # (E,)
+        ga, gb = _grads(values.sum(), (a, b), create_graph=True)
+        haa, hab = _grads(ga.sum(), (a, b), retain_graph=True) if ga.requires_grad else (_zero(a), _zero(a))
+        (hbb,) = _grads(gb.sum(), (b,)) if gb.requires_grad else (_zero(b),)
+        w, i, j, k = p.weight, p.i, p.j, p.k
+        grad = torch.zeros(k, dtype=F64).index_add_(0, i, w * ga.detach()).index_add_(0, j, w * gb.detach())
+        cross = w * hab.detach()
+        hess = (torch.zeros(k * k, dtype=F64).index_add_(0, i * (k + 1), w * haa.detach())
+                .index_add_(0, j * (k + 1), w * hbb.detach()).index_add_(0, i * k + j, cross)
+                .index_add_(0, j * k + i, cross).view(k, k))  # (K, K)
+        return float((w * values.detach()).sum()), grad, hess
+
+    def gradient(self, log_pi: Tensor, shift: float = 0.0) -> Tensor:
+        """G (K,), each pair's derivative in its winner (loser) argument taken with that argument shifted by
+        ``shift`` (the one-sided partials of :mod:`toy_tasks.exact.kinks`)."""
+        p = self.prompt
+        a, b = log_pi[p.i], log_pi[p.j]  # (E,) each
+        if shift:
+            (ga, _), (_, gb) = p.pair_gradients(a + shift, b), p.pair_gradients(a, b + shift)
+        else:
+            ga, gb = p.pair_gradients(a, b)
+        return torch.zeros(p.k, dtype=F64).index_add_(0, p.i, p.weight * ga).index_add_(0, p.j, p.weight * gb)
+
+
 class PromptLoss:
-    """L of one prompt as a function of its log-probabilities, with per-pair derivatives in one pass."""
+    """L of one prompt as a function of its log-probabilities, with its derivatives: through the objective's
+    :class:`toy_tasks.exact.scores.ScoreForm` as (K, K) arrays where it has one (every built-in), else by
+    autograd over its pairs (:class:`PairTerms`)."""
 
     def __init__(self, objective: Callable, w: np.ndarray, log_ref: np.ndarray, lengths: np.ndarray, beta: float):
         self.objective, self.beta = objective, beta
@@ -50,6 +93,12 @@ class PromptLoss:
         self.weight = self.w[self.i, self.j]  # (E,)
         self.ref_i, self.ref_j = self.log_ref[self.i], self.log_ref[self.j]  # (E,) each
         self.len_i, self.len_j = self.lengths[self.i], self.lengths[self.j]  # (E,) each
+        form = scores.form_of(objective, beta)
+        probe = slice(None, None, max(1, len(self.i) // scores.PROBE_PAIRS))  # up to ~2 PROBE_PAIRS pairs, spread out
+        pair = PairScores(*(t[probe] for t in (self.ref_i, self.ref_j, self.ref_i, self.ref_j, self.len_i, self.len_j)))
+        dense = len(self.i) > 0 and scores.verified(objective, form, pair, beta)
+        self.terms = scores.DenseTerms(form, self.w, self.log_ref, self.lengths) if dense else PairTerms(self)
+        self.smooth = dense and form.smooth  # known to have no kink (else a stalled Newton may search one)
 
     def pair_losses(self, a: Tensor, b: Tensor) -> Tensor:
         """ell of every weighted pair at winner log-probabilities a and loser log-probabilities b, (E,)."""
@@ -61,8 +110,7 @@ class PromptLoss:
         return (self.weight * self.pair_losses(log_pi[self.i], log_pi[self.j])).sum()
 
     def value_at(self, log_pi) -> float:
-        with torch.no_grad():
-            return float(self.loss_at(torch.as_tensor(log_pi, dtype=F64)))
+        return self.terms.value(torch.as_tensor(log_pi, dtype=F64))
 
     def pair_gradients(self, a: Tensor, b: Tensor) -> tuple[Tensor, Tensor]:
         """``(d_a ell, d_b ell)`` of every pair at (a, b), each (E,)."""
@@ -70,21 +118,13 @@ class PromptLoss:
         ga, gb = torch.autograd.grad(self.pair_losses(a, b).sum(), (a, b), allow_unused=True)
         return (torch.zeros_like(a) if ga is None else ga), (torch.zeros_like(b) if gb is None else gb)
 
+    def logpi_gradient(self, log_pi, shift: float = 0.0) -> Tensor:
+        """G (K,) in the log-probabilities, with each pair's differentiated argument shifted by ``shift``."""
+        return self.terms.gradient(torch.as_tensor(log_pi, dtype=F64), shift)
+
     def logpi_derivatives(self, log_pi: Tensor) -> tuple[float, Tensor, Tensor]:
         """L, its gradient G (K,) and Hessian H (K, K) in the log-probabilities ``log_pi`` (K,)."""
-        a = log_pi[self.i].detach().clone().requires_grad_(True)  # (E,)
-        b = log_pi[self.j].detach().clone().requires_grad_(True)  # (E,)
-        values = self.pair_losses(a, b)  # (E,)
-        ga, gb = _grads(values.sum(), (a, b), create_graph=True)
-        haa, hab = _grads(ga.sum(), (a, b), retain_graph=True) if ga.requires_grad else (_zero(a), _zero(a))
-        (hbb,) = _grads(gb.sum(), (b,)) if gb.requires_grad else (_zero(b),)
-        w, i, j, k = self.weight, self.i, self.j, self.k
-        grad = torch.zeros(k, dtype=F64).index_add_(0, i, w * ga.detach()).index_add_(0, j, w * gb.detach())
-        cross = w * hab.detach()
-        hess = (torch.zeros(k * k, dtype=F64).index_add_(0, i * (k + 1), w * haa.detach())
-                .index_add_(0, j * (k + 1), w * hbb.detach()).index_add_(0, i * k + j, cross)
-                .index_add_(0, j * k + i, cross).view(k, k))  # (K, K)
-        return float((w * values.detach()).sum()), grad, hess
+        return self.terms.derivatives(log_pi.detach())
 
     def chart(self, pinned: np.ndarray | None = None) -> Chart:
         """L in the softmax logits of the responses not ``pinned`` (all of them when None)."""
@@ -98,6 +138,7 @@ class Chart:
     def __init__(self, prompt: PromptLoss, pinned: np.ndarray):
         self.prompt, self.pinned = prompt, torch.as_tensor(pinned)
         self.free = ~self.pinned
+        self.all_free = bool(self.free.all())
         self.rest = float(torch.log1p(-prompt.log_ref[self.pinned].exp().sum()))  # log of the free mass
 
     def log_policy(self, y) -> Tensor:
@@ -113,22 +154,18 @@ class Chart:
     def value(self, y) -> float:
         return self.prompt.value_at(self.log_policy(y))
 
-    def derivatives(self, y) -> tuple[float, np.ndarray, np.ndarray]:
-        """L, dL/dy and d2L/dy2 (see the module docstring)."""
+    def derivatives(self, y, gauge: bool = False) -> tuple[float, np.ndarray, np.ndarray]:
+        """L, dL/dy and d2L/dy2 (see the module docstring); with ``gauge``, plus the gauge's (all-ones) Hessian."""
         log_pi = self.log_policy(y)
         value, grad, hess = self.prompt.logpi_derivatives(log_pi)
         q = torch.softmax(torch.as_tensor(y, dtype=F64), dim=0)  # the free responses' shares
-        g_free = grad[self.free]
-        hess_y = softmax_chain_rule(q, g_free, hess[self.free][:, self.free])  # (F, F)
-        return value, (g_free - q * g_free.sum()).numpy(), hess_y.numpy()
+        if not self.all_free:
+            grad, hess = grad[self.free], hess[self.free][:, self.free]
+        hess_y = softmax_chain_rule(q, grad, hess, gauge=gauge)  # (F, F), hess overwritten
+        return value, (grad - q * grad.sum()).numpy(), hess_y.numpy()
 
     def grad(self, y) -> np.ndarray:
-        log_pi = self.log_policy(y)
-        a, b = log_pi[self.prompt.i], log_pi[self.prompt.j]
-        ga, gb = self.prompt.pair_gradients(a, b)
-        w, k = self.prompt.weight, self.prompt.k
-        g = torch.zeros(k, dtype=F64).index_add_(0, self.prompt.i, w * ga).index_add_(0, self.prompt.j, w * gb)
-        g_free = g[self.free]
+        g_free = self.prompt.logpi_gradient(self.log_policy(y))[self.free]
         q = torch.softmax(torch.as_tensor(y, dtype=F64), dim=0)
         return (g_free - q * g_free.sum()).numpy()
 
@@ -139,18 +176,26 @@ class Chart:
         return self.value(y) + 0.5 * float(np.sum(y)) ** 2
 
     def gauged_derivatives(self, y) -> tuple[float, np.ndarray, np.ndarray]:
-        value, grad, hess = self.derivatives(y)
+        value, grad, hess = self.derivatives(y, gauge=True)
         shift = float(np.sum(y))
-        return value + 0.5 * shift**2, grad + shift, hess + 1.0  # the gauge's Hessian is the all-ones matrix
+        return value + 0.5 * shift**2, grad + shift, hess
 
 
-def softmax_chain_rule(q: Tensor, grad_logpi: Tensor, h: Tensor) -> Tensor:
+def softmax_chain_rule(q: Tensor, grad_logpi: Tensor, h: Tensor, gauge: bool = False) -> Tensor:
     """The Hessian in logits y of a function of ``log_softmax(y)`` (+ a constant), from its gradient G
     (n,) and Hessian H (n, n) in the log-probabilities: ``J^T H J - (sum G) (diag(q) - q q^T)`` with
-    ``J = I - 1 q^T``, written as ``H - r q^T - q r^T + (1^T r) q q^T``, ``r = H 1`` (O(n^2))."""
+    ``J = I - 1 q^T``, written as ``H - r q^T - q r^T + (1^T r) q q^T``, ``r = H 1`` (O(n^2)): with
+    ``c = 1^T r + sum G`` and ``u = r - (c / 2) q`` it is ``H - u q^T - q u^T - (sum G) diag(q)``, two
+    rank-one updates of H in place (``h`` is overwritten). ``gauge``: plus the all-ones matrix."""
     r = h.sum(dim=1)  # (n,)
-    qq = torch.outer(q, q)  # (n, n)
-    return h - torch.outer(r, q) - torch.outer(q, r) + r.sum() * qq - grad_logpi.sum() * (torch.diag(q) - qq)
+    total = grad_logpi.sum()
+    u = r - 0.5 * (r.sum() + total) * q  # (n,)
+    h = torch.addr(h, u, q, alpha=-1.0)  # (n, n)
+    h.addr_(q, u, alpha=-1.0)
+    h.diagonal().sub_(total * q)
+    if gauge:
+        h.add_(1.0)
+    return h
 
 
 def _grads(output: Tensor, inputs: tuple[Tensor, ...], **kwargs) -> list[Tensor]:
