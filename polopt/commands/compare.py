@@ -74,6 +74,7 @@ PAIR_LEGEND = ("over every accepted pair, with the final policy against the refe
                "pairs with a positive margin; logratio_winner, logratio_loser: the mean log pi/pi_ref of winners and "
                "of losers (winners below 0: likelihood displacement). A pair file has no exact optimum and no "
                "sample of the policy, so no TV or KL column: polopt evaluate RUN samples from a local LM run")
+GROUP_ONLY = ("optimum_kind", "tv_optimum_to_kl_regularised_optimum")  # shown where a group run fills them
 SHOWN_RESPONSES = 12  # equilibria over more responses (sequence tasks) are not written out in the notes
 EQUILIBRIUM_TV = 1e-3  # a policy this close to the equilibrium (TV) is reported as the equilibrium
 
@@ -222,6 +223,7 @@ def _fmt(value, spec: str = ".3g") -> str:
 
 
 def render(rows: list[dict], notes: list[str], task: str, *, shown=SHOWN, legend: str = LEGEND) -> str:
+    shown = [(k, spec) for k, spec in shown if k not in GROUP_ONLY or any(r[k] is not None for r in rows)]
     head = ["run", *(key for key, _ in shown)]
     body = [[r["run"], *(_cell(r[key], spec) for key, spec in shown)] for r in rows]
     widths = [max(len(line[c]) for line in [head, *body]) for c in range(len(head))]
