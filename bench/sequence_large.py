@@ -33,8 +33,8 @@ ROOT = Path(__file__).resolve().parent.parent
 SYMBOLS, MAX_LENGTH = 4, 5  # 1 + 4 + 16 + 64 + 256 + 1024 = 1,365 responses per prompt
 MARGIN = ["logistic", "squared", "hinge", "huber", "exponential", "truncated_quadratic", "savage"]
 PAIR = ["length_normalised_free", "length_regularised", "odds_ratio_with_nll", "plus_winner_nll",
-        "winner_anchored", "reference_free_logistic", "calibrated_logistic", "divergence_forward_kl",
-        "divergence_jensen_shannon", "divergence_alpha", "chi_squared_link"]
+        "winner_anchored", "reference_free_logistic", "calibrated_logistic", "chi_squared_link",
+        "divergence_jensen_shannon", "divergence_alpha", "divergence_forward_kl"]
 
 
 class TargetReached(Exception):
