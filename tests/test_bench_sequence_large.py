@@ -82,3 +82,15 @@ def test_the_large_task_builds_certifies_and_trains_towards_its_optimum():
     tv = [h["tv_to_optimum"] for h in result.history]
     assert [h["step"] for h in result.history] == [1, 4, 8]
     assert tv[-1] < tv[0] - 0.05  # from the reference (TV 0.67) the optimum is approached within 8 steps
+
+
+def test_starts_sets_the_pair_and_group_solvers_starts(tmp_path):
+    out = tmp_path / "rows.jsonl"
+    sequence_large.main([*SMALL, "--only", "length_regularised,calibrated_logistic", "--starts", "1", "--json",
+                         str(out), "train.steps=2"])
+    rows = [json.loads(line) for line in out.read_text().splitlines()]
+    assert [r["name"] for r in rows] == ["length_regularised", "calibrated_logistic"]
+    assert all("1 seeded starts" in r["optimum_method"] and r["starts"] == 1 for r in rows)
+    sequence_large.main([*SMALL, "--only", "length_regularised", "--json", str(out), "train.steps=2"])
+    default = json.loads(out.read_text().splitlines()[-1])
+    assert "1 seeded starts" not in default["optimum_method"] and default["starts"] is None
