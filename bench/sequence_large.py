@@ -118,12 +118,17 @@ def run_one(name: str, overrides: list[str], *, target: float, stop: bool, start
     hit = next((s for s in seen if s["tv"] is not None and s["tv"] <= target), None)
     return {"name": name, "beta": settings.beta, "lr": settings.optim.lr, "budget": settings.steps,
             "optimum_method": getattr(optimum, "method", None),
-            "certified": getattr(optimum, "certified", None), "unique": getattr(optimum, "unique", None),
+            "certified": flag(getattr(optimum, "certified", None)), "unique": flag(getattr(optimum, "unique", None)),
             "starts": starts, "prepare_s": prepare_s,
             "hit_step": None if hit is None else hit["step"], "hit_s": None if hit is None else hit["seconds"],
             "steps": seen[-1]["step"], "tv": seen[-1]["tv"], "best_tv": min(s["tv"] for s in seen),
             "train_s": time.perf_counter() - start, "load_before": load_before, "load_after": os.getloadavg()[0],
             "history": seen}
+
+
+def flag(value) -> bool | None:
+    """A solver's flag as a JSON value (the solvers may give numpy booleans)."""
+    return None if value is None else bool(value)
 
 
 def row(r: dict) -> str:
