@@ -94,3 +94,8 @@ def test_starts_sets_the_pair_and_group_solvers_starts(tmp_path):
     sequence_large.main([*SMALL, "--only", "length_regularised", "--json", str(out), "train.steps=2"])
     default = json.loads(out.read_text().splitlines()[-1])
     assert "1 seeded starts" not in default["optimum_method"] and default["starts"] is None
+
+
+def test_solver_flags_are_written_as_json_booleans():
+    # the kink solver reports numpy booleans, which the json module refuses
+    assert json.dumps([sequence_large.flag(np.bool_(True)), sequence_large.flag(None)]) == "[true, null]"
