@@ -1,10 +1,11 @@
-"""The enumerable sequence task (toy_tasks.sequence.task) and its session (toy_tasks.sequence.session).
+"""The enumerable sequence task (toy_tasks.sequence.task) and its sessions (toy_tasks.sequence.session,
+toy_tasks.sequence.group_session).
 
 Checks against facts outside the code: the number of strings of length <= L over
 S letters (a geometric sum), the chain rule summing to 1 over a complete prefix
 tree (probability), the closed-form optima of the logistic loss on Bradley–Terry
 preferences (Rafailov et al. 2023) and of the squared loss (Azar et al. 2023),
-and an independent scipy minimisation of the exported task file.
+and independent scipy minimisations of the exported task file (Cal-DPO's, Xiao et al. 2024, included).
 """
 
 import json
@@ -233,3 +234,45 @@ def test_errors(task):
     sampled = task.prepare(losses.resolve_margin("squared"), beta=0.5, mode="sampled", n_pairs=50)
     with pytest.raises(ValueError, match="model=tabular scores enumerated responses, not tokens"):
         sampled.build_policy(kind="tabular")
+
+
+def _calibrated_logistic_optimum(entry: dict, beta: float) -> np.ndarray:
+    """Cal-DPO's population optimum over the simplex (Xiao et al. 2024), solved with scipy and torch
+    autograd alone: minimise sum_{i != j} mu_i mu_j P_ij [softplus(-(h_i - h_j)) + (h_i - 1/(2 beta))^2
+    + (h_j + 1/(2 beta))^2] over logits z, h = log softmax(z) - log pi_ref."""
+    mu, ref = np.asarray(entry["sampling"]), np.asarray(entry["reference"])
+    r = np.asarray(entry["rewards"])
+    p = 1.0 / (1.0 + np.exp(-(r[:, None] - r[None, :])))  # Bradley–Terry, 1952
+    w = torch.as_tensor(mu[:, None] * mu[None, :] * p * (1 - np.eye(len(mu))))
+    log_ref, target = torch.as_tensor(np.log(ref)), 1.0 / (2.0 * beta)
+
+    def fun(z):
+        z = torch.as_tensor(z, dtype=torch.float64).requires_grad_(True)
+        h = torch.log_softmax(z, 0) - log_ref
+        value = (w * (torch.nn.functional.softplus(-(h[:, None] - h[None, :])) + (h[:, None] - target) ** 2
+                      + (h[None, :] + target) ** 2)).sum()
+        value.backward()
+        return float(value.detach()), z.grad.numpy()
+
+    z = scipy.optimize.minimize(fun, np.log(ref), jac=True, method="L-BFGS-B",
+                                options={"gtol": 1e-12, "ftol": 1e-15, "maxiter": 5000}).x
+    return scipy.special.softmax(z)
+
+
+@pytest.mark.slow
+def test_a_group_objective_trains_the_transformer_on_the_sequence_pairs(tmp_path):
+    # task=sequence with a group objective: every pair a group of two, the exact target, the tiny transformer
+    out = tmp_path / "task.json"
+    assert main(["export", "sequence", str(out), *[o for o in SMALL_OVERRIDES if o.startswith("task.")]]) == 0
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        cfg = compose("config", overrides=["task=sequence", "loss=calibrated_logistic", "beta=0.5",
+                                           "train.steps=150", "train.progress=false", "optim.lr=0.01",
+                                           *SMALL_OVERRIDES])
+    summary = run(cfg, tmp_path / "run")
+    data = json.loads(out.read_text())
+    for x in range(2):
+        np.testing.assert_allclose(summary["optimum"][x], _calibrated_logistic_optimum(data["prompts"][x], 0.5),
+                                   atol=1e-6)
+    assert summary["task"] == "sequence" and summary["n_responses"] == 40 and summary["group_size"] == 2
+    assert summary["reached_optimum_tolerance"] == 0.05  # a sequence model's tolerance
+    assert summary["tv_to_optimum"] < 0.05 and summary["reached_optimum"] is True

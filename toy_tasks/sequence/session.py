@@ -58,39 +58,17 @@ class SequenceSession:
     def build_policy(self, kind: str = "transformer", width: int = 32, layers: int = 2, heads: int = 2,
                      context: int | None = None, seed: int = 0, init: str = "reference",
                      path: str | None = None, adapter: str | None = None, lora: dict | None = None) -> torch.nn.Module:
-        """A sequence model over the task's vocabulary, wrapped to score enumerated responses
-        (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights, fully fine-tuned).
-        ``context`` None: what the task needs."""
-        if kind not in ("tabular", "loglinear"):  # a sequence model fits the enumerated distribution approximately
-            self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE
-        if kind == "local_lm":
-            from polopt.models.local_lm import causal_lm_policy  # the optional extra: imported only when asked for
-
-            del lora  # its defaults come with model=local_lm; they are read only with an adapter
-            if adapter is not None or context is not None:
-                raise ValueError(f"model.adapter and model.context are read with task=pairs; task=sequence fine-tunes "
-                                 f"the whole local model on the task's own tokens: leave them null, got "
-                                 f"model.adapter={adapter}, model.context={context}")
-            lm = causal_lm_policy(path, pad_id=self.task.vocab.pad_id, output_size=self.task.vocab.output_size,
-                                  vocab_needed=self.task.vocab.size, context_needed=self.task.context_needed)
-            return EnumeratedSequencePolicy(lm.model, self.task)
+        """A sequence model over the task's enumerated responses (see :func:`sequence_policy`);
+        ``model=tabular|loglinear``: the finite session's policy (exact mode only)."""
+        del lora  # its defaults come with model=local_lm; they are read only with an adapter
         if kind in ("tabular", "loglinear"):
             if self.finite.mode != "exact":
                 raise ValueError(f"model={kind} scores enumerated responses, not tokens: on task=sequence it "
                                  "needs task.mode=exact; use model=transformer or model=bigram")
             return self.finite.build_policy(kind, width=width, seed=seed)
-        if init not in INITS:
-            raise ValueError(f"model.init must be one of {', '.join(INITS)}, got {init!r}")
-        need = self.task.context_needed
-        context = default_context(need) if context is None else context
-        if context < need:
-            raise ValueError(f"model.context must be at least {need} for this task (prompt plus response "
-                             f"tokens), got {context}")
-        model = build_model(kind, vocab_size=self.task.vocab.size, output_size=self.task.vocab.output_size,
-                            context=context, width=width, layers=layers, heads=heads, seed=seed)
-        if init == "reference":
-            copy_weights(model, self.task.reference_model)
-        return EnumeratedSequencePolicy(model, self.task)
+        self.finite.tolerance = SEQUENCE_MODEL_TOLERANCE  # a sequence model fits the enumerated distribution roughly
+        return sequence_policy(self.task, kind, width=width, layers=layers, heads=heads, context=context, seed=seed,
+                               init=init, path=path, adapter=adapter)
 
     def evaluate(self, policy) -> dict:
         with torch.no_grad():
@@ -133,6 +111,36 @@ class SequenceSession:
                          f"(n_pairs = {summary['n_pairs']})")
         lines.extend(f"note: {n}" for n in summary["notes"])
         return "\n".join(lines)
+
+
+def sequence_policy(task, kind: str = "transformer", *, width: int = 32, layers: int = 2, heads: int = 2,
+                    context: int | None = None, seed: int = 0, init: str = "reference", path: str | None = None,
+                    adapter: str | None = None) -> torch.nn.Module:
+    """A sequence model over ``task``'s vocabulary, wrapped to score its enumerated responses
+    (``kind="local_lm"``: the causal LM saved in ``path``, at its own weights, fully fine-tuned).
+    ``context`` None: what the task needs."""
+    if kind == "local_lm":
+        from polopt.models.local_lm import causal_lm_policy  # the optional extra: imported only when asked for
+
+        if adapter is not None or context is not None:
+            raise ValueError(f"model.adapter and model.context are read with task=pairs; task=sequence fine-tunes "
+                             f"the whole local model on the task's own tokens: leave them null, got "
+                             f"model.adapter={adapter}, model.context={context}")
+        lm = causal_lm_policy(path, pad_id=task.vocab.pad_id, output_size=task.vocab.output_size,
+                              vocab_needed=task.vocab.size, context_needed=task.context_needed)
+        return EnumeratedSequencePolicy(lm.model, task)
+    if init not in INITS:
+        raise ValueError(f"model.init must be one of {', '.join(INITS)}, got {init!r}")
+    need = task.context_needed
+    context = default_context(need) if context is None else context
+    if context < need:
+        raise ValueError(f"model.context must be at least {need} for this task (prompt plus response "
+                         f"tokens), got {context}")
+    model = build_model(kind, vocab_size=task.vocab.size, output_size=task.vocab.output_size,
+                        context=context, width=width, layers=layers, heads=heads, seed=seed)
+    if init == "reference":
+        copy_weights(model, task.reference_model)
+    return EnumeratedSequencePolicy(model, task)
 
 
 def token_pairs(task, index_pairs: PairSet, *, cache: Path | None) -> tuple[PairSet, bool]:

@@ -38,9 +38,11 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from polopt.losses.group_objective import GroupObjective
 from polopt.models.logprobs import batched_logprobs
 from polopt.models.transformer import TinyTransformer
 from toy_tasks.finite.task import FiniteTask, make_task
+from toy_tasks.sequence import group_session as sequence_groups
 from toy_tasks.sequence import preference as sequence_preference
 from toy_tasks.sequence import reward as sequence_reward
 from toy_tasks.sequence import session as sequence_session
@@ -220,7 +222,10 @@ class SequenceTask:
         return sequence_reward.fit_sequence_reward(self, **kwargs)
 
     def prepare(self, loss, **kwargs):
-        """The trainer's view of this task (see :mod:`toy_tasks.sequence.session`)."""
+        """The trainer's view of this task (see :mod:`toy_tasks.sequence.session`); a group objective's:
+        every pair as a group of two (:mod:`toy_tasks.sequence.group_session`)."""
+        if isinstance(loss, GroupObjective):
+            return sequence_groups.prepare(self, loss, **kwargs)
         return sequence_session.prepare(self, loss, **kwargs)
 
 
