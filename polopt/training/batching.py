@@ -16,10 +16,10 @@ similar length. A pair's length is prompt + winner + loser tokens, the width of
 its row when the two responses share one pass over the prompt
 (``train.share_prompt``, the default; :func:`polopt.models.logprobs.pack_pairs`).
 :meth:`Batcher.take` then slices the padded tensors to the batch's own longest
-prompt and response (it copies the B rows only, never the whole set). Trimming alone changes no log-probability (see
-:mod:`polopt.models.logprobs`: padding is never seen by real tokens); bucketing changes
-which pairs meet in a batch, so a run with it is a different, equally valid,
-stochastic run.
+prompt and response (it copies the B rows only, never the whole set). Trimming
+alone changes no log-probability (see :mod:`polopt.models.logprobs`: padding is
+never seen by real tokens); bucketing changes which pairs meet in a batch, so a
+run with it is a different, equally valid, stochastic run.
 
 Everything comes from the trainer's generator, so a seed gives one order; the
 order is a permutation of the pairs stored in checkpoints as it is, so a
