@@ -1,6 +1,7 @@
 """Bench: trainer throughput on a length-skewed dataset, with ratios measured in the same run.
 
-    PYTHONPATH=. python bench/throughput.py [--widths 64 256] [--steps 40] [--batch 32] [--json out.json]
+    PYTHONPATH=. python bench/throughput.py [--widths 64 256] [--layers 4] [--steps 40] [--batch 32] [--json out.json]
+    PYTHONPATH=. python bench/throughput.py --widths 256 --versus-loop --steps 16 --no-isolate
 
 Runs :func:`polopt.training.loop.train` (the logistic loss) on the tiny transformer over a
 length-skewed synthetic dataset (bench/skewed_data.py: most responses short, 5%
@@ -14,9 +15,13 @@ at the maximum length) and prints a table, then writes the same figures as JSON:
 - peak memory: ``resource.getrusage(RUSAGE_SELF).ru_maxrss`` of a fresh process
   that runs only that configuration (the whole process: torch itself, the data,
   the model, the optimiser); ``--no-isolate`` skips it;
-- timing: the configurations run interleaved, ``--rounds`` times each, and the
-  fastest round counts (as timeit takes the minimum): on a shared machine a burst
-  of load then slows one round, not one configuration;
+- timing: the configurations run interleaved, ``--rounds`` times each (with
+  ``--versus-loop`` only the trainer and the hand-written loop: trainer, loop,
+  trainer, loop, ...), each round's figures printed with the load average as they
+  come; the table shows the fastest round (as timeit takes the minimum), and the
+  ratio to the hand-written loop is the median over the rounds of each round's
+  ratio, the two runs of a round being next to each other in time: on a shared
+  machine a burst of load then moves one round, not one side;
 - MFU: achieved model FLOP/s over the FLOP/s of a matrix product of the model's
   own shape (tokens per batch x width times width x 4 width) measured in the same
   process just before, in the same precision. Model FLOPs count real positions
@@ -31,7 +36,8 @@ at the maximum length) and prints a table, then writes the same figures as JSON:
   pair, which on this data is nearly always the maximum); the reference cache on vs off (off: the reference model
   recomputes its log-probabilities every step, over several epochs); and the
   hand-written loop of bench/baseline_loop.py (no polopt, every batch padded to the
-  maximum) for a side-by-side ratio;
+  maximum, torch's default Adam) for a side-by-side ratio; the model has ``--layers``
+  blocks (4 by default) of 4 heads;
 - the loss's share of a step: the time of ``per_pair_losses`` + ``weighted_mean``
   forward and its backward (from the margins), over the step time.
 
@@ -46,6 +52,7 @@ import json
 import multiprocessing
 import os
 import resource
+import statistics
 import sys
 import time
 from pathlib import Path
@@ -66,7 +73,8 @@ from polopt.training.batching import Batcher  # noqa: E402
 from polopt.training.loop import TrainSettings, train  # noqa: E402
 from polopt.training.optim import OptimConfig  # noqa: E402
 
-LAYERS, HEADS, BETA = 2, 4, 0.5
+HEADS, BETA = 4, 0.5
+TRAINER, LOOP = "fp32, bucketing, cache", "hand-written loop"  # the side-by-side pair of --versus-loop
 
 
 class RecomputedReference(torch.nn.Module):
@@ -124,25 +132,28 @@ def matmul_flops_per_s(m: int, k: int, n: int, dtype: torch.dtype, seconds: floa
 def build(cfg: dict):
     data = skewed_pairs(cfg["pairs"], max_length=cfg["max_length"], seed=0)
     context = data["prompt"].shape[1] + data["winner"].shape[1]
-    model = TinyTransformer(VOCAB_SIZE, context=context, width=cfg["width"], layers=LAYERS, heads=HEADS, seed=1)
-    reference = SequencePolicy(TinyTransformer(VOCAB_SIZE, context=context, width=cfg["width"], layers=LAYERS,
+    layers = cfg.get("layers", 2)
+    model = TinyTransformer(VOCAB_SIZE, context=context, width=cfg["width"], layers=layers, heads=HEADS, seed=1)
+    reference = SequencePolicy(TinyTransformer(VOCAB_SIZE, context=context, width=cfg["width"], layers=layers,
                                                heads=HEADS, seed=2), pad_id=PAD_ID).eval()
     return data, SequencePolicy(model, pad_id=PAD_ID), reference
 
 
-def positions(batch: PairSet) -> torch.Tensor:
-    """Real input positions per sequence of a batch (2B,): the model reads all but the last token."""
-    p = (batch.prompt != PAD_ID).sum(1)
-    return torch.cat([p + (batch.winner != PAD_ID).sum(1), p + (batch.loser != PAD_ID).sum(1)]) - 1
+def positions(batch: PairSet) -> tuple[torch.Tensor, torch.Tensor]:
+    """Real input positions per pair of a batch (B,) in the row the trainer computes (prompt, then winner
+    and loser less their last tokens: polopt.models.logprobs.pack_pairs, train.share_prompt=true), and the
+    lengths (B,) that polopt.models.logprobs.length_split cuts on (prompt + winner + loser tokens)."""
+    n_p, n_w, n_l = ((t != PAD_ID).sum(1) for t in (batch.prompt, batch.winner, batch.loser))  # (B,) each
+    return n_p + (n_w - 1).clamp(min=0) + (n_l - 1).clamp(min=0), n_p + n_w + n_l
 
 
-def computed_positions(n: torch.Tensor, split: bool) -> int:
-    """Positions the forward pass computes, padding included, for rows of n real positions (one
-    pass at the longest, or the two passes of polopt.models.logprobs.length_split)."""
-    order, k = length_split(n + 1) if split else (None, 0)
+def computed_positions(row: torch.Tensor, n: torch.Tensor, split: bool) -> int:
+    """Positions the forward pass computes, padding included, for rows of ``row`` real positions (one
+    pass at the longest, or the two passes of polopt.models.logprobs.length_split on ``n``)."""
+    order, k = length_split(n) if split else (None, 0)
     if k == 0:
-        return len(n) * int(n.max())
-    short, long = n[order[:k]], n[order[k:]]
+        return len(row) * int(row.max())
+    short, long = row[order[:k]], row[order[k:]]
     return len(short) * int(short.max()) + len(long) * int(long.max())
 
 
@@ -184,9 +195,9 @@ def drawn_batches(state: dict, seed: int) -> tuple[torch.Tensor, int, list[PairS
             order, cursor = batcher.epoch_order(generator), 0
         batch = batcher.take(order[cursor:cursor + cfg["batch"]])
         cursor += cfg["batch"]
-        n = positions(batch)
-        real.append(n)
-        padded += computed_positions(n, split=cfg["bucketing"])
+        row, n = positions(batch)
+        real.append(row)
+        padded += computed_positions(row, n, split=cfg["bucketing"])
         batches.append(batch)
     return torch.cat(real), padded, batches
 
@@ -195,7 +206,7 @@ def time_round(state: dict, seed: int) -> dict:
     """One timed run of ``cfg["steps"]`` steps with the matrix-product reference measured just before."""
     cfg = state["cfg"]
     if cfg["kind"] == "baseline":
-        out = baseline_loop.run(width=cfg["width"], layers=LAYERS, heads=HEADS, n_pairs=cfg["pairs"],
+        out = baseline_loop.run(width=cfg["width"], layers=cfg["layers"], heads=HEADS, n_pairs=cfg["pairs"],
                                 batch=cfg["batch"], steps=cfg["steps"], max_length=cfg["max_length"], beta=BETA,
                                 seed=seed)
         return {**cfg, **out, "load": os.getloadavg()[0]}
@@ -205,7 +216,7 @@ def time_round(state: dict, seed: int) -> dict:
     result = train(state["policy"], state["pairs"], state["loss"],
                    TrainSettings(steps=cfg["steps"], seed=seed, **state["kwargs"]))
     step_s = result.seconds / cfg["steps"]
-    flops = model_flops(real, weights=state["weights"], layers=LAYERS, width=cfg["width"])
+    flops = model_flops(real, weights=state["weights"], layers=cfg["layers"], width=cfg["width"])
     ref_s = state["reference_s"] if cfg["cache"] else 0.0
     return {**cfg, "tokens_per_s": result.final["tokens_per_s"], "step_s": step_s, "steps_per_s": 1 / step_s,
             "steps_per_s_with_reference": cfg["steps"] / (result.seconds + ref_s),
@@ -236,42 +247,67 @@ def loss_share(batches: list[PairSet], policy, loss, cfg: dict, step_s: float) -
 
 def configurations(args) -> list[dict]:
     base = dict(pairs=args.pairs, batch=args.batch, steps=args.steps, max_length=args.max_length,
-                threads=args.threads, kind="polopt", precision="fp32", bucketing=True, cache=True)
+                threads=args.threads, layers=args.layers, kind="polopt", precision="fp32", bucketing=True, cache=True)
     out = []
     for width in args.widths:
-        out += [dict(base, width=width, name="fp32, bucketing, cache"),
+        out += [dict(base, width=width, name=TRAINER),
                 dict(base, width=width, bucketing=False, name="fp32, padding to the longest"),
                 dict(base, width=width, cache=False, name="fp32, bucketing, no cache"),
                 dict(base, width=width, precision="bf16", name="bf16, bucketing, cache"),
-                dict(base, width=width, kind="baseline", bucketing=False, name="hand-written loop")]
+                dict(base, width=width, kind="baseline", bucketing=False, name=LOOP)]
+    if args.versus_loop:
+        out = [c for c in out if c["name"] in (TRAINER, LOOP)]
     if args.only:
         out = [c for c in out if any(word in c["name"] for word in args.only)]
     return out
 
 
-def ratios(rows: list[dict]) -> list[dict]:
+def versus_loop(rounds: list[list[dict]]) -> dict[int, dict]:
+    """Per width: the trainer's real tokens/s over the hand-written loop's, round by round (each ratio of
+    two runs next to each other in time, so under one load) and their median."""
+    out = {}
+    for width in sorted({r["width"] for r in rounds[0]}):
+        per_round = []
+        for rows in rounds:
+            by = {r["name"]: r for r in rows if r["width"] == width}
+            if TRAINER in by and LOOP in by:
+                per_round.append({"trainer": by[TRAINER]["tokens_per_s"], "loop": by[LOOP]["tokens_per_s"],
+                                  "ratio": by[TRAINER]["tokens_per_s"] / by[LOOP]["tokens_per_s"],
+                                  "load": [by[TRAINER]["load"], by[LOOP]["load"]]})
+        if per_round:
+            out[width] = {"rounds": per_round, "median": statistics.median(r["ratio"] for r in per_round)}
+    return out
+
+
+def ratios(rows: list[dict], against_loop: dict[int, dict]) -> list[dict]:
     """The targets of the issue, per width, from figures of the same run."""
     out = []
     for width in sorted({r["width"] for r in rows}):
         by = {r["name"]: r for r in rows if r["width"] == width}
-        if len(by) < 5:  # --only: some configurations were not run
-            continue
-        main = by["fp32, bucketing, cache"]
-        checks = [
-            ("reference cache: steps/s on / off", main["steps_per_s"] / by["fp32, bucketing, no cache"]["steps_per_s"],
-             1.25),
-            ("bucketing: real tokens/s on / padding", main["tokens_per_s"]
-             / by["fp32, padding to the longest"]["tokens_per_s"], 2.0),
-            ("fp32 MFU (real tokens)", main["mfu"], 0.5 if width >= 256 else None),
-            ("bf16 / fp32 tokens/s", by["bf16, bucketing, cache"]["tokens_per_s"] / main["tokens_per_s"], 2.5),
-            ("loss share of a step (at most)", main["loss_share"], 0.02),
-            ("polopt / hand-written loop, real tokens/s", main["tokens_per_s"]
-             / by["hand-written loop"]["tokens_per_s"], 3.0),
-        ]
+        checks = []
+        if len(by) == 5:  # --only, --versus-loop: some configurations were not run
+            main = by[TRAINER]
+            checks = [
+                ("reference cache: steps/s on / off",
+                 main["steps_per_s"] / by["fp32, bucketing, no cache"]["steps_per_s"], 1.25),
+                ("bucketing: real tokens/s on / padding", main["tokens_per_s"]
+                 / by["fp32, padding to the longest"]["tokens_per_s"], 2.0),
+                ("fp32 MFU (real tokens)", main["mfu"], 0.5 if width >= 256 else None),
+                ("bf16 / fp32 tokens/s", by["bf16, bucketing, cache"]["tokens_per_s"] / main["tokens_per_s"], 2.5),
+                ("loss share of a step (at most)", main["loss_share"], 0.02),
+            ]
+        if width in against_loop:
+            checks.append(("polopt / hand-written loop (median of rounds)", against_loop[width]["median"], 4.0))
         for name, value, target in checks:
             met = None if target is None else (value <= target if "at most" in name else value >= target)
             out.append({"width": width, "figure": name, "value": value, "target": target, "met": met})
     return out
+
+
+def round_lines(r: int, rows: list[dict]) -> list[str]:
+    """One round's figures as they came, in the order they ran, each with the load it ran under."""
+    return [f"  round {r + 1}: width {row['width']:>4}  {row['name']:<30} {row['tokens_per_s']:>9,.0f} real tokens/s"
+            f"  {row['step_s'] * 1000:>8.1f} ms/step  load {row['load']:.2f}" for row in rows]
 
 
 def table(rows: list[dict], checks: list[dict]) -> str:
@@ -307,7 +343,11 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--only", nargs="+", default=None,
                         help="run only the configurations whose name contains one of these words (e.g. bf16)")
     parser.add_argument("--rounds", type=int, default=3,
-                        help="timed runs per configuration, interleaved; the fastest counts (default 3)")
+                        help="timed runs per configuration, interleaved; the table shows the fastest, the ratio "
+                             "to the hand-written loop is the median of the rounds' ratios (default 3)")
+    parser.add_argument("--layers", type=int, default=4, help="transformer blocks (default 4)")
+    parser.add_argument("--versus-loop", action="store_true",
+                        help=f"run only {TRAINER!r} and the {LOOP}, alternating")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here (JSON)")
     parser.add_argument("--no-isolate", action="store_true",
                         help="skip the fresh process per configuration that measures its peak memory")
@@ -317,7 +357,7 @@ def main(argv: list[str] | None = None) -> None:
           f"load average {os.getloadavg()[0]:.2f} at the start; CPU kernels {cpu['capability']}, "
           f"bf16 instructions: {', '.join(cpu['bf16_instructions'] or []) or 'none found'}")
     print(f"{args.pairs} pairs, responses 2..24 tokens or (5%) {args.max_length}, batch {args.batch}, "
-          f"{args.steps} timed steps x {args.rounds} interleaved rounds (the fastest shown), {LAYERS} layers, "
+          f"{args.steps} timed steps x {args.rounds} interleaved rounds (the fastest shown), {args.layers} layers, "
           f"{HEADS} heads")
     configs = configurations(args)
     # peak memory first, while this process is small: a child starts from the parent's resident size
@@ -330,24 +370,32 @@ def main(argv: list[str] | None = None) -> None:
                 memory[i] = pool.apply(peak_memory, (dict(cfg, steps=min(cfg["steps"], 3)),))
     states = [prepare(cfg) for cfg in configs]
     best: list[dict | None] = [None] * len(configs)
+    rounds: list[list[dict]] = []
     for r in range(args.rounds):  # configurations interleaved, so that a change of load hits them all
-        for i, state in enumerate(states):
-            row = time_round(state, seed=r)
+        rows = [time_round(state, seed=r) for state in states]
+        for i, row in enumerate(rows):
             if best[i] is None or row["tokens_per_s"] > best[i]["tokens_per_s"]:
                 best[i] = {**row, "round": r}
-        print(f"  round {r + 1} of {args.rounds} done, load {os.getloadavg()[0]:.2f}", file=sys.stderr, flush=True)
+        rounds.append(rows)
+        print("\n".join(round_lines(r, rows)), flush=True)
     rows = best
     for row, peak in zip(rows, memory, strict=True):
         row["peak_rss_mib"] = peak
-    checks = ratios(rows)
+    against_loop = versus_loop(rounds)
+    checks = ratios(rows, against_loop)
     print(table(rows, checks))
+    for width, v in against_loop.items():
+        each = ", ".join(f"{x['ratio']:.2f}x (load {x['load'][0]:.2f}/{x['load'][1]:.2f})" for x in v["rounds"])
+        print(f"width {width}: polopt / hand-written loop, real tokens/s, round by round: {each}; "
+              f"median {v['median']:.2f}x")
     print(f"peak memory: ru_maxrss of a fresh process per configuration; the parent held {floor:.0f} MiB")
     report = {"torch": torch.__version__, "parent_rss_mib": floor, "threads": args.threads, "cpus": os.cpu_count(),
               "cpu": cpu, "load_end": os.getloadavg()[0],
               "peak_memory": "ru_maxrss of a fresh process that ran only that configuration",
-              "timing": "fastest of the interleaved rounds",
+              "timing": "rows: fastest of the interleaved rounds; versus_loop: median of the rounds' ratios",
               "flops": "6 N n + 6 L n^2 C per sequence of n real input positions (Kaplan et al. 2020)",
-              "rows": rows, "targets": checks}
+              "rows": rows, "targets": checks, "rounds": rounds,
+              "versus_loop": {str(w): v for w, v in against_loop.items()}}
     text = json.dumps(report, indent=2)
     if args.json is not None:
         args.json.write_text(text + "\n", encoding="utf-8")

@@ -17,7 +17,7 @@ from bench import baseline_loop, throughput
 from bench.skewed_data import PAD_ID, real_token_count, skewed_pairs
 
 TINY = ["--widths", "16", "--pairs", "48", "--batch", "8", "--steps", "3", "--max-length", "16", "--threads", "1",
-        "--rounds", "2", "--no-isolate"]
+        "--rounds", "2", "--no-isolate", "--layers", "2"]
 
 
 def test_throughput_prints_the_table_and_valid_json(tmp_path, capsys):
@@ -34,14 +34,33 @@ def test_throughput_prints_the_table_and_valid_json(tmp_path, capsys):
     for row in report["rows"]:
         assert row["tokens_per_s"] > 0 and math.isfinite(row["step_s"]) and row["peak_rss_mib"] is None
     assert len(report["targets"]) == 6 and all(math.isfinite(t["value"]) for t in report["targets"])
+    assert len(report["rounds"]) == 2 and all(len(rows) == 5 for rows in report["rounds"])
+    versus = report["versus_loop"]["16"]
+    ratios = [r["ratio"] for r in versus["rounds"]]
+    assert len(ratios) == 2 and versus["median"] == (ratios[0] + ratios[1]) / 2  # the median of two
+    for rows, each in zip(report["rounds"], versus["rounds"], strict=True):  # each ratio within one round
+        by = {r["name"]: r["tokens_per_s"] for r in rows}
+        assert each["ratio"] == by["fp32, bucketing, cache"] / by["hand-written loop"]
+    assert "round 1:" in text and "round 2:" in text and "median" in text
     main = next(r for r in report["rows"] if r["name"] == "fp32, bucketing, cache")
     padded = next(r for r in report["rows"] if r["name"] == "fp32, padding to the longest")
     assert 0 <= main["padding_share"] < padded["padding_share"] < 1
 
 
+def test_versus_loop_alternates_the_trainer_and_the_hand_written_loop(capsys):
+    throughput.main([*TINY, "--versus-loop", "--rounds", "3"])
+    text = capsys.readouterr().out
+    order = [line.split("16  ", 1)[1].split("  ")[0].strip() for line in text.splitlines()
+             if line.startswith("  round ")]
+    assert order == ["fp32, bucketing, cache", "hand-written loop"] * 3
+    report = json.loads(text.split("JSON:\n", 1)[1])
+    assert len(report["versus_loop"]["16"]["rounds"]) == 3
+    assert [t["figure"] for t in report["targets"]] == ["polopt / hand-written loop (median of rounds)"]
+
+
 def test_peak_memory_of_one_configuration():
     cfg = {"pairs": 16, "batch": 4, "steps": 2, "max_length": 16, "threads": 1, "kind": "polopt", "width": 16,
-           "precision": "fp32", "bucketing": True, "cache": True, "name": "fp32, bucketing, cache"}
+           "layers": 1, "precision": "fp32", "bucketing": True, "cache": True, "name": "fp32, bucketing, cache"}
     assert throughput.peak_memory(cfg) > 10  # MiB: at least torch itself
 
 

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import math
 import os
 from dataclasses import dataclass
 from datetime import timedelta
@@ -259,7 +260,11 @@ def give_back(trained: nn.Module, policy: nn.Module) -> None:
 
 
 def clip_grad_norm(module: nn.Module, max_norm: float) -> float:
-    """torch's ``clip_grad_norm_`` over ``module``'s gradients (sharded ones too); the total norm as a float."""
+    """torch's ``clip_grad_norm_`` over ``module``'s gradients (sharded ones too); the total norm as a float.
+    No limit (``max_norm`` inf): the norm alone (torch's ``get_total_norm``, which ``clip_grad_norm_`` calls),
+    since the clip would multiply every gradient by min(1, inf / norm) = 1, a pass over the weights for nothing."""
     from polopt.parallel.fsdp import total_norm
 
+    if max_norm == math.inf:
+        return total_norm(nn.utils.get_total_norm([p.grad for p in module.parameters() if p.grad is not None]))
     return total_norm(nn.utils.clip_grad_norm_(module.parameters(), max_norm))

@@ -12,12 +12,14 @@ draws the epoch's permutation as before, cuts it into spans of
 :data:`SPAN_BATCHES` batches, sorts each span by length, cuts the sorted span
 into batches and shuffles the batches of the epoch (common practice, often
 called "sortish" sampling): every batch is still a random draw, but of pairs of
-similar length. :meth:`Batcher.take` then slices the padded tensors to the
-batch's own longest prompt and response (it copies the B rows only, never the
-whole set). Trimming alone changes no log-probability (see
-:mod:`polopt.models.logprobs`: padding is never seen by real tokens); bucketing changes
-which pairs meet in a batch, so a run with it is a different, equally valid,
-stochastic run.
+similar length. A pair's length is prompt + winner + loser tokens, the width of
+its row when the two responses share one pass over the prompt
+(``train.share_prompt``, the default; :func:`polopt.models.logprobs.pack_pairs`).
+:meth:`Batcher.take` then slices the padded tensors to the batch's own longest
+prompt and response (it copies the B rows only, never the whole set). Trimming
+alone changes no log-probability (see :mod:`polopt.models.logprobs`: padding is
+never seen by real tokens); bucketing changes which pairs meet in a batch, so a
+run with it is a different, equally valid, stochastic run.
 
 Everything comes from the trainer's generator, so a seed gives one order; the
 order is a permutation of the pairs stored in checkpoints as it is, so a
@@ -39,11 +41,14 @@ Tensor = torch.Tensor
 SPAN_BATCHES = 64  # batches sorted together: long enough to group lengths, short enough to stay random
 
 
-def pair_lengths(prompt: Tensor, winner: Tensor, loser: Tensor, *, pad_id: int) -> tuple[Tensor, Tensor]:
-    """Real prompt tokens (N,) and the longer real response of winner and loser (N,):
-    winners and losers share one forward pass, so the longer one sets the pair's width."""
-    response = torch.maximum(lengths(winner, pad_id=pad_id), lengths(loser, pad_id=pad_id))  # (N,)
-    return lengths(prompt, pad_id=pad_id), response
+def pair_lengths(prompt: Tensor, winner: Tensor, loser: Tensor, *, pad_id: int) -> tuple[Tensor, Tensor, Tensor]:
+    """Real prompt tokens (N,), the longer real response of winner and loser (N,) (the widths a batch
+    is trimmed to), and the pair's length prompt + winner + loser (N,), which orders the buckets: a
+    shared-prompt row holds all three (less the responses' last tokens), so pairs of one length fill
+    a batch's rows evenly. (Scoring winners and losers apart computes rows as wide as the prompt with
+    the longer response; the sum orders those nearly as well.)"""
+    n_prompt, n_winner, n_loser = (lengths(t, pad_id=pad_id) for t in (prompt, winner, loser))  # (N,) each
+    return n_prompt, torch.maximum(n_winner, n_loser), n_prompt + n_winner + n_loser
 
 
 def bucketed_order(permutation: Tensor, size: Tensor, batch_size: int, generator: torch.Generator) -> Tensor:
@@ -83,15 +88,15 @@ class Batcher:
         self.tokens = pad_id is not None and not streamed and pairs.winner.dim() == 2
         self.bucketing = bucketing and self.tokens and batch_size is not None and batch_size < len(pairs)
         if self.tokens:
-            self.prompt_len, self.response_len = pair_lengths(pairs.prompt, pairs.winner, pairs.loser,
-                                                              pad_id=pad_id)  # (N,), (N,)
+            self.prompt_len, self.response_len, self.pair_len = pair_lengths(
+                pairs.prompt, pairs.winner, pairs.loser, pad_id=pad_id)  # (N,) each
 
     def epoch_order(self, generator: torch.Generator) -> Tensor:
         """The order of the next epoch (N,), drawn from ``generator``."""
         order = torch.randperm(len(self.pairs), generator=generator)  # (N,)
         if not self.bucketing:
             return order
-        return bucketed_order(order, self.prompt_len + self.response_len, self.batch_size, generator)
+        return bucketed_order(order, self.pair_len, self.batch_size, generator)
 
     def take(self, index: Tensor):
         """The pairs at ``index`` (B,), token tensors trimmed to the batch's longest row."""

@@ -11,6 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import torch
+from torch import nn
 
 _OPTIMISERS = {"adam": torch.optim.Adam, "adamw": torch.optim.AdamW, "sgd": torch.optim.SGD,
                "lbfgs": torch.optim.LBFGS}
@@ -54,9 +55,12 @@ def make_optimiser(params, cfg: OptimConfig, steps: int):
             raise ValueError(f"optim.betas must be two numbers in [0, 1), e.g. optim.betas=[0.9,0.999], "
                              f"got {list(cfg.betas)!r}")
         extra["betas"] = betas
+    params = list(params)
     if cfg.name == "lbfgs":
         optimiser = _lbfgs(params, cfg)
     else:
+        if cfg.name in ("adam", "adamw") and fused_kernel_applies(params):
+            extra["fused"] = True
         optimiser = _OPTIMISERS[cfg.name](params, lr=cfg.lr, weight_decay=cfg.weight_decay, **extra)
     if cfg.schedule == "constant":
         main = torch.optim.lr_scheduler.ConstantLR(optimiser, factor=1.0, total_iters=0)
@@ -68,6 +72,21 @@ def make_optimiser(params, cfg: OptimConfig, steps: int):
         return optimiser, main
     warmup = torch.optim.lr_scheduler.LinearLR(optimiser, start_factor=1e-3, total_iters=cfg.warmup_steps)
     return optimiser, torch.optim.lr_scheduler.SequentialLR(optimiser, [warmup, main], milestones=[cfg.warmup_steps])
+
+
+def fused_kernel_applies(params: list) -> bool:
+    """Whether torch's fused Adam/AdamW kernel (``fused=True``: the whole update of a tensor in one pass
+    over its elements) can update ``params``: plain floating-point tensors on the CPU or a CUDA GPU.
+
+    torch's default on the CPU is a loop of about ten elementwise operations per tensor, each one a
+    pass over the weights; on a small model with short batches that was a fifth of a training step
+    (bench/throughput.py). The fused kernel computes the same update (Kingma & Ba, Adam, 2015) in
+    another order of floating-point operations, so the two agree to rounding
+    (tests/training/test_optim.py). Sharded parameters (``DTensor`` under ``train.strategy=fsdp``)
+    keep torch's default.
+    """
+    return bool(params) and all(type(p) in (nn.Parameter, torch.Tensor) and p.is_floating_point()
+                                and p.device.type in ("cpu", "cuda") for p in params)
 
 
 def _lbfgs(params, cfg: OptimConfig) -> torch.optim.LBFGS:

@@ -123,6 +123,17 @@ class TestEpochOrder:
         for a, b in zip(groups, groups[1:], strict=False):
             assert max(a) <= min(b)  # the batches tile the sorted lengths
 
+    def test_buckets_group_pairs_by_prompt_winner_and_loser_tokens(self):
+        # one sorted span (64 pairs, batches of 8): the batches tile the pairs sorted by the width of their
+        # shared-prompt row, prompt + winner + loser real tokens, counted here directly from the padded rows
+        pairs = skewed(64, seed=2)
+        width = sum((getattr(pairs, k) != PAD).sum(1) for k in ("prompt", "winner", "loser"))  # (N,)
+        order = Batcher(pairs, batch_size=8, pad_id=PAD).epoch_order(torch.Generator().manual_seed(4))
+        groups = sorted(width[order].reshape(-1, 8).tolist(), key=lambda g: (min(g), max(g)))
+        for a, b in zip(groups, groups[1:], strict=False):
+            assert max(a) <= min(b)
+        assert len(set(width.tolist())) > 8  # lengths vary enough for the check to mean something
+
     def test_bucketing_computes_fewer_positions(self):
         pairs = skewed(256)
 
