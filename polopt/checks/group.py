@@ -278,11 +278,17 @@ def check_signal(objective: GroupObjective, session, *, kind: str) -> CheckResul
 # ----------------------------------------------------------------------------
 
 
+UNBOUNDED = 1e8  # an infimum below -UNBOUNDED is taken as -inf: the objective is unbounded below
+
+
 def target_gain(session) -> float | None:
     """The expected reward of the session's exact target minus the reference's: of the certified policy, or,
     where the infimum lies on the boundary, of the reference restricted to the responses that keep mass in the
-    limit (how the mass splits there is not known; the sign is what matters). None where neither is known."""
+    limit (how the mass splits there is not known; the sign is what matters). None where neither is known, or
+    where the objective is unbounded below."""
     task, opt = session.task, session.optimum
+    if not opt.finite and not opt.value > -UNBOUNDED:
+        return None  # unbounded below: many rays reach -inf, the solver's limit support is one of them, no target
     if opt.finite:
         policy = task.policy_from_logratios(opt.logratios)
     elif opt.limit_support:

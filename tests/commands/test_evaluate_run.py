@@ -294,7 +294,7 @@ def pair_reward(tmp_path_factory) -> Path:
             for i in range(12)]
     (folder / "pairs.jsonl").write_text("".join(json.dumps(r) + "\n" for r in rows))
     assert main(["reward", "task=pairs", f"task.path={folder / 'pairs.jsonl'}", "reward.steps=5",
-                 "train.progress=false", f"hydra.run.dir={folder / 'rm'}"]) == 0
+                 f"hydra.run.dir={folder / 'rm'}"]) == 0
     return folder / "rm" / "reward.pt"
 
 
