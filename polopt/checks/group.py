@@ -40,7 +40,7 @@ from collections.abc import Callable
 import numpy as np
 import torch
 
-from polopt.checks.population import train_groups
+from polopt.checks.population import limit_mass, train_groups
 from polopt.checks.result import CheckResult, Report, guarded
 from polopt.losses.group_objective import GroupObjective, probe_group
 from polopt.losses.pair import check_values, kind_of
@@ -361,17 +361,12 @@ def check_descent(session, *, kind: str, steps: int = 2000, optim: OptimConfig |
 
 
 def _limit_verdict(name: str, summary: dict, facts: dict, *, stop_gradient: bool) -> CheckResult:
-    support = summary.get("limit_support") or []
-    policy, reference = np.asarray(summary["policy"]), np.asarray(summary["reference"])
-    mass = [float(policy[x, s].sum()) for x, s in enumerate(support)]
-    start = [float(reference[x, s].sum()) for x, s in enumerate(support)]
-    facts.update({"limit_mass": mass, "limit_mass_reference": start})
-    moved = ", ".join(f"{a:.3g} -> {b:.4g}" for a, b in zip(start, mass, strict=True))
+    support, start, mass, moved = limit_mass(summary, facts)
     if all(b > a for a, b in zip(start, mass, strict=True)):
         return CheckResult(name, "pass", f"no finite target: the infimum is on the boundary, and training moves mass "
                            f"onto the responses that keep it in the limit {support} ({moved})", facts)
     gained = facts["expected_reward_gain"]
-    kept = [[int(i) for i in np.flatnonzero(row > 1e-6)] for row in policy]
+    kept = [[int(i) for i in np.flatnonzero(row > 1e-6)] for row in np.asarray(summary["policy"])]
     if gained > 0 and stop_gradient:  # saturated terms zero the semi-gradient on more than one face
         return CheckResult(name, "warn", f"the solver's boundary stationary point keeps mass on {support}, training "
                            f"ends on another face keeping {kept} ({moved} on the solver's): saturated terms zero the "

@@ -22,6 +22,18 @@ Tensor = torch.Tensor
 
 STILL_MARGIN = 1e-3  # |beta * weighted mean margin| below this: the policy did not move (Adam amplifies rounding)
 
+
+def limit_mass(summary: dict, facts: dict) -> tuple[list, list[float], list[float], str]:
+    """Where the infimum lies on the boundary: per prompt, the mass on the responses that keep it in the limit
+    (``limit_support``) under the reference and the trained policy, recorded in ``facts``; returns (the
+    support, the reference's mass, the trained mass, "a -> b" per prompt)."""
+    support = summary.get("limit_support") or []
+    policy, reference = np.asarray(summary["policy"]), np.asarray(summary["reference"])
+    mass = [float(policy[x, s].sum()) for x, s in enumerate(support)]
+    start = [float(reference[x, s].sum()) for x, s in enumerate(support)]
+    facts.update({"limit_mass": mass, "limit_mass_reference": start})
+    return support, start, mass, ", ".join(f"{a:.3g} -> {b:.4g}" for a, b in zip(start, mass, strict=True))
+
 def _net_win_weight(pairs) -> Tensor:
     """Per (prompt, response): total weight as winner minus as loser. All ~0 means the
     preferences are balanced and h = 0 is already optimal for any convex f."""
@@ -125,12 +137,7 @@ def check_population(loss: MarginLoss, task, *, beta: float, steps: int = 2000, 
                             "the loss's optimum is slow to reach (try more train.steps) or the exact solver and the "
                             "trainer disagree about f")
     else:
-        support = summary.get("limit_support") or []
-        policy_p, reference_p = np.asarray(summary["policy"]), np.asarray(summary["reference"])
-        mass = [float(policy_p[x, s].sum()) for x, s in enumerate(support)]
-        start = [float(reference_p[x, s].sum()) for x, s in enumerate(support)]
-        facts.update({"limit_mass": mass, "limit_mass_reference": start})
-        moved = ", ".join(f"{a:.3g} -> {b:.4g}" for a, b in zip(start, mass, strict=True))
+        support, start, mass, moved = limit_mass(summary, facts)
         support = support[0] if len(support) == 1 else support  # one prompt: just its responses
         if all(b > a for a, b in zip(start, mass, strict=True)):
             notes.insert(0, f"no finite optimum (as theory says for this loss and task); mass on the responses that "
