@@ -41,6 +41,7 @@ from polopt.data.validate import (
     accounting,
     check_policies,
     fit_to_length,
+    row_rejecter,
     text_problem,
     weight_problems,
 )
@@ -184,9 +185,7 @@ def validate_groups(table: RawTable, tokenizer, *, max_length: int | None = None
     for i, location in enumerate(table.locations):
         raw = {f: v[i] for f, v in table.values.items()}
 
-        def reject(field_name, reason, detail, others=(), *, _i=i, _location=location):
-            out.rejects.append(Reject(_location, table.unit, field_name, reason, detail, table.content[_i],
-                                      list(others)))
+        reject = row_rejecter(out, table, i, location)
 
         row, problems = parse_row(kind, raw, table.present[i], table.text_values, messages)
         if problems:

@@ -134,9 +134,7 @@ def validate(table: RawTable, tokenizer, *, max_length: int | None = None, trunc
     for i, location in enumerate(table.locations):
         raw = {f: v[i] for f, v in table.values.items()}
 
-        def reject(field_name, reason, detail, others=(), *, _i=i, _location=location):
-            out.rejects.append(Reject(_location, table.unit, field_name, reason, detail, table.content[_i],
-                                      list(others)))
+        reject = row_rejecter(out, table, i, location)
 
         problems = _field_problems(raw, table.present[i], table.text_values, messages)
         if problems:
@@ -236,6 +234,15 @@ def _as_float(value) -> float:
         return float(value)
     except OverflowError:  # an integer beyond the float range
         return math.inf
+
+
+def row_rejecter(out: PairData, table: RawTable, i: int, location):
+    """``reject(field, reason, detail, others=())``: records row i of ``table`` (at ``location``) as rejected
+    in ``out``, with its content; the one way pair and group readers reject a row."""
+    def reject(field_name, reason, detail, others=()):
+        out.rejects.append(Reject(location, table.unit, field_name, reason, detail, table.content[i], list(others)))
+
+    return reject
 
 
 def fit_to_length(prompt, responses: list, fields: list[str], tokenizer, max_length: int | None, truncation: str,
