@@ -242,21 +242,26 @@ def write_jsonl(plan: list[tuple], path: Path, names: dict) -> list[dict]:
 
 def write_csv(plan: list[tuple], path: Path, names: dict, weights: bool) -> list[dict]:
     header = [names["prompt"], "note", names["winner"], names["loser"]] + ([names["weight"]] if weights else [])
-    out = io.BytesIO()
-    line = 1
+    return _write_csv_records(plan, path, header, lambda i, row: _pair_record(i, row, weights))
+
+
+def _pair_record(i: int, row, weights: bool) -> list[bytes]:
+    """Row i of a pair file's plan as a CSV record (two malformed records by name)."""
+    if row == "short":
+        return [b"When do you open?", b"x"]
+    if row == "long_record":
+        return [b"When do you open?", b"x", b"At nine.", b"Sometimes.", b"extra", b"more"]
+    fields = [row["prompt"], f"note {i}", row["winner"], row["loser"]] + ([row["weight"]] if weights else [])
+    return [v if isinstance(v, bytes) else str(v).encode() for v in fields]
+
+
+def _write_csv_records(plan: list[tuple], path: Path, header: list, record_of) -> list[dict]:
+    """Write the header and one record per entry (``record_of(i, row)``), return the expected rejects with
+    1-based line numbers."""
+    out, line, expected = io.BytesIO(), 2, []
     out.write(_csv_record(header))
-    line += 1
-    expected = []
     for i, entry in enumerate(plan):
-        row = entry[2] if entry[0] == "good" else entry[4]
-        if row == "short":
-            record = [b"When do you open?", b"x"]
-        elif row == "long_record":
-            record = [b"When do you open?", b"x", b"At nine.", b"Sometimes.", b"extra", b"more"]
-        else:
-            fields = [row["prompt"], f"note {i}", row["winner"], row["loser"]] + ([row["weight"]] if weights else [])
-            record = [v if isinstance(v, bytes) else str(v).encode() for v in fields]
-        data = _csv_record(record)
+        data = _csv_record(record_of(i, entry[2] if entry[0] == "good" else entry[4]))
         if entry[0] == "bad":
             expected.append({"line": line, "field": entry[1], "reason": entry[2]})
         out.write(data)
@@ -390,17 +395,8 @@ def _cell(value) -> str:
 
 
 def _write_kind_csv(plan: list[tuple], path: Path, columns: list[str]) -> list[dict]:
-    out, line, expected = io.BytesIO(), 2, []
-    out.write(_csv_record(columns))
-    for entry in plan:
-        row = entry[2] if entry[0] == "good" else entry[4]
-        data = _csv_record([_cell(row[c]) if c in row else "" for c in columns])
-        if entry[0] == "bad":
-            expected.append({"line": line, "field": entry[1], "reason": entry[2]})
-        out.write(data)
-        line += data.count(b"\n")  # quoted newlines inside a record move the next record down
-    path.write_bytes(out.getvalue())
-    return expected
+    return _write_csv_records(plan, path, columns,
+                              lambda _, row: [_cell(row[c]) if c in row else "" for c in columns])
 
 
 def write_kind(out: Path, kind: str, n: int = 200, seed: int = 0, *, bad: bool = False) -> list[dict]:
