@@ -1,5 +1,7 @@
 """Exact optima of finite tasks against published closed forms and independent solvers."""
 
+from unittest import mock
+
 import numpy as np
 import pytest
 import scipy.optimize
@@ -7,6 +9,7 @@ import scipy.special
 
 from polopt import losses
 from toy_tasks import families
+from toy_tasks.exact import margin as margin_solver
 from toy_tasks.exact.margin import GRADIENT_TOLERANCE, population_loss, smoothed_weights, solve
 from toy_tasks.finite.task import make_task
 
@@ -26,7 +29,9 @@ def random_task(seed, k, kind):
 
 
 def newton(loss, task, beta):
-    return solve(loss, task.win_weights(), beta=beta)  # no task extras: closed forms are not used
+    # no task extras and no per-pair closed form: Newton from h = 0
+    with mock.patch.object(margin_solver, "_per_pair_star", lambda *args: None):
+        return solve(loss, task.win_weights(), beta=beta)
 
 
 @pytest.mark.parametrize("seed", range(3))
@@ -55,6 +60,34 @@ def test_exponential_on_bradley_terry_is_r_over_two_beta():
     task = random_task(7, 6, "bt")
     opt = newton(losses.resolve_margin("exponential"), task, 0.5)
     np.testing.assert_allclose(opt.logratios, centred(task.rewards / 1.0), atol=1e-7)
+
+
+@pytest.mark.parametrize(("name", "scale"), [("logistic", 1.0), ("exponential", 0.5), ("savage", 1.0)])
+def test_per_pair_optima_on_bradley_terry_are_a_closed_form(name, scale):
+    # Tang et al. 2024: per-pair optima x*(p) = logit p (logistic, Savage) and logit(p) / 2 (exponential); on
+    # Bradley–Terry preferences p_ij = sigma(r_i - r_j), so beta (h_i - h_j) = scale (r_i - r_j) puts every pair at
+    # its own optimum at once: the global minimum of L, convex loss or not
+    task = random_task(11, 7, "bt")
+    w = task.win_weights()
+    opt = solve(losses.resolve_margin(name), w, beta=0.4)
+    assert opt.method.startswith("closed form: every response's log-ratio from its per-pair optimum")
+    margins = 0.4 * (opt.logratios[0][:, None] - opt.logratios[0][None, :])  # (K, K)
+    p = w[0] / (w[0] + w[0].T + np.eye(7))
+    off = ~np.eye(7, dtype=bool)
+    np.testing.assert_allclose(margins[off], scale * scipy.special.logit(p[off]), atol=1e-9)
+    by_newton = newton(losses.resolve_margin(name), task, 0.4)
+    np.testing.assert_allclose(opt.logratios, by_newton.logratios, atol=1e-7)
+    assert opt.unique == (name != "savage")  # the Savage loss is not convex: its answer is a certified stationary point
+
+
+@pytest.mark.parametrize("name", ["huber", "truncated_quadratic"])
+def test_an_inconsistent_per_pair_start_still_ends_at_the_newton_optimum(name):
+    # their per-pair optima (2p - 1 and its Huber variant) are not additive on Bradley–Terry preferences:
+    # the candidate fails its residual and Newton starts from it instead of h = 0
+    task = random_task(12, 7, "bt")
+    opt = solve(losses.resolve_margin(name), task.win_weights(), beta=0.4)
+    assert opt.method.startswith("Newton")
+    np.testing.assert_allclose(opt.logratios, newton(losses.resolve_margin(name), task, 0.4).logratios, atol=1e-8)
 
 
 def test_closed_forms_are_used_and_agree_with_newton():

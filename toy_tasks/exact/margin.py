@@ -27,6 +27,7 @@ distances are measured.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -36,9 +37,12 @@ import scipy.sparse.csgraph
 import torch
 
 from polopt.losses.margin import MarginLoss, has_finite_pair_optimum_at_certainty
+from toy_tasks.exact import margin_derivatives
+from toy_tasks.exact.margin_derivatives import Derivatives
 from toy_tasks.exact.newton import minimise
 
 GRADIENT_TOLERANCE = 1e-10  # stop the Newton solve when max |grad L| falls below this
+CLOSED_FORM_TOLERANCE = 1e-9  # a closed-form candidate is the answer where max |grad L| there is below this
 MAX_ITERATIONS = 500  # Newton iterations per prompt: smooth convex problems need tens
 
 
@@ -91,9 +95,12 @@ class Optimum:
 # ------------------------------------------------------------------ population loss
 
 
-def population_loss(loss: MarginLoss, weights: np.ndarray, h: np.ndarray, *, beta: float) -> float:
-    """``sum_{x,i,j} W[x,i,j] f(beta (h_xi - h_xj))`` in float64."""
-    value, _, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h, dtype=torch.float64), beta, order=0)
+def population_loss(loss: MarginLoss, weights: np.ndarray, h: np.ndarray, *, beta: float,
+                    derivatives: Derivatives | None = None) -> float:
+    """``sum_{x,i,j} W[x,i,j] f(beta (h_xi - h_xj))`` in float64 (``derivatives``: f's checked written-out
+    form, :func:`toy_tasks.exact.margin_derivatives.checked_form`, when the caller has it)."""
+    value, _, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h, dtype=torch.float64), beta, order=0,
+                                  derivatives=derivatives)
     return value
 
 
@@ -102,53 +109,60 @@ def smoothed_weights(weights: np.ndarray, smoothing: float) -> np.ndarray:
     return (1.0 - smoothing) * weights + smoothing * np.swapaxes(weights, 1, 2)
 
 
-def _elementwise_derivatives(loss: MarginLoss, x: torch.Tensor, order: int):
-    """f(x), f'(x), f''(x) elementwise by autograd (f is elementwise, so the
-    gradient of sum f is f')."""
-    if order == 0:
-        return loss(x), None, None
-    x = x.detach().requires_grad_(True)
-    value = loss(x)
-    (d1,) = torch.autograd.grad(value.sum(), x, create_graph=order > 1)
-    d2 = None
-    if order > 1:
-        d2 = torch.autograd.grad(d1.sum(), x)[0] if d1.requires_grad else torch.zeros_like(x)
-    return value.detach(), d1.detach(), d2
-
-
-def _loss_grad_hess(loss: MarginLoss, weights: np.ndarray, h: torch.Tensor, beta: float, order: int):
+def _loss_grad_hess(loss: MarginLoss, weights: np.ndarray, h: torch.Tensor, beta: float, order: int,
+                    derivatives: Derivatives | None = None):
     """L, its gradient (X, K) and Hessian (X, K, K) in h. f and its derivatives are taken on the dense
-    grid of pairs (no boolean indexing: it dominated the time at K = 364); pairs of no weight are
-    evaluated at x = 0 and dropped by ``torch.where``, so a non-finite value there never leaks."""
+    grid of pairs (no boolean indexing: it dominated the time at K = 364), written out for a built-in
+    (``derivatives``: :func:`toy_tasks.exact.margin_derivatives.checked_form`; autograd when None). Pairs of
+    no weight are evaluated at x = 0 and dropped: by their weight 0 where f is a checked built-in (finite at
+    every finite x), else by ``torch.where``, so a non-finite value there never leaks."""
     w = torch.as_tensor(weights, dtype=torch.float64)  # (X, K, K)
-    weighted = w > 0
-    d = h[:, :, None] - h[:, None, :]  # (X, K, K): h_i - h_j
-    value_e, d1, d2 = _elementwise_derivatives(loss, torch.where(weighted, beta * d, 0.0), order)
-    value = float(torch.where(weighted, w * value_e, 0.0).sum())
-    if order == 0:
-        return value, None, None
-    g_pair = torch.where(weighted, w * d1 * beta, 0.0)  # (X, K, K): dL/d(h_i - h_j)
-    grad = g_pair.sum(2) - g_pair.sum(1)  # (X, K)
+    x = (h[:, :, None] - h[:, None, :]).mul_(beta)  # (X, K, K): beta (h_i - h_j)
+    if derivatives is None:
+        weighted = w > 0
+        x = torch.where(weighted, x, 0.0)
+        if order == 0:
+            return float(torch.where(weighted, w * loss(x), 0.0).sum()), None, None
+        value_e, d1, d2 = margin_derivatives.autograd_derivatives(loss)(x)
+        value_e, d1, d2 = (torch.where(weighted, t, 0.0) for t in (value_e, d1, d2))
+    elif order == 0:
+        return float(torch.dot(w.reshape(-1), loss(x).reshape(-1))), None, None  # a built-in: finite everywhere
+    else:
+        value_e, d1, d2 = derivatives(x)
+    value = float(torch.dot(w.reshape(-1), value_e.reshape(-1)))
+    g_pair = d1.mul_(w)  # (X, K, K): dL/d(h_i - h_j) / beta
+    grad = (g_pair.sum(2) - g_pair.sum(1)).mul_(beta)  # (X, K)
     hess = None
     if order > 1:
-        a = torch.where(weighted, w * d2 * beta**2, 0.0)
-        a = a + a.transpose(1, 2)  # symmetric coupling of i and j
-        hess = torch.diag_embed(a.sum(2)) - a  # (X, K, K): a weighted graph Laplacian per prompt
+        a = d2.mul_(w)  # (X, K, K): W f''
+        coupling = (a + a.transpose(1, 2)).mul_(-beta**2)  # symmetric coupling of i and j, negated
+        hess = coupling  # (X, K, K): a weighted graph Laplacian per prompt
+        hess.diagonal(dim1=1, dim2=2).sub_(coupling.sum(2))
     return value, grad.numpy(), None if hess is None else hess.numpy()
 
 
 # ------------------------------------------------------------------ graph structure
 
 
-def _components(w: np.ndarray) -> np.ndarray:
+def _complete(adjacency: np.ndarray) -> bool:
+    """Whether every ordered pair of distinct responses is an edge (the population of a task whose every
+    pair is compared): then all responses form one component, weak and strong, with no graph search."""
+    return bool(adjacency.all() or (adjacency | np.eye(len(adjacency), dtype=bool)).all())
+
+
+def weak_components(w: np.ndarray) -> np.ndarray:
     """Weakly connected component label per response of one prompt; -1 where no weight."""
     adjacency = (w + w.T) > 0
+    if len(w) > 1 and _complete(adjacency):
+        return np.zeros(len(w), dtype=np.int32)
     active = adjacency.any(axis=1)
     _, labels = scipy.sparse.csgraph.connected_components(scipy.sparse.csr_matrix(adjacency), directed=False)
     return np.where(active, labels, -1)
 
 
 def _strong_components(w: np.ndarray) -> np.ndarray:
+    if len(w) > 1 and _complete(w > 0):
+        return np.zeros(len(w), dtype=np.int32)
     _, labels = scipy.sparse.csgraph.connected_components(
         scipy.sparse.csr_matrix(w > 0), directed=True, connection="strong")
     return labels
@@ -164,8 +178,8 @@ def _limit_support(w: np.ndarray, strong: np.ndarray, active: np.ndarray) -> lis
 # ------------------------------------------------------------------ solvers
 
 
-def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray,
-            labels: np.ndarray) -> tuple[np.ndarray, float]:
+def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray, labels: np.ndarray,
+            form: Derivatives | None = None) -> tuple[np.ndarray, float]:
     """Minimise one prompt's L(h) with a gauge term 0.5 * (sum of h over each component)^2,
     which fixes the free shift without moving the minimiser of L; damped Newton with the Laplacian
     Hessian (:mod:`toy_tasks.exact.newton`). Returns h and the residual max |grad L(h)|."""
@@ -178,14 +192,15 @@ def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray,
     wx = w[None]
 
     def derivatives(h):
-        value, grad, hess = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=2)
+        value, grad, hess = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=2, derivatives=form)
         return value + 0.5 * h @ gauge @ h, grad[0] + gauge @ h, hess[0] + gauge
 
     def value(h):
-        return _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=0)[0] + 0.5 * h @ gauge @ h
+        return _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=0, derivatives=form)[0] + \
+            0.5 * h @ gauge @ h
 
     h = minimise(derivatives, value, h0, tol=GRADIENT_TOLERANCE, max_iterations=MAX_ITERATIONS).x
-    _, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1)
+    _, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1, derivatives=form)
     return h, float(np.abs(grad).max())
 
 
@@ -238,20 +253,17 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
     """
     weights = np.asarray(weights, dtype=np.float64)
     n_prompts, k, _ = weights.shape
-    labels = [_components(weights[x]) for x in range(n_prompts)]
+    labels = [weak_components(weights[x]) for x in range(n_prompts)]
     all_active = all(np.all(lab >= 0) for lab in labels)
     connected = all(len(np.unique(lab)) == 1 for lab in labels)
 
     needs_strong = not has_finite_pair_optimum_at_certainty(loss)
     if needs_strong:
-        support, strongly_connected = [], True
-        for x in range(n_prompts):
-            active = labels[x] >= 0
-            strong = _strong_components(weights[x])
-            ok = len(np.unique(strong[active])) == len(np.unique(labels[x][active]))
-            strongly_connected &= ok
-            support.append(_limit_support(weights[x], strong, active))
-        if not strongly_connected:
+        strong = [_strong_components(weights[x]) for x in range(n_prompts)]
+        active = [labels[x] >= 0 for x in range(n_prompts)]
+        if not all(len(np.unique(strong[x][active[x]])) == len(np.unique(labels[x][active[x]]))
+                   for x in range(n_prompts)):
+            support = [_limit_support(weights[x], strong[x], active[x]) for x in range(n_prompts)]
             return _infimum(loss, weights, beta, labels, support)
 
     name = loss.name if not loss.params else ""
@@ -264,6 +276,17 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
             return _closed(loss, weights, beta, h, labels,
                            "closed form h = (2 / beta) p(i > mu) (IPO; Azar et al. 2023)")
 
+    form = margin_derivatives.checked_form(loss)
+    star = _per_pair_star(loss, weights, beta) if all_active and connected else None
+    if star is not None:
+        closed = _closed(loss, weights, beta, star, labels, "closed form: every response's log-ratio from its per-pair "
+                         "optimum x*(p) against one response (Tang et al. 2024), certified by its residual", form)
+        if closed.residual <= CLOSED_FORM_TOLERANCE:
+            return _as_stationary_point(closed, loss)
+        if start is None and closed.value < population_loss(loss, weights, np.zeros_like(star), beta=beta,
+                                                            derivatives=form):
+            start = closed.logratios  # a warm start for Newton: it lowers L from h = 0
+
     h = np.zeros((n_prompts, k))
     if name == "hinge":
         for x in range(n_prompts):
@@ -275,7 +298,7 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
     residual = 0.0
     for x in range(n_prompts):
         h0 = np.zeros(k) if start is None else np.asarray(start[x], dtype=np.float64)
-        h[x], r = _newton(loss, weights[x], beta, h0, labels[x])
+        h[x], r = _newton(loss, weights[x], beta, h0, labels[x], form)
         residual = max(residual, r)
     h = np.stack([_centre(h[x], labels[x]) for x in range(n_prompts)])
     notes = []
@@ -285,7 +308,7 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
     if not connected or not all_active:
         notes.append("some responses are not connected by any weighted pair; only differences "
                      "within connected sets are identified")
-    return Optimum(True, h, population_loss(loss, weights, h, beta=beta),
+    return Optimum(True, h, population_loss(loss, weights, h, beta=beta, derivatives=form),
                    f"Newton with line search (Cholesky, Armijo), gradient tolerance {GRADIENT_TOLERANCE:g}",
                    residual, loss.convex is not False, None, labels, notes)
 
@@ -298,11 +321,42 @@ def warm_start(optimum: Optimum, beta: float, new_beta: float) -> np.ndarray | N
     return None if optimum.logratios is None else optimum.logratios * (beta / new_beta)
 
 
-def _closed(loss, weights, beta, h, labels, method) -> Optimum:
+def _closed(loss, weights, beta, h, labels, method, form: Derivatives | None = None) -> Optimum:
     h = np.stack([_centre(h[x], labels[x]) for x in range(len(labels))])
-    _, grad, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h), beta, order=1)
-    return Optimum(True, h, population_loss(loss, weights, h, beta=beta), method,
+    _, grad, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h), beta, order=1, derivatives=form)
+    return Optimum(True, h, population_loss(loss, weights, h, beta=beta, derivatives=form), method,
                    float(np.abs(grad).max()), True, None, labels)
+
+
+def _per_pair_star(loss: MarginLoss, weights: np.ndarray, beta: float) -> np.ndarray | None:
+    """Log-ratios (X, K) putting each response's pair with the response compared most often at that pair's own
+    optimum: ``beta (h_i - h_root) = x*(p_i)``, ``p_i = W[i, root] / (W[i, root] + W[root, i])`` (x*: the member's
+    closed-form per-pair optimum, :meth:`polopt.losses.margin.MarginLoss.pair_optimum`). Where the per-pair
+    optima are consistent (Bradley–Terry preferences and ``x*(p)`` a multiple of logit p: the exponential
+    loss's ``logit(p) / 2`` and the Savage loss's ``logit p``, Tang et al. 2024) every pair sits at its own
+    optimum and this is the optimum of L; elsewhere it is a start. None where a response is never compared
+    with the root, a p is 0 or 1, or the member has no closed-form x*."""
+    if loss.closed_form_optimum is None:
+        return None
+    h = np.zeros(weights.shape[:2])
+    for x, w in enumerate(weights):
+        total = w + w.T  # (K, K): the weight of each unordered pair
+        root = int(np.argmax((total > 0).sum(1)))
+        wins, compared = w[:, root], total[:, root]
+        others = np.arange(len(w)) != root
+        if np.any(compared[others] <= 0) or np.any(wins[others] <= 0) or np.any(wins[others] >= compared[others]):
+            return None
+        h[x, others] = [loss.closed_form_optimum(float(p)) / beta for p in wins[others] / compared[others]]
+    return h if np.all(np.isfinite(h)) else None
+
+
+def _as_stationary_point(optimum: Optimum, loss: MarginLoss) -> Optimum:
+    """A closed-form answer of a loss not known to be convex: certified stationary, not claimed unique."""
+    if loss.convex is not False:
+        return optimum
+    return dataclasses.replace(optimum, unique=False, notes=[
+        f"{loss.name} is not convex: this is a stationary point (its gradient vanishes), "
+        "not proved the global minimum"])
 
 
 def _infimum(loss: MarginLoss, weights: np.ndarray, beta: float, labels, support) -> Optimum:
@@ -323,7 +377,7 @@ def _infimum(loss: MarginLoss, weights: np.ndarray, beta: float, labels, support
             sub = w[np.ix_(members, members)]
             if not sub.any():
                 continue
-            sub_labels = _components(sub)
+            sub_labels = weak_components(sub)
             h_sub, _ = _newton(loss, sub, beta, np.zeros(len(members)), sub_labels)
             value += population_loss(loss, sub[None], h_sub[None], beta=beta)
     return Optimum(False, None, value, "no finite optimum: the win graph is not strongly connected (Ford 1957)",
