@@ -53,7 +53,7 @@ from tqdm.auto import tqdm
 from polopt.losses.margin import MarginLoss
 from polopt.losses.pair import PairLoss, PairScores, as_pair_loss
 from polopt.losses.reduce import per_pair_losses
-from toy_tasks.exact import kinks, scores
+from toy_tasks.exact import convexity, kinks, scores
 from toy_tasks.exact.kinks import KINK_BAND, SLOPE_AGREEMENT  # noqa: F401  (part of this module's interface)
 from toy_tasks.exact.margin import Optimum, population_loss, solve
 from toy_tasks.exact.newton import newton_step
@@ -270,14 +270,22 @@ def divergence_optimum(ratio_link: Callable[[Tensor], Tensor], reference: np.nda
     """pi* of a divergence-constrained objective on Bradley–Terry preferences: ``f'(pi_i / ref_i) =
     r_i / beta + c`` with c such that pi sums to 1 (Wang et al., Beyond Reverse KL, 2023).
 
-    ``ratio_link`` is f' (increasing: f strictly convex), a torch function of u = pi / ref.
+    ``ratio_link`` is f' (increasing: f strictly convex), a torch function of u = pi / ref; where it carries
+    ``log_inverse`` (numpy: y -> log u of f'(u) = y, a built-in's :data:`LOG_INVERSES`), each log-ratio is read
+    from it instead of a bisection.
     ``reference``, ``rewards``: (K,). Returns pi (K,), or None where no c puts every u in
     (e^-60, e^60) (then there is no interior solution to report)."""
     link = lambda t: ratio_link(torch.as_tensor(np.exp(t), dtype=torch.float64)).numpy()  # noqa: E731  f'(e^t)
     low_t, high_t = -60.0, 60.0
     low, high = float(link(np.array([low_t]))[0]), float(link(np.array([high_t]))[0])
 
+    inverse = getattr(ratio_link, "log_inverse", None)  # t of f'(e^t) = y in closed form, where the member has one
+
     def log_ratios(targets: np.ndarray) -> np.ndarray:  # t with f'(e^t) = target, each clipped to the bracket
+        if inverse is not None:
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                exact = np.clip(np.nan_to_num(inverse(targets), nan=high_t), low_t, high_t)
+            return np.where(targets <= low, low_t, np.where(targets >= high, high_t, exact))
         below, above = np.full(len(targets), low_t), np.full(len(targets), high_t)
         for _ in range(BISECTIONS):  # f' is increasing: bisection on every target at once
             middle = 0.5 * (below + above)
@@ -318,9 +326,21 @@ RATIO_LINKS: dict[str, Callable[..., Tensor | None]] = {
 }
 
 
+# log u solving f'(u) = y for the members whose f' inverts in closed form (numpy, elementwise; nan or inf
+# outside f''s range, which the caller clips): reverse KL log u + 1 = y; forward KL -1/u = y; Jensen–Shannon
+# log(2u / (1 + u)) = y, u = e^y / (2 - e^y); alpha (1 - u^-alpha) / alpha = y, u = (1 - alpha y)^(-1/alpha).
+LOG_INVERSES: dict[str, Callable[..., np.ndarray]] = {
+    "divergence_reverse_kl": lambda y: y - 1.0,
+    "divergence_forward_kl": lambda y: -np.log(-y),
+    "divergence_jensen_shannon": lambda y: y - np.log(2.0 - np.exp(y)),
+    "divergence_alpha": lambda y, alpha=0.5: -np.log(1.0 - alpha * y) / alpha,
+}
+
+
 def ratio_link(objective) -> Callable[[Tensor], Tensor] | None:
     """The objective's f' as a function of u = pi / pi_ref, where it belongs to the divergence family:
-    its own ``ratio_link`` attribute, or the link of a registered member; else None."""
+    its own ``ratio_link`` attribute, or the link of a registered member (with its ``log_inverse`` where
+    :data:`LOG_INVERSES` has one); else None."""
     own = getattr(objective, "ratio_link", None)
     if own is not None:
         return own
@@ -330,7 +350,14 @@ def ratio_link(objective) -> Callable[[Tensor], Tensor] | None:
         return None
     if link(torch.ones(1, dtype=torch.float64), **params) is None:
         return None
-    return lambda u: link(u, **params)
+
+    def bound(u: Tensor) -> Tensor:
+        return link(u, **params)
+
+    inverse = LOG_INVERSES.get(fn.__name__)
+    if inverse is not None:
+        bound.log_inverse = lambda y: inverse(y, **params)
+    return bound
 
 
 def _closed_form(objective, weights, reference, rewards, beta, population) -> np.ndarray | None:
@@ -384,12 +411,18 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
     # a large or kinked problem takes a while: a bar appears once the solve has run for SOLVE_BAR_DELAY s
     bar = tqdm(total=n_prompts * starts, desc=f"exact optimum ({k} responses per prompt)", unit="start",
                delay=SOLVE_BAR_DELAY, leave=False)
+    proofs = []
     for x, problem in enumerate(problems):
         first = None if warm is None else log_ref[x] + np.asarray(warm[x], dtype=np.float64)
         runs = []
         for z0 in _starts(log_ref[x], starts, seed + x, first=first):
             runs.append(_solve_prompt(problem, z0))
             bar.update()
+            proof = _proved(problem, runs[0]) if len(runs) == 1 else None
+            if proof is not None:  # the seeded starts would only repeat what the proof shows
+                proofs.append(proof)
+                bar.update(starts - 1)
+                break
         runs = [r for r in runs if r["residual"] <= CERTIFIED] or runs  # a stuck start does not count
         best = min(runs, key=lambda r: r["value"])
         value += best["value"]
@@ -407,13 +440,34 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
     how = "the objective's score form" if isinstance(problems[0].prompt.terms, scores.DenseTerms) else "torch autograd"
     method = (f"Newton in the softmax logits (Cholesky, Armijo line search; derivatives of all pairs at once, "
-              f"{how}, float64), {starts} seeded starts, gradient tolerance {GRADIENT_TOLERANCE:g}")
+              f"{how}, float64), {_starts_used(starts, len(proofs), n_prompts)}, gradient tolerance "
+              f"{GRADIENT_TOLERANCE:g}")
     if residual > CERTIFIED:
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
                      "may not be differentiable there (a max(0, .) term; the kink search did not certify it either), "
                      "or the solve stopped early; reached_optimum is null")
     return Optimum(True, h - h.mean(axis=1, keepdims=True), value, method, residual, unique, None, components, notes,
                    certified=residual <= CERTIFIED)
+
+
+def _proved(problem: Chart, run: dict) -> str | None:
+    """Why the first start's answer ``run`` is the prompt's global and only minimiser
+    (:func:`toy_tasks.exact.convexity.certificate`), where it is finite and certified; else None."""
+    if not run["finite"] or run["residual"] > CERTIFIED or not hasattr(problem, "prompt"):
+        return None
+    return convexity.certificate(problem.prompt, torch.log_softmax(torch.as_tensor(run["z"]), 0).numpy(),
+                                 tol=CERTIFIED)
+
+
+def _starts_used(starts: int, proved: int, n_prompts: int) -> str:
+    """How many starts the solve took, in words: one where convexity proves the answer, else the seeded ones."""
+    if proved == n_prompts:
+        return ("one start per prompt, the answer global and unique by convexity in the log-probabilities "
+                "(a logistic link of affine scores; KKT on sum pi <= 1)")
+    if proved:
+        return (f"{starts} seeded starts ({proved} of {n_prompts} prompts proved global and unique by convexity "
+                "from one)")
+    return f"{starts} seeded starts"
 
 
 def warm_start(optimum: Optimum) -> np.ndarray | None:

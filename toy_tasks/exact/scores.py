@@ -57,14 +57,21 @@ class Link:
     def __call__(self, x: Tensor) -> Tensor:
         if self.clip is not None:
             x = x.clamp(-self.clip, self.clip)
-        return self.scale * (logistic_from_sigmoid(x, torch.sigmoid(x)) if self.fn is None else self.fn(x))
+        if self.fn is not None:
+            return self.fn(x) if self.scale == 1.0 else self.scale * self.fn(x)  # fn's output may be x itself
+        return self._scaled(logistic_from_sigmoid(x, torch.sigmoid(x)))
 
     def derivatives(self, x: Tensor) -> tuple[Tensor, Tensor, Tensor]:
         """The link and its first and second derivatives at x, elementwise."""
         if self.fn is None and self.clip is None:
             high, low = torch.sigmoid(x), torch.sigmoid(-x)  # sigma(x) and 1 - sigma(x), each to full precision
-            return self.scale * logistic_from_sigmoid(x, high), -self.scale * low, self.scale * (high * low)
+            return self._scaled(logistic_from_sigmoid(x, high)), self._scaled(low.neg()), self._scaled(high.mul_(low))
         return elementwise_derivatives(self, x)
+
+    def _scaled(self, values: Tensor) -> Tensor:
+        """``scale * values`` in place (``values``: a tensor of this class's own making; no pass over a (K, K)
+        grid where the scale is 1)."""
+        return values if self.scale == 1.0 else values.mul_(self.scale)
 
 
 def logistic_from_sigmoid(x: Tensor, high: Tensor) -> Tensor:
@@ -78,13 +85,18 @@ def logistic_from_sigmoid(x: Tensor, high: Tensor) -> Tensor:
 class ScoreForm:
     """``ell(a, b) = link(winner_score(a) - loser_score(b)) + winner_term(a)`` (see the module docstring).
     ``smooth``: every piece is twice differentiable (no kink such as DPO-Positive's max(0, -h_w), so no kink
-    search is needed where Newton is slow); False where unknown (a margin loss's link)."""
+    search is needed where Newton is slow); False where unknown (a margin loss's link). ``affine``: both
+    scores are one affine function of the log-probability up to a constant (``s_w(a) = c a + b_w``, ``s_l(a) =
+    c a + b_l``, c and the b's may read the response's reference log-probability and length) and so is the
+    winner term: with the logistic link the population loss is then convex in the log-probabilities
+    (:func:`toy_tasks.exact.convexity.certificate`)."""
 
     link: Link
     winner_score: Score
     loser_score: Score
     winner_term: Score | None = None
     smooth: bool = True
+    affine: bool = False
 
     def pair_values(self, pair: PairScores) -> Tensor:
         """ell of every pair of ``pair``, (B,)."""
@@ -131,12 +143,12 @@ def _chi(beta: float, clip: float | None = None) -> ScoreForm:
 
 
 def _simpo(beta: float, gamma: float = 0.5) -> ScoreForm:
-    return ScoreForm(Link(), lambda a, ref, n: beta * (a / n) - gamma, lambda a, ref, n: beta * (a / n))
+    return ScoreForm(Link(), lambda a, ref, n: beta * (a / n) - gamma, lambda a, ref, n: beta * (a / n), affine=True)
 
 
 def _rdpo(beta: float, alpha: float = 0.05) -> ScoreForm:
     score = lambda a, ref, n: beta * (a - ref) + alpha * n  # noqa: E731  alpha (n_w - n_l) split between the two
-    return ScoreForm(Link(), score, score)
+    return ScoreForm(Link(), score, score, affine=True)
 
 
 def _anchored(beta: float, penalty: float = 50.0) -> ScoreForm:
@@ -157,15 +169,15 @@ def _plus_nll(beta: float, base: str = "reference_free_logistic", weight: float 
     if inner is None or inner.winner_term is not None:
         return None
     nll = (lambda a, ref, n: -weight * (a / n)) if per_token else (lambda a, ref, n: -weight * a)
-    return replace(inner, winner_term=nll)
+    return replace(inner, winner_term=nll)  # an affine term: an affine base stays affine
 
 
-def _same(score: Score) -> ScoreForm:
-    return ScoreForm(Link(), score, score)
+def _same(score: Score, affine: bool = False) -> ScoreForm:
+    return ScoreForm(Link(), score, score, affine=affine)
 
 
 FORMS: dict[str, Callable[..., ScoreForm | None]] = {
-    "divergence_reverse_kl": lambda beta: _same(_logratio(beta)),
+    "divergence_reverse_kl": lambda beta: _same(_logratio(beta), affine=True),
     "divergence_forward_kl": lambda beta: _same(_of_logratio(lambda h: -beta * _exp_tail(-h))),
     "divergence_jensen_shannon": lambda beta: _same(_of_logratio(lambda h: beta * F.logsigmoid(h))),
     "divergence_alpha": _alpha,
@@ -173,7 +185,7 @@ FORMS: dict[str, Callable[..., ScoreForm | None]] = {
     "length_normalised_free": _simpo,
     "length_regularised": _rdpo,
     "winner_anchored": _anchored,
-    "reference_free_logistic": lambda beta: _same(lambda a, ref, n: beta * a),
+    "reference_free_logistic": lambda beta: _same(lambda a, ref, n: beta * a, affine=True),
     "plus_winner_nll": _plus_nll,
     "odds_ratio_with_nll": _orpo,
 }

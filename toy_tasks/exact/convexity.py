@@ -1,0 +1,64 @@
+"""A proof that a pair objective's stationary point is its global and only minimiser, from its shape.
+
+Where an objective's score form (:class:`toy_tasks.exact.scores.ScoreForm`) has the logistic link and
+``affine`` scores, ``ell(a, b) = -log sigma(c_w a - c_l b + b_0) + t a`` on the winner's and loser's
+log-probabilities a, b with one slope per response (``c_k``, e.g. ``beta`` for DPO, Rafailov et al. 2023,
+and R-DPO, Park et al. 2024; ``beta / n_k`` for SimPO, Meng et al. 2024), the population loss
+``f(l) = sum_{i != j} W_ij ell(l_i, l_j)`` is convex in the log-probabilities l: ``-log sigma`` is convex and
+its argument affine (Boyd and Vandenberghe, Convex Optimization, 2004, section 3.2.2). Then:
+
+- **global.** The set ``C = {l : sum_k e^{l_k} <= 1}`` is convex and holds every policy (its boundary). A
+  point of the boundary is a minimiser of f over C when the KKT conditions hold (ibid., section 5.5.3;
+  Slater's condition holds): ``grad f(l) + mu e^l = 0`` with ``mu >= 0``. A stationary point in the softmax
+  logits has ``G = pi sum_k G_k`` (:mod:`toy_tasks.exact.prompt`), which is that condition with
+  ``mu = -sum_k G_k``: so where ``sum_k G_k <= 0`` it minimises f over C, hence over the simplex.
+- **unique.** If two policies l1 != l2 both minimise, f is constant on the segment between them (convexity),
+  so ``v = l2 - l1`` has ``v^T H(l1) v = sum_{ij} W_ij sigma sigma' (c_i v_i - c_j v_j)^2 = 0``: on a connected
+  win graph with every ``sigma(x) sigma(-x) > 0``, ``c_k v_k`` is one constant, so v is a multiple of ``1 / c``,
+  of one sign where every ``c_k`` has one sign; then ``sum e^{l2} != sum e^{l1}`` unless v = 0, and both cannot
+  be policies.
+
+:func:`certificate` checks each premise on the prompt and the answer (the link, the declared affine scores,
+their slopes read at the answer: one sign, equal for winner and loser, no curvature; the connected graph;
+``sum G <= tol``) and says which failed, so the solver runs its seeded starts wherever one does not hold.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+
+from toy_tasks.exact import scores
+from toy_tasks.exact.margin import weak_components
+
+F64 = torch.float64
+SLOPE_AGREEMENT = 1e-12  # the winner's and the loser's slopes agree to this (relative)
+
+
+def certificate(prompt, log_pi: np.ndarray, *, tol: float) -> str | None:
+    """Why the stationary point at log-probabilities ``log_pi`` (K,) of ``prompt`` (a
+    :class:`toy_tasks.exact.prompt.PromptLoss`) is the global and only minimiser (the module docstring), or
+    None where a premise fails. ``tol``: the largest ``sum_k G_k`` taken as <= 0 (the solver's certified
+    residual: G's sum is a rounding error for an objective invariant to a shift of every l)."""
+    terms = prompt.terms
+    if not isinstance(terms, scores.DenseTerms):
+        return None
+    form = terms.form
+    if not form.affine or form.link.fn is not None or form.link.clip is not None:
+        return None
+    if np.any(weak_components(prompt.w.numpy()) != 0):
+        return None  # not one connected win graph (or a response with no pair)
+    log_pi = torch.as_tensor(log_pi, dtype=F64)
+    (_, winner_slope, winner_curve), (_, loser_slope, loser_curve), (_, _, term_curve) = terms._scores(log_pi, 2)
+    slope_sign = torch.sign(winner_slope)
+    if not (bool(torch.all(slope_sign == slope_sign[0])) and float(slope_sign[0]) != 0.0):
+        return None
+    if not bool(torch.all(torch.abs(winner_slope - loser_slope) <= SLOPE_AGREEMENT * winner_slope.abs())):
+        return None
+    if any(bool(torch.any(curve != 0)) for curve in (winner_curve, loser_curve, term_curve)):
+        return None
+    total = float(prompt.logpi_gradient(log_pi).sum())
+    if total > tol:
+        return None
+    return (f"global and unique by convexity in the log-probabilities (logistic link of affine scores, "
+            f"connected win graph, KKT multiplier -sum G = {-total:.3g} >= 0)")
