@@ -141,7 +141,7 @@ class _Population:
             return self.gauged_derivatives(z)[2]
         zt = torch.as_tensor(z, dtype=torch.float64)
         jac = torch.autograd.functional.jacobian(lambda v: torch.autograd.grad(self.loss(v), v, create_graph=True)[0],
-                                                 zt)
+                                                 zt, vectorize=True)  # every row in one batched pass (torch.vmap)
         return jac.numpy() + np.kron(np.eye(self.shape[0]), np.ones((self.shape[1],) * 2))
 
     def gauged_value(self, z: np.ndarray) -> float:
@@ -217,10 +217,19 @@ def _minimum(objective, groups, reference, lengths, beta, starts, seed) -> tuple
     return best_runs, notes, unique
 
 
+def _solve_or_least_squares(jacobian: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """``J^-1 r`` by an LU factorisation (torch.linalg.solve_ex), or the least-squares solution (numpy's lstsq,
+    an SVD several times slower) where J is singular or the solve is not finite."""
+    solution, info = torch.linalg.solve_ex(torch.as_tensor(jacobian), torch.as_tensor(r))
+    if int(info) == 0 and bool(torch.isfinite(solution).all()):
+        return solution.numpy()
+    return np.linalg.lstsq(jacobian, r, rcond=None)[0]
+
+
 def newton_on_field(problem, z: np.ndarray) -> dict:
     """Damped Newton on a field (``problem.grad``: the semi-gradient here, the expected update of
     ``method=group`` in :mod:`toy_tasks.methods.group_target`; plus the gauge) from z: each step solves
-    with the Jacobian ``problem.hess`` (least squares where singular) and is halved until the residual's
+    with the Jacobian ``problem.hess`` (LU; least squares where singular) and is halved until the residual's
     norm falls. Returns z, the value and the residual max |field|."""
     def residual(v):
         return problem.grad(v) + problem._gauge(v)
@@ -229,7 +238,7 @@ def newton_on_field(problem, z: np.ndarray) -> dict:
     for _ in range(NEWTON_STEPS):
         if np.abs(problem.grad(z)).max() <= GRADIENT_TOLERANCE:
             break
-        step = -np.linalg.lstsq(problem.hess(z), r, rcond=None)[0]
+        step = -_solve_or_least_squares(problem.hess(z), r)
         t = 1.0
         while t > 1e-8:
             trial = residual(z + t * step)
