@@ -182,7 +182,7 @@ def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray, labels
             form: Derivatives | None = None) -> tuple[np.ndarray, float]:
     """Minimise one prompt's L(h) with a gauge term 0.5 * (sum of h over each component)^2,
     which fixes the free shift without moving the minimiser of L; damped Newton with the Laplacian
-    Hessian (:mod:`toy_tasks.exact.newton`). Returns h and the residual max |grad L(h)|."""
+    Hessian (:mod:`toy_tasks.exact.newton`). Returns h, the residual max |grad L(h)| and L(h)."""
     groups = [labels == c for c in np.unique(labels[labels >= 0])]
     gauge = np.zeros((len(labels), len(labels)))
     for g in groups:
@@ -200,8 +200,8 @@ def _newton(loss: MarginLoss, w: np.ndarray, beta: float, h0: np.ndarray, labels
             0.5 * h @ gauge @ h
 
     h = minimise(derivatives, value, h0, tol=GRADIENT_TOLERANCE, max_iterations=MAX_ITERATIONS).x
-    _, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1, derivatives=form)
-    return h, float(np.abs(grad).max())
+    value, grad, _ = _loss_grad_hess(loss, wx, torch.as_tensor(h[None]), beta, order=1, derivatives=form)
+    return h, float(np.abs(grad).max()), value
 
 
 def _hinge_lp(w: np.ndarray, beta: float, labels: np.ndarray) -> np.ndarray:
@@ -283,9 +283,9 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
                          "optimum x*(p) against one response (Tang et al. 2024), certified by its residual", form)
         if closed.residual <= CLOSED_FORM_TOLERANCE:
             return _as_stationary_point(closed, loss)
-        if start is None and closed.value < population_loss(loss, weights, np.zeros_like(star), beta=beta,
-                                                            derivatives=form):
-            start = closed.logratios  # a warm start for Newton: it lowers L from h = 0
+        if start is None and (loss.convex or closed.value < population_loss(loss, weights, np.zeros_like(star),
+                                                                            beta=beta, derivatives=form)):
+            start = closed.logratios  # Newton's start: a convex loss's answer does not depend on it; else it lowers L
 
     h = np.zeros((n_prompts, k))
     if name == "hinge":
@@ -295,11 +295,11 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
         return Optimum(True, h, population_loss(loss, weights, h, beta=beta), "linear programme (scipy linprog, HiGHS)",
                        None, False, None, labels, ["the hinge optimum may be non-unique: compare loss values"])
 
-    residual = 0.0
+    residual, value = 0.0, 0.0
     for x in range(n_prompts):
         h0 = np.zeros(k) if start is None else np.asarray(start[x], dtype=np.float64)
-        h[x], r = _newton(loss, weights[x], beta, h0, labels[x], form)
-        residual = max(residual, r)
+        h[x], r, v = _newton(loss, weights[x], beta, h0, labels[x], form)
+        residual, value = max(residual, r), value + v  # L reads differences only: centring below leaves it
     h = np.stack([_centre(h[x], labels[x]) for x in range(n_prompts)])
     notes = []
     if loss.convex is False:
@@ -308,7 +308,7 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
     if not connected or not all_active:
         notes.append("some responses are not connected by any weighted pair; only differences "
                      "within connected sets are identified")
-    return Optimum(True, h, population_loss(loss, weights, h, beta=beta, derivatives=form),
+    return Optimum(True, h, value,
                    f"Newton with line search (Cholesky, Armijo), gradient tolerance {GRADIENT_TOLERANCE:g}",
                    residual, loss.convex is not False, None, labels, notes)
 
@@ -323,9 +323,8 @@ def warm_start(optimum: Optimum, beta: float, new_beta: float) -> np.ndarray | N
 
 def _closed(loss, weights, beta, h, labels, method, form: Derivatives | None = None) -> Optimum:
     h = np.stack([_centre(h[x], labels[x]) for x in range(len(labels))])
-    _, grad, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h), beta, order=1, derivatives=form)
-    return Optimum(True, h, population_loss(loss, weights, h, beta=beta, derivatives=form), method,
-                   float(np.abs(grad).max()), True, None, labels)
+    value, grad, _ = _loss_grad_hess(loss, weights, torch.as_tensor(h), beta, order=1, derivatives=form)
+    return Optimum(True, h, value, method, float(np.abs(grad).max()), True, None, labels)
 
 
 def _per_pair_star(loss: MarginLoss, weights: np.ndarray, beta: float) -> np.ndarray | None:
@@ -378,7 +377,7 @@ def _infimum(loss: MarginLoss, weights: np.ndarray, beta: float, labels, support
             if not sub.any():
                 continue
             sub_labels = weak_components(sub)
-            h_sub, _ = _newton(loss, sub, beta, np.zeros(len(members)), sub_labels)
+            h_sub, _, _ = _newton(loss, sub, beta, np.zeros(len(members)), sub_labels)
             value += population_loss(loss, sub[None], h_sub[None], beta=beta)
     return Optimum(False, None, value, "no finite optimum: the win graph is not strongly connected (Ford 1957)",
                    None, False, support, labels,
