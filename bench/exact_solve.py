@@ -125,7 +125,8 @@ def solve_group(name: str, finite) -> dict:
     objective = losses.resolve(name)
     kind = "unpaired" if objective.reads_feedback("unpaired") else "pairs"
     groups = population_groups(finite, kind, 1 if kind == "unpaired" else 2)
-    fast, fast_s, fast_cpu = timed(lambda: solve_groups(objective, groups, finite.reference, finite.lengths, beta=0.5))
+    fast, fast_s, fast_cpu = timed(lambda: solve_groups(objective, groups, finite.reference, finite.lengths, beta=0.5,
+                                                        rewards=finite.rewards))
     return {"name": name, "fast": fast, "fast_s": fast_s, "fast_cpu": fast_cpu, "landed": None, "landed_s": None,
             "landed_cpu": None, "feedback": kind}
 

@@ -309,3 +309,25 @@ def test_a_non_convex_member_reports_its_starts_and_the_global_minimum():
     assert 0.5 * np.abs(independent - np.asarray(summary["local_minimum"][0])).sum() <= 1e-6
     assert summary["local_minimum_value"] == pytest.approx(local.fun, abs=1e-9)
     assert summary["local_minimum_value"] > best + 0.01 and "local minimum" in summary["likely_fix"]
+
+
+def test_listwise_dpo_takes_its_closed_form_only_where_its_residual_certifies_it():
+    # Rafailov et al. 2023, appendix A.3: on rankings drawn from the Plackett–Luce model of r, listwise DPO is
+    # minimised by pi_ref e^{r / beta}; the solver tries it first and keeps it only where its gradient vanishes
+    from toy_tasks.exact.groups import solve_groups
+    from toy_tasks.finite.feedback import population_groups
+
+    objective = registry.as_group_objective(registry.resolve("ranking_likelihood"))
+    task, r = random_task(13, 5)
+    groups = population_groups(task, "ranking", 3)
+    closed = solve_groups(objective, groups, task.reference, task.lengths, beta=BETA, rewards=r[None])
+    newton = solve_groups(objective, groups, task.reference, task.lengths, beta=BETA)
+    assert "closed form" in closed.method and "closed form" not in newton.method
+    assert closed.certified and closed.unique and newton.certified and newton.unique
+    policy = lambda o: task.policy_from_logratios(o.logratios)[0]  # noqa: E731
+    assert 0.5 * np.abs(policy(closed) - policy(newton)).sum() <= 1e-8
+    # labels flipped at rate 0.25: the clean rewards' form is not this population's optimum, so Newton answers
+    flipped, clean = random_task(14, 5, flip_rate=0.25)
+    pairs = population_groups(flipped, "pairs", 2)
+    noisy = solve_groups(objective, pairs, flipped.reference, flipped.lengths, beta=BETA, rewards=clean[None])
+    assert "closed form" not in noisy.method and noisy.certified

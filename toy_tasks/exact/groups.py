@@ -42,6 +42,10 @@ SEPARABLE_PROBE = 16  # groups whose losses are compared when one group's log-pr
 NEWTON_STEPS = 200  # damped Newton steps of a stationary-point solve from one start
 NONCONVEX_STARTS = 16  # seeded starts in all once the first starts reach different values (a non-convex objective)
 VANISHED = 1e-9  # a stationary point giving a response less probability than this lies on the simplex's boundary
+CLOSED_FORM_TOLERANCE = 1e-9  # a closed form is the answer where max |dL/dz| there is at most this
+# closed-form targets on the task's rewards r (X, K), by the objective's function name: listwise DPO's Plackett–Luce
+# likelihood on rankings (pairs: G = 2) drawn from the Plackett–Luce model of r is maximised by beta h = r + c
+CLOSED_FORMS = {"ranking_likelihood": lambda rewards, beta: rewards / beta}
 STATIONARY = "stationary point"
 MINIMISER = "minimiser"
 
@@ -276,15 +280,43 @@ def _stationary(objective, groups, reference, lengths, beta, starts, seed) -> tu
     return best, notes, unique
 
 
+def _closed_form(objective: GroupObjective, groups, log_ref: np.ndarray, lengths: np.ndarray, beta: float,
+                 rewards: np.ndarray | None) -> Optimum | None:
+    """The objective's closed-form target (:data:`CLOSED_FORMS`) where it has one and the task's rewards are
+    given, if its residual max |dL/dz| is at most :data:`CLOSED_FORM_TOLERANCE` on these groups (so it is a
+    stationary point of this population, not only of the model the form assumes); else None."""
+    form = CLOSED_FORMS.get(getattr(objective.fn, "__name__", ""))
+    if form is None or rewards is None or objective.params or objective.stop_gradient:
+        return None
+    h = np.asarray(form(np.asarray(rewards, dtype=np.float64), beta))  # (X, K)
+    value, residual = 0.0, 0.0
+    for x in range(log_ref.shape[0]):
+        problem = _Population(objective, _prompt_groups(groups, x), log_ref[x:x + 1], lengths[x:x + 1], beta)
+        z = log_ref[x] + h[x]
+        value, residual = value + problem.value(z), max(residual, float(np.abs(problem.grad(z)).max()))
+    if residual > CLOSED_FORM_TOLERANCE:
+        return None
+    k = log_ref.shape[1]
+    return Optimum(True, h - h.mean(axis=1, keepdims=True), value,
+                   f"{MINIMISER}: closed form pi_ref e^(r / beta) (the Plackett–Luce likelihood is maximised where "
+                   "its model of the rankings agrees with the task's; Rafailov et al. 2023, appendix A.3), "
+                   "certified by its residual", residual, True, None, [np.zeros(k, dtype=int)] * log_ref.shape[0])
+
+
 def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengths: np.ndarray, *, beta: float,
-                 starts: int = STARTS, seed: int = 0) -> Optimum:
+                 starts: int = STARTS, seed: int = 0, rewards: np.ndarray | None = None) -> Optimum:
     """The exact target of a group objective on weighted groups (see the module docstring): the
     minimiser, or the stationary point of an objective with a stop-gradient. ``reference``,
-    ``lengths``: (X, K). The Optimum's ``logratios`` are log pi* - log pi_ref, centred per prompt; its
-    ``method`` starts with "minimiser" or "stationary point"."""
+    ``lengths``: (X, K). ``rewards`` (X, K): the task's Bradley–Terry / Plackett–Luce rewards, for a closed
+    form (:data:`CLOSED_FORMS`), tried first and kept where its residual certifies it. The Optimum's
+    ``logratios`` are log pi* - log pi_ref, centred per prompt; its ``method`` starts with "minimiser" or
+    "stationary point"."""
     reference, lengths = (np.asarray(a, dtype=np.float64) for a in (reference, lengths))
     log_ref, x_count, k = np.log(reference), *reference.shape
     components = [np.zeros(k, dtype=int)] * x_count
+    closed = _closed_form(objective, groups, log_ref, lengths, beta, rewards)
+    if closed is not None:
+        return closed
     if objective.stop_gradient:
         best, notes, unique = _stationary(objective, groups, reference, lengths, beta, starts, seed)
         z = best["z"].reshape(x_count, k)

@@ -181,6 +181,6 @@ def prepare(task, loss, *, feedback: str = "pairs", group_size: int = 2, beta: f
                          f"it reads the feedback of: {reads}")
     population = population_groups(task, feedback, group_size)
     trained = population if mode == "exact" else sample_groups(population, n_pairs, seed)
-    optimum = solve_groups(objective, trained, task.reference, task.lengths, beta=beta)
+    optimum = solve_groups(objective, trained, task.reference, task.lengths, beta=beta, rewards=task.rewards)
     return GroupSession(task, objective, beta, mode, feedback, trained, group_set(task, trained, weighted=True),
                         optimum)
