@@ -101,3 +101,56 @@ def test_no_proof_where_the_kkt_multiplier_is_negative():
     log_pi = torch.log_softmax(torch.as_tensor(run["z"]), 0).numpy()
     assert float(prompt.logpi_gradient(log_pi).sum()) > 1e-3
     assert convexity.certificate(prompt, log_pi, tol=1e-7) is None
+
+
+# ------------------------------------------------------------------ group objectives
+
+GROUP_CONVEX = [("ranking_likelihood", {}, "ranking", 3), ("calibrated_logistic", {}, "pairs", 2),
+                ("score_cross_entropy", {"temperature": 0.8}, "scored", 3)]
+
+
+def group_solve(name, params, kind, g, seed):
+    from polopt.losses import registry
+    from toy_tasks.exact.groups import solve_groups
+    from toy_tasks.finite.feedback import population_groups
+
+    task = random_task(seed)
+    objective = registry.as_group_objective(registry.resolve(name, **params))
+    return task, solve_groups(objective, population_groups(task, kind, g), task.reference, task.lengths, beta=0.7)
+
+
+@pytest.mark.parametrize(("name", "params", "kind", "g"), GROUP_CONVEX, ids=[c[0] for c in GROUP_CONVEX])
+def test_a_convex_group_objective_takes_one_start_and_agrees_with_the_seeded_starts(name, params, kind, g,
+                                                                                    monkeypatch):
+    task, proved = group_solve(name, params, kind, g, seed=7)
+    assert proved.certified and proved.unique and "by convexity" in proved.method
+    monkeypatch.setattr(convexity, "group_certificate", lambda *args, **kwargs: None)
+    _, started = group_solve(name, params, kind, g, seed=7)
+    assert started.unique and "3 seeded starts" in started.method
+    policy = task.policy_from_logratios
+    assert 0.5 * np.abs(policy(proved.logratios) - policy(started.logratios)).sum(axis=1).max() <= 1e-8
+
+
+@pytest.mark.parametrize(("name", "params", "kind", "g"), GROUP_CONVEX, ids=[c[0] for c in GROUP_CONVEX])
+def test_the_declared_group_objectives_are_convex_in_the_log_probabilities(name, params, kind, g):
+    # the premise, by torch's Hessian of the objective's own population loss at random log-probabilities
+    from polopt.losses import registry
+    from toy_tasks.exact.groups import _Population, _prompt_groups
+    from toy_tasks.finite.feedback import population_groups
+
+    task = random_task(8)
+    objective = registry.as_group_objective(registry.resolve(name, **params))
+    groups = _prompt_groups(population_groups(task, kind, g), 0)
+    problem = _Population(objective, groups, np.log(task.reference[:1]), task.lengths[:1], 0.7)
+    rng = np.random.default_rng(1)
+    for _ in range(4):
+        point = torch.as_tensor(np.log(task.reference[:1]) + 2.0 * rng.standard_normal(task.reference[:1].shape))
+        hessian = torch.autograd.functional.hessian(lambda lp: problem.loss_at(lp.reshape(1, -1)), point.reshape(-1))
+        eigenvalues = torch.linalg.eigvalsh(hessian)
+        assert float(eigenvalues.min()) >= -1e-10 * max(1.0, float(eigenvalues.abs().max()))
+
+
+def test_no_group_proof_for_an_objective_not_declared_convex():
+    # DiscoPOP (Lu et al. 2024) blends a logistic and an exponential loss through a sigmoid gate: not convex
+    _, optimum = group_solve("logistic_exponential_blend", {}, "pairs", 2, seed=9)
+    assert "by convexity" not in optimum.method

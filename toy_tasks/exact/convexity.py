@@ -62,3 +62,48 @@ def certificate(prompt, log_pi: np.ndarray, *, tol: float) -> str | None:
         return None
     return (f"global and unique by convexity in the log-probabilities (logistic link of affine scores, "
             f"connected win graph, KKT multiplier -sum G = {-total:.3g} >= 0)")
+
+
+# ------------------------------------------------------------------ group objectives
+
+def _convex_group_members() -> dict:
+    """The built-in group objectives convex in the log-probabilities, with why (each a convex function of
+    affine functions of l, since h = l - log pi_ref): listwise DPO, ``sum_k logsumexp_{j >= k}(beta h_j) - beta
+    h_k`` (Rafailov et al. 2023, appendix A.3); Cal-DPO, ``softplus(h_l - h_w)`` plus two squares (Xiao et al.
+    2024), averaged over a ranking's pairs; InfoNCA, ``logsumexp(beta h) - sum_i q_i beta h_i`` with q the
+    scores' softmax, q >= 0 (Chen et al. 2024)."""
+    from polopt.losses import group, group_pairwise
+
+    return {group.ranking_likelihood: "a log-sum-exp of affine terms minus an affine term",
+            group_pairwise.calibrated_logistic: "a softplus of an affine margin plus two squares",
+            group.score_cross_entropy: "a log-sum-exp minus a non-negative combination of affine terms"}
+
+
+NULL_EIGENVALUE = 1e-10  # an eigenvalue of the Hessian below this times the largest counts as zero
+
+
+def group_certificate(problem, z: np.ndarray, *, tol: float) -> str | None:
+    """Why the stationary point at logits ``z`` (K,) of one prompt's group population ``problem`` (a separable
+    :class:`toy_tasks.exact.groups._Population`) is its global and only minimiser, or None where a premise
+    fails. The argument of the module docstring with the objective's convexity declared
+    (:func:`_convex_group_members`) and uniqueness read from the Hessian H in the log-probabilities at the
+    answer: positive definite, or positive semi-definite with one null direction whose vector has one sign
+    (two minimisers would differ by a direction of zero curvature at either, and both cannot sum to one)."""
+    objective = problem.objective
+    why = _convex_group_members().get(objective.fn)
+    if why is None or objective.stop_gradient or not problem.separable or problem.shape[0] != 1:
+        return None
+    log_pi = torch.log_softmax(torch.as_tensor(z, dtype=F64).reshape(problem.shape), dim=1)  # (1, K)
+    _, gradient, hessian = problem.logpi_hessian(log_pi)
+    total = float(gradient.sum())
+    if total > tol:
+        return None
+    eigenvalues, vectors = torch.linalg.eigh(0.5 * (hessian + hessian.T))
+    largest = float(eigenvalues.abs().max())
+    if largest == 0.0 or float(eigenvalues[0]) < -NULL_EIGENVALUE * largest:
+        return None  # not positive semi-definite here
+    null = int((eigenvalues <= NULL_EIGENVALUE * largest).sum())
+    if null > 1 or (null == 1 and not bool(torch.all(vectors[:, 0] > 0) or torch.all(vectors[:, 0] < 0))):
+        return None
+    return (f"global and unique by convexity in the log-probabilities ({why}; Hessian positive definite"
+            f"{'' if null == 0 else ' but for one one-signed direction'}; KKT multiplier -sum G = {-total:.3g} >= 0)")

@@ -33,6 +33,7 @@ import scipy.special
 import torch
 
 from polopt.losses.group_objective import GroupObjective, GroupScores
+from toy_tasks.exact import convexity
 from toy_tasks.exact.margin import Optimum
 from toy_tasks.exact.pairs import CERTIFIED, GRADIENT_TOLERANCE, STARTS, _agree, _solve_prompt, _starts
 from toy_tasks.exact.prompt import softmax_chain_rule
@@ -204,13 +205,29 @@ def _runs_from(problem: _Population, inits: list[np.ndarray]) -> list[dict]:
     return [_interior_if_nothing_vanished(_solve_prompt(problem, z0, kink_search=False), k) for z0 in inits]
 
 
-def _minimum(objective, groups, reference, lengths, beta, starts, seed) -> tuple[list[dict], list[str], bool]:
-    """Per prompt: the pair solver's runs from seeded starts; (the best run per prompt, notes, unique)."""
-    best_runs, notes, unique = [], [], True
+def _proved(problem: _Population, run: dict) -> str | None:
+    """Why the first start's answer is the prompt's global and only minimiser
+    (:func:`toy_tasks.exact.convexity.group_certificate`), where it is finite and certified; else None."""
+    if not run["finite"] or run["residual"] > CERTIFIED:
+        return None
+    return convexity.group_certificate(problem, run["z"], tol=CERTIFIED)
+
+
+def _minimum(objective, groups, reference, lengths, beta, starts, seed) -> tuple[list[dict], list[str], bool, int]:
+    """Per prompt: the pair solver's runs from seeded starts, or from the first alone where convexity proves its
+    answer; (the best run per prompt, notes, unique, how many prompts were proved)."""
+    best_runs, notes, unique, proofs = [], [], True, []
     log_ref = np.log(reference)
     for x in range(reference.shape[0]):
         problem = _Population(objective, _prompt_groups(groups, x), log_ref[x:x + 1], lengths[x:x + 1], beta)
-        runs = _runs_from(problem, _starts(log_ref[x], starts, seed + x))
+        inits = _starts(log_ref[x], starts, seed + x)
+        runs = _runs_from(problem, inits[:1])
+        proof = _proved(problem, runs[0])
+        if proof is not None:  # the seeded starts would only repeat what the proof shows
+            best_runs.append(runs[0])
+            proofs.append(proof)
+            continue
+        runs += _runs_from(problem, inits[1:])
         values = [r["value"] for r in runs]
         if max(values) - min(values) > 1e-9 * (1.0 + abs(min(values))):  # not convex: search wider before choosing
             runs += _runs_from(problem, _starts(log_ref[x], NONCONVEX_STARTS, seed + 1000 + x)[1:])
@@ -218,7 +235,7 @@ def _minimum(objective, groups, reference, lengths, beta, starts, seed) -> tuple
         best = min(runs, key=lambda r: r["value"])
         unique &= _agree(runs, best, notes, x)
         best_runs.append(best)
-    return best_runs, notes, unique
+    return best_runs, notes, unique, len(proofs)
 
 
 def _solve_or_least_squares(jacobian: np.ndarray, r: np.ndarray) -> np.ndarray:
@@ -327,13 +344,16 @@ def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengt
         method = (f"{STATIONARY}: the gradient with the detached statistic held fixed is zero (damped Newton on it, "
                   f"{starts} seeded starts, torch autograd float64); training stops here, not at a minimiser")
     else:
-        runs, notes, unique = _minimum(objective, groups, reference, lengths, beta, starts, seed)
+        runs, notes, unique, proved = _minimum(objective, groups, reference, lengths, beta, starts, seed)
         z = np.stack([r["z"] for r in runs])
         finite = all(r["finite"] for r in runs)
         support = [r["support"] if not r["finite"] else list(range(k)) for r in runs]
         residual, value = max(r["residual"] for r in runs), sum(r["value"] for r in runs)
+        how = (f"{starts} seeded starts" if not proved else "one start per prompt, the answer global and unique by "
+               "convexity in the log-probabilities" if proved == x_count else
+               f"{starts} seeded starts ({proved} of {x_count} prompts proved global and unique by convexity from one)")
         method = (f"{MINIMISER}: Newton in the softmax logits per prompt (the pair solver's, Cholesky steps with an "
-                  f"Armijo line search, torch autograd float64), {starts} seeded starts")
+                  f"Armijo line search, torch autograd float64), {how}")
     if not finite:
         where = (f"{STATIONARY} on the simplex's boundary: the semi-gradient vanishes only as some probabilities fall "
                  "to 0 (saturated terms)" if objective.stop_gradient else
