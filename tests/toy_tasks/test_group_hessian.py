@@ -59,3 +59,27 @@ def test_a_statistic_of_the_batch_keeps_the_jacobian():
 
     objective = GroupObjective("centred", centred, {}, "user-supplied", reads=("ranks",))
     assert not population(objective, "pairs").separable
+
+
+PAIRWISE = [n for n in SMOOTH if losses.resolve(n).pairwise]
+
+
+@pytest.mark.parametrize("feedback", ["pairs", "ranking"])
+@pytest.mark.parametrize("name", PAIRWISE)
+def test_a_pairwise_objective_on_groups_of_two_is_its_pair_loss_in_the_pair_solver(name, feedback):
+    # ranked_pairs at G = 2 is the pair loss itself; the pair solver's chart over W (the groups' weights by
+    # winner and loser) must give the group population's value, gradient and Hessian, here torch's own
+    from toy_tasks.exact.groups import _pair_prompt, _prompt_groups
+
+    task = random_task(4, bradley_terry=True)
+    objective = losses.resolve(name)
+    groups = _prompt_groups(population_groups(task, feedback, 2), 0)
+    log_ref = np.log(task.reference[:1])
+    chart = _pair_prompt(objective, groups, log_ref, task.lengths[:1], 0.7)
+    problem = _Population(objective, groups, log_ref, task.lengths[:1], 0.7)
+    assert chart is not None
+    z = log_ref[0] + np.random.default_rng(0).normal(0.0, 0.5, log_ref.shape[1])
+    value, grad, hess = chart.gauged_derivatives(z)
+    assert value == pytest.approx(problem.gauged_value(z), rel=1e-12)
+    np.testing.assert_allclose(grad, problem.fun(z)[1], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(hess, jacobian_hessian(problem, z), rtol=0, atol=1e-10)

@@ -12,7 +12,7 @@ import user_objectives as user
 from helpers_exact import random_task
 
 from polopt import losses
-from polopt.losses.pair import PairScores
+from polopt.losses.pair import PairLoss, PairScores
 from toy_tasks.exact import scores
 from toy_tasks.exact.pairs import margin_objective
 from toy_tasks.exact.prompt import PairTerms, PromptLoss
@@ -24,6 +24,10 @@ OBJECTIVES |= {"savage (as a pair loss)": margin_objective(losses.resolve_margin
                "plus_winner_nll on length_regularised": losses.resolve("plus_winner_nll", base="length_regularised",
                                                                        per_token=True, weight=0.3),
                "winner_anchored penalty 2": losses.resolve("winner_anchored", penalty=2.0)}
+# the pairwise group objectives that are links of the margin, as the group solver hands them to the pair solver
+OBJECTIVES |= {f"{name} (group, on pairs)": PairLoss(name, fn.fn, dict(fn.params), fn.source)
+               for name, fn in ((n, losses.resolve(n, **p)) for n, p in (
+                   ("flip_corrected_logistic", {"flip_rate": 0.2}), ("logistic_exponential_blend", {})))}
 
 
 def prompt_loss(objective, seed: int = 3) -> PromptLoss:

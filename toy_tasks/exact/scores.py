@@ -172,6 +172,19 @@ def _plus_nll(beta: float, base: str = "reference_free_logistic", weight: float 
     return replace(inner, winner_term=nll)  # an affine term: an affine base stays affine
 
 
+def _flip_corrected(beta: float, flip_rate: float = 0.1) -> ScoreForm:
+    def link(x: Tensor) -> Tensor:  # [(1 - eps) l(x) - eps l(-x)] / (1 - 2 eps), l = -log sigma
+        return ((1.0 - flip_rate) * F.softplus(-x) - flip_rate * F.softplus(x)) / (1.0 - 2.0 * flip_rate)
+    return ScoreForm(Link(fn=link), _logratio(beta), _logratio(beta))
+
+
+def _blend(beta: float, tau: float = 0.05) -> ScoreForm:
+    def link(x: Tensor) -> Tensor:  # (1 - sigma(x / tau)) l(x) + sigma(x / tau) e^-x (with its linear tail)
+        gate = torch.sigmoid(x / tau)
+        return (1.0 - gate) * F.softplus(-x) + gate * pair_losses._exp_tail(-x)
+    return ScoreForm(Link(fn=link), _logratio(beta), _logratio(beta))
+
+
 def _same(score: Score, affine: bool = False) -> ScoreForm:
     return ScoreForm(Link(), score, score, affine=affine)
 
@@ -188,6 +201,9 @@ FORMS: dict[str, Callable[..., ScoreForm | None]] = {
     "reference_free_logistic": lambda beta: _same(lambda a, ref, n: beta * a, affine=True),
     "plus_winner_nll": _plus_nll,
     "odds_ratio_with_nll": _orpo,
+    # pairwise group objectives (polopt.losses.group_pairwise) that are links of the margin beta (h_w - h_l)
+    "flip_corrected_logistic": _flip_corrected,
+    "logistic_exponential_blend": _blend,
 }
 
 
@@ -203,7 +219,8 @@ def form_of(objective, beta: float) -> ScoreForm | None:
     if fn is pair_losses._margin_pair_loss:
         return ScoreForm(Link(fn=params["loss"]), _logratio(beta), _logratio(beta), smooth=False)
     build = FORMS.get(getattr(fn, "__name__", ""))
-    if build is None or getattr(fn, "__module__", "") not in ("polopt.losses.pair", "polopt.losses.registry"):
+    if build is None or getattr(fn, "__module__", "") not in ("polopt.losses.pair", "polopt.losses.registry",
+                                                              "polopt.losses.group_pairwise"):
         return None
     try:
         return build(beta, **params)
