@@ -154,6 +154,22 @@ def test_hinge_lp_matches_a_subgradient_free_reference(seed):
     assert opt.value == pytest.approx(ref.fun, abs=1e-9)
 
 
+@pytest.mark.parametrize("seed", range(3))
+def test_the_hinge_is_solved_by_its_dual_circulation_and_certified_by_the_gap(seed):
+    # LP duality (Bertsimas and Tsitsiklis 1997, ch. 4): the circulation's value equals the primal optimum;
+    # the primal, solved as written (margin._hinge_lp), gives the same value, and the gap is reported
+    task = random_task(10 + seed, 7, "P")
+    w = task.win_weights()[0]
+    loss = losses.resolve_margin("hinge")
+    h, gap = margin_solver._hinge_by_circulation(loss, w, 0.8, margin_solver.weak_components(w))
+    primal = margin_solver._hinge_lp(w, 0.8, margin_solver.weak_components(w))
+    assert gap is not None and gap <= 1e-9
+    assert population_loss(loss, w[None], h[None], beta=0.8) == pytest.approx(
+        population_loss(loss, w[None], primal[None], beta=0.8), abs=1e-9)
+    opt = solve(loss, w[None], beta=0.8)
+    assert "maximum circulation" in opt.method and any("duality gap" in note for note in opt.notes)
+
+
 def test_logistic_on_deterministic_preferences_has_no_finite_optimum():
     # Azar et al. 2023, section 4.2; Ford 1957: the win graph of a total order is not strongly connected
     task = families.deterministic(n_responses=4)

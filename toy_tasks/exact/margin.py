@@ -7,7 +7,8 @@ the optimal value, how it was found and how exact it is:
 - closed forms where published: logistic on Bradley–Terry, h = r / beta
   (Rafailov et al. 2023); squared on any P, h_i = (2 / beta) sum_j mu_j P[i,j]
   (Azar et al. 2023). Only for population weights without label smoothing.
-- hinge: a linear programme (scipy.optimize.linprog, HiGHS); optima can be
+- hinge: a linear programme (scipy.optimize.linprog, HiGHS; solved as its dual, a maximum circulation,
+  certified by the duality gap); optima can be
   non-unique, so compare loss values.
 - any other loss: a damped Newton solve (:mod:`toy_tasks.exact.newton`: Cholesky
   steps, Armijo line search) with exact gradient and Hessian from torch in float64,
@@ -42,6 +43,7 @@ from toy_tasks.exact.margin_derivatives import Derivatives
 from toy_tasks.exact.newton import minimise
 
 GRADIENT_TOLERANCE = 1e-10  # stop the Newton solve when max |grad L| falls below this
+LP_GAP = 1e-9  # the hinge's dual answers where its duality gap is at most this (relative to L)
 CLOSED_FORM_TOLERANCE = 1e-9  # a closed-form candidate is the answer where max |grad L| there is below this
 MAX_ITERATIONS = 500  # Newton iterations per prompt: smooth convex problems need tens
 
@@ -226,6 +228,38 @@ def _hinge_lp(w: np.ndarray, beta: float, labels: np.ndarray) -> np.ndarray:
     return result.x[:k]
 
 
+def _hinge_by_circulation(loss: MarginLoss, w: np.ndarray, beta: float,
+                          labels: np.ndarray) -> tuple[np.ndarray, float | None]:
+    """The hinge minimiser of one prompt from the dual of :func:`_hinge_lp`, and its duality gap.
+
+    Dualising ``s_e >= 1 - beta (h_i - h_j)`` with multipliers lambda_e gives a maximum circulation on the win
+    graph: ``max sum_e lambda_e`` subject to ``0 <= lambda_e <= W_e`` and as much flow into every response as out
+    (h is free); its K equality rows replace the primal's E inequality rows and E slacks (E = K (K - 1) on a
+    population: 3.7 million at K = 1,365), and HiGHS solves it in about a second at K = 364 where the primal
+    took minutes. The rows' multipliers y give ``beta h = -y`` (LP duality: Bertsimas and Tsitsiklis,
+    Introduction to Linear Optimization, 1997, chapter 4). Certificate: the duality gap ``L(h) - sum_e
+    lambda_e`` with lambda clipped into its bounds (any feasible circulation bounds L from below). Where HiGHS
+    fails or the gap exceeds :data:`LP_GAP` (relative), the primal answers and the gap is None."""
+    pairs = np.argwhere(w > 0)  # (E, 2)
+    e, k = len(pairs), len(w)
+    rows = np.concatenate([pairs[:, 0], pairs[:, 1]])
+    incidence = scipy.sparse.csr_matrix((np.concatenate([np.ones(e), -np.ones(e)]),
+                                         (rows, np.concatenate([np.arange(e), np.arange(e)]))), shape=(k, e))
+    capacity = w[pairs[:, 0], pairs[:, 1]]  # (E,)
+    tight = {"primal_feasibility_tolerance": 1e-10, "dual_feasibility_tolerance": 1e-10}
+    result = scipy.optimize.linprog(-np.ones(e), A_eq=incidence, b_eq=np.zeros(k),
+                                    bounds=np.stack([np.zeros(e), capacity], axis=1), method="highs-ds", options=tight)
+    if result.status == 0:
+        flow = np.clip(result.x, 0.0, capacity)  # (E,)
+        balanced = float(np.abs(incidence @ flow).max(initial=0.0)) <= LP_GAP * float(capacity.max(initial=1.0))
+        h = -np.asarray(result.eqlin.marginals) / beta
+        value = population_loss(loss, w[None], h[None], beta=beta)
+        gap = value - float(flow.sum())
+        if balanced and abs(gap) <= LP_GAP * (1.0 + abs(value)):
+            return h, abs(gap)
+    return _hinge_lp(w, beta, labels), None
+
+
 def _centre(h: np.ndarray, labels: np.ndarray) -> np.ndarray:
     h = h.copy()
     for c in np.unique(labels):
@@ -289,11 +323,18 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
 
     h = np.zeros((n_prompts, k))
     if name == "hinge":
+        gaps = []
         for x in range(n_prompts):
-            h[x] = _hinge_lp(weights[x], beta, labels[x])
+            h[x], gap = _hinge_by_circulation(loss, weights[x], beta, labels[x])
+            gaps.append(gap)
         h = np.stack([_centre(h[x], labels[x]) for x in range(n_prompts)])
-        return Optimum(True, h, population_loss(loss, weights, h, beta=beta), "linear programme (scipy linprog, HiGHS)",
-                       None, False, None, labels, ["the hinge optimum may be non-unique: compare loss values"])
+        how = ("its dual, a maximum circulation" if all(g is not None for g in gaps) else
+               "the primal where the dual's gap was not closed")
+        notes = ["the hinge optimum may be non-unique: compare loss values"]
+        if all(g is not None for g in gaps):
+            notes.append(f"certified by the duality gap: L(h) minus the circulation's value is at most {max(gaps):.2g}")
+        return Optimum(True, h, population_loss(loss, weights, h, beta=beta),
+                       f"linear programme (scipy linprog, HiGHS; {how})", None, False, None, labels, notes)
 
     residual, value = 0.0, 0.0
     for x in range(n_prompts):
