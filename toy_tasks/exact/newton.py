@@ -35,6 +35,7 @@ FIRST_RADIUS = 5.0  # the first cap on a step's Euclidean length
 SHRINK, GROW = 0.25, 0.75  # rho below SHRINK halves the radius; above GROW, with the cap binding, it triples
 PATIENCE = 25  # iterations without halving the best gradient so far mean Newton circles a kink
 POLISH = 3  # full Newton steps past the tolerance, each kept only if it shrinks the gradient
+POLISHED = 1e-3  # no polishing below this fraction of the tolerance: the answers already agree far below it
 RESOLVED = 1e-13  # a promised decrease below this times (1 + |f|) is not resolved by float64: step blind
 
 
@@ -109,7 +110,8 @@ def minimise(derivatives: Derivatives, value: Callable[[np.ndarray], float], x0:
              ) -> NewtonResult:
     """Minimise f from ``x0`` (see the module docstring); ``derivatives(x) -> (f, g, H)``, ``value(x) -> f``.
     Once ``max |g| <= tol``, up to ``polish`` more full Newton steps are kept while each shrinks the
-    gradient, so that two solvers meeting the same tolerance from different sides agree far below it.
+    gradient and it is above ``POLISHED tol``, so that two solvers meeting the same tolerance from different
+    sides agree far below it.
     ``stalled``: stop once this many iterations since the smallest gradient last halved had their step cut
     (Newton circling a kink is cut about every other step; a smooth slow stretch seldom)."""
     x = np.array(x0, dtype=np.float64)
@@ -123,7 +125,7 @@ def minimise(derivatives: Derivatives, value: Callable[[np.ndarray], float], x0:
         if blind is not None and not size < blind[2]:
             return NewtonResult(blind[0], blind[1], blind[2], iteration)
         if size <= tol:
-            if polished == polish or size == 0.0:
+            if polished == polish or size <= POLISHED * tol:
                 return NewtonResult(x, f, size, iteration)
             polished += 1
             blind, x = (x, f, size), x + newton_step(h, g)
