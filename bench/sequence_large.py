@@ -17,8 +17,9 @@ By default a run stops at its first logged step within ``--target`` (the figure 
 seconds to get there); ``--full`` runs the configured ``train.steps`` and reports the last TV.
 ``--starts N`` solves a pair objective's optimum from N seeded starts per prompt instead of the
 solver's own number (``toy_tasks.exact.pairs.STARTS``; the first start is the reference): each start
-is a full Newton solve of the 1,365 responses, minutes on a busy machine, and with N = 1 the optimum
-is still certified by its gradient residual but not checked for uniqueness across starts.
+is a full Newton solve of the 1,365 responses, seconds to minutes, and with N = 1 the optimum
+is still certified by its gradient residual but not checked for uniqueness across starts (an objective
+whose convexity proof holds, toy_tasks/exact/convexity.py, takes one start whatever N, and is proved unique).
 Runs go one at a time, on the run's own thread count (one, the sequence task's choice).
 Figures only; nothing passes or fails.
 """

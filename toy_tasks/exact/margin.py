@@ -228,6 +228,20 @@ def _hinge_lp(w: np.ndarray, beta: float, labels: np.ndarray) -> np.ndarray:
     return result.x[:k]
 
 
+def _hinge(loss: MarginLoss, weights: np.ndarray, beta: float, labels: list[np.ndarray]) -> Optimum:
+    """The hinge's optimum, prompt by prompt (:func:`_hinge_by_circulation`), centred per component."""
+    solved = [_hinge_by_circulation(loss, weights[x], beta, labels[x]) for x in range(len(weights))]
+    h = np.stack([_centre(h_x, labels[x]) for x, (h_x, _) in enumerate(solved)])
+    gaps = [gap for _, gap in solved]
+    closed = all(g is not None for g in gaps)
+    how = "its dual, a maximum circulation" if closed else "the primal where the dual's gap was not closed"
+    notes = ["the hinge optimum may be non-unique: compare loss values"]
+    if closed:
+        notes.append(f"certified by the duality gap: L(h) minus the circulation's value is at most {max(gaps):.2g}")
+    return Optimum(True, h, population_loss(loss, weights, h, beta=beta),
+                   f"linear programme (scipy linprog, HiGHS; {how})", None, False, None, labels, notes)
+
+
 def _hinge_by_circulation(loss: MarginLoss, w: np.ndarray, beta: float,
                           labels: np.ndarray) -> tuple[np.ndarray, float | None]:
     """The hinge minimiser of one prompt from the dual of :func:`_hinge_lp`, and its duality gap.
@@ -321,20 +335,9 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
                                                                             beta=beta, derivatives=form)):
             start = closed.logratios  # Newton's start: a convex loss's answer does not depend on it; else it lowers L
 
-    h = np.zeros((n_prompts, k))
     if name == "hinge":
-        gaps = []
-        for x in range(n_prompts):
-            h[x], gap = _hinge_by_circulation(loss, weights[x], beta, labels[x])
-            gaps.append(gap)
-        h = np.stack([_centre(h[x], labels[x]) for x in range(n_prompts)])
-        how = ("its dual, a maximum circulation" if all(g is not None for g in gaps) else
-               "the primal where the dual's gap was not closed")
-        notes = ["the hinge optimum may be non-unique: compare loss values"]
-        if all(g is not None for g in gaps):
-            notes.append(f"certified by the duality gap: L(h) minus the circulation's value is at most {max(gaps):.2g}")
-        return Optimum(True, h, population_loss(loss, weights, h, beta=beta),
-                       f"linear programme (scipy linprog, HiGHS; {how})", None, False, None, labels, notes)
+        return _hinge(loss, weights, beta, labels)
+    h = np.zeros((n_prompts, k))
 
     residual, value = 0.0, 0.0
     for x in range(n_prompts):
