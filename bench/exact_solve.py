@@ -1,6 +1,6 @@
 """Bench: the exact solvers beside the landed ones, in the same run, on the enumerable sequence task.
 
-    PYTHONPATH=. python bench/exact_solve.py [--threads 1] [--blas-threads N] [--objectives NAME ...]
+    PYTHONPATH=. python bench/exact_solve.py [--threads 1] [--blas-threads N] [--repeats N] [--objectives NAME ...]
                                              [--margin NAME ...] [--large] [--landed-large] [--only-large]
                                              [--large-objectives NAME ...] [--groups NAME ...]
 
@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import statistics
 import sys
 import time
 
@@ -57,6 +58,8 @@ def parse(argv: list[str]) -> argparse.Namespace:
     parser.add_argument("--groups", nargs="*", default=None,
                         help="group objectives (default: every built-in that the 364-response task admits)")
     parser.add_argument("--skip-kink", action="store_true")
+    parser.add_argument("--repeats", type=int, default=1,
+                        help="on the 364-response task, each solve this many times and its medians")
     parser.add_argument("--only-large", action="store_true", help="skip the 364-response task")
     return parser.parse_args(argv)
 
@@ -91,7 +94,14 @@ def distance(task, a, b) -> str:
     return f"{0.5 * np.abs(p - q).sum(axis=1).max():.1e}"
 
 
-def solve_both(name: str, finite, *, margin: bool, landed: bool = True) -> dict:
+def median_timed(fn, repeats: int):
+    """``fn()`` run ``repeats`` times: its last answer and the median wall and CPU seconds (a solve of
+    hundredths of a second varies by more than its own length between single runs)."""
+    runs = [timed(fn) for _ in range(max(1, repeats))]
+    return runs[-1][0], statistics.median(r[1] for r in runs), statistics.median(r[2] for r in runs)
+
+
+def solve_both(name: str, finite, *, margin: bool, landed: bool = True, repeats: int = 1) -> dict:
     """Both solvers' answers and seconds for one objective on ``finite`` (a FiniteTask)."""
     from polopt import losses
     from toy_tasks.exact import margin as fast_margin
@@ -109,8 +119,8 @@ def solve_both(name: str, finite, *, margin: bool, landed: bool = True) -> dict:
         run = lambda module: lambda: module.solve_pairs(  # noqa: E731
             objective, weights, finite.reference, finite.lengths, beta=0.5, rewards=finite.rewards, population=True)
         fast_module, landed_module = fast_pairs, landed_pairs
-    slow, slow_s, slow_cpu = timed(run(landed_module)) if landed else (None, None, None)
-    fast, fast_s, fast_cpu = timed(run(fast_module))
+    slow, slow_s, slow_cpu = median_timed(run(landed_module), repeats) if landed else (None, None, None)
+    fast, fast_s, fast_cpu = median_timed(run(fast_module), repeats)
     return {"name": name, "fast": fast, "fast_s": fast_s, "fast_cpu": fast_cpu, "landed": slow, "landed_s": slow_s,
             "landed_cpu": slow_cpu}
 
@@ -204,9 +214,9 @@ def main(argv: list[str] | None = None) -> int:
         table = ["| objective | landed s | fast s | ratio | landed CPU s | fast CPU s | CPU ratio | fast certificate |",
                  "|---|---|---|---|---|---|---|---|"]
         for name in args.objectives if args.objectives is not None else losses.builtin_names("pair"):
-            print_row(solve_both(name, finite, margin=False), finite, table)
+            print_row(solve_both(name, finite, margin=False, repeats=args.repeats), finite, table)
         for name in args.margin:
-            print_row(solve_both(name, finite, margin=True), finite, table)
+            print_row(solve_both(name, finite, margin=True, repeats=args.repeats), finite, table)
         for name in args.groups if args.groups is not None else default_groups():
             print_row(solve_group(name, finite), finite, table)
         if not args.skip_kink:

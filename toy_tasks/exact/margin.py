@@ -29,6 +29,7 @@ distances are measured.
 from __future__ import annotations
 
 import dataclasses
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -228,6 +229,20 @@ def _hinge_lp(w: np.ndarray, beta: float, labels: np.ndarray) -> np.ndarray:
     return result.x[:k]
 
 
+@functools.lru_cache(maxsize=64)
+def _finite_at_certainty_of(fn, params: tuple) -> bool:
+    return has_finite_pair_optimum_at_certainty(MarginLoss("", fn, dict(params)))
+
+
+def _finite_at_certainty(loss: MarginLoss) -> bool:
+    """:func:`polopt.losses.margin.has_finite_pair_optimum_at_certainty` (a numerical search where the member has
+    no closed form: milliseconds), once per function and parameters."""
+    try:
+        return _finite_at_certainty_of(loss.fn, tuple(sorted(loss.params.items())))
+    except TypeError:  # a parameter that cannot be a key
+        return has_finite_pair_optimum_at_certainty(loss)
+
+
 def _hinge(loss: MarginLoss, weights: np.ndarray, beta: float, labels: list[np.ndarray]) -> Optimum:
     """The hinge's optimum, prompt by prompt (:func:`_hinge_by_circulation`), centred per component."""
     solved = [_hinge_by_circulation(loss, weights[x], beta, labels[x]) for x in range(len(weights))]
@@ -305,7 +320,7 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
     all_active = all(np.all(lab >= 0) for lab in labels)
     connected = all(len(np.unique(lab)) == 1 for lab in labels)
 
-    needs_strong = not has_finite_pair_optimum_at_certainty(loss)
+    needs_strong = not _finite_at_certainty(loss)
     if needs_strong:
         strong = [_strong_components(weights[x]) for x in range(n_prompts)]
         active = [labels[x] >= 0 for x in range(n_prompts)]
