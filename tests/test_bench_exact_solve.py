@@ -29,3 +29,11 @@ def test_the_bench_prints_both_solvers_side_by_side(capsys):
     assert re.search(r"^\| winner_anchored \| [\d.]+ \| [\d.]+ \| [\d.]+x \| [\d.]+ \| [\d.]+ \| [\d.]+x \| "
                      r"finite, unique, certified; residual", out, re.M)  # the markdown table for the docs
     assert re.search(r"winner_anchored, fast\s*: 6 of 6 starts certified", out)
+
+
+def test_repeats_time_each_solve_several_times_and_keep_the_answer(monkeypatch):
+    calls = []
+    monkeypatch.setattr(exact_solve, "timed", lambda fn: (calls.append(1), (fn(), len(calls), 0.5 * len(calls)))[1])
+    answer, wall, cpu = exact_solve.median_timed(lambda: "optimum", 3)
+    assert answer == "optimum" and len(calls) == 3
+    assert (wall, cpu) == (2, 1.0)  # the medians of (1, 2, 3) and (0.5, 1.0, 1.5)
