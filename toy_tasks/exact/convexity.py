@@ -13,14 +13,15 @@ its argument affine (Boyd and Vandenberghe, Convex Optimization, 2004, section 3
   logits has ``G = pi sum_k G_k`` (:mod:`toy_tasks.exact.prompt`), which is that condition with
   ``mu = -sum_k G_k``: so where ``sum_k G_k <= 0`` it minimises f over C, hence over the simplex.
 - **unique.** If two policies l1 != l2 both minimise, f is constant on the segment between them (convexity),
-  so ``v = l2 - l1`` has ``v^T H(l1) v = sum_{ij} W_ij sigma sigma' (c_i v_i - c_j v_j)^2 = 0``: on a connected
+  so ``v = l2 - l1`` has ``v^T H(l1) v = sum_{ij} W_ij sigma(x) sigma(-x) (c_i v_i - c_j v_j)^2 = 0``: on a connected
   win graph with every ``sigma(x) sigma(-x) > 0``, ``c_k v_k`` is one constant, so v is a multiple of ``1 / c``,
   of one sign where every ``c_k`` has one sign; then ``sum e^{l2} != sum e^{l1}`` unless v = 0, and both cannot
   be policies.
 
 :func:`certificate` checks each premise on the prompt and the answer (the link, the declared affine scores,
 their slopes read at the answer: one sign, equal for winner and loser, no curvature; the connected graph;
-``sum G <= tol``) and says which failed, so the solver runs its seeded starts wherever one does not hold.
+``sum G <= tol``) and returns None where one fails, so the solver runs its seeded starts there. A segment of
+minimisers would have zero curvature along it at every inner point, hence at l1 by continuity of H.
 """
 
 from __future__ import annotations
