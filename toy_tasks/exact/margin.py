@@ -339,6 +339,8 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
             return _closed(loss, weights, beta, h, labels,
                            "closed form h = (2 / beta) p(i > mu) (IPO; Azar et al. 2023)")
 
+    if name == "hinge":
+        return _hinge(loss, weights, beta, labels)
     form = margin_derivatives.checked_form(loss)
     star = _per_pair_star(loss, weights, beta) if all_active and connected else None
     if star is not None:
@@ -350,8 +352,6 @@ def solve(loss: MarginLoss, weights: np.ndarray, *, beta: float, rewards: np.nda
                                                                             beta=beta, derivatives=form)):
             start = closed.logratios  # Newton's start: a convex loss's answer does not depend on it; else it lowers L
 
-    if name == "hinge":
-        return _hinge(loss, weights, beta, labels)
     h = np.zeros((n_prompts, k))
 
     residual, value = 0.0, 0.0
