@@ -36,7 +36,7 @@ from polopt.losses.group_objective import GroupObjective, GroupScores
 from polopt.losses.pair import PairLoss
 from toy_tasks.exact import convexity
 from toy_tasks.exact.margin import Optimum
-from toy_tasks.exact.pairs import CERTIFIED, GRADIENT_TOLERANCE, STARTS, _agree, _solve_prompt, _starts
+from toy_tasks.exact.pairs import CERTIFIED, GRADIENT_TOLERANCE, STARTS, _agree, _solve_prompt, _starts, starts_used
 from toy_tasks.exact.prompt import PromptLoss, softmax_chain_rule
 
 Tensor = torch.Tensor
@@ -395,11 +395,8 @@ def solve_groups(objective: GroupObjective, groups, reference: np.ndarray, lengt
         finite = all(r["finite"] for r in runs)
         support = [r["support"] if not r["finite"] else list(range(k)) for r in runs]
         residual, value = max(r["residual"] for r in runs), sum(r["value"] for r in runs)
-        how = (f"{starts} seeded starts" if not proved else "one start per prompt, the answer global and unique by "
-               "convexity in the log-probabilities" if proved == x_count else
-               f"{starts} seeded starts ({proved} of {x_count} prompts proved global and unique by convexity from one)")
         method = (f"{MINIMISER}: Newton in the softmax logits per prompt (the pair solver's, Cholesky steps with an "
-                  f"Armijo line search, torch autograd float64), {how}")
+                  f"Armijo line search, torch autograd float64), {starts_used(starts, proved, x_count)}")
     if not finite:
         where = (f"{STATIONARY} on the simplex's boundary: the semi-gradient vanishes only as some probabilities fall "
                  "to 0 (saturated terms)" if objective.stop_gradient else

@@ -69,6 +69,7 @@ KINK_STALL = 6  # the first Newton solve hands over to the kink search once this
 #                 its smallest gradient last halved (circling a kink); a smooth answer found there is polished
 PATIENCE = 25  # iterations without halving the smallest gradient before a solve gives up
 BISECTIONS = 64  # halvings of the bracket [-60, 60] of a closed form's log-ratio: below float64's spacing
+AFFINE_PREMISE = " (a logistic link of affine scores; KKT on sum pi <= 1)"  # why convexity holds, in a method
 STARTS = 3  # seeded starts per prompt: the reference, then random logits
 SOLVE_BAR_DELAY = 3.0  # seconds before the solve shows a progress bar (quick solves stay silent)
 SAME_POLICY_TV = 1e-6  # starts whose policies differ by more than this (TV) make the optimum non-unique
@@ -440,7 +441,7 @@ def solve_pairs(objective: PairLoss, weights: np.ndarray, reference: np.ndarray,
     h = z - scipy.special.logsumexp(z, axis=1, keepdims=True) - log_ref
     how = "the objective's score form" if isinstance(problems[0].prompt.terms, scores.DenseTerms) else "torch autograd"
     method = (f"Newton in the softmax logits (Cholesky, Armijo line search; derivatives of all pairs at once, "
-              f"{how}, float64), {_starts_used(starts, len(proofs), n_prompts)}, gradient tolerance "
+              f"{how}, float64), {starts_used(starts, len(proofs), n_prompts, AFFINE_PREMISE)}, gradient tolerance "
               f"{GRADIENT_TOLERANCE:g}")
     if residual > CERTIFIED:
         notes.append(f"not certified: the gradient at the answer is {residual:.3g} (> {CERTIFIED:g}); the objective "
@@ -459,11 +460,11 @@ def _proved(problem: Chart, run: dict) -> str | None:
                                  tol=CERTIFIED)
 
 
-def _starts_used(starts: int, proved: int, n_prompts: int) -> str:
-    """How many starts the solve took, in words: one where convexity proves the answer, else the seeded ones."""
+def starts_used(starts: int, proved: int, n_prompts: int, why: str = "") -> str:
+    """How many starts a solve took, in words (the pair and the group solver's ``method``): one where convexity
+    proves the answer (``why``: the premise, in parentheses), else the seeded ones."""
     if proved == n_prompts:
-        return ("one start per prompt, the answer global and unique by convexity in the log-probabilities "
-                "(a logistic link of affine scores; KKT on sum pi <= 1)")
+        return f"one start per prompt, the answer global and unique by convexity in the log-probabilities{why}"
     if proved:
         return (f"{starts} seeded starts ({proved} of {n_prompts} prompts proved global and unique by convexity "
                 "from one)")
