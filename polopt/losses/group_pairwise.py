@@ -39,7 +39,12 @@ def flip_corrected_logistic(pair: PairScores, beta: float, *, flip_rate: float =
     """
     if not (isinstance(flip_rate, (int, float)) and 0.0 <= flip_rate < 0.5):
         raise ValueError(f"loss.flip_rate must lie in [0, 0.5) (e.g. loss.flip_rate=0.1), got {flip_rate!r}")
-    z = beta * (pair.logratio_winner - pair.logratio_loser)  # (B,)
+    return flip_corrected_of_margin(beta * (pair.logratio_winner - pair.logratio_loser), flip_rate)  # (B,)
+
+
+def flip_corrected_of_margin(z: Tensor, flip_rate: float) -> Tensor:
+    """:func:`flip_corrected_logistic` as a function of the scaled margin ``z = beta rho``, elementwise (the
+    exact solver's score form reads it too)."""
     return ((1.0 - flip_rate) * F.softplus(-z) - flip_rate * F.softplus(z)) / (1.0 - 2.0 * flip_rate)
 
 
@@ -110,6 +115,11 @@ def logistic_exponential_blend(pair: PairScores, beta: float, *, tau: float = 0.
     """
     if not (isinstance(tau, (int, float)) and tau > 0):
         raise ValueError(f"loss.tau must be a number > 0 (e.g. loss.tau=0.05), got {tau!r}")
-    x = beta * (pair.logratio_winner - pair.logratio_loser)  # (B,)
+    return blend_of_margin(beta * (pair.logratio_winner - pair.logratio_loser), tau)  # (B,)
+
+
+def blend_of_margin(x: Tensor, tau: float) -> Tensor:
+    """:func:`logistic_exponential_blend` as a function of the scaled margin ``x = beta rho``, elementwise (the
+    exact solver's score form reads it too)."""
     blend = torch.sigmoid(x / tau)
     return (1.0 - blend) * F.softplus(-x) + blend * _exp_tail(-x)

@@ -33,6 +33,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
+from polopt.losses import group_pairwise
 from polopt.losses import pair as pair_losses
 from polopt.losses.margin import MarginLoss
 from polopt.losses.pair import PairScores
@@ -173,16 +174,12 @@ def _plus_nll(beta: float, base: str = "reference_free_logistic", weight: float 
 
 
 def _flip_corrected(beta: float, flip_rate: float = 0.1) -> ScoreForm:
-    def link(x: Tensor) -> Tensor:  # [(1 - eps) l(x) - eps l(-x)] / (1 - 2 eps), l = -log sigma
-        return ((1.0 - flip_rate) * F.softplus(-x) - flip_rate * F.softplus(x)) / (1.0 - 2.0 * flip_rate)
-    return ScoreForm(Link(fn=link), _logratio(beta), _logratio(beta))
+    return ScoreForm(Link(fn=lambda x: group_pairwise.flip_corrected_of_margin(x, flip_rate)), _logratio(beta),
+                     _logratio(beta))
 
 
 def _blend(beta: float, tau: float = 0.05) -> ScoreForm:
-    def link(x: Tensor) -> Tensor:  # (1 - sigma(x / tau)) l(x) + sigma(x / tau) e^-x (with its linear tail)
-        gate = torch.sigmoid(x / tau)
-        return (1.0 - gate) * F.softplus(-x) + gate * pair_losses._exp_tail(-x)
-    return ScoreForm(Link(fn=link), _logratio(beta), _logratio(beta))
+    return ScoreForm(Link(fn=lambda x: group_pairwise.blend_of_margin(x, tau)), _logratio(beta), _logratio(beta))
 
 
 def _same(score: Score, affine: bool = False) -> ScoreForm:
