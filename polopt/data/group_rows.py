@@ -105,12 +105,22 @@ def _responses(raw: dict, present: set, text_values: bool, messages: bool) -> tu
     return members, problems
 
 
+def _per_response(field: str, kind: str, entries: str, value, g: int | None,
+                  text_values: bool) -> tuple[list | None, list[dict]]:
+    """``value`` as a list of one entry per response, or the problem: ``not_a_list`` (a list of ``kind``), or
+    ``length_mismatch`` (so many ``entries`` for the row's ``g`` responses)."""
+    items = _as_list(value, text_values)
+    if items is None:
+        return None, [_problem(field, "not_a_list", f"{field} is {_short(value)}, not a list of {kind}")]
+    if g is not None and len(items) != g:
+        return None, [_problem(field, "length_mismatch", f"{len(items)} {entries} for {g} responses")]
+    return items, []
+
+
 def _ranking(value, g: int | None, text_values: bool) -> tuple[list | None, list[dict]]:
-    ranks = _as_list(value, text_values)
+    ranks, problems = _per_response("ranking", "ranks", "ranks", value, g, text_values)
     if ranks is None:
-        return None, [_problem("ranking", "not_a_list", f"ranking is {_short(value)}, not a list of ranks")]
-    if g is not None and len(ranks) != g:
-        return None, [_problem("ranking", "length_mismatch", f"{len(ranks)} ranks for {g} responses")]
+        return None, problems
     whole = all(isinstance(k, int) and not isinstance(k, bool) for k in ranks)
     if not whole or sorted(ranks) != list(range(len(ranks))):
         return None, [_problem("ranking", "not_a_permutation", f"ranking {_short(ranks, 60)} is not a permutation of "
@@ -120,11 +130,9 @@ def _ranking(value, g: int | None, text_values: bool) -> tuple[list | None, list
 
 
 def _scores(value, g: int | None, text_values: bool) -> tuple[list | None, list[dict]]:
-    scores = _as_list(value, text_values)
+    scores, problems = _per_response("scores", "numbers", "scores", value, g, text_values)
     if scores is None:
-        return None, [_problem("scores", "not_a_list", f"scores is {_short(value)}, not a list of numbers")]
-    if g is not None and len(scores) != g:
-        return None, [_problem("scores", "length_mismatch", f"{len(scores)} scores for {g} responses")]
+        return None, problems
     for k, s in enumerate(scores):
         if isinstance(s, bool) or not isinstance(s, (int, float)):
             return None, [_problem("scores", "bad_score", f"scores[{k}] is {_short(s)}, not a number")]
